@@ -1,0 +1,36 @@
+"""attnsim: a cycle-approximate, discrete-event simulator of attention datapaths.
+
+Data flows one way: config + trace -> engine -> stats -> result -> sweep
+store -> report.
+
+    >>> import sim
+    >>> arch = sim.load_arch("arch_configs/mid.yaml")
+    >>> trace = sim.load_trace("traces/demo_decode.yaml")
+    >>> result = sim.simulate(arch, trace)
+    >>> result.to_dict()["cycles"]
+"""
+
+__version__ = "0.1.0"
+
+from .arch import Arch, load_arch  # noqa: E402
+from .errors import ConfigError, InputError, SimulationStalled, TraceError  # noqa: E402
+from .trace.format import Trace, load_trace  # noqa: E402
+
+
+def simulate(arch, trace, **engine_options):
+    """Replay ``trace`` on ``arch`` and return a :class:`sim.result.Result`.
+
+    ``arch`` may be an Arch, a YAML path or a mapping; ``trace`` a Trace or a
+    path. ``engine_options`` override the config's ``engine`` section
+    (``grain_rows``, ``seed``).
+    """
+    from .engine.datapath import run_datapath
+
+    arch = load_arch(arch)
+    if not isinstance(trace, Trace):
+        trace = load_trace(trace)
+    return run_datapath(arch, trace, **engine_options)
+
+
+__all__ = ["Arch", "ConfigError", "InputError", "SimulationStalled", "Trace", "TraceError",
+           "load_arch", "load_trace", "simulate", "__version__"]

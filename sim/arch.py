@@ -1,0 +1,347 @@
+"""Architecture config: the datapath an architect wants to evaluate.
+
+A config is a YAML mapping of sections (``dram``, ``fetch``, ``buffers``,
+``dot``, ``softmax``, ``topk``, ``precision``, ``engine``) plus ``clock_ghz``.
+``extends: other.yaml`` starts from another config and overrides it key by key.
+Every knob is addressable by a dotted path (``dot.multipliers``), which is how
+sweeps and scripts change it.
+
+Validation happens here, once. Errors name the file, the dotted field, the bad
+value and what was expected; the engine trusts a loaded :class:`Arch`.
+"""
+
+import copy
+import math
+import os
+import types
+
+import yaml
+
+from .errors import ConfigError, closest
+
+
+class Field:
+    """One config knob: its kind, default and the rule its value must meet."""
+
+    def __init__(self, kind, default, doc, choices=None, minimum=None):
+        self.kind = kind  # 'int', 'float', 'str', 'bool', 'choice', 'map'
+        self.default = default
+        self.doc = doc
+        self.choices = choices
+        self.minimum = minimum
+
+    def check(self, source, path, value):
+        if self.kind == "int":
+            if isinstance(value, bool) or not isinstance(value, int):
+                if isinstance(value, float) and value.is_integer():
+                    value = int(value)
+                else:
+                    raise ConfigError(source, path, value, "expected a whole number")
+            low = 1 if self.minimum is None else self.minimum
+            if value < low:
+                raise ConfigError(source, path, value, f"expected a whole number >= {low}")
+            return value
+        if self.kind == "float":
+            if isinstance(value, bool) or not isinstance(value, (int, float)):
+                raise ConfigError(source, path, value, "expected a number")
+            value = float(value)
+            if not math.isfinite(value):
+                raise ConfigError(source, path, value, "expected a finite number")
+            if self.minimum is None:
+                if value <= 0:
+                    raise ConfigError(source, path, value, "expected a number > 0")
+            elif value < self.minimum:
+                raise ConfigError(source, path, value, f"expected a number >= {self.minimum}")
+            return value
+        if self.kind == "str":
+            if not isinstance(value, str):
+                raise ConfigError(source, path, value, "expected text")
+            return value
+        if self.kind == "bool":
+            if not isinstance(value, bool):
+                raise ConfigError(source, path, value, "expected true or false")
+            return value
+        if self.kind == "choice":
+            if value not in self.choices:
+                raise ConfigError(source, path, value,
+                                  f"expected one of {', '.join(map(str, self.choices))}"
+                                  + closest(value, self.choices))
+            return value
+        if self.kind == "map":
+            if not isinstance(value, dict):
+                raise ConfigError(source, path, value, "expected a mapping")
+            return copy.deepcopy(value)
+        raise AssertionError(self.kind)
+
+
+# Section -> field -> Field. Sections own disjoint knobs; other modules read
+# them through the loaded Arch, never from raw YAML.
+SCHEMA = {
+    "": {
+        "name": Field("str", "unnamed", "short name shown in reports"),
+        "description": Field("str", "", "one line on what this datapath is"),
+        "clock_ghz": Field("float", 1.0, "accelerator clock in GHz; all cycles are of this clock"),
+    },
+    "dram": {
+        "channels": Field("int", 8, "independent memory channels in the pool"),
+        "channel_gbps": Field("float", 32.0, "peak data rate of one channel, GB/s (1e9 bytes/s)"),
+        "burst_bytes": Field("int", 64, "bytes moved by one burst (the smallest access)"),
+        "latency_ns": Field("float", 40.0, "fixed access latency, request to first data, ns"),
+        "queue_depth": Field("int", 32, "requests one channel can hold queued or in service"),
+        "interleave_bytes": Field("int", 256, "consecutive bytes mapped to one channel before the next"),
+    },
+    "fetch": {
+        "request_bytes": Field("int", 1024, "largest request the fetch unit sends to one channel"),
+        "inflight": Field("int", 32, "transactions the fetch unit may have outstanding"),
+        "reorder_entries": Field("int", 16, "completed transactions the reorder stage can hold"),
+    },
+    "buffers": {
+        "query_kib": Field("float", 16.0, "on-chip query buffer, KiB"),
+        "key_kib": Field("float", 64.0, "on-chip key buffer, KiB"),
+        "value_kib": Field("float", 64.0, "on-chip value buffer, KiB"),
+    },
+    "dot": {
+        "multipliers": Field("int", 512, "multipliers in the dot-product array (MACs per cycle)"),
+        "lanes": Field("int", 64, "elements of one dot product consumed per cycle per row of the array"),
+        "tile_rows": Field("int", 64, "key or value rows in one hardware tile"),
+        "pipeline_cycles": Field("int", 8, "cycles from the last operand in to the result out", minimum=0),
+        "arrays": Field("choice", "shared", "one array for q.K and p.V, or a separate array each",
+                        choices=["shared", "separate"]),
+    },
+    "softmax": {
+        "lanes": Field("int", 16, "score elements processed per cycle"),
+        "latency_cycles": Field("int", 12, "pipeline latency of the exponent/normalize path", minimum=0),
+    },
+    "topk": {
+        "comparators": Field("int", 8, "comparisons the selector performs per cycle"),
+        "latency_cycles": Field("int", 4, "pipeline latency of one selection", minimum=0),
+    },
+    "precision": {
+        "q_bits": Field("int", 8, "bits per query element"),
+        "k_msb_bits": Field("int", 4, "bits per key element in the most-significant plane"),
+        "k_lsb_bits": Field("int", 4, "bits per key element in the least-significant plane", minimum=0),
+        "v_bits": Field("int", 8, "bits per value element"),
+        "score_bits": Field("int", 16, "bits per score / probability element"),
+    },
+    "engine": {
+        "grain_rows": Field("int", 256, "key/value rows carried by one simulated transaction"),
+        "seed": Field("int", 0, "seed of the generator behind data-dependent choices", minimum=0),
+    },
+}
+
+# The knobs named in the design notes; sweeps most often use these.
+MAIN_KNOBS = ("clock_ghz", "dram.channels", "dram.channel_gbps", "dot.multipliers",
+              "buffers.key_kib", "buffers.value_kib", "softmax.lanes", "topk.comparators")
+
+
+def knob_paths():
+    """Every valid dotted path, in schema order."""
+    out = []
+    for section, fields in SCHEMA.items():
+        for key in fields:
+            out.append(key if not section else f"{section}.{key}")
+    return out
+
+
+def field_for(path):
+    """The :class:`Field` behind a dotted path, or None."""
+    section, _, key = path.rpartition(".")
+    return SCHEMA.get(section, {}).get(key)
+
+
+class Section(types.SimpleNamespace):
+    """Attribute view of one resolved config section."""
+
+
+class Arch:
+    """A validated, fully resolved datapath config.
+
+    Sections are attributes (``arch.dot.multipliers``); ``to_dict()`` gives the
+    resolved mapping, which ``load_arch`` accepts back unchanged.
+    """
+
+    def __init__(self, resolved, source="<dict>"):
+        self._d = resolved
+        self.source = source
+        for section in SCHEMA:
+            if section:
+                setattr(self, section, Section(**resolved[section]))
+        self.name = resolved["name"]
+        self.description = resolved["description"]
+        self.clock_ghz = resolved["clock_ghz"]
+
+    def to_dict(self):
+        return copy.deepcopy(self._d)
+
+    def get(self, path):
+        node = self._d
+        for part in path.split("."):
+            node = node[part]
+        return node
+
+    def with_overrides(self, overrides, source=None):
+        """A new Arch with dotted-path overrides applied and validated."""
+        raw = self.to_dict()
+        for path, value in overrides.items():
+            _set_path(raw, path, value, source or self.source)
+        return load_arch(raw, source=source or self.source)
+
+    # Derived peaks -------------------------------------------------------
+    @property
+    def peak_macs_per_s(self):
+        return self.dot.multipliers * self.clock_ghz * 1e9
+
+    @property
+    def peak_gbps(self):
+        return self.dram.channels * self.dram.channel_gbps
+
+    @property
+    def bytes_per_cycle(self):
+        return self.peak_gbps / self.clock_ghz
+
+    @property
+    def machine_balance(self):
+        """MACs the array can do per byte the memory can deliver."""
+        return self.peak_macs_per_s / (self.peak_gbps * 1e9)
+
+    def key_rows(self, head_dim):
+        return int(self.buffers.key_kib * 1024 // (head_dim * self.precision.k_msb_bits / 8))
+
+    def value_rows(self, head_dim):
+        return int(self.buffers.value_kib * 1024 // (head_dim * self.precision.v_bits / 8))
+
+    def query_rows(self, head_dim):
+        return int(self.buffers.query_kib * 1024 // (head_dim * self.precision.q_bits / 8))
+
+    def peaks(self, head_dim=64):
+        return {
+            "macs_per_s": self.peak_macs_per_s,
+            "gbps": self.peak_gbps,
+            "bytes_per_cycle": self.bytes_per_cycle,
+            "machine_balance_mac_per_byte": self.machine_balance,
+            "head_dim": head_dim,
+            "key_buffer_rows": self.key_rows(head_dim),
+            "value_buffer_rows": self.value_rows(head_dim),
+            "query_buffer_rows": self.query_rows(head_dim),
+        }
+
+    def __repr__(self):
+        return f"Arch({self.name!r} from {self.source})"
+
+
+def load_arch(spec, source=None):
+    """Load and validate an architecture from a YAML path or a mapping.
+
+    ``extends`` is resolved relative to the file that names it. The result's
+    ``to_dict()`` is fully resolved and round-trips through this function.
+    """
+    if isinstance(spec, Arch):
+        return spec
+    if isinstance(spec, (str, os.PathLike)):
+        path = os.fspath(spec)
+        raw = _read_yaml(path)
+        raw = _resolve_extends(raw, path, seen=())
+        source = source or path
+    elif isinstance(spec, dict):
+        source = source or "<dict>"
+        raw = copy.deepcopy(spec)
+        if "extends" in raw:
+            base_dir = os.path.dirname(source) if os.path.exists(str(source)) else "."
+            raw = _resolve_extends(raw, os.path.join(base_dir, "<dict>"), seen=())
+    else:
+        raise ConfigError(source, "<root>", spec, "expected a YAML path or a mapping")
+    return Arch(_validate(raw, source), source)
+
+
+def _read_yaml(path):
+    try:
+        with open(path, encoding="utf-8") as fh:
+            data = yaml.safe_load(fh)
+    except FileNotFoundError:
+        raise ConfigError(path, "<file>", path, "file not found") from None
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f"line {mark.line + 1}" if mark else "<file>"
+        raise ConfigError(path, where, "...", f"not valid YAML ({getattr(exc, 'problem', exc)})") from None
+    if data is None:
+        data = {}
+    if not isinstance(data, dict):
+        raise ConfigError(path, "<root>", data, "expected a mapping of config sections")
+    return data
+
+
+def _resolve_extends(raw, path, seen):
+    parent = raw.pop("extends", None)
+    if parent is None:
+        return raw
+    if not isinstance(parent, str):
+        raise ConfigError(path, "extends", parent, "expected the path of another config")
+    parent_path = os.path.normpath(os.path.join(os.path.dirname(path), parent))
+    if parent_path in seen or parent_path == os.path.normpath(path):
+        raise ConfigError(path, "extends", parent, "configs extend each other in a cycle")
+    base = _resolve_extends(_read_yaml(parent_path), parent_path, seen + (os.path.normpath(path),))
+    return _merge(base, raw)
+
+
+def _merge(base, over):
+    out = copy.deepcopy(base)
+    for key, value in over.items():
+        if isinstance(value, dict) and isinstance(out.get(key), dict):
+            out[key] = _merge(out[key], value)
+        else:
+            out[key] = copy.deepcopy(value)
+    return out
+
+
+def _set_path(raw, path, value, source):
+    if field_for(path) is None:
+        raise ConfigError(source, path, value, "no such config knob" + closest(path, knob_paths()))
+    section, _, key = path.rpartition(".")
+    node = raw.setdefault(section, {}) if section else raw
+    node[key] = value
+
+
+def _validate(raw, source):
+    out = {}
+    top = SCHEMA[""]
+    for key, value in raw.items():
+        if key in SCHEMA and key:
+            continue
+        if key not in top:
+            raise ConfigError(source, key, value, "unknown key" + closest(key, list(SCHEMA) + list(top)))
+    for key, field in top.items():
+        out[key] = field.check(source, key, raw[key]) if key in raw else copy.deepcopy(field.default)
+    for section, fields in SCHEMA.items():
+        if not section:
+            continue
+        given = raw.get(section, {})
+        if given is None:
+            given = {}
+        if not isinstance(given, dict):
+            raise ConfigError(source, section, given, "expected a mapping of knobs")
+        for key, value in given.items():
+            if key not in fields:
+                raise ConfigError(source, f"{section}.{key}", value,
+                                  "unknown key" + closest(key, fields))
+        out[section] = {key: (field.check(source, f"{section}.{key}", given[key]) if key in given
+                              else copy.deepcopy(field.default))
+                        for key, field in fields.items()}
+    _check_consistency(out, source)
+    return out
+
+
+def _check_consistency(d, source):
+    """Rules that tie knobs together; each names the field to change."""
+    dram, fetch, dot = d["dram"], d["fetch"], d["dot"]
+    if dram["interleave_bytes"] % dram["burst_bytes"]:
+        raise ConfigError(source, "dram.interleave_bytes", dram["interleave_bytes"],
+                          f"expected a multiple of dram.burst_bytes={dram['burst_bytes']}")
+    if fetch["request_bytes"] % dram["burst_bytes"]:
+        raise ConfigError(source, "fetch.request_bytes", fetch["request_bytes"],
+                          f"expected a multiple of dram.burst_bytes={dram['burst_bytes']}")
+    if dot["multipliers"] < dot["lanes"]:
+        raise ConfigError(source, "dot.lanes", dot["lanes"],
+                          f"expected at most dot.multipliers={dot['multipliers']}")
+    if dot["multipliers"] % dot["lanes"]:
+        raise ConfigError(source, "dot.multipliers", dot["multipliers"],
+                          f"expected a multiple of dot.lanes={dot['lanes']}")

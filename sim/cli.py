@@ -1,0 +1,168 @@
+"""attnsim command line.
+
+Each command group has one ``_add_<group>`` function that declares its options
+and names the handler; handlers import their modules lazily so ``attnsim
+--help`` stays fast. Input errors print one line and exit with status 2.
+"""
+
+import argparse
+import sys
+
+from . import __version__
+from .errors import InputError, SimulationStalled
+
+EXIT_INPUT = 2
+
+
+def _add_run(sub):
+    p = sub.add_parser("run", help="replay a trace on an architecture and summarize the result")
+    p.add_argument("--arch", required=True, help="architecture config (YAML)")
+    p.add_argument("--trace", required=True, help="attention trace (.npz or .yaml)")
+    p.add_argument("--json", metavar="OUT", help="write the result document here")
+    p.add_argument("--set", action="append", default=[], metavar="PATH=VALUE",
+                   help="override a config knob by dotted path (repeatable)")
+    p.add_argument("--grain-rows", type=int, help="rows per simulated transaction (engine.grain_rows)")
+    p.add_argument("--seed", type=int, help="seed for data-dependent choices (engine.seed)")
+    p.add_argument("--timeline", metavar="OUT", help="write per-unit intervals (Trace Event Format JSON)")
+    p.set_defaults(handler=_cmd_run)
+
+
+def _cmd_run(args):
+    import json
+
+    from .arch import load_arch
+    from .engine.datapath import run_datapath
+    from .result import format_summary
+    from .trace.format import load_trace
+
+    arch = load_arch(args.arch)
+    if args.set:
+        arch = arch.with_overrides(_parse_sets(args.set, args.arch), source=args.arch)
+    trace = load_trace(args.trace)
+    opts = {}
+    if args.grain_rows is not None:
+        opts["grain_rows"] = args.grain_rows
+    if args.seed is not None:
+        opts["seed"] = args.seed
+    result = run_datapath(arch, trace, keep_intervals=bool(args.timeline), **opts)
+    print(format_summary(result))
+    if args.json:
+        with open(args.json, "w", encoding="utf-8") as fh:
+            json.dump(result.to_dict(), fh, indent=2, sort_keys=True)
+            fh.write("\n")
+        print(f"result document: {args.json}")
+    if args.timeline:
+        from .result import write_timeline
+        write_timeline(result, args.timeline)
+        print(f"timeline: {args.timeline}")
+    return 0
+
+
+def _parse_sets(items, source):
+    import yaml
+
+    out = {}
+    for item in items:
+        if "=" not in item:
+            raise InputError("--set", item, item, "expected PATH=VALUE, e.g. dot.multipliers=1024")
+        path, _, text = item.partition("=")
+        out[path.strip()] = yaml.safe_load(text)
+    return out
+
+
+def _add_arch(sub):
+    p = sub.add_parser("arch", help="architecture configs")
+    s = p.add_subparsers(dest="arch_cmd", required=True)
+    c = s.add_parser("check", help="validate a config and print its derived peaks")
+    c.add_argument("config", help="architecture config (YAML)")
+    c.add_argument("--head-dim", type=int, default=64, help="head width for buffer capacities in rows")
+    c.add_argument("--resolved", action="store_true", help="also print the fully resolved config")
+    c.set_defaults(handler=_cmd_arch_check)
+
+
+def _cmd_arch_check(args):
+    from .arch import load_arch
+
+    arch = load_arch(args.config)
+    if args.head_dim < 1:
+        raise InputError("--head-dim", "head_dim", args.head_dim, "expected a whole number >= 1")
+    pk = arch.peaks(args.head_dim)
+    print(f"{args.config}: valid  ({arch.name}: {arch.description})")
+    print(f"  compute   {pk['macs_per_s'] / 1e12:10.3f} TMAC/s  "
+          f"({arch.dot.multipliers} multipliers at {arch.clock_ghz:g} GHz)")
+    print(f"  memory    {pk['gbps']:10.1f} GB/s    "
+          f"({arch.dram.channels} channels x {arch.dram.channel_gbps:g} GB/s)")
+    print(f"  balance   {pk['machine_balance_mac_per_byte']:10.2f} MAC/byte")
+    print(f"  buffers at head_dim {args.head_dim}: query {pk['query_buffer_rows']} rows, "
+          f"key {pk['key_buffer_rows']} rows (MSB plane), value {pk['value_buffer_rows']} rows")
+    if args.resolved:
+        import yaml
+        print(yaml.safe_dump(arch.to_dict(), sort_keys=False), end="")
+    return 0
+
+
+def _add_trace(sub):
+    p = sub.add_parser("trace", help="attention traces: synthesize, capture, inspect, check")
+    s = p.add_subparsers(dest="trace_cmd", required=True)
+    _add_trace_inspect(s)
+    _add_trace_synth(s)
+    _add_trace_capture(s)
+
+
+def _add_trace_inspect(s):
+    """`trace info` and `trace check`."""
+
+
+def _add_trace_synth(s):
+    """`trace synth`."""
+
+
+def _add_trace_capture(s):
+    """`trace capture`."""
+
+
+def _add_sweep(sub):
+    """`sweep SPEC.yaml`."""
+
+
+def _add_report(sub):
+    """`report RESULTS... --out DIR`."""
+
+
+def _add_demo(sub):
+    """`demo`."""
+
+
+def _add_dram(sub):
+    """`dram probe`."""
+
+
+def build_parser():
+    parser = argparse.ArgumentParser(
+        prog="attnsim",
+        description="Cycle-approximate simulator of attention-accelerator datapaths.")
+    parser.add_argument("--version", action="version", version=f"attnsim {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+    for add in (_add_run, _add_arch, _add_trace, _add_sweep, _add_report, _add_demo, _add_dram):
+        add(sub)
+    return parser
+
+
+def main(argv=None):
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.handler(args) or 0
+    except InputError as exc:
+        print(f"attnsim: error: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    except SimulationStalled as exc:
+        print(f"attnsim: simulation stalled: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("attnsim: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,116 @@
+"""Per-unit state accounting: utilization and the stall breakdown.
+
+Every unit is, at every instant, in exactly one state: ``busy``, ``starved``
+(no input), ``blocked`` (no room for its output) or ``idle`` (nothing left to
+do). Cause names are unique across states: starved causes name the stage that
+held the input (``memory_latency``, ``softmax``...), blocked causes name what
+is full (``key_buffer_full``, ``inflight_limit``...). :class:`UnitState` timestamps the transitions; the fractions of the four
+states sum to 1 per unit and each starved or blocked interval carries a cause.
+One helper for every unit, so a new unit gets utilization and stalls for free.
+"""
+
+from collections import defaultdict
+
+STATES = ("busy", "starved", "blocked", "idle")
+
+
+class UnitState:
+    """State log of one unit.
+
+    The unit calls :meth:`set` on each transition (or :meth:`charge_wait` after
+    waiting for a transaction). Intervals are kept for the timeline export;
+    consecutive intervals of the same state and cause are merged.
+    """
+
+    def __init__(self, env, name, keep_intervals=True):
+        self.env = env
+        self.name = name
+        self.keep_intervals = keep_intervals
+        self.state = "starved"
+        self.cause = "start"
+        self.since = env.now
+        self.totals = defaultdict(float)   # (state, cause) -> cycles
+        self.intervals = []                # [t0, t1, state, cause]
+        self.last_busy_end = 0.0
+        self.busy_cycles = 0.0
+
+    def _close(self, t):
+        if t <= self.since:
+            return
+        key = (self.state, self.cause)
+        self.totals[key] += t - self.since
+        if self.state == "busy":
+            self.busy_cycles += t - self.since
+            self.last_busy_end = t
+        if self.keep_intervals:
+            iv = self.intervals
+            if iv and iv[-1][1] == self.since and iv[-1][2] == self.state and iv[-1][3] == self.cause:
+                iv[-1][1] = t
+            else:
+                iv.append([self.since, t, self.state, self.cause])
+        self.since = t
+
+    def set(self, state, cause=None):
+        """Enter ``state`` now; ``cause`` says why for starved and blocked."""
+        now = self.env.now
+        self._close(now)
+        self.state = state
+        self.cause = cause
+
+    def charge_wait(self, t0, txn, before="fetch"):
+        """Charge a starved wait ``[t0, now)`` to the stages in ``txn``'s log.
+
+        The part of the wait before the transaction existed goes to ``before``
+        (the unit that had not yet produced it); the rest is split over the
+        stages the transaction was in during the wait.
+        """
+        now = self.env.now
+        self._close(t0)  # anything pending up to t0 stays as it was
+        if now <= t0:
+            self.state, self.cause, self.since = "starved", None, now
+            return
+        start = t0
+        prev_end = None
+        for stage, t_end in txn.log:
+            if prev_end is None:
+                # creation: the wait before it is charged to whoever created it late
+                if t_end > start:
+                    self._charge(start, min(t_end, now), "starved", before)
+                    start = min(t_end, now)
+                prev_end = t_end
+                continue
+            if t_end > start and start < now:
+                seg_end = min(t_end, now)
+                self._charge(start, seg_end, "starved", stage)
+                start = seg_end
+            prev_end = t_end
+        if start < now:
+            # done but handed over late (e.g. the consumer itself was elsewhere)
+            self._charge(start, now, "starved", txn.log[-1][0])
+        self.state, self.cause, self.since = "starved", None, now
+
+    def _charge(self, t0, t1, state, cause):
+        self.since = t0
+        self.state, self.cause = state, cause
+        self._close(t1)
+
+    def finish(self, t_end):
+        """Close the log at the end of the run; the tail after the last busy is idle."""
+        self._close(min(self.env.now, t_end))
+        if self.since < t_end:
+            self.state, self.cause = "idle", None
+            self._close(t_end)
+
+    def summary(self, total):
+        """Fractions of ``total`` cycles per state, and stalls per cause."""
+        frac = dict.fromkeys(STATES, 0.0)
+        stalls = defaultdict(float)
+        for (state, cause), t in self.totals.items():
+            frac[state] += t
+            if state in ("starved", "blocked"):
+                stalls[cause or "unattributed"] += t
+        if total <= 0:
+            return {**{s: (1.0 if s == "idle" else 0.0) for s in STATES}, "stalls": {}}
+        out = {s: frac[s] / total for s in STATES}
+        out["stalls"] = {k: v / total for k, v in sorted(stalls.items(), key=lambda kv: -kv[1])}
+        return out

@@ -1,0 +1,40 @@
+"""Transactions: the unit of work that moves between simulated units.
+
+A transaction is a tile or a group of tiles (``rows`` key/value rows, or a
+block of score rows) with the bytes it carries and a small log of where it
+has been. The log is a list of ``(stage, t_end)``: the transaction spent
+``[previous t_end, t_end)`` in ``stage``. When a consumer is starved waiting
+for a transaction, that log says which upstream stage held it, and the wait is
+charged to those stages (see :func:`sim.engine.stats.UnitState.charge_wait`).
+"""
+
+
+class Txn:
+    """One transaction: what it is, how big, and where it has been."""
+
+    __slots__ = ("kind", "step", "head", "block", "rows", "nbytes", "bursts", "log", "done",
+                 "buffer", "hold")
+
+    def __init__(self, kind, step, head, block, rows, nbytes, t_created, creator):
+        self.kind = kind          # 'Q', 'K', 'KL', 'V' (fetched) or 'S', 'P' (computed)
+        self.step = step          # index of the attention step in the trace
+        self.head = head          # head id (or -1 for whole-layer work)
+        self.block = block        # query block within the head
+        self.rows = rows          # key/value rows (fetched) or score rows (computed)
+        self.nbytes = nbytes      # bytes moved from memory (burst-rounded)
+        self.bursts = None        # burst addresses, set by the fetch unit
+        self.log = [(creator, t_created)]
+        self.done = None          # simpy event: data in place for the consumer
+        self.buffer = None        # name of the on-chip buffer holding it
+        self.hold = 0             # bytes reserved in that buffer
+
+    def mark(self, stage, t_end):
+        """Record that the transaction spent time until ``t_end`` in ``stage``."""
+        self.log.append((stage, t_end))
+
+    @property
+    def created(self):
+        return self.log[0][1]
+
+    def __repr__(self):
+        return f"Txn({self.kind} step={self.step} head={self.head} block={self.block} rows={self.rows})"
