@@ -111,10 +111,101 @@ def _add_trace(sub):
 
 def _add_trace_inspect(s):
     """`trace info` and `trace check`."""
+    i = s.add_parser("info", help="print what a trace asks of the datapath")
+    i.add_argument("trace", help="attention trace (.npz or .yaml)")
+    i.add_argument("--json", action="store_true", help="print the summary as JSON")
+    i.set_defaults(handler=_cmd_trace_info)
+    c = s.add_parser("check", help="validate a trace and print its counts")
+    c.add_argument("trace", help="attention trace (.npz or .yaml)")
+    c.set_defaults(handler=_cmd_trace_check)
+
+
+def _cmd_trace_info(args):
+    from .trace.format import load_trace
+
+    trace = load_trace(args.trace)
+    sm = trace.summary()
+    if args.json:
+        import json
+        print(json.dumps(sm, indent=2, sort_keys=True, default=str))
+        return 0
+    prov = sm["provenance"]
+    made = ", ".join(f"{k}={v}" for k, v in prov.items() if k != "method")
+    print(f"{args.trace}: {sm['name']} (format version {sm['version']})")
+    print(f"  made by    {prov.get('method')}" + (f" ({made})" if made else ""))
+    print(f"  steps      {sm['steps']} ({sm['prefill_steps']} prefill, {sm['decode_steps']} decode) "
+          f"over {sm['layers']} layers; {sm['head_steps']} head-steps")
+    print(f"  head_dim   {', '.join(map(str, sm['head_dims']))}; "
+          f"kv_rows up to {sm['max_kv_rows']}, q_rows up to {sm['max_q_rows']}")
+    print(f"  MACs       q.K {sm['macs_qk']:,}   p.V {sm['macs_pv']:,}")
+    print(f"  kept       keys {sm['kept_key_fraction']:.1%} of dense, values {sm['kept_value_fraction']:.1%} "
+          f"of kept keys; LSB refetch on {sm['lsb_refetch_head_fraction']:.1%} of head-steps")
+    print(f"  scores     token scores on {sm['token_score_steps']} steps, "
+          f"head scores on {sm['head_score_steps']} steps")
+    print(f"  digest     {sm['digest']}")
+    return 0
+
+
+def _cmd_trace_check(args):
+    from .trace.format import load_trace
+
+    trace = load_trace(args.trace)
+    sm = trace.summary()
+    print(f"{args.trace}: valid")
+    print(f"  {sm['steps']} steps ({sm['prefill_steps']} prefill, {sm['decode_steps']} decode), "
+          f"{sm['layers']} layers, {sm['head_steps']} head-steps, "
+          f"{sm['macs_qk'] + sm['macs_pv']:,} MACs")
+    return 0
 
 
 def _add_trace_synth(s):
     """`trace synth`."""
+    p = s.add_parser("synth", help="write a seeded synthetic prefill/decode trace")
+    p.add_argument("--out", required=True, metavar="T", help="output trace (.npz or .yaml)")
+    p.add_argument("--prompt", type=int, default=512, help="prompt tokens (prefill length)")
+    p.add_argument("--decode", type=int, default=128, help="generated tokens (decode steps)")
+    p.add_argument("--layers", type=int, default=12, help="layers")
+    p.add_argument("--heads", type=int, default=12, help="heads per layer")
+    p.add_argument("--head-dim", type=int, default=64, help="head width")
+    p.add_argument("--token-keep", default="1.0", metavar="R[,R...]",
+                   help="cascade token pruning: keep ratio per layer, one number or one per layer")
+    p.add_argument("--head-keep", default="1.0", metavar="R[,R...]",
+                   help="cascade head pruning: keep ratio per layer, one number or one per layer")
+    p.add_argument("--value-keep", type=float, default=1.0, help="value pruning: V rows kept per decode row")
+    p.add_argument("--lsb-fraction", type=float, default=0.0,
+                   help="probability that a head of a step refetches the LSB key plane")
+    p.add_argument("--lsb-rows", type=float, default=1.0, dest="lsb_fraction_rows",
+                   help="share of a flagged head's query rows that are recomputed")
+    p.add_argument("--no-prefill", action="store_true", help="leave the prefill steps out of the trace")
+    p.add_argument("--seed", type=int, default=0, help="seed of the generator")
+    p.add_argument("--name", help="trace name (default: made from the arguments)")
+    p.set_defaults(handler=_cmd_trace_synth)
+
+
+def _cmd_trace_synth(args):
+    from .trace.format import save_trace
+    from .trace.synth import synth_trace
+
+    def ratios(option, text):
+        try:
+            vals = [float(x) for x in text.split(",")]
+        except ValueError:
+            raise InputError("trace synth", option, text, "expected a number or comma-separated numbers") from None
+        return vals[0] if len(vals) == 1 else vals
+
+    if not args.out.lower().endswith((".npz", ".yaml", ".yml")):
+        raise InputError("trace synth", "out", args.out, "expected a .npz or .yaml file name")
+    trace = synth_trace(prompt_tokens=args.prompt, decode_steps=args.decode, layers=args.layers,
+                        heads=args.heads, head_dim=args.head_dim,
+                        token_keep=ratios("token_keep", args.token_keep),
+                        head_keep=ratios("head_keep", args.head_keep), value_keep=args.value_keep,
+                        lsb_fraction=args.lsb_fraction, lsb_fraction_rows=args.lsb_fraction_rows,
+                        seed=args.seed, name=args.name, include_prefill=not args.no_prefill)
+    save_trace(trace, args.out)
+    sm = trace.summary()
+    print(f"{args.out}: {sm['steps']} steps ({sm['prefill_steps']} prefill, {sm['decode_steps']} decode), "
+          f"{sm['macs_qk'] + sm['macs_pv']:,} MACs, kept keys {sm['kept_key_fraction']:.1%}")
+    return 0
 
 
 def _add_trace_capture(s):
