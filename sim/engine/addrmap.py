@@ -58,3 +58,17 @@ class AddressMap:
         keep[0] = True
         np.not_equal(idx[1:], idx[:-1], out=keep[1:])
         return idx[keep] * self.burst
+
+    def burst_count(self, layer, plane, head, rows):
+        """Number of distinct bursts covering ``rows`` (cheap for contiguous rows)."""
+        n = len(rows)
+        if n == 0 or self.row_bytes[plane] == 0:
+            return 0
+        r0, r1 = int(rows[0]), int(rows[-1])
+        if r1 - r0 + 1 == n:
+            row_bits = int(round(self.row_bytes[plane] * 8))
+            burst_bits = self.burst * 8
+            start = self.base(layer, plane, head) * 8 + r0 * row_bits
+            return (start + n * row_bits - 1) // burst_bits - start // burst_bits + 1
+        return len(self.bursts(layer, plane, head, rows))
+
