@@ -438,6 +438,10 @@ def save_trace(trace, path):
                 yaml.safe_dump(_to_yaml_doc(trace), fh, sort_keys=False, default_flow_style=None, width=100)
         else:
             raise TraceError(trace.source, "<file>", ext, "expected a .npz or .yaml trace")
+        # mkstemp makes the file private; give it the permissions open() would
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
         os.replace(tmp, trace.source)
     finally:
         if os.path.exists(tmp):
