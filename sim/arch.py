@@ -44,14 +44,14 @@ class Field:
         if self.kind == "float":
             if isinstance(value, bool) or not isinstance(value, (int, float)):
                 raise ConfigError(source, path, value, "expected a number")
-            value = float(value)
+            given, value = value, float(value)  # errors show what the user wrote
             if not math.isfinite(value):
-                raise ConfigError(source, path, value, "expected a finite number")
+                raise ConfigError(source, path, given, "expected a finite number")
             if self.minimum is None:
                 if value <= 0:
-                    raise ConfigError(source, path, value, "expected a number > 0")
+                    raise ConfigError(source, path, given, "expected a number > 0")
             elif value < self.minimum:
-                raise ConfigError(source, path, value, f"expected a number >= {self.minimum}")
+                raise ConfigError(source, path, given, f"expected a number >= {self.minimum}")
             return value
         if self.kind == "str":
             if not isinstance(value, str):
@@ -174,6 +174,9 @@ class Arch:
         return copy.deepcopy(self._d)
 
     def get(self, path):
+        """The value at a dotted path (``dot.multipliers``)."""
+        if field_for(path) is None:
+            raise ConfigError(self.source, path, None, "no such config knob" + closest(path, knob_paths()))
         node = self._d
         for part in path.split("."):
             node = node[part]

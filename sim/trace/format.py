@@ -342,12 +342,23 @@ def _read_yaml(path):
         for key in ("layer", "stage", "head_dim", "heads", "q_rows", "kv_rows"):
             if key not in raw:
                 raise TraceError(path, f"{at}.{key}", None, "required field is missing")
+        for key in ("layer", "head_dim", "q_rows", "kv_rows", "heads", "kept_k", "kept_v",
+                    "lsb_rows", "kept_v_idx"):
+            # numpy would quietly truncate 1.5 to 1; refuse it here instead
+            if key in raw and not _all_whole(raw[key]):
+                raise TraceError(path, f"{at}.{key}", raw[key], "expected whole numbers")
         try:
             step = make_step(**raw)
         except (TypeError, ValueError) as exc:
             raise TraceError(path, at, raw, f"fields of the wrong kind ({exc})") from None
         steps.append(step)
     return Trace(header, steps, path)
+
+
+def _all_whole(value):
+    if isinstance(value, list):
+        return all(_all_whole(v) for v in value)
+    return isinstance(value, int) and not isinstance(value, bool)
 
 
 def _read_npz(path):
@@ -376,10 +387,10 @@ def _read_npz(path):
         if key not in arrays:
             raise TraceError(path, key, None, "missing array in the .npz")
     a = arrays
+    _check_npz_layout(path, a)
     n = len(a["layer"])
-    ho, ko = a["heads_off"], a["kept_k_off"]
-    if len(ho) != n + 1 or len(ko) != n + 1:
-        raise TraceError(path, "heads_off", len(ho), f"expected {n + 1} offsets (steps + 1)")
+    ho = a["heads_off"]
+    ko = a["kept_k_off"]
     vio = a.get("kept_v_idx_off")
     tso = a.get("token_scores_off")
     steps = []
@@ -404,6 +415,44 @@ def _read_npz(path):
                           a["kept_k"][k0:k1].astype(np.int64), a["kept_v"][h0:h1].astype(np.int64),
                           a["lsb_rows"][h0:h1].astype(np.int64), kv_idx, ts, hs))
     return Trace(header, steps, path)
+
+
+def _check_npz_layout(path, a):
+    """Array kinds, lengths and offsets agree, so slicing cannot go wrong."""
+    for key, arr in a.items():
+        if arr.ndim != 1:
+            raise TraceError(path, key, arr.shape, "expected a one-dimensional array")
+        want = "f" if key in ("token_scores", "head_scores") else "iu"
+        if arr.dtype.kind not in want and not (want == "f" and arr.dtype.kind in "iu"):
+            raise TraceError(path, key, str(arr.dtype),
+                             "expected " + ("numbers" if want == "f" else "whole numbers"))
+    n = len(a["layer"])
+    for key in ("stage", "head_dim", "q_rows", "kv_rows"):
+        if len(a[key]) != n:
+            raise TraceError(path, key, len(a[key]), f"expected {n} entries (one per step, as layer)")
+
+    def offsets(key, count, values):
+        off = a[key]
+        if len(off) != count + 1:
+            raise TraceError(path, key, len(off), f"expected {count + 1} offsets")
+        if off[0] != 0 or np.any(np.diff(off) < 0) or off[-1] != len(a[values]):
+            raise TraceError(path, key, off[:8].tolist(),
+                             f"expected rising offsets from 0 to len({values})={len(a[values])}")
+
+    offsets("heads_off", n, "heads")
+    offsets("kept_k_off", n, "kept_k")
+    total_heads = len(a["heads"])
+    for key in ("kept_v", "lsb_rows", "head_scores"):
+        if key in a and len(a[key]) != total_heads:
+            raise TraceError(path, key, len(a[key]),
+                             f"expected {total_heads} entries (one per head-step, as heads)")
+    for values, key, count in (("kept_v_idx", "kept_v_idx_off", total_heads),
+                               ("token_scores", "token_scores_off", n)):
+        if (values in a) != (key in a):
+            missing = key if values in a else values
+            raise TraceError(path, missing, None, f"missing array in the .npz (needed with {values})")
+        if key in a:
+            offsets(key, count, values)
 
 
 # --------------------------------------------------------------------------
