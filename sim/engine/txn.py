@@ -13,7 +13,7 @@ class Txn:
     """One transaction: what it is, how big, and where it has been."""
 
     __slots__ = ("kind", "step", "head", "block", "rows", "nbytes", "bursts", "log", "done",
-                 "buffer", "hold")
+                 "buffer", "hold", "layer", "positions", "waits", "completed")
 
     def __init__(self, kind, step, head, block, rows, nbytes, t_created, creator):
         self.kind = kind          # 'Q', 'K', 'KL', 'V' (fetched) or 'S', 'P' (computed)
@@ -27,6 +27,10 @@ class Txn:
         self.done = None          # simpy event: data in place for the consumer
         self.buffer = None        # name of the on-chip buffer holding it
         self.hold = 0             # bytes reserved in that buffer
+        self.layer = 0            # layer whose DRAM region holds the rows
+        self.positions = None     # row positions to fetch (numpy), fetched kinds only
+        self.waits = ()           # (event, cause) to see fired before issue
+        self.completed = False    # data arrived (possibly before earlier ones)
 
     def mark(self, stage, t_end):
         """Record that the transaction spent time until ``t_end`` in ``stage``."""

@@ -1,0 +1,313 @@
+"""Datapath: builds the units from an architecture and replays a trace on them.
+
+The trace is turned into one program per unit (fetch transactions, dot-array
+operations, softmax blocks, top-k selections), all in one consistent order:
+
+* per step, query blocks of all active heads in sequence; the array runs
+  ``q.K(i)``, then ``p.V(i-1)``, then the LSB recompute of block ``i`` --
+  one block of lookahead so softmax and top-k overlap with the array;
+* the fetch unit issues operands in the order the array first needs them;
+* a step's queries wait for the previous step (its output feeds this layer);
+  its keys and values wait too in prefill (they are computed from that
+  output) and whenever the previous step ran a top-k that picked this step's
+  tokens or heads; in decode without such a selection, cached K/V stream in
+  early -- that is the overlap across layers.
+
+Units then run concurrently under simpy; the run ends when the last step is
+done. Statistics come from each unit's :class:`~sim.engine.stats.UnitState`.
+"""
+
+import math
+
+import numpy as np
+import simpy
+
+from ..errors import ConfigError, SimulationStalled
+from . import dot as dotmod
+from . import softmax as smmod
+from . import topk as tkmod
+from .addrmap import AddressMap
+from .buffers import Buffer
+from .dram import ChannelPool
+from .fetch import fetch_process
+from .stats import UnitState
+from .tiling import check_fits, plan_step
+from .txn import Txn
+
+
+class Program:
+    """Per-unit operation lists for one trace on one architecture."""
+
+    def __init__(self):
+        self.fetch = []
+        self.dot_qk = []
+        self.dot_pv = []      # same list object as dot_qk when the array is shared
+        self.softmax = []
+        self.topk = []
+        self.step_done = []
+        self.counts = {"macs_qk": 0, "macs_lsb": 0, "macs_pv": 0, "softmax_elements": 0,
+                       "topk_comparisons": 0.0, "topk_selections": 0, "value_selections": 0}
+        self.macs_by_dim = {}
+        self.compulsory_bytes = 0
+
+
+def _engine_options(arch, grain_rows, seed):
+    g = arch.engine.grain_rows if grain_rows is None else grain_rows
+    s = arch.engine.seed if seed is None else seed
+    if isinstance(g, bool) or not isinstance(g, int) or g < 1:
+        raise ConfigError("engine options", "engine.grain_rows", g, "expected a whole number >= 1")
+    if isinstance(s, bool) or not isinstance(s, int) or s < 0:
+        raise ConfigError("engine options", "engine.seed", s, "expected a whole number >= 0")
+    return g, s
+
+
+def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
+    """Turn the trace into per-unit programs with their dependency events."""
+    prog = Program()
+    shared = arch.dot.arrays == "shared"
+    prog.dot_pv = prog.dot_qk if shared else []
+    counts = prog.counts
+    prev_done = None
+    prev_selected = False
+    steps = trace.steps
+    for s, step in enumerate(steps):
+        d = step.head_dim
+        amap = amaps[d]
+        plan = plan_step(arch, amap, step, grain_rows)
+        layer = step.layer
+        dep_q = [(prev_done, "layer_dependency")] if prev_done is not None else []
+        if prev_done is not None and (step.stage == "prefill" or prev_selected):
+            dep_kv = [(prev_done, "topk" if prev_selected else "layer_dependency")]
+        else:
+            dep_kv = []
+        last_use = {}
+
+        def fetch_txn(kind, positions, buf, waits, head, block):
+            t = Txn(kind, s, head, block, len(positions), 0, 0.0, "fetch")
+            t.layer = layer
+            t.positions = positions
+            t.buffer = buf
+            t.waits = waits
+            t.done = env.event()
+            prog.fetch.append(t)
+            return t
+
+        def use(op, txn):
+            op.inputs.append(txn)
+            last_use[id(txn)] = (txn, op)
+
+        blocks = [(hp, bp) for hp in plan for bp in hp.blocks]
+        for hp in plan:  # every row once: what an infinite buffer would fetch
+            prog.compulsory_bytes += hp.k_bytes + hp.v_bytes + amap.burst * sum(
+                amap.burst_count(layer, "Q", hp.head, bp.q_positions) for bp in hp.blocks)
+            if any(bp.lsb_rows for bp in hp.blocks):
+                prog.compulsory_bytes += hp.lsb_bytes
+        resident_k = {}
+        resident_v = {}
+        pending_pv = None
+        last_pv_done = None
+        mac_total = 0
+
+        def emit_pv(hp, bp, final_sm, vsel):
+            nonlocal last_pv_done, mac_total
+            waits = dep_kv + ([(vsel.done, "topk")] if vsel is not None else [])
+            if hp.v_resident:
+                if hp.head not in resident_v:
+                    resident_v[hp.head] = [fetch_txn("V", c.positions, buffers["value"], waits, hp.head, bp.block)
+                                           for c in hp.v_chunks]
+                chunks = resident_v[hp.head]
+            else:
+                chunks = [fetch_txn("V", c.positions, buffers["value"], waits, hp.head, bp.block)
+                          for c in bp.v_chunks]
+            for i, ch in enumerate(chunks):
+                macs = bp.rows * ch.rows * d
+                op = dotmod.DotOp("pv", s, hp.head, bp.block, macs, d)
+                if i == 0:
+                    op.waits.append((final_sm.done, "softmax"))
+                use(op, ch)
+                counts["macs_pv"] += macs
+                mac_total += macs
+                prog.dot_pv.append(op)
+            op.done = env.event()
+            last_pv_done = op.done
+
+        for hp, bp in blocks:
+            # q.K of this block
+            q = fetch_txn("Q", bp.q_positions, buffers["query"], dep_q, hp.head, bp.block)
+            if hp.k_resident:
+                if hp.head not in resident_k:
+                    resident_k[hp.head] = [fetch_txn("K", c.positions, buffers["key"], dep_kv, hp.head, bp.block)
+                                           for c in hp.k_chunks]
+                kch = resident_k[hp.head]
+            else:
+                kch = [fetch_txn("K", c.positions, buffers["key"], dep_kv, hp.head, bp.block)
+                       for c in bp.k_chunks]
+            for ch in kch:
+                macs = bp.rows * ch.rows * d
+                op = dotmod.DotOp("qk", s, hp.head, bp.block, macs, d)
+                use(op, q)
+                use(op, ch)
+                counts["macs_qk"] += macs
+                mac_total += macs
+                prog.dot_qk.append(op)
+            op.out = Txn("S", s, hp.head, bp.block, bp.rows, 0, 0.0, "dot")
+            sm1 = smmod.SoftmaxOp(s, hp.head, bp.block, bp.rows, hp.n_kv)
+            sm1.done = env.event()
+            prog.softmax.append(sm1)
+            counts["softmax_elements"] += bp.rows * hp.n_kv
+            # p.V of the previous block: one block of lookahead
+            if pending_pv is not None:
+                emit_pv(*pending_pv)
+            # LSB recompute of this block (progressive key quantization)
+            final_sm = sm1
+            if bp.lsb_rows:
+                kl = [fetch_txn("KL", c.positions, buffers["key"], dep_kv + [(sm1.done, "softmax")],
+                                hp.head, bp.block) for c in bp.lsb_chunks]
+                km = [fetch_txn("K", c.positions, buffers["key"], dep_kv, hp.head, bp.block)
+                      for c in bp.lsb_msb_chunks]
+                for i, ch in enumerate(kl):
+                    macs = bp.lsb_rows * ch.rows * d
+                    op = dotmod.DotOp("lsb", s, hp.head, bp.block, macs, d)
+                    if i == 0:
+                        op.waits.append((sm1.done, "softmax"))
+                    use(op, q)
+                    use(op, ch)
+                    if km:
+                        use(op, km[i])
+                    elif hp.k_resident:
+                        use(op, kch[i] if i < len(kch) else kch[-1])
+                    counts["macs_lsb"] += macs
+                    mac_total += macs
+                    prog.dot_qk.append(op)
+                op.out = Txn("S", s, hp.head, bp.block, bp.lsb_rows, 0, 0.0, "dot")
+                final_sm = smmod.SoftmaxOp(s, hp.head, bp.block, bp.lsb_rows, hp.n_kv, second=True)
+                final_sm.done = env.event()
+                prog.softmax.append(final_sm)
+                counts["softmax_elements"] += bp.lsb_rows * hp.n_kv
+            vsel = None
+            if hp.value_pruned:
+                comps = bp.rows * tkmod.select_cost(hp.n_kv, hp.n_v)
+                vsel = tkmod.TopkOp("value", s, hp.head, hp.n_kv, hp.n_v, comps)
+                vsel.waits.append((final_sm.done, "softmax"))
+                vsel.done = env.event()
+                prog.topk.append(vsel)
+                counts["topk_comparisons"] += comps
+                counts["value_selections"] += bp.rows
+            pending_pv = (hp, bp, final_sm, vsel)
+        emit_pv(*pending_pv)
+
+        for txn, op in last_use.values():
+            op.release.append(txn)
+        prog.macs_by_dim[d] = prog.macs_by_dim.get(d, 0) + mac_total
+
+        # after the layer: the selector picks the next layer's tokens and heads
+        step_done = last_pv_done
+        selected = False
+        nxt = steps[s + 1] if s + 1 < len(steps) else None
+        if nxt is not None and nxt.stage == step.stage and nxt.layer == step.layer + 1 \
+                and nxt.kv_rows == step.kv_rows:
+            sel_ops = []
+            if nxt.n_kept_k < step.n_kept_k:
+                if step.token_scores is not None:
+                    comps = tkmod.counted_quickselect(step.token_scores, nxt.n_kept_k, rng)
+                else:
+                    comps = tkmod.select_cost(step.n_kept_k, nxt.n_kept_k)
+                sel_ops.append(tkmod.TopkOp("tokens", s, -1, step.n_kept_k, nxt.n_kept_k, comps))
+            if nxt.n_heads < step.n_heads:
+                if step.head_scores is not None:
+                    comps = tkmod.counted_quickselect(step.head_scores, nxt.n_heads, rng)
+                else:
+                    comps = tkmod.select_cost(step.n_heads, nxt.n_heads)
+                sel_ops.append(tkmod.TopkOp("heads", s, -1, step.n_heads, nxt.n_heads, comps))
+            for op in sel_ops:
+                op.waits.append((last_pv_done, "dot"))
+                op.done = env.event()
+                prog.topk.append(op)
+                counts["topk_comparisons"] += op.comparisons
+                counts["topk_selections"] += 1
+                step_done = op.done
+            selected = bool(sel_ops)
+        prog.step_done.append(step_done)
+        prev_done = step_done
+        prev_selected = selected
+    return prog
+
+
+def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True):
+    """Replay ``trace`` on ``arch``; return a :class:`sim.result.Result`."""
+    from ..result import build_result
+
+    grain_rows, seed = _engine_options(arch, grain_rows, seed)
+    dims = sorted({s.head_dim for s in trace.steps})
+    for d in dims:
+        check_fits(arch, d, arch.source)
+    env = simpy.Environment()
+    layers = max(s.layer for s in trace.steps) + 1
+    heads = max(int(s.heads.max()) for s in trace.steps) + 1
+    max_rows = max(s.kv_rows for s in trace.steps)
+    amaps = {d: AddressMap(arch, layers, heads, max_rows, d) for d in dims}
+    buffers = {
+        "query": Buffer(env, "query", arch.buffers.query_kib * 1024),
+        "key": Buffer(env, "key", arch.buffers.key_kib * 1024),
+        "value": Buffer(env, "value", arch.buffers.value_kib * 1024),
+    }
+    rng = np.random.default_rng(seed)
+    prog = build_program(env, arch, trace, amaps, buffers, grain_rows, rng)
+
+    pool = ChannelPool(env, arch)
+    states = {name: UnitState(env, name, keep_intervals)
+              for name in ("fetch", "dot", "softmax", "topk")}
+    shared = arch.dot.arrays == "shared"
+    if not shared:
+        states["dot_pv"] = UnitState(env, "dot_pv", keep_intervals)
+    fetch_stats = {"bytes": 0, "transactions": 0, "requests": 0,
+                   "bytes_Q": 0, "bytes_K": 0, "bytes_KL": 0, "bytes_V": 0}
+    sm_queue = simpy.Store(env, capacity=2)
+    lanes = arch.dot.lanes
+    mult = arch.dot.multipliers if shared else arch.dot.multipliers // 2
+    procs = {
+        "fetch": env.process(fetch_process(env, prog.fetch, pool, _amap_router(amaps, trace),
+                                           arch, states["fetch"], fetch_stats)),
+        "dot": env.process(dotmod.dot_process(env, prog.dot_qk, mult, lanes, arch.dot.pipeline_cycles,
+                                              states["dot"], sm_queue)),
+        "softmax": env.process(smmod.softmax_process(env, prog.softmax, arch.softmax.lanes,
+                                                     arch.softmax.latency_cycles, states["softmax"],
+                                                     sm_queue)),
+        "topk": env.process(tkmod.topk_process(env, prog.topk, arch.topk.comparators,
+                                               arch.topk.latency_cycles, states["topk"])),
+    }
+    if not shared:
+        procs["dot_pv"] = env.process(dotmod.dot_process(env, prog.dot_pv, mult, lanes,
+                                                         arch.dot.pipeline_cycles, states["dot_pv"],
+                                                         sm_queue))
+    step_times = [None] * len(prog.step_done)
+    for i, ev in enumerate(prog.step_done):
+        ev.callbacks.append(lambda _e, i=i: step_times.__setitem__(i, env.now))
+    env.run()
+    if any(t is None for t in step_times) or any(p.is_alive for p in procs.values()):
+        stuck = [f"{n}: {st.state}" + (f" ({st.cause})" if st.cause else "")
+                 for n, st in states.items() if procs[n].is_alive]
+        done = sum(t is not None for t in step_times)
+        raise SimulationStalled(
+            f"no progress at cycle {env.now:.0f} after {done}/{len(step_times)} steps; "
+            f"waiting units: {', '.join(stuck) or 'none'} (arch {arch.source}, trace {trace.source})")
+    end = max(step_times)
+    return build_result(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end,
+                        {"grain_rows": grain_rows, "seed": seed})
+
+
+class _amap_router:
+    """Address map lookup by the head width of the transaction's step."""
+
+    def __init__(self, amaps, trace):
+        self.amaps = amaps
+        self.dim_of_step = [s.head_dim for s in trace.steps]
+        self.single = next(iter(amaps.values())) if len(amaps) == 1 else None
+
+    def bursts_for(self, txn):
+        amap = self.single or self.amaps[self.dim_of_step[txn.step]]
+        return amap.bursts(txn.layer, txn.kind, txn.head, txn.positions)
+
+
+def ceil_cycles(t):
+    return int(math.ceil(t - 1e-9))

@@ -1,0 +1,92 @@
+"""Dot-product array: the multipliers that compute q.K scores and p.V outputs.
+
+The array is ``dot.multipliers`` multipliers arranged in rows of
+``dot.lanes``; each row consumes ``lanes`` elements of one dot product per
+cycle. A head width that is not a multiple of ``lanes`` leaves lanes idle in
+the last pass, which is why :func:`macs_per_cycle` depends on ``head_dim``.
+The array is pipelined: it is occupied for the throughput time of an
+operation, and the result appears ``pipeline_cycles`` later.
+"""
+
+import math
+
+
+def macs_per_cycle(multipliers, lanes, head_dim):
+    """Sustained MACs per cycle at this head width (lane quantization)."""
+    passes = math.ceil(head_dim / lanes)
+    return multipliers * head_dim / (passes * lanes)
+
+
+def service_cycles(macs, multipliers, lanes, head_dim):
+    """Cycles the array is occupied by ``macs`` MACs (throughput part only)."""
+    if macs <= 0:
+        return 0
+    return math.ceil(macs / macs_per_cycle(multipliers, lanes, head_dim))
+
+
+class DotOp:
+    """One operation on the array: q.K of a block, its LSB recompute, or p.V."""
+
+    __slots__ = ("kind", "step", "head", "block", "macs", "head_dim", "inputs", "waits",
+                 "release", "out", "done", "score_rows", "score_cols")
+
+    def __init__(self, kind, step, head, block, macs, head_dim):
+        self.kind = kind        # 'qk', 'lsb' or 'pv'
+        self.step = step
+        self.head = head
+        self.block = block
+        self.macs = macs
+        self.head_dim = head_dim
+        self.inputs = []        # fetched transactions it reads
+        self.waits = []         # (event, cause) it must see fired first
+        self.release = []       # transactions whose buffer room it frees
+        self.out = None         # score transaction for the softmax unit
+        self.done = None        # event fired when its result is out
+        self.score_rows = 0
+        self.score_cols = 0
+
+
+def later(env, delay, event):
+    """Fire ``event`` ``delay`` cycles from now (pipeline latency)."""
+    if delay <= 0:
+        event.succeed()
+    else:
+        env.timeout(delay).callbacks.append(lambda _ev: event.succeed())
+
+
+def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue):
+    """Run ``ops`` in program order on one array; ``state`` is its UnitState.
+
+    For each op: wait for its operand transactions (starved, charged to the
+    stage that held them), hold for the throughput time (busy), free operand
+    buffer room, then hand the score block to the softmax unit (blocked while
+    its input queue is full).
+    """
+    for op in ops:
+        for txn in op.inputs:
+            ev = txn.done
+            if not ev.processed:
+                t0 = env.now
+                state.set("starved", "fetch")
+                yield ev
+                state.charge_wait(t0, txn)
+        for ev, cause in op.waits:
+            if not ev.processed:
+                state.set("starved", cause)
+                yield ev
+        state.set("busy")
+        for txn in op.inputs:
+            txn.buffer.note_read(txn.nbytes)
+        yield env.timeout(service_cycles(op.macs, multipliers, lanes, op.head_dim))
+        for txn in op.release:
+            txn.buffer.release(txn.hold)
+        if op.out is not None:
+            op.out.mark("dot", env.now + pipeline)
+            req = sm_queue.put(op.out)
+            if not req.triggered:
+                state.set("blocked", "softmax_input_full")
+                yield req
+        if op.done is not None:
+            later(env, pipeline, op.done)
+        state.set("starved", None)
+    state.set("idle")

@@ -1,0 +1,255 @@
+"""Result of one simulated run: the document ``attnsim run --json`` writes.
+
+:func:`build_result` turns the engine's raw state (unit logs, channel pool,
+buffers, counters) into a plain, JSON-ready mapping. :class:`Result` wraps it;
+``Result.to_dict()`` is exactly the ``--json`` document. Nothing here runs the
+simulation: data flows engine -> stats -> result.
+"""
+
+import copy
+import json
+import math
+
+import numpy as np
+
+from . import __version__
+from .model.bounds import bounds_from_counts
+
+UNIT_ORDER = ("dram", "fetch", "dot", "dot_pv", "softmax", "topk")
+
+
+class Result:
+    """One run's measurements. ``to_dict()`` gives the result document."""
+
+    def __init__(self, doc, intervals=None):
+        self._doc = doc
+        self.intervals = intervals or {}
+
+    def to_dict(self):
+        return copy.deepcopy(self._doc)
+
+    def __getitem__(self, key):
+        return self._doc[key]
+
+    @property
+    def cycles(self):
+        return self._doc["cycles"]
+
+    def to_json(self):
+        return json.dumps(self._doc, indent=2, sort_keys=True) + "\n"
+
+
+def _round(x, nd=9):
+    """Floats rounded so documents are stable and readable."""
+    if isinstance(x, float):
+        if math.isinf(x) or math.isnan(x):
+            return None
+        return round(x, nd)
+    if isinstance(x, dict):
+        return {k: _round(v, nd) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_round(v, nd) for v in x]
+    if isinstance(x, np.generic):
+        return _round(x.item(), nd)
+    return x
+
+
+def _dram_states(pool, fetch_state, end):
+    """Classify the pool's non-busy channel time by what the fetch unit was doing.
+
+    A channel with nothing to move is starved for the same reason the fetch
+    unit was not issuing (a full buffer, a dependency...). Averaged over
+    channels, so fractions stay per unit and sum to 1.
+    """
+    n = pool.n
+    totals = {}
+    busy_total = 0.0
+    cum = []
+    for iv in pool.busy_intervals:
+        if iv:
+            arr = np.asarray(iv, dtype=np.float64)
+            arr = np.clip(arr, 0, end)
+            xs = arr.reshape(-1)
+            dur = arr[:, 1] - arr[:, 0]
+            ys = np.empty(len(xs))
+            c = np.cumsum(dur)
+            ys[0::2] = c - dur
+            ys[1::2] = c
+            busy_total += float(c[-1])
+            cum.append((xs, ys))
+    def busy_in(a, b):
+        s = 0.0
+        for xs, ys in cum:
+            s += float(np.interp(b, xs, ys) - np.interp(a, xs, ys))
+        return s
+    covered = 0.0
+    for t0, t1, state, cause in fetch_state.intervals:
+        t1 = min(t1, end)
+        if t1 <= t0:
+            continue
+        free = (t1 - t0) * n - busy_in(t0, t1)
+        if state == "idle":
+            key = ("idle", None)
+        elif state == "busy":
+            key = ("starved", "fetch_issue")
+        else:
+            key = ("starved", cause or "fetch")
+        totals[key] = totals.get(key, 0.0) + free
+        covered += t1 - t0
+    if covered < end:  # after the fetch unit's last interval: nothing left to fetch
+        t0 = covered
+        totals[("idle", None)] = totals.get(("idle", None), 0.0) + (end - t0) * n - busy_in(t0, end)
+    frac = {"busy": busy_total / (n * end) if end else 0.0, "starved": 0.0, "blocked": 0.0, "idle": 0.0}
+    stalls = {}
+    for (state, cause), t in totals.items():
+        t = max(t, 0.0)
+        frac[state] += t / (n * end)
+        if state == "starved":
+            stalls[cause] = stalls.get(cause, 0.0) + t / (n * end)
+    frac["stalls"] = dict(sorted(stalls.items(), key=lambda kv: -kv[1]))
+    return frac
+
+
+def build_result(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end, engine):
+    """Assemble the result document from a finished run."""
+    clock = arch.clock_ghz * 1e9
+    cycles = int(math.ceil(end - 1e-9))
+    seconds = end / clock
+    units = {}
+    for name, st in states.items():
+        st.finish(end)
+        units[name] = st.summary(end)
+    units["dram"] = _dram_states(pool, states["fetch"], end)
+    units = {k: units[k] for k in UNIT_ORDER if k in units}
+
+    # per step / layer / stage cycles: a step lasts from the previous step's end to its own
+    per_step = []
+    prev = 0.0
+    for t in step_times:
+        per_step.append(t - prev)
+        prev = t
+    per_layer, per_stage = {}, {}
+    for s, dur in zip(trace.steps, per_step):
+        per_layer[str(s.layer)] = per_layer.get(str(s.layer), 0.0) + dur
+        per_stage[s.stage] = per_stage.get(s.stage, 0.0) + dur
+
+    c = prog.counts
+    macs = c["macs_qk"] + c["macs_lsb"] + c["macs_pv"]
+    compulsory = prog.compulsory_bytes
+    macs_pv_by_dim = {}
+    for s in trace.steps:
+        macs_pv_by_dim[s.head_dim] = macs_pv_by_dim.get(s.head_dim, 0) + s.macs()[1]
+    bounds = bounds_from_counts(arch, prog.macs_by_dim, macs_pv_by_dim, c["softmax_elements"],
+                                c["topk_comparisons"], fetch_stats["bytes"], compulsory)
+    dram = pool.report(end)
+    dram.update({
+        "compulsory_bytes": int(compulsory),
+        "fetched_over_compulsory": fetch_stats["bytes"] / compulsory if compulsory else 1.0,
+        "bytes_by_plane": {k[6:]: int(v) for k, v in fetch_stats.items() if k.startswith("bytes_")},
+    })
+    decode_steps = sum(1 for s in trace.steps if s.stage == "decode")
+    layers = len({s.layer for s in trace.steps})
+    doc = {
+        "simulator": {"name": "attnsim", "version": __version__},
+        "arch": {"name": arch.name, "source": str(arch.source), "config": arch.to_dict()},
+        "trace": {"name": trace.name, "source": str(trace.source), "digest": trace.digest(),
+                  "steps": len(trace.steps)},
+        "engine": dict(engine),
+        "cycles": cycles,
+        "seconds": seconds,
+        "per_stage_cycles": per_stage,
+        "per_layer_cycles": per_layer,
+        "per_step_cycles": per_step,
+        "throughput": {
+            "macs_per_cycle": macs / end if end else 0.0,
+            "multiplier_utilization": macs / end / arch.dot.multipliers if end else 0.0,
+            "decode_tokens_per_s": (decode_steps / layers) / per_stage["decode"] * clock
+            if per_stage.get("decode") else None,
+        },
+        "units": units,
+        "dram": dram,
+        "fetch": {"transactions": fetch_stats["transactions"], "requests": fetch_stats["requests"]},
+        "buffers": {name: b.report() for name, b in buffers.items()},
+        "compute": {
+            "macs": macs, "macs_qk": c["macs_qk"], "macs_lsb_recompute": c["macs_lsb"],
+            "macs_pv": c["macs_pv"], "softmax_elements": c["softmax_elements"],
+            "topk_comparisons": c["topk_comparisons"], "topk_layer_selections": c["topk_selections"],
+            "value_selections": c["value_selections"],
+        },
+        "bounds": bounds,
+        "verdict": _verdict(units, bounds, cycles),
+    }
+    intervals = {name: st.intervals for name, st in states.items()}
+    intervals["dram"] = [list(map(list, iv)) for iv in pool.busy_intervals]
+    return Result(_round(doc), intervals)
+
+
+def _verdict(units, bounds, cycles):
+    """Which unit limits the run and what it waited on most, from the measurements."""
+    busiest = max(units, key=lambda k: units[k]["busy"])
+    worst_unit, worst_cause, worst = None, None, 0.0
+    for name, u in units.items():
+        for cause, f in u["stalls"].items():
+            if f > worst:
+                worst_unit, worst_cause, worst = name, cause, f
+    return {
+        "busiest_unit": busiest,
+        "busiest_utilization": units[busiest]["busy"],
+        "bound": bounds["bound"],
+        "roofline_fraction": bounds["roofline_cycles"] / cycles if cycles else 0.0,
+        "largest_stall": {"unit": worst_unit, "cause": worst_cause, "fraction": worst},
+    }
+
+
+def format_summary(result):
+    """A readable multi-line summary for the terminal."""
+    d = result.to_dict() if isinstance(result, Result) else result
+    lines = []
+    lines.append(f"arch {d['arch']['name']}  x  trace {d['trace']['name']}  "
+                 f"(attnsim {d['simulator']['version']}, grain {d['engine']['grain_rows']} rows)")
+    lines.append(f"  cycles {d['cycles']:,}   time {d['seconds'] * 1e6:,.2f} us   "
+                 + "   ".join(f"{k} {v:,.0f}" for k, v in d["per_stage_cycles"].items()))
+    b = d["bounds"]
+    lines.append(f"  bounds: compute {b['compute_cycles']:,.0f}  memory {b['memory_cycles']:,.0f}  "
+                 f"-> {b['bound']}-bound; run is at {d['verdict']['roofline_fraction']:.0%} of the roofline")
+    dr = d["dram"]
+    lines.append(f"  memory: {dr['bytes'] / 1e6:,.3f} MB fetched ({dr['fetched_over_compulsory']:.2f}x compulsory), "
+                 f"{dr['achieved_gbps']:,.1f} of {dr['peak_gbps']:,.1f} GB/s")
+    lines.append(f"  compute: {d['compute']['macs']:,} MACs, "
+                 f"{d['throughput']['multiplier_utilization']:.0%} of multiplier peak")
+    lines.append("  unit        busy  starved  blocked   idle   top stalls")
+    for name, u in d["units"].items():
+        top = ", ".join(f"{c} {f:.0%}" for c, f in list(u["stalls"].items())[:3] if f >= 0.005)
+        lines.append(f"  {name:<9} {u['busy']:6.1%} {u['starved']:8.1%} {u['blocked']:8.1%} "
+                     f"{u['idle']:6.1%}   {top}")
+    v = d["verdict"]
+    ls = v["largest_stall"]
+    lines.append(f"  verdict: busiest unit {v['busiest_unit']} ({v['busiest_utilization']:.0%} busy); "
+                 + (f"largest stall: {ls['unit']} waiting on {ls['cause']} ({ls['fraction']:.0%} of the run)"
+                    if ls["unit"] else "no stalls"))
+    return "\n".join(lines)
+
+
+def write_timeline(result, path):
+    """Per-unit intervals in the Trace Event Format (JSON), one track per unit."""
+    clock_ghz = result["arch"]["config"]["clock_ghz"]
+    us = 1.0 / (clock_ghz * 1e3)  # microseconds per cycle
+    events = []
+    tid = 0
+    for name, ivs in result.intervals.items():
+        tid += 1
+        if name == "dram":
+            for ch, chan in enumerate(ivs):
+                events.append({"name": "thread_name", "ph": "M", "pid": 1, "tid": 100 + ch,
+                               "args": {"name": f"dram channel {ch}"}})
+                for t0, t1 in chan:
+                    events.append({"name": "transfer", "cat": "busy", "ph": "X", "pid": 1,
+                                   "tid": 100 + ch, "ts": t0 * us, "dur": (t1 - t0) * us})
+            continue
+        events.append({"name": "thread_name", "ph": "M", "pid": 1, "tid": tid, "args": {"name": name}})
+        for t0, t1, state, cause in ivs:
+            label = state if not cause else f"{state}: {cause}"
+            events.append({"name": label, "cat": state, "ph": "X", "pid": 1, "tid": tid,
+                           "ts": t0 * us, "dur": (t1 - t0) * us})
+    with open(path, "w", encoding="utf-8") as fh:
+        json.dump({"traceEvents": events, "displayTimeUnit": "ns"}, fh)
