@@ -154,10 +154,10 @@ def make_step(layer, stage, head_dim, heads, q_rows, kv_rows, kept_k=None, kept_
     else:
         kept_k = np.asarray(kept_k, dtype=np.int64)
     n = len(heads)
-    kept_v = np.full(n, len(kept_k), dtype=np.int64) if kept_v is None else np.broadcast_to(
-        np.asarray(kept_v, dtype=np.int64), (n,)).copy()
-    lsb_rows = np.zeros(n, dtype=np.int64) if lsb_rows is None else np.broadcast_to(
-        np.asarray(lsb_rows, dtype=np.int64), (n,)).copy()
+    # a single number applies to every head; a list is kept as given, so a
+    # wrong length reaches validate() and is reported against its field
+    kept_v = np.full(n, len(kept_k), dtype=np.int64) if kept_v is None else _per_head(kept_v, n)
+    lsb_rows = np.zeros(n, dtype=np.int64) if lsb_rows is None else _per_head(lsb_rows, n)
     if kept_v_idx is not None:
         kept_v_idx = [np.asarray(a, dtype=np.int64) for a in kept_v_idx]
     if token_scores is not None:
@@ -166,6 +166,12 @@ def make_step(layer, stage, head_dim, heads, q_rows, kv_rows, kept_k=None, kept_
         head_scores = np.asarray(head_scores, dtype=np.float64)
     return Step(int(layer), str(stage), int(head_dim), heads, int(q_rows), int(kv_rows), kept_k,
                 kept_v, lsb_rows, kept_v_idx, token_scores, head_scores)
+
+
+def _per_head(value, n):
+    if np.isscalar(value):
+        return np.full(n, value, dtype=np.int64)
+    return np.asarray(value, dtype=np.int64)
 
 
 # --------------------------------------------------------------------------
