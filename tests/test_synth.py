@@ -5,6 +5,8 @@ import os
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import stats
 
 from sim.errors import TraceError
@@ -262,3 +264,25 @@ def test_empty_trace_is_refused():
 def test_whole_floats_are_accepted():
     t = synth_trace(prompt_tokens=16.0, decode_steps=2.0, layers=2, heads=2)
     assert t.header["provenance"]["prompt_tokens"] == 16
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(prompt=st.integers(1, 80), dec=st.integers(0, 4), layers=st.integers(1, 5),
+       heads=st.integers(1, 6), tk=st.floats(0.01, 1.0), hk=st.floats(0.01, 1.0),
+       vk=st.floats(0.01, 1.0), lsb=st.floats(0.0, 1.0), seed=st.integers(0, 2**32))
+def test_any_arguments_give_a_valid_cascade(prompt, dec, layers, heads, tk, hk, vk, lsb, seed):
+    """Over random arguments (hypothesis): the trace validates, counts follow
+    the ratios, the cascade holds and decode context grows by one per token."""
+    t = synth_trace(prompt_tokens=prompt, decode_steps=dec, layers=layers, heads=heads,
+                    head_dim=16, token_keep=tk, head_keep=hk, value_keep=vk, lsb_fraction=lsb,
+                    seed=seed)
+    pre, dcd = prefill(t), decode(t)
+    assert len(pre) == layers and len(dcd) == dec * layers
+    for a, b in zip(pre, pre[1:]):
+        assert b.n_kept_k == max(1, math.ceil(a.n_kept_k * tk - 1e-9))
+        assert b.n_heads == max(1, math.ceil(a.n_heads * hk - 1e-9))
+        assert set(b.kept_k.tolist()) <= set(a.kept_k.tolist())
+        assert set(b.heads.tolist()) <= set(a.heads.tolist())
+    for i, s in enumerate(dcd):
+        assert s.kv_rows == prompt + i // layers + 1
+        assert s.n_kept_k == pre[s.layer].n_kept_k + i // layers + 1
