@@ -1,0 +1,438 @@
+"""Pruning and quantization policies applied while attention runs.
+
+Four published methods, each a plain function over numpy arrays so that any
+forward pass (ours in :mod:`sim.trace.capture`, or someone else's through
+:mod:`sim.trace.recorder`) can call them:
+
+* **cascade token pruning** -- a token's importance is the attention
+  probability it receives (column sums of the probability matrix, summed over
+  heads and, optionally, accumulated over layers). After each layer the top-k
+  tokens by a per-layer schedule survive; pruned tokens never return.
+* **cascade head pruning** -- a head's importance is the accumulated magnitude
+  of its output; the top-k heads by schedule survive, and never return.
+* **local value pruning** -- per probability row keep only the largest
+  probabilities (a count, a ratio of the row, or a cumulative-mass target);
+  only those V rows are fetched and multiplied.
+* **progressive key quantization** -- K is stored as integer codes split into
+  a most-significant and a least-significant bit plane. Scores come from the
+  MSB plane first; a row whose maximum probability falls under a threshold
+  fetches the LSB plane and is recomputed at full key precision.
+
+The knobs live in a YAML policy file validated here, once (:func:`load_policy`).
+"""
+
+import copy
+import dataclasses
+import hashlib
+import json
+import math
+import os
+
+import numpy as np
+import yaml
+
+from ..errors import InputError, closest
+
+
+class PolicyError(InputError):
+    """A pruning/quantization policy file is malformed or inconsistent."""
+
+
+# --------------------------------------------------------------------------
+# Numerics shared by every policy
+
+
+def softmax(scores, axis=-1):
+    """Numerically stable softmax (subtract the row maximum before exp)."""
+    m = np.max(scores, axis=axis, keepdims=True)
+    e = np.exp(scores - m)
+    return e / np.sum(e, axis=axis, keepdims=True)
+
+
+def quantize_uniform(x, bits, scale):
+    """Symmetric uniform quantizer: integer codes in [-(2^(b-1)-1), 2^(b-1)-1].
+
+    ``scale`` is the step Delta (value of one code). Returns int32 codes;
+    ``codes * scale`` reconstructs. Values beyond the range clip.
+    """
+    if bits < 2:
+        raise ValueError(f"bits={bits!r}: a signed quantizer needs at least 2 bits")
+    qmax = 2 ** (bits - 1) - 1
+    return np.clip(np.rint(x / scale), -qmax, qmax).astype(np.int32)
+
+
+def quant_step(x, bits, axis=None):
+    """Step Delta that maps max|x| (along ``axis``) onto the largest code."""
+    qmax = 2 ** (bits - 1) - 1
+    amax = np.max(np.abs(x), axis=axis, keepdims=axis is not None)
+    return np.where(amax > 0, amax / qmax, 1.0).astype(np.float64)
+
+
+def split_planes(codes, lsb_bits):
+    """Split signed codes into an MSB plane (floor division) and an LSB plane.
+
+    ``msb * 2**lsb_bits + lsb == codes`` exactly, with ``0 <= lsb < 2**lsb_bits``.
+    """
+    msb = np.right_shift(codes, lsb_bits)
+    lsb = codes - np.left_shift(msb, lsb_bits)
+    return msb, lsb
+
+
+def msb_reconstruct(msb, lsb_bits):
+    """Key codes known from the MSB plane alone: the centre of each LSB bucket."""
+    if lsb_bits == 0:
+        return msb.astype(np.float64)
+    return msb.astype(np.float64) * (1 << lsb_bits) + ((1 << lsb_bits) - 1) / 2.0
+
+
+def topk_sorted(scores, k):
+    """Positions (into ``scores``) of the ``k`` largest, returned in index order.
+
+    Ties break toward the earlier position so a run is reproducible.
+    """
+    n = len(scores)
+    k = int(min(max(k, 1), n))
+    if k == n:
+        return np.arange(n)
+    # stable descending order: sort by (-score, index)
+    order = np.lexsort((np.arange(n), -np.asarray(scores, dtype=np.float64)))
+    return np.sort(order[:k])
+
+
+def keep_count(ratio, n_original, n_live):
+    """Rows kept when a schedule entry ``ratio`` applies to ``n_original`` rows.
+
+    Never more than are live (cascade), never fewer than one.
+    """
+    return int(max(1, min(n_live, math.ceil(ratio * n_original - 1e-9))))
+
+
+# --------------------------------------------------------------------------
+# Policy objects
+
+
+@dataclasses.dataclass(frozen=True)
+class CascadeRule:
+    """Top-k schedule for tokens or heads.
+
+    ``schedule[i]`` is the fraction of the *original* tokens (heads) still
+    alive after layer ``i``; a schedule shorter than the model repeats its last
+    entry. ``accumulate``: importance sums over all layers so far (cascade)
+    instead of the current layer only.
+    """
+
+    schedule: tuple = ()
+    accumulate: bool = True
+
+    @property
+    def enabled(self):
+        return any(r < 1.0 for r in self.schedule)
+
+    def ratio(self, layer, strength=1.0):
+        """Kept fraction after ``layer``; ``strength`` in [0, 1] blends toward dense."""
+        if not self.schedule:
+            return 1.0
+        r = self.schedule[min(layer, len(self.schedule) - 1)]
+        return 1.0 - strength * (1.0 - r)
+
+
+@dataclasses.dataclass(frozen=True)
+class ValueRule:
+    """Local value pruning of each probability row: one of count/ratio/mass."""
+
+    mode: str = "off"  # off | count | ratio | mass
+    amount: float = 1.0
+
+    @property
+    def enabled(self):
+        return self.mode != "off"
+
+    def keep_mask(self, probs):
+        """Boolean mask of the probabilities kept per row (last axis).
+
+        A row keeps every probability >= its cut-off value, so exact ties at
+        the cut-off are all kept (rare with real scores).
+        """
+        n = probs.shape[-1]
+        if self.mode == "off":
+            return np.ones(probs.shape, dtype=bool)
+        if self.mode in ("count", "ratio"):
+            k = min(int(self.amount), n) if self.mode == "count" else max(1, math.ceil(self.amount * n - 1e-9))
+            if k >= n:
+                return np.ones(probs.shape, dtype=bool)
+            cut = np.partition(probs, n - k, axis=-1)[..., n - k:n - k + 1]  # k-th largest per row
+            return probs >= cut
+        # mass: the fewest largest probabilities whose sum reaches the target
+        desc = -np.sort(-probs, axis=-1)
+        csum = np.cumsum(desc, axis=-1, dtype=np.float64)
+        need = self.amount * csum[..., -1:] * (1 - 1e-9)
+        # index of the first sorted entry at which the running sum reaches the target
+        last = np.minimum((csum < need).sum(axis=-1, keepdims=True), n - 1)
+        cut = np.take_along_axis(desc, last, axis=-1)
+        return probs >= cut
+
+
+@dataclasses.dataclass(frozen=True)
+class KeyRule:
+    """Progressive key quantization: MSB plane first, LSB plane on demand.
+
+    Codes have ``msb_bits + lsb_bits`` bits with one step per head (max|K| of
+    that head onto the largest code). A query row whose maximum probability,
+    computed from the MSB plane, is below ``threshold`` refetches the LSB plane.
+    """
+
+    enabled: bool = False
+    msb_bits: int = 6
+    lsb_bits: int = 4
+    threshold: float = 0.1
+
+    @property
+    def bits(self):
+        return self.msb_bits + self.lsb_bits
+
+
+@dataclasses.dataclass(frozen=True)
+class FitRule:
+    """Search the strongest token/head pruning that keeps a fidelity target.
+
+    ``cosine``: minimum cosine similarity between the pooled embeddings of
+    the pruned and the dense run. The search scales the token and head
+    schedules toward dense (strength 1 = the schedule as written), trying
+    ``steps`` evenly spaced strengths and refining the best one.
+    """
+
+    cosine: float = None
+    steps: int = 8
+
+    @property
+    def enabled(self):
+        return self.cosine is not None
+
+
+@dataclasses.dataclass(frozen=True)
+class Policy:
+    """Everything a capture applies: token, head, value and key rules."""
+
+    name: str = "dense"
+    tokens: CascadeRule = CascadeRule()
+    heads: CascadeRule = CascadeRule()
+    values: ValueRule = ValueRule()
+    keys: KeyRule = KeyRule()
+    fit: FitRule = FitRule()
+    decode: bool = False
+    source: str = dataclasses.field(default="<memory>", compare=False)
+
+    def to_dict(self):
+        """Plain mapping that :func:`load_policy` reads back to an equal Policy."""
+        values = {} if self.values.mode == "off" else {self.values.mode: self.values.amount}
+        return {
+            "name": self.name,
+            "tokens": {"schedule": list(self.tokens.schedule), "accumulate": self.tokens.accumulate},
+            "heads": {"schedule": list(self.heads.schedule), "accumulate": self.heads.accumulate},
+            "values": values,
+            "keys": {"enabled": self.keys.enabled, "msb_bits": self.keys.msb_bits,
+                     "lsb_bits": self.keys.lsb_bits, "threshold": self.keys.threshold},
+            "fit": {} if not self.fit.enabled else {"cosine": self.fit.cosine, "steps": self.fit.steps},
+            "decode": self.decode,
+        }
+
+    def digest(self):
+        return hashlib.sha256(json.dumps(self.to_dict(), sort_keys=True).encode()).hexdigest()
+
+    def check_layers(self, layers, heads=None):
+        """Schedules may not be longer than the model is deep (checked per model)."""
+        for sec in ("tokens", "heads"):
+            sched = getattr(self, sec).schedule
+            if len(sched) > layers:
+                raise PolicyError(self.source, f"{sec}.schedule", list(sched),
+                                  f"expected at most {layers} entries (one per layer of the model)")
+        return self
+
+    def dense(self):
+        """The same policy with every rule off: the reference run."""
+        return dataclasses.replace(self, name="dense", tokens=CascadeRule(), heads=CascadeRule(),
+                                   values=ValueRule(), keys=KeyRule(), fit=FitRule())
+
+
+DENSE = Policy()
+
+_TOP_KEYS = ("name", "tokens", "heads", "values", "keys", "fit", "decode")
+_CASCADE_KEYS = ("schedule", "accumulate")
+_VALUE_KEYS = ("count", "ratio", "mass")
+_KEY_KEYS = ("enabled", "msb_bits", "lsb_bits", "threshold")
+_FIT_KEYS = ("cosine", "steps")
+
+
+def load_policy(path_or_dict, source=None):
+    """Read and validate a policy from a YAML file or a mapping."""
+    if isinstance(path_or_dict, Policy):
+        return path_or_dict
+    if isinstance(path_or_dict, dict):
+        doc = copy.deepcopy(path_or_dict)
+        src = source or "<policy>"
+    else:
+        src = os.fspath(path_or_dict)
+        if not os.path.exists(src):
+            raise PolicyError(src, "<file>", src, "policy file not found")
+        try:
+            with open(src, encoding="utf-8") as fh:
+                doc = yaml.safe_load(fh)
+        except yaml.YAMLError as exc:
+            mark = getattr(exc, "problem_mark", None)
+            where = f"line {mark.line + 1}" if mark else "<file>"
+            raise PolicyError(src, where, "...", f"not valid YAML ({getattr(exc, 'problem', exc)})") from None
+        except UnicodeDecodeError:
+            raise PolicyError(src, "<file>", "...", "expected UTF-8 text") from None
+    if doc is None:
+        doc = {}
+    if not isinstance(doc, dict):
+        raise PolicyError(src, "<root>", type(doc).__name__, "expected a mapping of policy sections")
+    _no_unknown(src, "", doc, _TOP_KEYS)
+    name = doc.get("name", "unnamed")
+    if not isinstance(name, str) or not name:
+        raise PolicyError(src, "name", name, "expected a non-empty text")
+    decode = doc.get("decode", False)
+    if not isinstance(decode, bool):
+        raise PolicyError(src, "decode", decode, "expected true or false")
+    return Policy(name=name, tokens=_cascade(src, "tokens", doc.get("tokens")),
+                  heads=_cascade(src, "heads", doc.get("heads")),
+                  values=_values(src, doc.get("values")), keys=_keys(src, doc.get("keys")),
+                  fit=_fit(src, doc.get("fit")), decode=decode, source=src)
+
+
+def _no_unknown(src, prefix, doc, allowed):
+    for key in doc:
+        if key not in allowed:
+            raise PolicyError(src, f"{prefix}{key}", doc[key], "unknown key" + closest(key, allowed))
+
+
+def _section(src, name, doc):
+    if doc is None:
+        return {}
+    if not isinstance(doc, dict):
+        raise PolicyError(src, name, doc, "expected a mapping")
+    return doc
+
+
+def _ratio(src, path, value):
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        raise PolicyError(src, path, value, "expected a number in (0, 1]")
+    if not 0.0 < value <= 1.0:
+        raise PolicyError(src, path, value, "expected a ratio in (0, 1]")
+    return float(value)
+
+
+def _cascade(src, name, doc):
+    doc = _section(src, name, doc)
+    _no_unknown(src, f"{name}.", doc, _CASCADE_KEYS)
+    sched = doc.get("schedule", [])
+    if isinstance(sched, (int, float)) and not isinstance(sched, bool):
+        sched = [sched]
+    if not isinstance(sched, list):
+        raise PolicyError(src, f"{name}.schedule", sched, "expected a list of kept fractions, one per layer")
+    out = tuple(_ratio(src, f"{name}.schedule[{i}]", v) for i, v in enumerate(sched))
+    for i in range(1, len(out)):
+        if out[i] > out[i - 1]:
+            raise PolicyError(src, f"{name}.schedule[{i}]", out[i],
+                              f"expected <= {out[i - 1]} (cascade: pruned {name} never return)")
+    acc = doc.get("accumulate", True)
+    if not isinstance(acc, bool):
+        raise PolicyError(src, f"{name}.accumulate", acc, "expected true or false")
+    return CascadeRule(out, acc)
+
+
+def _values(src, doc):
+    doc = _section(src, "values", doc)
+    _no_unknown(src, "values.", doc, _VALUE_KEYS)
+    if not doc:
+        return ValueRule()
+    if len(doc) > 1:
+        raise PolicyError(src, "values", sorted(doc), "expected exactly one of count, ratio, mass")
+    (mode, amount), = doc.items()
+    if mode == "count":
+        if isinstance(amount, bool) or not isinstance(amount, int) or amount < 1:
+            raise PolicyError(src, "values.count", amount, "expected a whole number >= 1")
+        return ValueRule("count", int(amount))
+    return ValueRule(mode, _ratio(src, f"values.{mode}", amount))
+
+
+def _keys(src, doc):
+    doc = _section(src, "keys", doc)
+    _no_unknown(src, "keys.", doc, _KEY_KEYS)
+    if not doc:
+        return KeyRule()
+    enabled = doc.get("enabled", True)
+    if not isinstance(enabled, bool):
+        raise PolicyError(src, "keys.enabled", enabled, "expected true or false")
+    bits = {}
+    for key, low, default in (("msb_bits", 2, 6), ("lsb_bits", 0, 4)):
+        v = doc.get(key, default)
+        if isinstance(v, bool) or not isinstance(v, int) or not low <= v <= 16:
+            raise PolicyError(src, f"keys.{key}", v, f"expected a whole number in [{low}, 16]")
+        bits[key] = v
+    if bits["msb_bits"] + bits["lsb_bits"] > 24:
+        raise PolicyError(src, "keys.lsb_bits", bits["lsb_bits"],
+                          f"expected msb_bits + lsb_bits <= 24 (got {bits['msb_bits'] + bits['lsb_bits']})")
+    thr = _ratio(src, "keys.threshold", doc.get("threshold", 0.1))
+    return KeyRule(enabled, bits["msb_bits"], bits["lsb_bits"], thr)
+
+
+def _fit(src, doc):
+    doc = _section(src, "fit", doc)
+    _no_unknown(src, "fit.", doc, _FIT_KEYS)
+    if not doc:
+        return FitRule()
+    if "cosine" not in doc:
+        raise PolicyError(src, "fit", doc, "expected 'cosine' (the minimum pooled-embedding cosine similarity)")
+    cos = _ratio(src, "fit.cosine", doc["cosine"])
+    steps = doc.get("steps", 8)
+    if isinstance(steps, bool) or not isinstance(steps, int) or not 1 <= steps <= 30:
+        raise PolicyError(src, "fit.steps", steps, "expected a whole number in [1, 30]")
+    return FitRule(cos, steps)
+
+
+# --------------------------------------------------------------------------
+# Per-layer operations
+
+
+def attend(q, k, keys, scale):
+    """Attention probabilities under progressive key quantization.
+
+    ``q``, ``k``: (heads, rows, head_dim) float arrays; ``scale`` multiplies
+    the scores (1/sqrt(head_dim)). Returns ``(probs, lsb_mask)``, with
+    ``lsb_mask`` (heads, rows) true where a row refetched the LSB plane. With
+    the rule off, plain float scores and an all-false mask.
+    """
+    if not keys.enabled:
+        kt = np.ascontiguousarray(np.swapaxes(k, -1, -2))
+        return softmax(np.matmul(q, kt) * scale), np.zeros(q.shape[:2], dtype=bool)
+    step = quant_step(k, keys.bits, axis=(1, 2))  # (heads, 1, 1): one step per head
+    codes = quantize_uniform(k, keys.bits, step)
+    msb, _ = split_planes(codes, keys.lsb_bits)
+    k_msb_t = np.ascontiguousarray(np.swapaxes(msb_reconstruct(msb, keys.lsb_bits) * step, -1, -2), q.dtype)
+    probs = softmax(np.matmul(q, k_msb_t) * scale)
+    lsb = probs.max(axis=-1) < keys.threshold
+    hs = np.flatnonzero(lsb.any(axis=1))
+    if len(hs):
+        # recompute only the heads that have rows under the threshold
+        k_full_t = np.ascontiguousarray(np.swapaxes(codes[hs] * step[hs], -1, -2), q.dtype)
+        full = softmax(np.matmul(q[hs], k_full_t) * scale)
+        probs[hs] = np.where(lsb[hs][..., None], full, probs[hs])
+    return probs, lsb
+
+
+def token_importance(probs):
+    """Cascade token score: probability each key column receives, over heads and rows."""
+    return probs.sum(axis=(0, 1), dtype=np.float64)
+
+
+def head_importance(head_out):
+    """Cascade head score: magnitude of each head's output (sum of |values|)."""
+    return np.abs(head_out).sum(axis=tuple(range(1, head_out.ndim)), dtype=np.float64)
+
+
+def effective_key_bits(keys, lsb_heads_fraction):
+    """Mean bits fetched per key element: MSB always, LSB for heads that refetched."""
+    if not keys.enabled:
+        return None
+    return keys.msb_bits + keys.lsb_bits * float(lsb_heads_fraction)
