@@ -89,6 +89,40 @@ SCHEMA = {
         "latency_ns": Field("float", 40.0, "fixed access latency, request to first data, ns"),
         "queue_depth": Field("int", 32, "requests one channel can hold queued or in service"),
         "interleave_bytes": Field("int", 256, "consecutive bytes mapped to one channel before the next"),
+        # Banked model (sim/engine/dram.py). Defaults are an HBM2 channel in legacy
+        # mode, values from memory; sourced presets: arch_configs/memory/*.yaml.
+        "model": Field("choice", "banked", "banked: banks, rows and refresh; fixed-latency: a pipelined "
+                       "bus with dram.latency_ns per access", choices=["banked", "fixed-latency"]),
+        "bus_bits": Field("int", 128, "data-bus width of one channel in bits"),
+        "banks": Field("int", 16, "banks per channel (all bank groups together)"),
+        "bank_groups": Field("int", 4, "bank groups per channel; back-to-back columns in one group "
+                             "are spaced t_ccd_l_ns"),
+        "row_bytes": Field("int", 2048, "bytes of one open row (page) of one bank, as seen by the channel"),
+        "rows": Field("int", 16384, "rows per bank"),
+        "t_cl_ns": Field("float", 14.0, "column read to first data (CAS latency), ns"),
+        "t_rcd_ns": Field("float", 14.0, "activate to column read, ns"),
+        "t_rp_ns": Field("float", 14.0, "precharge to activate, ns"),
+        "t_ras_ns": Field("float", 33.0, "activate to precharge, at least, ns"),
+        "t_rtp_ns": Field("float", 4.0, "column read to precharge, ns", minimum=0),
+        "t_ccd_l_ns": Field("float", 4.0, "column to column in the same bank group, ns "
+                            "(other groups: one burst time)", minimum=0),
+        "t_refi_ns": Field("float", 3900.0, "interval between all-bank refreshes, ns"),
+        "t_rfc_ns": Field("float", 260.0, "time one refresh blocks the channel, ns (0: no refresh)",
+                          minimum=0),
+        "controller_ns": Field("float", 0.0, "controller and interconnect time added to every access "
+                               "in the banked model, ns", minimum=0),
+        "page_policy": Field("choice", "open", "open: a row stays open after access; close: "
+                             "precharge once the queued accesses to it are done",
+                             choices=["open", "close"]),
+        "scheduler": Field("choice", "fcfs", "order a channel serves its queue: first come first "
+                           "served, or row hits first", choices=["fcfs", "row_hits_first"]),
+        "address_bits": Field("str", "auto", "address map, most significant first: comma-separated "
+                              "row, bank, group, column, channel, each optionally :BITS; 'auto' "
+                              "derives it from interleave_bytes"),
+        "steering": Field("choice", "address", "address: bursts go to the channel their address "
+                          "names; first_free: a whole transaction goes to the channel that frees "
+                          "first (one shared queue, for queueing checks)",
+                          choices=["address", "first_free"]),
     },
     "fetch": {
         "request_bytes": Field("int", 1024, "largest request the fetch unit sends to one channel"),
@@ -124,7 +158,7 @@ SCHEMA = {
         "score_bits": Field("int", 16, "bits per score / probability element"),
     },
     "engine": {
-        "grain_rows": Field("int", 256, "key/value rows carried by one simulated transaction"),
+        "grain_rows": Field("int", 1024, "most key/value rows one simulated transaction carries"),
         "seed": Field("int", 0, "seed of the generator behind data-dependent choices", minimum=0),
     },
 }
@@ -339,6 +373,7 @@ def _check_consistency(d, source):
     if dram["interleave_bytes"] % dram["burst_bytes"]:
         raise ConfigError(source, "dram.interleave_bytes", dram["interleave_bytes"],
                           f"expected a multiple of dram.burst_bytes={dram['burst_bytes']}")
+    _check_dram(dram, source)
     if fetch["request_bytes"] % dram["burst_bytes"]:
         raise ConfigError(source, "fetch.request_bytes", fetch["request_bytes"],
                           f"expected a multiple of dram.burst_bytes={dram['burst_bytes']}")
@@ -348,3 +383,126 @@ def _check_consistency(d, source):
     if dot["multipliers"] % dot["lanes"]:
         raise ConfigError(source, "dot.multipliers", dot["multipliers"],
                           f"expected a multiple of dot.lanes={dot['lanes']}")
+
+
+def _check_dram(dram, source):
+    """Impossible DRAM timings and address maps; each error names the field."""
+    if dram["burst_bytes"] * 8 % dram["bus_bits"]:
+        raise ConfigError(source, "dram.burst_bytes", dram["burst_bytes"],
+                          f"expected whole beats of the dram.bus_bits={dram['bus_bits']} bus")
+    if dram["burst_bytes"] > dram["row_bytes"]:
+        raise ConfigError(source, "dram.burst_bytes", dram["burst_bytes"],
+                          f"expected at most dram.row_bytes={dram['row_bytes']} (a burst larger than a row)")
+    if dram["t_ras_ns"] < dram["t_rcd_ns"]:
+        raise ConfigError(source, "dram.t_ras_ns", dram["t_ras_ns"],
+                          f"expected at least dram.t_rcd_ns={dram['t_rcd_ns']:g} (a row must open before it may close)")
+    if dram["t_rfc_ns"] >= dram["t_refi_ns"]:
+        raise ConfigError(source, "dram.t_rfc_ns", dram["t_rfc_ns"],
+                          f"expected less than dram.t_refi_ns={dram['t_refi_ns']:g} (the channel would only refresh)")
+    if dram["banks"] % dram["bank_groups"]:
+        raise ConfigError(source, "dram.bank_groups", dram["bank_groups"],
+                          f"expected a divisor of dram.banks={dram['banks']}")
+    if dram["model"] != "banked":
+        return
+    address_slices(dram, source)
+
+
+MAP_FIELDS = ("row", "bank", "group", "column", "channel")
+
+
+def _map_counts(dram, source):
+    """Values each address-map field must distinguish, checked to be powers of two."""
+    counts = {
+        "channel": ("dram.channels", dram["channels"]),
+        "group": ("dram.bank_groups", dram["bank_groups"]),
+        "bank": ("dram.banks", dram["banks"] // dram["bank_groups"]),
+        "column": ("dram.row_bytes", dram["row_bytes"] // dram["burst_bytes"]),
+        "row": ("dram.rows", dram["rows"]),
+    }
+    bits = {}
+    for name, (knob, n) in counts.items():
+        if n & (n - 1):
+            raise ConfigError(source, knob, dram[knob.split(".")[1]],
+                              "expected a power of two (the banked model's address map is made of "
+                              "bit slices; dram.model: fixed-latency takes any count)")
+        bits[name] = n.bit_length() - 1
+    return bits
+
+
+def address_slices(dram, source="<dict>"):
+    """The address map as ``[(field, bits), ...]``, most significant first.
+
+    Above the burst offset, a burst index is cut into slices; a field split
+    over several slices takes its low bits from the lower slice. ``auto`` puts,
+    from the top: row, bank, the high column bits, the high group bits, the
+    channel, then inside one ``interleave_bytes`` chunk the low column bits and
+    the low group bits, so back-to-back bursts of a chunk alternate bank groups.
+    """
+    bits = _map_counts(dram, source)
+    chunk = dram["interleave_bytes"] // dram["burst_bytes"]
+    if chunk & (chunk - 1):
+        raise ConfigError(source, "dram.interleave_bytes", dram["interleave_bytes"],
+                          "expected dram.burst_bytes times a power of two")
+    k = chunk.bit_length() - 1
+    text = dram["address_bits"].strip()
+    if text == "auto":
+        g_low = min(bits["group"], k)
+        c_low = k - g_low
+        if c_low > bits["column"]:
+            raise ConfigError(source, "dram.interleave_bytes", dram["interleave_bytes"],
+                              f"expected at most dram.row_bytes x dram.bank_groups = "
+                              f"{dram['row_bytes'] * dram['bank_groups']} (a chunk must stay in one row)")
+        out = [("row", bits["row"]), ("bank", bits["bank"]), ("column", bits["column"] - c_low),
+               ("group", bits["group"] - g_low), ("channel", bits["channel"]),
+               ("column", c_low), ("group", g_low)]
+        return [(f, b) for f, b in out if b]
+    out, open_slot, used = [], {}, dict.fromkeys(MAP_FIELDS, 0)
+    for part in text.split(","):
+        name, _, width = part.strip().partition(":")
+        name = name.strip()
+        if name not in MAP_FIELDS:
+            raise ConfigError(source, "dram.address_bits", dram["address_bits"],
+                              f"unknown field {name!r}, expected {', '.join(MAP_FIELDS)}"
+                              + closest(name, MAP_FIELDS))
+        if width:
+            try:
+                w = int(width)
+            except ValueError:
+                w = -1
+            if w < 1:
+                raise ConfigError(source, "dram.address_bits", dram["address_bits"],
+                                  f"{name}:{width}: expected a whole number of bits >= 1")
+            used[name] += w
+        else:
+            if name in open_slot:
+                raise ConfigError(source, "dram.address_bits", dram["address_bits"],
+                                  f"{name} appears twice without a bit count; give all but one slice :BITS")
+            open_slot[name] = len(out)
+            w = None
+        out.append([name, w])
+    for name in MAP_FIELDS:
+        rest = bits[name] - used[name]
+        if name in open_slot:
+            if rest < 0:
+                rest = -1
+            out[open_slot[name]][1] = rest
+        if rest < 0:
+            raise ConfigError(source, "dram.address_bits", dram["address_bits"],
+                              f"{name} gets {used[name]} bits, expected {bits[name]}: slices collide "
+                              f"with the next field")
+        if rest > 0 and name not in open_slot:
+            raise ConfigError(source, "dram.address_bits", dram["address_bits"],
+                              f"{name} gets {used[name]} bits, expected {bits[name]}: "
+                              f"{rest} bits of it are unused")
+    out = [(f, b) for f, b in out if b]
+    if bits["channel"]:
+        below = 0
+        for f, b in reversed(out):
+            if f == "channel":
+                break
+            below += b
+        if dram["burst_bytes"] << below != dram["interleave_bytes"]:
+            raise ConfigError(source, "dram.interleave_bytes", dram["interleave_bytes"],
+                              f"expected {dram['burst_bytes'] << below}, the bytes dram.address_bits "
+                              f"puts on one channel before the next")
+    return out

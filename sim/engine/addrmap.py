@@ -6,9 +6,15 @@ region, row ``r`` starts at ``r * row_bytes``. Regions are aligned to 4 KiB.
 :meth:`AddressMap.bursts` turns a set of row positions into the distinct
 burst addresses that must be read: an isolated kept row still costs whole
 bursts, and adjacent kept rows share them (coalescing).
+
+:class:`BurstDecoder` is the other half: it cuts a burst address into the
+channel, bank, bank group and DRAM row the memory pool serves it from, by the
+bit slices of ``dram.address_bits`` (see :func:`sim.arch.address_slices`).
 """
 
 import numpy as np
+
+from ..arch import address_slices
 
 PLANES = ("Q", "K", "KL", "V")
 REGION_ALIGN = 4096
@@ -43,6 +49,12 @@ class AddressMap:
         # work in bits: a row of 32 elements at 4 bits is 16 bytes, at 3 bits 12
         row_bits = int(round(rb * 8))
         burst_bits = self.burst * 8
+        n = len(rows)
+        r0 = int(rows[0])
+        if int(rows[-1]) - r0 + 1 == n:  # contiguous rows: one run of bursts
+            s0 = self.base(layer, plane, head) * 8 + r0 * row_bits
+            b0, b1 = s0 // burst_bits, (s0 + n * row_bits - 1) // burst_bits
+            return np.arange(b0, b1 + 1, dtype=np.int64) * self.burst
         start = self.base(layer, plane, head) * 8 + np.asarray(rows, dtype=np.int64) * row_bits
         first = start // burst_bits
         last = (start + row_bits - 1) // burst_bits
@@ -72,3 +84,73 @@ class AddressMap:
             return (start + n * row_bits - 1) // burst_bits - start // burst_bits + 1
         return len(self.bursts(layer, plane, head, rows))
 
+
+
+class BurstDecoder:
+    """Cuts burst byte-addresses into channel, bank, group and DRAM row.
+
+    The slices of the config's address map are applied to the burst index
+    (address // burst_bytes), lowest slice first. Bits above the map extend
+    the row number, so an address past the nominal capacity lands on a row of
+    its own rather than aliasing another one.
+    """
+
+    def __init__(self, arch):
+        d = arch.dram
+        self.burst = d.burst_bytes
+        self.groups = d.bank_groups
+        self.slices = address_slices(arch.to_dict()["dram"], arch.source)
+        self.total_bits = sum(b for _, b in self.slices)
+        self.row_bits = sum(b for f, b in self.slices if f == "row")
+        plan, shift, have = [], 0, dict.fromkeys(("row", "bank", "group", "column", "channel"), 0)
+        for field, bits in reversed(self.slices):
+            plan.append((field, shift, (1 << bits) - 1, have[field]))
+            shift += bits
+            have[field] += bits
+        self.plan = plan
+        self.banks = arch.dram.banks
+        # when the row is the top slice, the rest of the map fits a lookup table
+        low = self.total_bits - self.row_bits
+        self.lut = None
+        if self.slices and self.slices[0][0] == "row" and self.row_bits == self.slices[0][1] and low <= 20:
+            ch, bank, _ = self._decode_bits(np.arange(1 << low, dtype=np.int64))
+            self.low_bits, self.low_mask = low, (1 << low) - 1
+            self.lut = (ch, bank, ch * self.banks + bank)
+
+    def decode(self, addresses):
+        """``(channel, bank, row)`` int64 arrays; ``bank`` counts all groups, group = bank % groups."""
+        x = np.asarray(addresses, dtype=np.int64) // self.burst
+        if self.lut is not None:
+            low = x & self.low_mask
+            return self.lut[0][low], self.lut[1][low], x >> self.low_bits
+        return self._decode_bits(x)
+
+    def decode_global(self, addresses):
+        """``(channel, bank over all channels, row)``: bank + channel * banks."""
+        x = np.asarray(addresses, dtype=np.int64) // self.burst
+        if self.lut is not None:
+            low = x & self.low_mask
+            return self.lut[0][low], self.lut[2][low], x >> self.low_bits
+        ch, bank, row = self._decode_bits(x)
+        return ch, bank + ch * self.banks, row
+
+    def _decode_bits(self, x):
+        out = {"row": None, "bank": None, "group": None, "channel": None}
+        for field, shift, mask, low in self.plan:
+            if field == "column":
+                continue
+            part = (x >> shift) & mask
+            if low:
+                part <<= low
+            cur = out[field]
+            out[field] = part if cur is None else (cur | part)
+        zero = np.zeros(len(x), dtype=np.int64)
+        row = out["row"] if out["row"] is not None else zero
+        top = x >> self.total_bits
+        if self.row_bits:
+            top <<= self.row_bits
+        row = row | top
+        bank = out["bank"] if out["bank"] is not None else zero
+        group = out["group"] if out["group"] is not None else zero
+        channel = out["channel"] if out["channel"] is not None else zero
+        return channel, bank * self.groups + group, row

@@ -1,23 +1,54 @@
 """DRAM channel pool: where fetched bytes come from, and how long they take.
 
-This model: each channel is one data bus served first come, first served, at
-``dram.channel_gbps``; every access pays a fixed ``dram.latency_ns`` that
-overlaps with other accesses' transfers (the bus is pipelined); a channel holds
-at most ``dram.queue_depth`` requests, queued or in service. Bursts map to
-channels by address: ``interleave_bytes`` consecutive bytes per channel, round
-robin. A transaction is served per channel in one step whose length follows
-from its burst count -- never one event per burst.
+Two models, chosen by ``dram.model``:
 
-Interface used by the fetch unit (kept stable as the model deepens):
-``submit(txn) -> simpy event`` fired when the last byte has arrived, with the
-transaction's log marked ``memory_queue``, ``memory_latency``,
-``memory_transfer``; ``report(total_cycles)`` for the result's ``dram`` section;
-``busy_intervals`` per channel for the unit state.
+``banked`` (default) models what a DRAM channel does with a stream of reads.
+Each channel has ``dram.banks`` banks in ``dram.bank_groups`` groups, each
+bank with at most one open row. A read to the open row is a *row hit* (one
+column command); a read to a closed bank is a *miss* (activate, then tRCD to
+the column); a read to a bank with another row open is a *conflict*
+(precharge, no earlier than tRAS after that row's activate and tRTP after its
+last column, then tRP, then activate). Column commands on one channel are
+spaced by one burst time on the data bus, or by tCCD_L when back to back in
+the same bank group; data arrives tCL after the column command. All-bank
+refresh blocks a channel for tRFC every tREFI and closes its rows (channels
+are staggered so the pool never refreshes all at once). The page policy keeps
+rows open, or closes a row once the reads queued for it are served. A
+channel's queue is served first come first served, or row hits first.
+
+``fixed-latency`` is the first, simple model: one pipelined bus per channel,
+a fixed ``dram.latency_ns`` per access, no banks.
+
+How time is computed: a transaction's bursts are decoded to channel, bank and
+row once (numpy), split into one *share* per channel, and each share's column
+command times come from the recurrence
+``c[i] = max(c[i-1] + spacing[i], row_ready[i])`` solved for all bursts at once
+with a segmented running maximum (see :func:`column_times`). Row-ready times
+depend on earlier column times of the same bank inside the share, so the
+solve is repeated until nothing moves; that takes one pass more than the
+largest number of row changes of one bank inside the share. Events: one per
+transaction (its completion), plus one per scheduling decision of a channel
+under ``row_hits_first`` -- never one per burst or per cycle.
+
+Interface used by the fetch unit (stable): ``submit(txn) -> simpy event``
+fired when the last byte has arrived, with the transaction's log marked
+``memory_queue``, ``memory_latency``, ``memory_transfer`` (non-decreasing);
+``report(total_cycles)`` for the result's ``dram`` section; ``busy_intervals``
+per channel (merged data-bus busy intervals).
+
+Simplifications, on purpose: reads only; no tRRD / tFAW activate-rate limit;
+no command-bus contention; refresh is taken on schedule (never postponed) and
+does not wait for tRAS of open rows.
 """
 
 from collections import deque
 
 import numpy as np
+
+from .addrmap import BurstDecoder
+
+HIT, MISS, CONFLICT = 0, 1, 2
+OCCUPANCY_BINS = 32
 
 
 def burst_cycles(arch):
@@ -27,25 +58,160 @@ def burst_cycles(arch):
 
 
 def latency_cycles(arch):
+    """The fixed-latency model's access latency in cycles."""
     return arch.dram.latency_ns * arch.clock_ghz
 
 
 def channel_of(bursts, arch):
-    """Channel index of each burst address (bytes)."""
+    """Channel index of each burst address (bytes), fixed-latency model."""
     return (bursts // arch.dram.interleave_bytes) % arch.dram.channels
 
 
+class Timing:
+    """The banked model's timings in accelerator cycles (config holds ns)."""
+
+    def __init__(self, arch):
+        d, ghz = arch.dram, arch.clock_ghz
+        self.burst = burst_cycles(arch)
+        self.cl = d.t_cl_ns * ghz
+        self.rcd = d.t_rcd_ns * ghz
+        self.rp = d.t_rp_ns * ghz
+        self.ras = d.t_ras_ns * ghz
+        self.rtp = d.t_rtp_ns * ghz
+        self.ccd_l = max(d.t_ccd_l_ns * ghz, self.burst)
+        self.refi = d.t_refi_ns * ghz
+        self.rfc = d.t_rfc_ns * ghz
+        self.ctrl = d.controller_ns * ghz
+        self.rc = self.ras + self.rp
+        # how far ahead of its bus slot a queued share is committed under row_hits_first:
+        # enough to hide a precharge and an activate behind the previous share's data
+        self.lookahead = self.rp + self.rcd
+
+
+class BankState:
+    """Open rows and command history of every bank of every channel."""
+
+    def __init__(self, channels, banks):
+        n = channels * banks
+        self.open_row = np.full(n, -1, dtype=np.int64)   # -1: bank precharged
+        self.act = np.full(n, -np.inf)                   # last activate
+        self.last_col = np.full(n, -np.inf)              # last column command
+        self.pre_ready = np.zeros(n)                     # closed bank may activate from here
+
+
+def column_times(gb, row, group, seg_len, t0, base_col, base_group, st, tm):
+    """Column-command times of a batch of bursts, one segment per channel.
+
+    ``gb`` global bank, ``row`` DRAM row and ``group`` bank group of each burst
+    in service order, the bursts of one channel together (``seg_len`` of them
+    per channel, in order); ``t0`` the earliest command time (a number, or
+    one per burst); ``base_col`` / ``base_group`` the last column time and its
+    group of each segment's channel; ``st`` the :class:`BankState` before the
+    batch; ``tm`` the :class:`Timing`.
+
+    Returns ``(c, sol)``: the column time of each burst, and a dict with the
+    run structure (bank-sorted ``order``, ``runid`` per sorted position,
+    ``slot`` = run of each burst, ``act`` / ``kind`` per run, ``newbank``) for
+    the state update. Plain numpy, no simpy, so the closed-form side and the
+    tests can call it.
+    """
+    n = len(gb)
+    order = np.argsort(gb, kind="stable")
+    sb = gb[order]
+    rs = row[order]
+    newbank = np.empty(n, dtype=bool)
+    newbank[0] = True
+    np.not_equal(sb[1:], sb[:-1], out=newbank[1:])
+    newrun = newbank.copy()
+    newrun[1:] |= rs[1:] != rs[:-1]
+    hpos = np.flatnonzero(newrun)                  # run heads, in bank-sorted positions
+    runid = np.cumsum(newrun) - 1
+    slot = np.empty(n, dtype=np.int64)
+    slot[order] = runid
+    hb = sb[hpos]
+    ht0 = t0 if np.isscalar(t0) else t0[order[hpos]]
+    fob = newbank[hpos]                            # first run of its bank in the batch
+    orow = st.open_row[hb]
+    hit = fob & (orow == rs[hpos])
+    closed = orow < 0
+    s_act = st.act[hb]
+    # from the bank state (exact for first runs, a lower bound for later runs of a bank)
+    act = np.where(closed, np.maximum(st.pre_ready[hb], ht0),
+                   np.maximum(np.maximum(st.last_col[hb] + tm.rtp, s_act + tm.ras), ht0) + tm.rp)
+    act = np.where(hit, s_act, act)
+    ready = act + tm.rcd
+    np.maximum(ready, ht0, out=ready)
+    kind = np.where(hit, HIT, np.where(fob & closed, MISS, CONFLICT))
+    inside = np.flatnonzero(~fob)                  # a bank changing rows inside the batch
+    # spacing of column commands: one burst time, or tCCD_L back to back in one group;
+    # D is each burst's offset from its segment's first column command
+    single = len(seg_len) == 1
+    if not single:
+        starts = np.cumsum(seg_len) - seg_len
+    if tm.ccd_l > tm.burst:
+        prev_group = np.empty(n, dtype=np.int64)
+        prev_group[1:] = group[:-1]
+        if single:
+            prev_group[0] = base_group[0]
+        else:
+            prev_group[starts] = base_group
+        d = np.where(group == prev_group, tm.ccd_l, tm.burst)
+        D = np.cumsum(d)
+        if single:
+            D -= d[0]
+            base = base_col[0] + d[0]
+        else:
+            D -= np.repeat(D[starts] - d[starts], seg_len)
+            base = np.repeat(base_col + d[starts], seg_len)
+    elif single:
+        D = np.arange(n) * tm.burst
+        base = base_col[0] + tm.burst
+    else:
+        D = (np.arange(n) - np.repeat(starts, seg_len)) * tm.burst
+        base = np.repeat(base_col + tm.burst, seg_len)
+    segid = None if single else np.repeat(np.arange(len(seg_len)), seg_len)
+    if len(inside):
+        prev_last = order[hpos[inside] - 1]
+        prev_run = inside - 1
+        in_t0 = ht0 if np.isscalar(ht0) else ht0[inside]
+    for _ in range(n + 2):  # converges in (row changes of one bank in the batch) + 1 passes
+        v = ready[slot] - D
+        if segid is None:
+            np.maximum.accumulate(v, out=v)
+        else:
+            span = float(v.max() - v.min()) + 1.0
+            off = segid * span
+            v += off
+            np.maximum.accumulate(v, out=v)
+            v -= off
+        c = D + np.maximum(base, v)
+        if not len(inside):
+            break
+        pre = np.maximum(c[prev_last] + tm.rtp, act[prev_run] + tm.ras)
+        a_new = np.maximum(pre, in_t0) + tm.rp
+        if np.array_equal(a_new, act[inside]):
+            break
+        act[inside] = a_new
+        ready[inside] = a_new + tm.rcd
+    else:
+        raise AssertionError("column-time passes did not converge")
+    return c, {"order": order, "sb": sb, "rs": rs, "newbank": newbank, "runid": runid,
+               "slot": slot, "act": act, "kind": kind}
+
+
 class ChannelPool:
-    """A pool of memory channels with per-channel bandwidth, latency and queueing."""
+    """A pool of memory channels: banks, rows, refresh, queues and scheduling."""
 
     def __init__(self, env, arch):
         self.env = env
         self.arch = arch
-        self.n = arch.dram.channels
-        self.burst = arch.dram.burst_bytes
+        d = arch.dram
+        self.model = d.model
+        self.n = d.channels
+        self.burst = d.burst_bytes
         self.t_burst = burst_cycles(arch)
         self.t_lat = latency_cycles(arch)
-        self.depth = arch.dram.queue_depth
+        self.depth = d.queue_depth
         self.req_bursts = max(1, arch.fetch.request_bytes // self.burst)
         self.free_at = [0.0] * self.n
         self.outstanding = [deque() for _ in range(self.n)]
@@ -58,11 +224,41 @@ class ChannelPool:
         self.wait_total = 0.0
         self.latency_total = 0.0
         self.latencies = []
+        # live occupancy: transactions submitted and not yet complete
+        self.in_flight = 0
+        self._occ = []                              # (t, +1 / -1) as they happen
+        if self.model == "fixed-latency":
+            self.submit = self._submit_fixed
+            return
+        self.banks = d.banks
+        self.groups = d.bank_groups
+        self.tm = Timing(arch)
+        self.close_page = d.page_policy == "close"
+        self.rows_first = d.scheduler == "row_hits_first"
+        self.first_free = d.steering == "first_free"
+        self.decoder = BurstDecoder(arch)
+        self.st = BankState(self.n, self.banks)
+        self.ch_col = np.full(self.n, -np.inf)
+        self.ch_group = np.full(self.n, -1, dtype=np.int64)
+        offsets = (np.arange(self.n) + 1) * (self.tm.refi / self.n)
+        self.ref_first = offsets.copy()
+        self.ref_next = offsets if self.tm.rfc > 0 else np.full(self.n, np.inf)
+        self.kinds = np.zeros(3, dtype=np.int64)
+        self._prep = np.array([0.0, self.tm.rcd, self.tm.rp + self.tm.rcd])  # by first access kind
+        self.refresh_delay = 0.0
+        # per-share records (channel, arrival, start, first data, done, bursts)
+        self.rec = {k: [] for k in ("channel", "arrival", "start", "first", "done", "bursts")}
+        # row_hits_first: shares held per channel until its decision time
+        self.held = [[] for _ in range(self.n)]
+        self.timer_at = [None] * self.n
+        self.submit = self._submit_banked
 
-    def submit(self, txn):
-        """Serve ``txn.bursts``; return an event fired when all data is in."""
+    # ------------------------------------------------------------------ fixed
+    def _submit_fixed(self, txn):
+        """Serve ``txn.bursts`` on the fixed-latency model."""
         env = self.env
         now = env.now
+        self._arrive(now)
         ch = channel_of(txn.bursts, self.arch)
         counts = np.bincount(ch, minlength=self.n)
         t_start = now
@@ -81,11 +277,7 @@ class ChannelPool:
                     start = room_at
             end = start + nb * self.t_burst
             self.free_at[c] = end
-            iv = self.busy_intervals[c]
-            if iv and iv[-1][1] >= start:
-                iv[-1][1] = end
-            else:
-                iv.append([start, end])
+            self._busy(c, start, end)
             self.busy_cycles[c] += end - start
             done_c = end + self.t_lat
             dq.extend([done_c] * nreq)
@@ -94,35 +286,353 @@ class ChannelPool:
                 t_start = start
             if end > t_end:
                 t_end = end
+        t_first = t_start + self.t_lat
+        t_done = max(t_end, t_start) + self.t_lat
+        return self._finish(txn, now, t_start, t_first, t_done, None)
+
+    def _busy(self, c, start, end):
+        iv = self.busy_intervals[c]
+        if iv and iv[-1][1] >= start:
+            if end > iv[-1][1]:
+                iv[-1][1] = end
+        else:
+            iv.append([start, end])
+
+    # ----------------------------------------------------------------- banked
+    def _submit_banked(self, txn):
+        """Serve ``txn.bursts`` on the banked model; the event fires at the last byte."""
+        now = self.env.now
+        self._arrive(now)
+        b = txn.bursts
+        if len(b) == 0:
+            return self._finish(txn, now, now, now, now, None)
+        if self.first_free:
+            c = self._first_free_channel(now)
+            _, bank, row = self.decoder.decode(b)
+            gb = bank + c * self.banks
+            ch = np.full(len(b), c, dtype=np.int64)
+        else:
+            ch, gb, row = self.decoder.decode_global(b)
+            if self.n > 1:
+                order = np.argsort(ch, kind="stable")
+                ch, gb, row = ch[order], gb[order], row[order]
+        rec = [now, 0, now, now, now, None]   # arrival, shares left, start, first data, done, event
+        if not self.rows_first:
+            rec[1] = -1                        # committed in one go
+            self._commit(rec, ch, gb, row, now)
+            return self._finish(txn, now, rec[2], rec[3], rec[4], None)
+        cnt = np.bincount(ch, minlength=self.n)
+        chans = np.flatnonzero(cnt).tolist()
+        rec[1] = len(chans)
+        hold = [c for c in chans if self.held[c] or self.ch_col[c] - self.tm.lookahead > now]
+        if hold:
+            ends = np.cumsum(cnt)
+            for c in hold:
+                lo, hi = ends[c] - cnt[c], ends[c]
+                self.held[c].append((rec, ch[lo:hi], gb[lo:hi], row[lo:hi]))
+                self._arm(c)
+            if len(hold) < len(chans):
+                keep = ~np.isin(ch, hold)
+                self._commit(rec, ch[keep], gb[keep], row[keep], now)
+        else:
+            self._commit(rec, ch, gb, row, now)
+        if rec[1] == 0:
+            return self._finish(txn, now, rec[2], rec[3], rec[4], None)
+        ev = self.env.event()
+        rec[5] = (txn, ev)
+        return ev
+
+    def _first_free_channel(self, now):
+        ready = np.maximum(self.ch_col + self.tm.burst, now)
+        return int(np.argmin(ready))
+
+    def _arm(self, c):
+        """Schedule channel ``c``'s next decision (row_hits_first)."""
+        if self.timer_at[c] is not None:
+            return
+        t = max(self.env.now, self.ch_col[c] - self.tm.lookahead)
+        self.timer_at[c] = t
+        ev = self.env.timeout(t - self.env.now)
+        ev.callbacks.append(lambda _ev, c=c: self._decide(c))
+
+    def _decide(self, c):
+        """Commit channel ``c``'s held shares, row hits first, oldest first among equals."""
+        self.timer_at[c] = None
+        held, self.held[c] = self.held[c], []
+        if not held:
+            return
+        # the controller sees at most queue_depth requests; the rest wait in arrival order
+        n_window, room = 0, self.depth
+        for share in held:
+            if n_window and room <= 0:
+                break
+            n_window += 1
+            room -= -(-len(share[1]) // self.req_bursts)
+        window, rest = held[:n_window], held[n_window:]
+        st = self.st
+        now = self.env.now
+        # one at a time, so each share sees the rows the one before it left open
+        while window:
+            pick = 0
+            for k, sh in enumerate(window):
+                if st.open_row[sh[2][0]] == sh[3][0]:
+                    pick = k
+                    break
+            rec, ch, gb, row = window.pop(pick)
+            self._commit(rec, ch, gb, row, now)
+            if rec[1] == 0 and rec[5] is not None:
+                txn, ev = rec[5]
+                self._finish(txn, rec[0], rec[2], rec[3], rec[4], ev)
+        if rest:
+            self.held[c] = rest
+            self._arm(c)
+
+    def _commit(self, rec, ch, gb, row, now):
+        """Fix the timing of one transaction's bursts ``ch``/``gb``/``row`` (sorted by channel)."""
+        cnt = np.bincount(ch, minlength=self.n) if self.n > 1 else np.array([len(ch)])
+        chans = np.flatnonzero(cnt).tolist()
+        t0 = {}
+        for c in chans:
+            t = now
+            nreq = -(-int(cnt[c]) // self.req_bursts)
+            dq = self.outstanding[c]
+            while dq and dq[0] <= now:
+                dq.popleft()
+            over = len(dq) + nreq - self.depth
+            if over > 0:  # the channel's queue is full: wait for requests to complete
+                room_at = dq[min(over, len(dq)) - 1]
+                if room_at > t:
+                    t = room_at
+            if self.ref_next[c] <= t:
+                self._refresh(c, t)
+            t0[c] = t
+        if rec[1] > 0:
+            rec[1] -= len(chans)
+        rec[2] = -np.inf
+        rec[3] = -np.inf
+        rec[4] = -np.inf if rec[4] == rec[0] else rec[4]
+        self._place(rec, ch, gb, row, t0, {})
+
+    def _place(self, rec, ch, gb, row, t0, slots):
+        """Solve, cut at refreshes, and commit; ``slots`` maps channel -> its share record."""
+        tm = self.tm
+        cnt = np.bincount(ch, minlength=self.n) if self.n > 1 else np.array([len(ch)])
+        chans = np.flatnonzero(cnt).tolist()
+        lens = cnt[chans]
+        t0s = [t0[c] for c in chans]
+        t0_b = t0s[0] if len(set(t0s)) == 1 else np.repeat(np.array(t0s), lens)
+        group = gb % self.groups
+        c, sol = column_times(gb, row, group, lens, t0_b, self.ch_col[chans], self.ch_group[chans],
+                              self.st, tm)
+        cross = c >= self.ref_next[ch]
+        if cross.any():
+            keep = ~cross
+            if keep.any():
+                self._place(rec, ch[keep], gb[keep], row[keep], t0, slots)
+            late = ch[cross]
+            for k in np.flatnonzero(np.bincount(late, minlength=self.n)).tolist():
+                r = self.ref_next[k]
+                first_late = c[np.flatnonzero(cross & (ch == k))[0]]
+                self.refresh_delay += max(0.0, r + tm.rfc - first_late)
+                self._refresh(k, r)
+                t0[k] = max(t0[k], r + tm.rfc)
+            self._place(rec, late, gb[cross], row[cross], t0, slots)
+            return
+        self._apply(rec, c, sol, group, chans, lens, t0s, slots)
+
+    def _apply(self, rec, c, sol, group, chans, lens, t0s, slots):
+        """Commit solved bursts to bank and channel state, and record the shares."""
+        st, tm = self.st, self.tm
+        n = len(c)
+        order, sb, newbank, runid = sol["order"], sol["sb"], sol["newbank"], sol["runid"]
+        lastbank = np.empty(n, dtype=bool)
+        lastbank[-1] = True
+        lastbank[:-1] = newbank[1:]
+        lp = np.flatnonzero(lastbank)
+        lg = sb[lp]
+        act = sol["act"][runid[lp]]
+        lc = c[order[lp]]
+        st.act[lg] = act
+        st.last_col[lg] = lc
+        if self.close_page:
+            st.open_row[lg] = -1
+            st.pre_ready[lg] = np.maximum(lc + tm.rtp, act + tm.ras) + tm.rp
+        else:
+            st.open_row[lg] = sol["rs"][lp]
+        kind = sol["kind"]
+        self.kinds += np.bincount(kind, minlength=3)
+        self.kinds[HIT] += n - len(kind)
+        ends = np.cumsum(lens)
+        begins = ends - lens
+        c_first = c[begins]
+        c_last = c[ends - 1]
+        self.ch_col[chans] = c_last
+        self.ch_group[chans] = group[ends - 1]
+        prep = self._prep[kind[sol["slot"][begins]]]
+        tail = tm.cl + tm.ctrl
+        start = np.maximum(np.array(t0s), c_first - prep).tolist()
+        first = (c_first + tail).tolist()
+        done = (c_last + (tm.burst + tail)).tolist()
+        self.busy_cycles[chans] += lens * tm.burst
+        # data-bus busy intervals, merged where bursts are back to back
+        brk = np.zeros(n, dtype=bool)
+        brk[begins] = True
+        if n > 1:
+            brk[1:] |= np.diff(c) > tm.burst * (1 + 1e-9)
+        s_idx = np.flatnonzero(brk)
+        e_idx = np.empty_like(s_idx)
+        e_idx[:-1] = s_idx[1:] - 1
+        e_idx[-1] = n - 1
+        pairs = np.column_stack((c[s_idx] + tm.cl, c[e_idx] + (tm.cl + tm.burst))).tolist()
+        cut = np.searchsorted(s_idx, begins).tolist() + [len(pairs)]
+        lens_l = lens.tolist()
+        rq = self.req_bursts
+        r_arr = self.rec
+        for k, ch in enumerate(chans):
+            m = lens_l[k]
+            nreq = -(-m // rq)
+            self.requests += nreq
+            self.outstanding[ch].extend([done[k]] * nreq)
+            iv = self.busy_intervals[ch]
+            lo, hi = cut[k], cut[k + 1]
+            if iv and iv[-1][1] >= pairs[lo][0] - 1e-9:
+                if pairs[lo][1] > iv[-1][1]:
+                    iv[-1][1] = pairs[lo][1]
+                lo += 1
+            iv.extend(pairs[lo:hi])
+            slot = slots.get(ch)
+            if slot is None:
+                slots[ch] = len(r_arr["done"])
+                r_arr["channel"].append(ch)
+                r_arr["arrival"].append(rec[0])
+                r_arr["start"].append(start[k])
+                r_arr["first"].append(first[k])
+                r_arr["done"].append(done[k])
+                r_arr["bursts"].append(m)
+                if start[k] > rec[2]:
+                    rec[2] = start[k]
+                if first[k] > rec[3]:
+                    rec[3] = first[k]
+            else:  # the rest of a share cut by a refresh
+                r_arr["done"][slot] = done[k]
+                r_arr["bursts"][slot] += m
+            if done[k] > rec[4]:
+                rec[4] = done[k]
+
+    def _refresh(self, c, t):
+        """Apply channel ``c``'s refreshes that start at or before ``t``: rows close."""
+        tm = self.tm
+        k = int((t - self.ref_next[c]) // tm.refi) + 1
+        w = self.ref_next[c] + (k - 1) * tm.refi
+        lo, hi = c * self.banks, (c + 1) * self.banks
+        st = self.st
+        st.open_row[lo:hi] = -1
+        np.maximum(st.pre_ready[lo:hi], w + tm.rfc, out=st.pre_ready[lo:hi])
+        self.ref_next[c] += k * tm.refi
+
+    # ----------------------------------------------------------------- common
+    def _finish(self, txn, t_submit, t_start, t_first, t_done, ev):
+        """Mark the transaction's log, count it, and fire (or return) its completion event."""
+        env = self.env
+        now = env.now
+        t_start = max(t_start, t_submit)
+        t_first = max(t_first, t_start)
+        t_done = max(t_done, t_first)
         nbursts = len(txn.bursts)
         self.bursts += nbursts
         self.bytes += nbursts * self.burst
         self.txns += 1
-        self.wait_total += t_start - now
-        t_first = t_start + self.t_lat
-        t_done = max(t_end, t_start) + self.t_lat
-        self.latency_total += t_done - now
-        self.latencies.append(t_done - now)
+        self.wait_total += t_start - t_submit
+        self.latency_total += t_done - t_submit
+        self.latencies.append(t_done - t_submit)
         txn.mark("memory_queue", t_start)
         txn.mark("memory_latency", t_first)
         txn.mark("memory_transfer", t_done)
-        return env.timeout(t_done - now)
+        if ev is None:
+            out = env.timeout(t_done - now)
+            out.callbacks.append(self._left)
+            return out
+        out = env.timeout(t_done - now)
+        out.callbacks.append(lambda _e, ev=ev: (self._left(_e), ev.succeed()))
+        return ev
+
+    def _arrive(self, now):
+        self.in_flight += 1
+        self._occ.append((now, 1))
+
+    def _left(self, _ev):
+        self.in_flight -= 1
+        self._occ.append((self.env.now, -1))
+
+    def occupancy(self, total_cycles, bins=OCCUPANCY_BINS):
+        """Time-average transactions in the pool: overall, per time bin, and the peak."""
+        if not self._occ or total_cycles <= 0:
+            return {"bins": [0.0] * bins, "bin_cycles": total_cycles / bins if bins else 0.0,
+                    "mean": 0.0, "max": 0}
+        ev = np.array(self._occ, dtype=float)
+        order = np.argsort(ev[:, 0], kind="stable")
+        t = ev[order, 0]
+        level = np.cumsum(ev[order, 1])
+        edges = np.linspace(0.0, total_cycles, bins + 1)
+        # integral of the step function up to each edge
+        seg_t = np.append(t, max(total_cycles, t[-1]))
+        area = np.concatenate(([0.0], np.cumsum(level * np.diff(seg_t))))
+        knots = np.concatenate((t, [seg_t[-1]]))
+        at = np.interp(edges, knots, area, left=0.0)
+        per_bin = np.diff(at) / np.diff(edges)
+        return {"bins": per_bin.tolist(), "bin_cycles": float(edges[1] - edges[0]),
+                "mean": float(at[-1] / total_cycles), "max": int(level.max())}
+
+    def share_records(self):
+        """Per channel share: channel, arrival, start, first data, done, bursts (numpy)."""
+        if self.model != "banked":
+            raise ValueError("share records exist only for dram.model: banked")
+        return {k: np.asarray(v) for k, v in self.rec.items()}
 
     def report(self, total_cycles):
         """The result document's ``dram`` section (before the engine adds peaks)."""
         seconds = total_cycles / (self.arch.clock_ghz * 1e9) if total_cycles else 0.0
         util = (self.busy_cycles / total_cycles).tolist() if total_cycles else [0.0] * self.n
         lat = np.asarray(self.latencies) if self.latencies else np.zeros(1)
-        return {
-            "model": "fixed-latency",
+        achieved = (self.bytes / seconds / 1e9) if seconds else 0.0
+        out = {
+            "model": self.model,
             "bytes": int(self.bytes),
             "bursts": int(self.bursts),
             "requests": int(self.requests),
             "transactions": int(self.txns),
-            "achieved_gbps": (self.bytes / seconds / 1e9) if seconds else 0.0,
+            "achieved_gbps": achieved,
             "peak_gbps": self.arch.peak_gbps,
+            "effective_to_peak": achieved / self.arch.peak_gbps if self.arch.peak_gbps else 0.0,
             "channel_utilization": util,
             "mean_queue_cycles": self.wait_total / self.txns if self.txns else 0.0,
             "mean_access_cycles": self.latency_total / self.txns if self.txns else 0.0,
             "p95_access_cycles": float(np.percentile(lat, 95)),
+            "queue_occupancy": self.occupancy(total_cycles),
         }
+        if self.model != "banked":
+            return out
+        hits, misses, conflicts = (int(x) for x in self.kinds)
+        total = hits + misses + conflicts
+        tm = self.tm
+        if tm.rfc > 0 and total_cycles > 0:
+            # windows scheduled inside the run, clipped to its end
+            k = np.floor(np.maximum(total_cycles - self.ref_first, -1) / tm.refi) + 1
+            k = np.maximum(k, 0)
+            last_start = self.ref_first + (k - 1) * tm.refi
+            stolen = np.where(k > 0, (k - 1) * tm.rfc
+                              + np.minimum(tm.rfc, total_cycles - last_start), 0.0)
+            refresh_share = float(stolen.mean() / total_cycles)
+        else:
+            refresh_share = 0.0
+        out.update({
+            "row_hit_rate": hits / total if total else 0.0,
+            "row_hits": hits,
+            "row_misses": misses,
+            "bank_conflicts": conflicts,
+            "refresh_share": refresh_share,
+            "refresh_delay_cycles": float(self.refresh_delay),
+            "scheduler": self.arch.dram.scheduler,
+            "page_policy": self.arch.dram.page_policy,
+        })
+        return out
