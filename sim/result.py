@@ -62,50 +62,39 @@ def _dram_states(pool, fetch_state, end):
     channels, so fractions stay per unit and sum to 1.
     """
     n = pool.n
-    totals = {}
+    ivs = [iv for iv in fetch_state.intervals if min(iv[1], end) > iv[0]]
+    t0 = np.array([iv[0] for iv in ivs] + [ivs[-1][1] if ivs else 0.0], dtype=np.float64)
+    t1 = np.array([min(iv[1], end) for iv in ivs] + [end], dtype=np.float64)
+    t1 = np.maximum(t1, t0)
+    keys = [("idle", None) if iv[2] == "idle" else
+            ("starved", "fetch_issue") if iv[2] == "busy" else
+            ("starved", iv[3] or "fetch") for iv in ivs]
+    keys.append(("idle", None))  # after the fetch unit's last interval: nothing left to fetch
     busy_total = 0.0
-    cum = []
+    busy_in = np.zeros(len(t0))
     for iv in pool.busy_intervals:
-        if iv:
-            arr = np.asarray(iv, dtype=np.float64)
-            arr = np.clip(arr, 0, end)
-            xs = arr.reshape(-1)
-            dur = arr[:, 1] - arr[:, 0]
-            ys = np.empty(len(xs))
-            c = np.cumsum(dur)
-            ys[0::2] = c - dur
-            ys[1::2] = c
-            busy_total += float(c[-1])
-            cum.append((xs, ys))
-    def busy_in(a, b):
-        s = 0.0
-        for xs, ys in cum:
-            s += float(np.interp(b, xs, ys) - np.interp(a, xs, ys))
-        return s
-    covered = 0.0
-    for t0, t1, state, cause in fetch_state.intervals:
-        t1 = min(t1, end)
-        if t1 <= t0:
+        if not iv:
             continue
-        free = (t1 - t0) * n - busy_in(t0, t1)
-        if state == "idle":
-            key = ("idle", None)
-        elif state == "busy":
-            key = ("starved", "fetch_issue")
-        else:
-            key = ("starved", cause or "fetch")
-        totals[key] = totals.get(key, 0.0) + free
-        covered += t1 - t0
-    if covered < end:  # after the fetch unit's last interval: nothing left to fetch
-        t0 = covered
-        totals[("idle", None)] = totals.get(("idle", None), 0.0) + (end - t0) * n - busy_in(t0, end)
-    frac = {"busy": busy_total / (n * end) if end else 0.0, "starved": 0.0, "blocked": 0.0, "idle": 0.0}
+        arr = np.clip(np.asarray(iv, dtype=np.float64), 0, end)
+        dur = arr[:, 1] - arr[:, 0]
+        c = np.cumsum(dur)
+        xs = arr.reshape(-1)
+        ys = np.empty(len(xs))
+        ys[0::2] = c - dur
+        ys[1::2] = c
+        busy_total += float(c[-1])
+        busy_in += np.interp(t1, xs, ys) - np.interp(t0, xs, ys)
+    free = np.maximum((t1 - t0) * n - busy_in, 0.0)
+    totals = {}
+    for key, f in zip(keys, free.tolist()):
+        totals[key] = totals.get(key, 0.0) + f
+    scale = n * end if end else 1.0
+    frac = {"busy": busy_total / scale if end else 0.0, "starved": 0.0, "blocked": 0.0, "idle": 0.0}
     stalls = {}
     for (state, cause), t in totals.items():
-        t = max(t, 0.0)
-        frac[state] += t / (n * end)
+        frac[state] += t / scale
         if state == "starved":
-            stalls[cause] = stalls.get(cause, 0.0) + t / (n * end)
+            stalls[cause] = stalls.get(cause, 0.0) + t / scale
     frac["stalls"] = dict(sorted(stalls.items(), key=lambda kv: -kv[1]))
     return frac
 

@@ -1,13 +1,17 @@
 """On-chip SRAM buffers modelled as capacity in bytes.
 
-A buffer is a simpy Container whose level is the bytes reserved in it. The
-fetch unit reserves room before it issues a transaction (and is ``blocked`` on
-the buffer while there is none); the consumer frees it after the last use. So
-buffer size becomes back-pressure on memory, and -- through the tiling rule in
-:mod:`sim.engine.tiling` -- it decides how often K and V are re-streamed.
+The fetch unit reserves room before it issues a transaction (and is
+``blocked`` on the buffer while there is none); the consumer frees it after
+the last use. So buffer size becomes back-pressure on memory, and -- through
+the tiling rule in :mod:`sim.engine.tiling` -- it decides how often K and V
+are re-streamed.
+
+Like a simpy ``Container`` whose level is the bytes reserved, but a
+reservation that fits is granted on the spot without an event: buffers are
+touched by every transaction, and most reservations never wait.
 """
 
-import simpy
+from collections import deque
 
 
 class Buffer:
@@ -19,22 +23,36 @@ class Buffer:
         self.env = env
         self.name = name
         self.capacity = capacity
-        self.store = simpy.Container(env, capacity=capacity, init=0)
+        self.level = 0.0
+        self.waiting = deque()      # (nbytes, event), served in order
         self.peak = 0.0
         self.bytes_written = 0.0
         self.bytes_read = 0.0
 
     def reserve(self, nbytes):
-        """Event fired once ``nbytes`` of room are reserved."""
-        ev = self.store.put(nbytes)
+        """Reserve ``nbytes``; None if granted now, else an event fired when granted."""
+        if nbytes > self.capacity:
+            raise ValueError(f"buffer {self.name!r}: {nbytes} bytes can never fit in {self.capacity}")
         self.bytes_written += nbytes
-        level = self.store.level + (0 if ev.triggered else nbytes)
-        if level > self.peak:
-            self.peak = level
+        if not self.waiting and self.level + nbytes <= self.capacity:
+            self._grant(nbytes)
+            return None
+        ev = self.env.event()
+        self.waiting.append((nbytes, ev))
         return ev
 
+    def _grant(self, nbytes):
+        self.level += nbytes
+        if self.level > self.peak:
+            self.peak = self.level
+
     def release(self, nbytes):
-        self.store.get(nbytes)
+        self.level -= nbytes
+        w = self.waiting
+        while w and self.level + w[0][0] <= self.capacity:
+            n, ev = w.popleft()
+            self._grant(n)
+            ev.succeed()
 
     def note_read(self, nbytes):
         self.bytes_read += nbytes

@@ -75,6 +75,7 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
         amap = amaps[d]
         plan = plan_step(arch, amap, step, grain_rows)
         layer = step.layer
+        n_kv = step.n_kept_k
         dep_q = [(prev_done, "layer_dependency")] if prev_done is not None else []
         if prev_done is not None and (step.stage == "prefill" or prev_selected):
             dep_kv = [(prev_done, "topk" if prev_selected else "layer_dependency")]
@@ -82,46 +83,54 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
             dep_kv = []
         last_use = {}
 
-        def fetch_txn(kind, positions, buf, waits, head, block):
-            t = Txn(kind, s, head, block, len(positions), 0, 0.0, "fetch")
+        def fetch_txn(kind, segments, buf, waits, head, block):
+            t = Txn(kind, s, head, block, sum(len(p) for _h, p in segments), 0, 0.0, "fetch")
             t.layer = layer
-            t.positions = positions
+            t.positions = segments
             t.buffer = buf
             t.waits = waits
             t.done = env.event()
             prog.fetch.append(t)
             return t
 
+        def chunk_txns(chunks, kind, buf, waits, head, block):
+            return [fetch_txn(kind, c.segments, buf, waits, head, block) for c in chunks]
+
         def use(op, txn):
             op.inputs.append(txn)
             last_use[id(txn)] = (txn, op)
 
-        blocks = [(hp, bp) for hp in plan for bp in hp.blocks]
-        for hp in plan:  # every row once: what an infinite buffer would fetch
-            prog.compulsory_bytes += hp.k_bytes + hp.v_bytes + amap.burst * sum(
-                amap.burst_count(layer, "Q", hp.head, bp.q_positions) for bp in hp.blocks)
-            if any(bp.lsb_rows for bp in hp.blocks):
-                prog.compulsory_bytes += hp.lsb_bytes
+        blocks = [(gp, bp) for gp in plan for bp in gp.blocks]
+        for gp in plan:  # every row once: what an infinite buffer would fetch
+            prog.compulsory_bytes += gp.k_bytes + gp.v_bytes + amap.burst * sum(
+                amap.burst_count(layer, "Q", h, bp.q_positions) for bp in gp.blocks for h in gp.heads)
+            prog.compulsory_bytes += sum(gp.lsb_bytes[h] for h in {h for bp in gp.blocks for h in bp.lsb})
+        # one query block per group: the step's whole query vector is one transaction
+        shared_q = shared_q_rows = None
+        if all(len(gp.blocks) == 1 for gp in plan):
+            q_rows = plan[0].blocks[0].q_positions
+            q_bytes = amap.burst * sum(amap.burst_count(layer, "Q", h, q_rows) for h in step.heads.tolist())
+            if q_bytes <= buffers["query"].capacity / 2:
+                shared_q_rows = q_rows
         resident_k = {}
         resident_v = {}
         pending_pv = None
         last_pv_done = None
         mac_total = 0
 
-        def emit_pv(hp, bp, final_sm, vsel):
-            nonlocal last_pv_done, mac_total
+        def emit_pv(gi, gp, bp, final_sm, vsel):
+            nonlocal last_pv_done, mac_total, shared_q
             waits = dep_kv + ([(vsel.done, "topk")] if vsel is not None else [])
-            if hp.v_resident:
-                if hp.head not in resident_v:
-                    resident_v[hp.head] = [fetch_txn("V", c.positions, buffers["value"], waits, hp.head, bp.block)
-                                           for c in hp.v_chunks]
-                chunks = resident_v[hp.head]
+            head = gp.heads[0]
+            if gp.v_resident:
+                if gi not in resident_v:
+                    resident_v[gi] = chunk_txns(gp.v_chunks, "V", buffers["value"], waits, head, bp.block)
+                chunks = resident_v[gi]
             else:
-                chunks = [fetch_txn("V", c.positions, buffers["value"], waits, hp.head, bp.block)
-                          for c in bp.v_chunks]
+                chunks = chunk_txns(bp.v_chunks, "V", buffers["value"], waits, head, bp.block)
             for i, ch in enumerate(chunks):
                 macs = bp.rows * ch.rows * d
-                op = dotmod.DotOp("pv", s, hp.head, bp.block, macs, d)
+                op = dotmod.DotOp("pv", s, head, bp.block, macs, d)
                 if i == 0:
                     op.waits.append((final_sm.done, "softmax"))
                 use(op, ch)
@@ -131,69 +140,78 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
             op.done = env.event()
             last_pv_done = op.done
 
-        for hp, bp in blocks:
-            # q.K of this block
-            q = fetch_txn("Q", bp.q_positions, buffers["query"], dep_q, hp.head, bp.block)
-            if hp.k_resident:
-                if hp.head not in resident_k:
-                    resident_k[hp.head] = [fetch_txn("K", c.positions, buffers["key"], dep_kv, hp.head, bp.block)
-                                           for c in hp.k_chunks]
-                kch = resident_k[hp.head]
+        for gi, gp, bp in ((plan.index(g), g, b) for g, b in blocks):
+            head = gp.heads[0]
+            nh = len(gp.heads)
+            if gp.k_resident:
+                if gi not in resident_k:
+                    resident_k[gi] = chunk_txns(gp.k_chunks, "K", buffers["key"], dep_kv, head, bp.block)
+                kch = resident_k[gi]
             else:
-                kch = [fetch_txn("K", c.positions, buffers["key"], dep_kv, hp.head, bp.block)
-                       for c in bp.k_chunks]
+                kch = chunk_txns(bp.k_chunks, "K", buffers["key"], dep_kv, head, bp.block)
+            # the query after the keys: in decode, cached keys may stream in before the
+            # previous layer is done, the query may not
+            if shared_q_rows is not None:
+                if shared_q is None:
+                    shared_q = fetch_txn("Q", [(h, shared_q_rows) for h in step.heads.tolist()],
+                                         buffers["query"], dep_q, -1, 0)
+                q = shared_q
+            else:
+                q = fetch_txn("Q", [(h, bp.q_positions) for h in gp.heads], buffers["query"], dep_q,
+                              head, bp.block)
             for ch in kch:
                 macs = bp.rows * ch.rows * d
-                op = dotmod.DotOp("qk", s, hp.head, bp.block, macs, d)
+                op = dotmod.DotOp("qk", s, head, bp.block, macs, d)
                 use(op, q)
                 use(op, ch)
                 counts["macs_qk"] += macs
                 mac_total += macs
                 prog.dot_qk.append(op)
-            op.out = Txn("S", s, hp.head, bp.block, bp.rows, 0, 0.0, "dot")
-            sm1 = smmod.SoftmaxOp(s, hp.head, bp.block, bp.rows, hp.n_kv)
+            op.out = Txn("S", s, head, bp.block, bp.rows * nh, 0, 0.0, "dot")
+            sm1 = smmod.SoftmaxOp(s, head, bp.block, bp.rows * nh, n_kv)
             sm1.done = env.event()
             prog.softmax.append(sm1)
-            counts["softmax_elements"] += bp.rows * hp.n_kv
+            counts["softmax_elements"] += bp.rows * nh * n_kv
             # p.V of the previous block: one block of lookahead
             if pending_pv is not None:
                 emit_pv(*pending_pv)
             # LSB recompute of this block (progressive key quantization)
             final_sm = sm1
-            if bp.lsb_rows:
-                kl = [fetch_txn("KL", c.positions, buffers["key"], dep_kv + [(sm1.done, "softmax")],
-                                hp.head, bp.block) for c in bp.lsb_chunks]
-                km = [fetch_txn("K", c.positions, buffers["key"], dep_kv, hp.head, bp.block)
-                      for c in bp.lsb_msb_chunks]
+            if bp.lsb:
+                kl = chunk_txns(bp.lsb_chunks, "KL", buffers["key"], dep_kv + [(sm1.done, "softmax")],
+                                head, bp.block)
+                km = chunk_txns(bp.lsb_msb_chunks, "K", buffers["key"], dep_kv, head, bp.block)
                 for i, ch in enumerate(kl):
-                    macs = bp.lsb_rows * ch.rows * d
-                    op = dotmod.DotOp("lsb", s, hp.head, bp.block, macs, d)
+                    rows_of = {h: len(p) for h, p in bp.lsb_chunks[i].segments}
+                    macs = sum(bp.lsb[h] * r for h, r in rows_of.items()) * d
+                    op = dotmod.DotOp("lsb", s, head, bp.block, macs, d)
                     if i == 0:
                         op.waits.append((sm1.done, "softmax"))
                     use(op, q)
                     use(op, ch)
                     if km:
                         use(op, km[i])
-                    elif hp.k_resident:
-                        use(op, kch[i] if i < len(kch) else kch[-1])
+                    elif gp.k_resident:
+                        use(op, kch[min(i, len(kch) - 1)])
                     counts["macs_lsb"] += macs
                     mac_total += macs
                     prog.dot_qk.append(op)
-                op.out = Txn("S", s, hp.head, bp.block, bp.lsb_rows, 0, 0.0, "dot")
-                final_sm = smmod.SoftmaxOp(s, hp.head, bp.block, bp.lsb_rows, hp.n_kv, second=True)
+                op.out = Txn("S", s, head, bp.block, bp.lsb_rows, 0, 0.0, "dot")
+                final_sm = smmod.SoftmaxOp(s, head, bp.block, bp.lsb_rows, n_kv, second=True)
                 final_sm.done = env.event()
                 prog.softmax.append(final_sm)
-                counts["softmax_elements"] += bp.lsb_rows * hp.n_kv
+                counts["softmax_elements"] += bp.lsb_rows * n_kv
             vsel = None
-            if hp.value_pruned:
-                comps = bp.rows * tkmod.select_cost(hp.n_kv, hp.n_v)
-                vsel = tkmod.TopkOp("value", s, hp.head, hp.n_kv, hp.n_v, comps)
+            pruned = gp.value_pruned_heads
+            if pruned:
+                comps = bp.rows * sum(tkmod.select_cost(n_kv, gp.n_v(h)) for h in pruned)
+                vsel = tkmod.TopkOp("value", s, head, n_kv, len(pruned), comps)
                 vsel.waits.append((final_sm.done, "softmax"))
                 vsel.done = env.event()
                 prog.topk.append(vsel)
                 counts["topk_comparisons"] += comps
-                counts["value_selections"] += bp.rows
-            pending_pv = (hp, bp, final_sm, vsel)
+                counts["value_selections"] += bp.rows * len(pruned)
+            pending_pv = (gi, gp, bp, final_sm, vsel)
         emit_pv(*pending_pv)
 
         for txn, op in last_use.values():
@@ -255,7 +273,8 @@ def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True):
     prog = build_program(env, arch, trace, amaps, buffers, grain_rows, rng)
 
     pool = ChannelPool(env, arch)
-    states = {name: UnitState(env, name, keep_intervals)
+    # the fetch unit's intervals are always kept: the pool's stalls are read from them
+    states = {name: UnitState(env, name, keep_intervals or name == "fetch")
               for name in ("fetch", "dot", "softmax", "topk")}
     shared = arch.dot.arrays == "shared"
     if not shared:
@@ -269,7 +288,7 @@ def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True):
         "fetch": env.process(fetch_process(env, prog.fetch, pool, _amap_router(amaps, trace),
                                            arch, states["fetch"], fetch_stats)),
         "dot": env.process(dotmod.dot_process(env, prog.dot_qk, mult, lanes, arch.dot.pipeline_cycles,
-                                              states["dot"], sm_queue)),
+                                              states["dot"], sm_queue, states["fetch"])),
         "softmax": env.process(smmod.softmax_process(env, prog.softmax, arch.softmax.lanes,
                                                      arch.softmax.latency_cycles, states["softmax"],
                                                      sm_queue)),
@@ -279,7 +298,7 @@ def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True):
     if not shared:
         procs["dot_pv"] = env.process(dotmod.dot_process(env, prog.dot_pv, mult, lanes,
                                                          arch.dot.pipeline_cycles, states["dot_pv"],
-                                                         sm_queue))
+                                                         sm_queue, states["fetch"]))
     step_times = [None] * len(prog.step_done)
     for i, ev in enumerate(prog.step_done):
         ev.callbacks.append(lambda _e, i=i: step_times.__setitem__(i, env.now))
@@ -306,7 +325,12 @@ class _amap_router:
 
     def bursts_for(self, txn):
         amap = self.single or self.amaps[self.dim_of_step[txn.step]]
-        return amap.bursts(txn.layer, txn.kind, txn.head, txn.positions)
+        segs = txn.positions
+        if len(segs) == 1:
+            h, p = segs[0]
+            return amap.bursts(txn.layer, txn.kind, h, p)
+        # heads' regions are laid out in head order, so the concatenation stays sorted
+        return np.concatenate([amap.bursts(txn.layer, txn.kind, h, p) for h, p in segs])
 
 
 def ceil_cycles(t):

@@ -47,14 +47,20 @@ class DotOp:
 
 
 def later(env, delay, event):
-    """Fire ``event`` ``delay`` cycles from now (pipeline latency)."""
+    """Fire ``event`` ``delay`` cycles from now (pipeline latency).
+
+    Schedules the event itself, as ``simpy.Timeout`` does, instead of a
+    second timeout event that would then trigger it.
+    """
     if delay <= 0:
         event.succeed()
     else:
-        env.timeout(delay).callbacks.append(lambda _ev: event.succeed())
+        event._ok = True
+        event._value = None
+        env.schedule(event, delay=delay)
 
 
-def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue):
+def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, producer=None):
     """Run ``ops`` in program order on one array; ``state`` is its UnitState.
 
     For each op: wait for its operand transactions (starved, charged to the
@@ -69,7 +75,7 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue):
                 t0 = env.now
                 state.set("starved", "fetch")
                 yield ev
-                state.charge_wait(t0, txn)
+                state.charge_wait(t0, txn, producer=producer)
         for ev, cause in op.waits:
             if not ev.processed:
                 state.set("starved", cause)

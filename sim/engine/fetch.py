@@ -51,7 +51,7 @@ def fetch_process(env, txns, pool, router, arch, state, stats):
         txn.nbytes = nbytes
         txn.hold = nbytes
         req = txn.buffer.reserve(nbytes)
-        if not req.triggered:
+        if req is not None:
             txn.mark("fetch", env.now)
             cause = f"{txn.buffer.name}_buffer_full"
             state.set("blocked", cause)

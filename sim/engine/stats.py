@@ -57,7 +57,33 @@ class UnitState:
         self.state = state
         self.cause = cause
 
-    def charge_wait(self, t0, txn, before="fetch"):
+    def explain(self, t0, t1):
+        """Split ``[t0, t1)`` of this unit's time into (t_end, cause) pieces.
+
+        Used to see through a producer: a consumer that waited for data the
+        fetch unit had not issued yet waited for whatever the fetch unit was
+        waiting for (a full buffer, a dependency); time the producer was busy
+        stays charged to the producer itself.
+        """
+        out = []
+        iv = self.intervals
+        lo, hi = 0, len(iv)
+        while lo < hi:  # first interval ending after t0
+            mid = (lo + hi) // 2
+            if iv[mid][1] <= t0:
+                lo = mid + 1
+            else:
+                hi = mid
+        i = lo
+        while i < len(iv) and iv[i][0] < t1:
+            a, b, state, cause = iv[i]
+            out.append((min(b, t1), self.name if state == "busy" or not cause else cause))
+            i += 1
+        if self.since < t1:  # the open interval, not logged yet
+            out.append((t1, self.name if self.state == "busy" or not self.cause else self.cause))
+        return out
+
+    def charge_wait(self, t0, txn, before="fetch", producer=None):
         """Charge a starved wait ``[t0, now)`` to the stages in ``txn``'s log.
 
         The part of the wait before the transaction existed goes to ``before``
@@ -81,7 +107,15 @@ class UnitState:
                 continue
             if t_end > start and start < now:
                 seg_end = min(t_end, now)
-                self._charge(start, seg_end, "starved", stage)
+                if producer is not None and stage == producer.name:
+                    for piece_end, cause in producer.explain(start, seg_end):
+                        if piece_end > start:
+                            self._charge(start, piece_end, "starved", cause)
+                            start = piece_end
+                    if start < seg_end:
+                        self._charge(start, seg_end, "starved", stage)
+                else:
+                    self._charge(start, seg_end, "starved", stage)
                 start = seg_end
             prev_end = t_end
         if start < now:

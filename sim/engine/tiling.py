@@ -2,16 +2,22 @@
 
 Pure functions (no simpy), shared by the engine and the closed-form model.
 
-Per head of a step:
+Per step:
 
+* heads are taken in **head groups**. When one query block covers all of a
+  head's queries (decode, short prefill), several heads whose kept rows
+  together fit in ``engine.grain_rows`` rows (and in half of each buffer) move
+  as one group: one transaction carries all their K rows. Otherwise a group is
+  one head;
 * queries are processed in **query blocks** of at most half the query buffer
-  (double buffering), so a long prefill has several blocks;
-* K (most-significant plane) is **resident** when the head's kept rows fit in
-  half the key buffer: fetched once, reused by every query block. Otherwise it
-  is **re-streamed** for each query block. V likewise with the value buffer.
-  Half, so the next head's rows can stream in while this head finishes;
-* fetches move in **chunks** of ``engine.grain_rows`` rows, capped so one
-  chunk takes at most half its buffer;
+  (double buffering), so a long prefill has several blocks per head;
+* K (most-significant plane) is **resident** when it is read more than once
+  (several query blocks, or an LSB recompute) and the head's kept rows fit in
+  half the key buffer: fetched once, reused. Otherwise it is **re-streamed**
+  for each query block. V likewise with the value buffer. Half, so the next
+  head's rows can stream in while this head finishes;
+* fetches move in **chunks** of at most ``engine.grain_rows`` rows, capped so
+  one chunk takes at most half its buffer;
 * a query block with rows flagged for the least-significant key plane
   (progressive quantization) fetches that plane's chunks (plus the MSB chunks
   again when K was not resident) and recomputes those rows' scores;
@@ -31,44 +37,56 @@ from .addrmap import row_bytes
 
 
 class Chunk:
-    """Rows of one plane fetched together (one transaction); bytes follow at issue."""
+    """Rows of one plane fetched together (one transaction): ``[(head, positions)]``."""
 
-    __slots__ = ("plane", "positions")
+    __slots__ = ("plane", "segments", "rows")
 
-    def __init__(self, plane, positions):
+    def __init__(self, plane, segments):
         self.plane = plane
-        self.positions = positions
+        self.segments = segments
+        self.rows = sum(len(p) for _h, p in segments)
 
 
 class BlockPlan:
-    """One query block of one head."""
+    """One query block of one head group."""
 
-    __slots__ = ("block", "q_positions", "rows", "k_chunks", "lsb_rows", "lsb_chunks",
+    __slots__ = ("block", "q_positions", "rows", "k_chunks", "lsb", "lsb_chunks",
                  "lsb_msb_chunks", "v_chunks")
 
     def __init__(self, block, q_positions):
         self.block = block
-        self.q_positions = q_positions
+        self.q_positions = q_positions   # same query positions for every head of the group
         self.rows = len(q_positions)
-        self.k_chunks = []     # fetched for this block (empty when K is resident)
-        self.lsb_rows = 0
-        self.lsb_chunks = []   # LSB plane chunks for the recompute
+        self.k_chunks = []        # fetched for this block (empty when K is resident)
+        self.lsb = {}             # head -> query rows recomputed with the LSB plane
+        self.lsb_chunks = []      # LSB plane chunks for the recompute
         self.lsb_msb_chunks = []  # MSB chunks fetched again when K was not resident
-        self.v_chunks = []     # fetched for this block (empty when V is resident)
+        self.v_chunks = []        # fetched for this block (empty when V is resident)
+
+    @property
+    def lsb_rows(self):
+        return sum(self.lsb.values())
 
 
-class HeadPlan:
-    """All query blocks of one head, with its resident chunks."""
+class GroupPlan:
+    """All query blocks of a group of heads, with its resident chunks."""
 
-    __slots__ = ("head", "n_kv", "n_v", "v_positions", "k_resident", "v_resident",
-                 "k_chunks", "v_chunks", "blocks", "value_pruned", "k_bytes", "v_bytes",
-                 "lsb_bytes")
+    __slots__ = ("heads", "n_kv", "v_positions", "k_resident", "v_resident", "k_chunks",
+                 "v_chunks", "blocks", "k_bytes", "v_bytes", "lsb_bytes")
 
-    def __init__(self, head):
-        self.head = head
+    def __init__(self, heads):
+        self.heads = heads        # head ids
         self.blocks = []
-        self.k_chunks = []     # resident K chunks (fetched once for the head)
+        self.k_chunks = []        # resident K chunks (fetched once for the group)
         self.v_chunks = []
+        self.v_positions = {}     # head -> kept V positions
+
+    def n_v(self, head):
+        return len(self.v_positions[head])
+
+    @property
+    def value_pruned_heads(self):
+        return [h for h in self.heads if len(self.v_positions[h]) < self.n_kv]
 
 
 def check_fits(arch, head_dim, source):
@@ -94,11 +112,15 @@ def query_block_rows(arch, head_dim, q_rows):
     return max(1, min(q_rows, per_block))
 
 
-def chunk_rows(arch, plane, head_dim, grain_rows):
+def _room_rows(arch, plane, head_dim):
+    """Rows of ``plane`` whose burst-rounded size fits half its buffer."""
     cap = (arch.buffers.value_kib if plane == "V" else arch.buffers.key_kib) * 1024
-    # a chunk may straddle bursts at both ends: keep its burst-rounded size in half the buffer
-    limit = int((cap / 2 - 2 * arch.dram.burst_bytes) // row_bytes(arch, plane, head_dim))
-    return max(1, min(grain_rows, limit))
+    # a run of rows may straddle a burst at each end
+    return int((cap / 2 - 2 * arch.dram.burst_bytes) // row_bytes(arch, plane, head_dim))
+
+
+def chunk_rows(arch, plane, head_dim, grain_rows):
+    return max(1, min(grain_rows, _room_rows(arch, plane, head_dim)))
 
 
 def value_positions(step, j):
@@ -113,8 +135,21 @@ def value_positions(step, j):
     return k[pick]
 
 
-def _chunks(plane, positions, rows_per_chunk):
-    return [Chunk(plane, positions[i:i + rows_per_chunk])
+def group_size(arch, step, grain_rows, nqb):
+    """Heads per group: several only when one query block covers a head."""
+    if nqb > 1:
+        return 1
+    d = step.head_dim
+    n = step.n_kept_k
+    room = min(_room_rows(arch, "K", d), _room_rows(arch, "V", d))
+    if arch.precision.k_lsb_bits:
+        room = min(room, _room_rows(arch, "KL", d))
+    q_room = int(arch.buffers.query_kib * 1024 / 2 // (row_bytes(arch, "Q", d) * step.q_rows + 2 * arch.dram.burst_bytes))
+    return max(1, min(step.n_heads, grain_rows // n, room // n, q_room))
+
+
+def _split(plane, head, positions, rows_per_chunk):
+    return [Chunk(plane, [(head, positions[i:i + rows_per_chunk])])
             for i in range(0, len(positions), rows_per_chunk)]
 
 
@@ -123,7 +158,7 @@ def _bytes(amap, layer, plane, head, positions):
 
 
 def plan_step(arch, amap, step, grain_rows):
-    """Cut one step into per-head plans (see the module docstring)."""
+    """Cut one step into head-group plans (see the module docstring)."""
     d = step.head_dim
     qb = query_block_rows(arch, d, step.q_rows)
     nqb = math.ceil(step.q_rows / qb)
@@ -132,62 +167,86 @@ def plan_step(arch, amap, step, grain_rows):
     else:  # decode: the new token's query row(s) sit at the end of the context
         q_pos = np.arange(step.kv_rows - step.q_rows, step.kv_rows, dtype=np.int64)
     kc = chunk_rows(arch, "K", d, grain_rows)
-    # LSB recompute chunks pair one KL chunk with one MSB chunk: same rows, both must fit
-    klc = min(kc, chunk_rows(arch, "KL", d, grain_rows)) if arch.precision.k_lsb_bits else kc
     vc = chunk_rows(arch, "V", d, grain_rows)
+    lsb_plane = arch.precision.k_lsb_bits > 0
+    # LSB recompute chunks pair one KL chunk with one MSB chunk: same rows, both must fit
+    klc = min(kc, chunk_rows(arch, "KL", d, grain_rows)) if lsb_plane else kc
     kcap = arch.buffers.key_kib * 1024
     vcap = arch.buffers.value_kib * 1024
-    lsb_plane = arch.precision.k_lsb_bits > 0
-    heads = []
-    for j, h in enumerate(step.heads.tolist()):
-        hp = HeadPlan(h)
-        hp.n_kv = step.n_kept_k
-        hp.v_positions = value_positions(step, j)
-        hp.n_v = len(hp.v_positions)
-        hp.value_pruned = hp.n_v < hp.n_kv
-        hp.k_bytes = _bytes(amap, step.layer, "K", h, step.kept_k)
-        hp.v_bytes = _bytes(amap, step.layer, "V", h, hp.v_positions)
-        hp.lsb_bytes = _bytes(amap, step.layer, "KL", h, step.kept_k) if lsb_plane else 0
-        flagged = int(step.lsb_rows[j])
-        # keep K when it is read again: by several query blocks or by the LSB recompute
-        hp.k_resident = (nqb > 1 or flagged > 0) and hp.k_bytes <= kcap / 2
-        hp.v_resident = nqb > 1 and hp.v_bytes <= vcap / 2
-        if hp.k_resident:
-            hp.k_chunks = _chunks("K", step.kept_k, kc)
-        if hp.v_resident:
-            hp.v_chunks = _chunks("V", hp.v_positions, vc)
-        edges = np.floor(np.linspace(0, flagged, nqb + 1)).astype(np.int64)
+    layer = step.layer
+    heads = step.heads.tolist()
+    g = group_size(arch, step, grain_rows, nqb)
+    kept = step.kept_k
+    groups = []
+    for start in range(0, len(heads), g):
+        idx = list(range(start, min(start + g, len(heads))))
+        gp = GroupPlan([heads[j] for j in idx])
+        gp.n_kv = step.n_kept_k
+        for j in idx:
+            gp.v_positions[heads[j]] = value_positions(step, j)
+        gp.k_bytes = sum(_bytes(amap, layer, "K", h, kept) for h in gp.heads)
+        gp.v_bytes = sum(_bytes(amap, layer, "V", h, gp.v_positions[h]) for h in gp.heads)
+        gp.lsb_bytes = {h: _bytes(amap, layer, "KL", h, kept) for h in gp.heads} if lsb_plane else {}
+        flagged = {heads[j]: int(step.lsb_rows[j]) for j in idx} if lsb_plane else {}
+        reread_k = nqb > 1 or any(flagged.values())
+        gp.k_resident = reread_k and gp.k_bytes <= kcap / 2
+        gp.v_resident = nqb > 1 and gp.v_bytes <= vcap / 2
+        if len(idx) > 1:
+            k_chunks = [Chunk("K", [(h, kept) for h in gp.heads])]
+            v_chunks = [Chunk("V", [(h, gp.v_positions[h]) for h in gp.heads])]
+        else:
+            h = gp.heads[0]
+            k_chunks = _split("K", h, kept, kc)
+            v_chunks = _split("V", h, gp.v_positions[h], vc)
+        if gp.k_resident:
+            gp.k_chunks = k_chunks
+        if gp.v_resident:
+            gp.v_chunks = v_chunks
+        edges = {h: np.floor(np.linspace(0, f, nqb + 1)).astype(np.int64) for h, f in flagged.items()}
         for b in range(nqb):
             bp = BlockPlan(b, q_pos[b * qb:(b + 1) * qb])
-            if not hp.k_resident:
-                bp.k_chunks = _chunks("K", step.kept_k, kc)
-            # with no LSB plane configured there is nothing to refetch
-            bp.lsb_rows = min(int(edges[b + 1] - edges[b]), bp.rows) if lsb_plane else 0
-            if bp.lsb_rows:
-                bp.lsb_chunks = _chunks("KL", step.kept_k, klc)
-                bp.lsb_msb_chunks = [] if hp.k_resident else _chunks("K", step.kept_k, klc)
-            if not hp.v_resident:
-                bp.v_chunks = _chunks("V", hp.v_positions, vc)
-            hp.blocks.append(bp)
-        heads.append(hp)
-    return heads
+            if not gp.k_resident:
+                bp.k_chunks = k_chunks
+            if not gp.v_resident:
+                bp.v_chunks = v_chunks
+            for h, e in edges.items():
+                f = min(int(e[b + 1] - e[b]), bp.rows)
+                if f:
+                    bp.lsb[h] = f
+            if bp.lsb:
+                if len(idx) > 1:
+                    bp.lsb_chunks = [Chunk("KL", [(h, kept) for h in bp.lsb])]
+                    if not gp.k_resident:
+                        bp.lsb_msb_chunks = [Chunk("K", [(h, kept) for h in bp.lsb])]
+                else:
+                    h = gp.heads[0]
+                    bp.lsb_chunks = _split("KL", h, kept, klc)
+                    if not gp.k_resident:
+                        bp.lsb_msb_chunks = _split("K", h, kept, klc)
+            gp.blocks.append(bp)
+        groups.append(gp)
+    return groups
 
 
-def step_traffic(arch, amap, step, heads):
+def chunk_bytes(amap, layer, chunk):
+    return sum(_bytes(amap, layer, chunk.plane, h, p) for h, p in chunk.segments)
+
+
+def step_traffic(arch, amap, step, groups):
     """(fetched, compulsory) bytes of a planned step, from the same rule the engine uses."""
     fetched = compulsory = 0
     layer = step.layer
 
     def nbytes(chunks):
-        return sum(_bytes(amap, layer, c.plane, hp.head, c.positions) for c in chunks)
+        return sum(chunk_bytes(amap, layer, c) for c in chunks)
 
-    for hp in heads:
-        q_bytes = sum(_bytes(amap, layer, "Q", hp.head, bp.q_positions) for bp in hp.blocks)
-        compulsory += q_bytes + hp.k_bytes + hp.v_bytes
-        if any(bp.lsb_rows for bp in hp.blocks):  # the LSB plane, once
-            compulsory += hp.lsb_bytes
-        fetched += q_bytes + nbytes(hp.k_chunks) + nbytes(hp.v_chunks)
-        for bp in hp.blocks:
+    for gp in groups:
+        q_bytes = sum(_bytes(amap, layer, "Q", h, bp.q_positions) for bp in gp.blocks for h in gp.heads)
+        compulsory += q_bytes + gp.k_bytes + gp.v_bytes
+        lsb_heads = {h for bp in gp.blocks for h in bp.lsb}
+        compulsory += sum(gp.lsb_bytes[h] for h in lsb_heads)   # the LSB plane, once
+        fetched += q_bytes + nbytes(gp.k_chunks) + nbytes(gp.v_chunks)
+        for bp in gp.blocks:
             fetched += (nbytes(bp.k_chunks) + nbytes(bp.lsb_chunks) + nbytes(bp.lsb_msb_chunks)
                         + nbytes(bp.v_chunks))
     return fetched, compulsory
