@@ -239,6 +239,21 @@ def layer_norm(x, w, b, eps):
     return (x - mu) / np.sqrt(var + eps) * w + b
 
 
+def _one_blas_thread():
+    """Run the pass on one BLAS thread when threadpoolctl is there.
+
+    The per-head products are small; on a busy two-core machine a
+    multi-threaded BLAS spins on them and a pass runs several times slower
+    (measured with bench/capture.py). Results do not depend on it.
+    """
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        import contextlib
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
+
+
 # --------------------------------------------------------------------------
 # The encoder
 
@@ -314,6 +329,10 @@ class Encoder:
         Without a recorder the pass is dense apart from ``policy``'s
         per-layer value and key rules (no cascade decisions are taken).
         """
+        with _one_blas_thread():
+            return self._forward(ids, recorder, policy)
+
+    def _forward(self, ids, recorder, policy):
         cfg, w = self.config, self.weights
         ids = np.asarray(ids, dtype=np.int64)
         n = len(ids)
