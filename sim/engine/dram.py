@@ -416,6 +416,9 @@ class ChannelPool:
     def _place(self, rec, ch, gb, row, t0, slots):
         """Solve, cut at refreshes, and commit; ``slots`` maps channel -> its share record."""
         tm = self.tm
+        if ch[0] == ch[-1] and gb[0] == gb[-1] and (gb == gb[0]).all() and (row == row[0]).all():
+            if self._place_run(rec, int(ch[0]), int(gb[0]), int(row[0]), len(gb), t0, slots):
+                return
         cnt = np.bincount(ch, minlength=self.n) if self.n > 1 else np.array([len(ch)])
         chans = np.flatnonzero(cnt).tolist()
         lens = cnt[chans]
@@ -439,6 +442,74 @@ class ChannelPool:
             self._place(rec, late, gb[cross], row[cross], t0, slots)
             return
         self._apply(rec, c, sol, group, chans, lens, t0s, slots)
+
+    def _place_run(self, rec, ch, g, r, n, t0, slots):
+        """Scalar path for a batch that is one run (one bank, one row): the same
+        arithmetic as :func:`column_times`, without arrays. False if a refresh cuts it."""
+        st, tm = self.st, self.tm
+        t = t0[ch]
+        orow = st.open_row[g]
+        s_act = st.act[g]
+        if orow == r:
+            kind, act = HIT, s_act
+            ready = max(t, s_act + tm.rcd)
+        else:
+            if orow < 0:
+                kind, act = MISS, max(st.pre_ready[g], t)
+            else:
+                kind = CONFLICT
+                act = max(st.last_col[g] + tm.rtp, s_act + tm.ras, t) + tm.rp
+            ready = act + tm.rcd
+        grp = g % self.groups
+        d0 = tm.ccd_l if grp == self.ch_group[ch] else tm.burst
+        c0 = max(self.ch_col[ch] + d0, ready)
+        step = tm.ccd_l if n > 1 else tm.burst
+        c1 = c0 + (n - 1) * step
+        if c1 >= self.ref_next[ch]:
+            return False
+        st.act[g] = act
+        st.last_col[g] = c1
+        if self.close_page:
+            st.open_row[g] = -1
+            st.pre_ready[g] = max(c1 + tm.rtp, act + tm.ras) + tm.rp
+        else:
+            st.open_row[g] = r
+        self.kinds[kind] += 1
+        self.kinds[HIT] += n - 1
+        self.ch_col[ch] = c1
+        self.ch_group[ch] = grp
+        tail = tm.cl + tm.ctrl
+        start = max(t, c0 - self._prep[kind])
+        first = c0 + tail
+        done = c1 + tm.burst + tail
+        self.busy_cycles[ch] += n * tm.burst
+        nreq = -(-n // self.req_bursts)
+        self.requests += nreq
+        self.outstanding[ch].extend([done] * nreq)
+        iv = self.busy_intervals[ch]
+        if step > tm.burst * (1 + 1e-9):  # same group back to back: the bus idles between bursts
+            s_t = c0 + tm.cl + np.arange(n) * step
+            pairs = np.column_stack((s_t, s_t + tm.burst)).tolist()
+        else:
+            pairs = [[c0 + tm.cl, c1 + tm.cl + tm.burst]]
+        if iv and iv[-1][1] >= pairs[0][0] - 1e-9:
+            iv[-1][1] = max(iv[-1][1], pairs[0][1])
+            pairs = pairs[1:]
+        iv.extend(pairs)
+        r_arr = self.rec
+        slot = slots.get(ch)
+        if slot is None:
+            slots[ch] = len(r_arr["done"])
+            for key, val in (("channel", ch), ("arrival", rec[0]), ("start", start),
+                             ("first", first), ("done", done), ("bursts", n)):
+                r_arr[key].append(val)
+            rec[2] = max(rec[2], start)
+            rec[3] = max(rec[3], first)
+        else:
+            r_arr["done"][slot] = done
+            r_arr["bursts"][slot] += n
+        rec[4] = max(rec[4], done)
+        return True
 
     def _apply(self, rec, c, sol, group, chans, lens, t0s, slots):
         """Commit solved bursts to bank and channel state, and record the shares."""
