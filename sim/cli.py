@@ -52,7 +52,7 @@ def _cmd_run(args):
             fh.write("\n")
         print(f"result document: {args.json}")
     if args.timeline:
-        from .result import write_timeline
+        from .report.timeline import write_timeline
         write_timeline(result, args.timeline)
         print(f"timeline: {args.timeline}")
     return 0
@@ -243,6 +243,36 @@ def _cmd_trace_capture(args):
 
 def _add_sweep(sub):
     """`sweep SPEC.yaml`."""
+    p = sub.add_parser(
+        "sweep", help="run a design-space sweep (local cores or a Dask cluster), resumable",
+        description="Expand the spec's grid, run every point not yet in --out, append each result "
+                    "as it finishes (points.jsonl, points.csv) and end with the best points and the "
+                    "Pareto front (summary.json). Rerunning the same spec resumes.")
+    p.add_argument("spec", help="sweep spec (YAML)")
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder (created; reused on rerun)")
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--jobs", type=int, metavar="N",
+                       help="local worker processes (default: every core; 1 runs in this process)")
+    where.add_argument("--cluster", metavar="tcp://HOST:PORT", help="submit to a running Dask scheduler")
+    where.add_argument("--workers", type=int, metavar="N", help="start a local Dask cluster of N workers")
+    p.add_argument("--screen", action="store_true",
+                   help="skip points whose closed-form lower bound is already dominated by a measured point")
+    p.add_argument("--force", action="store_true", help="reuse a folder that holds another sweep")
+    p.add_argument("--quiet", action="store_true", help="no progress line")
+    p.set_defaults(handler=_cmd_sweep)
+
+
+def _cmd_sweep(args):
+    from .sweep import SweepError, format_run, run_sweep
+
+    for opt in ("jobs", "workers"):
+        n = getattr(args, opt)
+        if n is not None and n < 1:
+            raise SweepError(f"--{opt}", opt, n, "expected a whole number >= 1")
+    run = run_sweep(args.spec, args.out, jobs=args.jobs, cluster=args.cluster, workers=args.workers,
+                    screen=args.screen, force=args.force, quiet=args.quiet)
+    print(format_run(run))
+    return 0 if run.summary["counts"]["missing"] == 0 else 1
 
 
 def _add_report(sub):
@@ -255,6 +285,50 @@ def _add_demo(sub):
 
 def _add_dram(sub):
     """`dram probe`."""
+    p = sub.add_parser("dram", help="memory configs on their own")
+    s = p.add_subparsers(dest="dram_cmd", required=True)
+    c = s.add_parser("probe", help="open-loop load sweep: latency against delivered bandwidth")
+    c.add_argument("config", help="architecture or memory config (YAML), e.g. arch_configs/memory/hbm2.yaml")
+    c.add_argument("--patterns", default="sequential,strided,random",
+                   help="comma-separated: sequential, strided, random")
+    c.add_argument("--loads", help="comma-separated offered loads as fractions of the pool peak, in (0, 1]")
+    c.add_argument("--requests", type=int, default=2000, help="requests per point")
+    c.add_argument("--stride", type=int, help="bytes between strided requests")
+    c.add_argument("--seed", type=int, default=0)
+    c.add_argument("--csv", metavar="OUT", help="write the curve here as CSV")
+    c.add_argument("--set", action="append", default=[], metavar="PATH=VALUE",
+                   help="override a config knob by dotted path (repeatable)")
+    c.set_defaults(handler=_cmd_dram_probe)
+
+
+def _cmd_dram_probe(args):
+    from .arch import load_arch
+    from .engine import probe
+
+    arch = load_arch(args.config)
+    if args.set:
+        arch = arch.with_overrides(_parse_sets(args.set, args.config), source=args.config)
+    loads = probe.DEFAULT_LOADS
+    if args.loads:
+        try:
+            loads = [float(x) for x in args.loads.split(",")]
+        except ValueError:
+            raise InputError("--loads", "loads", args.loads, "expected numbers separated by commas") from None
+    probe.check_loads(arch, loads)
+    if args.requests < 1:
+        raise InputError("--requests", "requests", args.requests, "expected a whole number >= 1")
+    if args.stride is not None and args.stride < 1:
+        raise InputError("--stride", "stride", args.stride, "expected a whole number of bytes >= 1")
+    patterns = [x.strip() for x in args.patterns.split(",") if x.strip()]
+    rows = probe.probe(arch, patterns, loads, args.requests, args.seed, args.stride)
+    d = arch.dram
+    print(f"{args.config}: {d.channels} x {d.channel_gbps:g} GB/s = {arch.peak_gbps:g} GB/s peak, "
+          f"model {d.model}, {d.scheduler}, {d.page_policy} page, {arch.fetch.request_bytes} B requests")
+    print(probe.format_rows(rows))
+    if args.csv:
+        probe.write_csv(rows, args.csv)
+        print(f"curve: {args.csv}")
+    return 0
 
 
 def build_parser():
