@@ -13,7 +13,9 @@ import math
 import numpy as np
 
 from . import __version__
+from .model.area import area_section
 from .model.bounds import bounds_from_counts
+from .model.energy import energy_section
 
 UNIT_ORDER = ("dram", "fetch", "dot", "dot_pv", "softmax", "topk")
 
@@ -39,12 +41,12 @@ class Result:
         return json.dumps(self._doc, indent=2, sort_keys=True) + "\n"
 
 
-def _round(x, nd=9):
-    """Floats rounded so documents are stable and readable."""
+def _round(x, nd=12):
+    """Floats to ``nd`` significant digits, so documents are stable and readable."""
     if isinstance(x, float):
         if math.isinf(x) or math.isnan(x):
             return None
-        return round(x, nd)
+        return float(f"{x:.{nd}g}")
     if isinstance(x, dict):
         return {k: _round(v, nd) for k, v in x.items()}
     if isinstance(x, (list, tuple)):
@@ -103,7 +105,7 @@ def build_result(arch, trace, prog, pool, states, buffers, fetch_stats, step_tim
     """Assemble the result document from a finished run."""
     clock = arch.clock_ghz * 1e9
     cycles = int(math.ceil(end - 1e-9))
-    seconds = end / clock
+    seconds = cycles / clock
     units = {}
     for name, st in states.items():
         st.finish(end)
@@ -168,6 +170,8 @@ def build_result(arch, trace, prog, pool, states, buffers, fetch_stats, step_tim
         "bounds": bounds,
         "verdict": _verdict(units, bounds, cycles),
     }
+    doc["energy"] = energy_section(arch, doc, trace)
+    doc["area"] = area_section(arch)
     intervals = {name: st.intervals for name, st in states.items()}
     intervals["dram"] = [list(map(list, iv)) for iv in pool.busy_intervals]
     return Result(_round(doc), intervals)
@@ -218,27 +222,3 @@ def format_summary(result):
                     if ls["unit"] else "no stalls"))
     return "\n".join(lines)
 
-
-def write_timeline(result, path):
-    """Per-unit intervals in the Trace Event Format (JSON), one track per unit."""
-    clock_ghz = result["arch"]["config"]["clock_ghz"]
-    us = 1.0 / (clock_ghz * 1e3)  # microseconds per cycle
-    events = []
-    tid = 0
-    for name, ivs in result.intervals.items():
-        tid += 1
-        if name == "dram":
-            for ch, chan in enumerate(ivs):
-                events.append({"name": "thread_name", "ph": "M", "pid": 1, "tid": 100 + ch,
-                               "args": {"name": f"dram channel {ch}"}})
-                for t0, t1 in chan:
-                    events.append({"name": "transfer", "cat": "busy", "ph": "X", "pid": 1,
-                                   "tid": 100 + ch, "ts": t0 * us, "dur": (t1 - t0) * us})
-            continue
-        events.append({"name": "thread_name", "ph": "M", "pid": 1, "tid": tid, "args": {"name": name}})
-        for t0, t1, state, cause in ivs:
-            label = state if not cause else f"{state}: {cause}"
-            events.append({"name": label, "cat": state, "ph": "X", "pid": 1, "tid": tid,
-                           "ts": t0 * us, "dur": (t1 - t0) * us})
-    with open(path, "w", encoding="utf-8") as fh:
-        json.dump({"traceEvents": events, "displayTimeUnit": "ns"}, fh)

@@ -143,23 +143,30 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
         for gi, gp, bp in ((plan.index(g), g, b) for g, b in blocks):
             head = gp.heads[0]
             nh = len(gp.heads)
+            # Transactions are created in the order the array first reads them, so the
+            # in-order fetch unit can never wait for room that only a later read frees.
+            # The first key chunk goes before the query: in decode, cached keys may
+            # stream in before the previous layer is done, the query may not.
             if gp.k_resident:
-                if gi not in resident_k:
-                    resident_k[gi] = chunk_txns(gp.k_chunks, "K", buffers["key"], dep_kv, head, bp.block)
-                kch = resident_k[gi]
+                kch = resident_k.setdefault(gi, [None] * len(gp.k_chunks))
+                kplan = gp.k_chunks
             else:
-                kch = chunk_txns(bp.k_chunks, "K", buffers["key"], dep_kv, head, bp.block)
-            # the query after the keys: in decode, cached keys may stream in before the
-            # previous layer is done, the query may not
-            if shared_q_rows is not None:
-                if shared_q is None:
-                    shared_q = fetch_txn("Q", [(h, shared_q_rows) for h in step.heads.tolist()],
-                                         buffers["query"], dep_q, -1, 0)
-                q = shared_q
-            else:
-                q = fetch_txn("Q", [(h, bp.q_positions) for h in gp.heads], buffers["query"], dep_q,
-                              head, bp.block)
-            for ch in kch:
+                kch = [None] * len(bp.k_chunks)
+                kplan = bp.k_chunks
+            q = None
+            for i, c in enumerate(kplan):
+                if kch[i] is None:
+                    kch[i] = fetch_txn("K", c.segments, buffers["key"], dep_kv, head, bp.block)
+                if q is None:
+                    if shared_q_rows is not None:
+                        if shared_q is None:
+                            shared_q = fetch_txn("Q", [(h, shared_q_rows) for h in step.heads.tolist()],
+                                                 buffers["query"], dep_q, -1, 0)
+                        q = shared_q
+                    else:
+                        q = fetch_txn("Q", [(h, bp.q_positions) for h in gp.heads], buffers["query"],
+                                      dep_q, head, bp.block)
+                ch = kch[i]
                 macs = bp.rows * ch.rows * d
                 op = dotmod.DotOp("qk", s, head, bp.block, macs, d)
                 use(op, q)
@@ -178,19 +185,22 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
             # LSB recompute of this block (progressive key quantization)
             final_sm = sm1
             if bp.lsb:
-                kl = chunk_txns(bp.lsb_chunks, "KL", buffers["key"], dep_kv + [(sm1.done, "softmax")],
-                                head, bp.block)
-                km = chunk_txns(bp.lsb_msb_chunks, "K", buffers["key"], dep_kv, head, bp.block)
-                for i, ch in enumerate(kl):
-                    rows_of = {h: len(p) for h, p in bp.lsb_chunks[i].segments}
+                kl_waits = dep_kv + [(sm1.done, "softmax")]
+                for i, c in enumerate(bp.lsb_chunks):
+                    ch = fetch_txn("KL", c.segments, buffers["key"], kl_waits, head, bp.block)
+                    km = None
+                    if bp.lsb_msb_chunks:
+                        km = fetch_txn("K", bp.lsb_msb_chunks[i].segments, buffers["key"], kl_waits,
+                                       head, bp.block)
+                    rows_of = {h: len(p) for h, p in c.segments}
                     macs = sum(bp.lsb[h] * r for h, r in rows_of.items()) * d
                     op = dotmod.DotOp("lsb", s, head, bp.block, macs, d)
                     if i == 0:
                         op.waits.append((sm1.done, "softmax"))
                     use(op, q)
                     use(op, ch)
-                    if km:
-                        use(op, km[i])
+                    if km is not None:
+                        use(op, km)
                     elif gp.k_resident:
                         use(op, kch[min(i, len(kch) - 1)])
                     counts["macs_lsb"] += macs

@@ -21,7 +21,8 @@ def service_cycles(macs, multipliers, lanes, head_dim):
     """Cycles the array is occupied by ``macs`` MACs (throughput part only)."""
     if macs <= 0:
         return 0
-    return math.ceil(macs / macs_per_cycle(multipliers, lanes, head_dim))
+    # fractional: a transaction is part of a continuous stream, the grain is the engine's choice
+    return macs / macs_per_cycle(multipliers, lanes, head_dim)
 
 
 class DotOp:

@@ -6,8 +6,9 @@ the top-k that decides which V rows are kept), reserves room in the target
 buffer, waits for a free in-flight slot, then issues the transaction's bursts
 to the channel pool (one issue cycle per request). Completions may come back
 out of order; the reorder stage hands transactions to consumers in issue
-order and holds at most ``fetch.reorder_entries`` that finished early --
-when it is full the unit stops issuing.
+order and holds at most ``fetch.reorder_entries`` requests' worth of data that
+finished early -- when it is full the unit stops issuing. ``fetch.inflight``
+bounds the requests issued and not yet handed over.
 """
 
 from collections import deque
@@ -20,17 +21,20 @@ def fetch_process(env, txns, pool, router, arch, state, stats):
     req_bytes = arch.fetch.request_bytes
     burst = arch.dram.burst_bytes
     pending = deque()        # issued, not yet handed over, in issue order
-    early = [0]              # completed but waiting for an earlier one
+    inflight = [0.0]         # requests issued and not yet handed over
+    early = [0.0]            # requests completed but waiting for an earlier transaction
     progress = [env.event()]
 
     def on_complete(txn):
         def fire(_ev):
             txn.completed = True
-            early[0] += 1
+            early[0] += txn.nbytes / req_bytes
             now = env.now
             while pending and pending[0].completed:
                 t = pending.popleft()
-                early[0] -= 1
+                r = t.nbytes / req_bytes
+                early[0] -= r
+                inflight[0] -= r
                 t.mark("reorder", now)
                 t.done.succeed()
             ev = progress[0]
@@ -57,8 +61,11 @@ def fetch_process(env, txns, pool, router, arch, state, stats):
             state.set("blocked", cause)
             yield req
             txn.mark(cause, env.now)
-        while len(pending) >= inflight_cap or early[0] >= reorder_cap:
-            cause = "inflight_limit" if len(pending) >= inflight_cap else "reorder_full"
+        # limits count requests (fetch.request_bytes each), not simulated transactions,
+        # so the engine's grain does not change the hardware being modelled
+        nreq = nbytes / req_bytes
+        while pending and (inflight[0] + nreq > inflight_cap or early[0] >= reorder_cap):
+            cause = "inflight_limit" if inflight[0] + nreq > inflight_cap else "reorder_full"
             txn.mark("fetch", env.now)
             state.set("blocked", cause)
             if progress[0].triggered:
@@ -68,14 +75,14 @@ def fetch_process(env, txns, pool, router, arch, state, stats):
         txn.mark("fetch", env.now)
         state.set("busy")
         pending.append(txn)
+        inflight[0] += nreq
         ev = pool.submit(txn)
         ev.callbacks.append(on_complete(txn))
         txn.bursts = None
         stats["bytes"] += nbytes
         stats[f"bytes_{txn.kind}"] += nbytes
         stats["transactions"] += 1
-        issue = -(-nbytes // req_bytes) if nbytes else 1
-        stats["requests"] += issue
-        yield env.timeout(issue)
+        stats["requests"] += nreq
+        yield env.timeout(nreq)  # one request issued per cycle
         state.set("starved", "program")
     state.set("idle")

@@ -6,8 +6,6 @@ pruning ranks. ``softmax.lanes`` elements per cycle in each pass; the result
 appears ``latency_cycles`` after the unit is done with a block.
 """
 
-import math
-
 PASSES = 2  # max pass, then exp/sum/normalize pass
 
 
@@ -15,7 +13,7 @@ def service_cycles(elements, lanes):
     """Cycles the unit is occupied by ``elements`` score elements."""
     if elements <= 0:
         return 0
-    return math.ceil(PASSES * elements / lanes)
+    return PASSES * elements / lanes
 
 
 class SoftmaxOp:

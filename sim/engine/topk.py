@@ -76,7 +76,7 @@ def counted_quickselect(values, keep, rng):
 def service_cycles(comparisons, comparators):
     if comparisons <= 0:
         return 0
-    return math.ceil(comparisons / comparators)
+    return comparisons / comparators
 
 
 class TopkOp:

@@ -74,15 +74,16 @@ def closed_form(arch, trace, grain_rows=None):
         f, c = step_traffic(arch, amaps[d], step, plan)
         fetched += f
         compulsory += c
-        for hp in plan:
-            for bp in hp.blocks:
-                qk = bp.rows * hp.n_kv * d + bp.lsb_rows * hp.n_kv * d
-                pv = bp.rows * hp.n_v * d
+        for gp in plan:
+            nh = len(gp.heads)
+            nv = sum(gp.n_v(h) for h in gp.heads)
+            for bp in gp.blocks:
+                qk = bp.rows * gp.n_kv * d * nh + bp.lsb_rows * gp.n_kv * d
+                pv = bp.rows * nv * d
                 macs[d] = macs.get(d, 0) + qk + pv
                 macs_pv[d] = macs_pv.get(d, 0) + pv
-                elements += (bp.rows + bp.lsb_rows) * hp.n_kv
-                if hp.value_pruned:
-                    comps += bp.rows * tkmod.select_cost(hp.n_kv, hp.n_v)
+                elements += (bp.rows * nh + bp.lsb_rows) * gp.n_kv
+                comps += bp.rows * sum(tkmod.select_cost(gp.n_kv, gp.n_v(h)) for h in gp.value_pruned_heads)
         nxt = steps[i + 1] if i + 1 < len(steps) else None
         if nxt is not None and nxt.stage == step.stage and nxt.layer == step.layer + 1 \
                 and nxt.kv_rows == step.kv_rows:
