@@ -161,6 +161,17 @@ SCHEMA = {
         "grain_rows": Field("int", 1024, "most key/value rows one simulated transaction carries"),
         "seed": Field("int", 0, "seed of the generator behind data-dependent choices", minimum=0),
     },
+    # Cost models (sim/model/energy.py, sim/model/area.py): a preset plus overrides.
+    "energy": {
+        "preset": Field("str", "horowitz45", "energy-per-operation preset: a bundled name or a YAML path"),
+        "dram_interface": Field("str", "auto", "which dram_pj_per_bit entry prices DRAM traffic; auto: "
+                                "hbm2 when dram.bus_bits >= 128, else ddr4"),
+        "overrides": Field("map", {}, "preset values replaced by dotted name, e.g. multiply_pj.int16: 0.7"),
+    },
+    "area": {
+        "preset": Field("str", "proxy45", "area-proxy preset: a bundled name or a YAML path"),
+        "overrides": Field("map", {}, "preset values replaced by dotted name, e.g. sram.um2_per_kib: 4000"),
+    },
 }
 
 # The knobs named in the design notes; sweeps most often use these.
@@ -364,7 +375,15 @@ def _validate(raw, source):
                               else copy.deepcopy(field.default))
                         for key, field in fields.items()}
     _check_consistency(out, source)
+    _check_cost_models(out, source)
     return out
+
+
+def _check_cost_models(d, source):
+    """The energy and area sections against their presets (sim/model has no simpy)."""
+    from .model import area, energy
+    energy.check_config(d, source)
+    area.check_config(d, source)
 
 
 def _check_consistency(d, source):

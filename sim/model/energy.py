@@ -1,0 +1,197 @@
+"""Energy model: what a run costs, counted operation by operation.
+
+Energy is the count of each operation the run performed times the energy of
+one such operation in a technology preset (default: the 45 nm figures of
+Horowitz, ISSCC 2014, in ``presets/energy_horowitz45.yaml``). Only dynamic
+energy of the modelled operations is counted: no leakage, no clock tree, no
+control logic of the fetch unit, no on-chip wires beyond what the SRAM figures
+hold.
+
+Operations and how each is priced:
+
+* q.K MAC: a ``q_bits x k_msb_bits`` multiply plus an accumulate add of
+  ``mac.accumulate_bits``; the LSB recompute multiplies ``q_bits x
+  k_lsb_bits``; p.V multiplies ``score_bits x v_bits``. A multiply is looked
+  up by the wider operand, at the nearest width the table has (ties go to
+  the wider entry); the document names the entry used;
+* softmax, per score element: one compare (running max), one exponential
+  (``softmax.exp_multiplies`` multiplies and ``exp_adds`` adds at
+  ``score_bits``), one add (running sum), one multiply (normalize);
+* top-k: one compare per comparison the selector made;
+* SRAM: one 64-bit access per 8 bytes read or written, priced by the
+  buffer's size (power-law interpolation between table sizes);
+* DRAM: bytes moved x 8 x pJ per bit of the interface.
+
+Pure functions of the architecture, the counts in a result document and the
+trace: no simpy here.
+"""
+
+from ..errors import ConfigError
+from . import presets
+
+UNIT_ORDER = ("dram", "dot", "dot_pv", "softmax", "topk", "query_buffer", "key_buffer", "value_buffer")
+
+
+def config_of(arch):
+    """The ``energy`` section of an Arch or a resolved config mapping."""
+    d = arch if isinstance(arch, dict) else arch.to_dict()
+    return d.get("energy") or {"preset": presets.DEFAULTS["energy"], "dram_interface": "auto",
+                               "overrides": {}}
+
+
+def resolve_table(arch_dict, source="<config>"):
+    """The preset named by the config with its overrides applied (checked)."""
+    cfg = config_of(arch_dict)
+    table = presets.load_preset("energy", cfg["preset"], source, "energy.preset")
+    return presets.apply_overrides("energy", table, cfg.get("overrides") or {}, source)
+
+
+def dram_interface(arch_dict, table, source="<config>"):
+    """``(name, why)``: which ``dram_pj_per_bit`` entry prices this memory."""
+    cfg = config_of(arch_dict)
+    choice = cfg.get("dram_interface", "auto")
+    known = table["groups"]["dram_pj_per_bit"]
+    if choice == "auto":
+        bits = arch_dict["dram"]["bus_bits"]
+        name = "hbm2" if bits >= 128 else "ddr4"
+        why = f"auto: dram.bus_bits = {bits} ({'>= 128: a wide stacked-memory channel' if bits >= 128 else '< 128: a DDR-class channel'})"
+        if name not in known:
+            raise ConfigError(source, "energy.dram_interface", choice,
+                              f"auto picks {name!r}, which the energy preset does not have; name one of "
+                              + ", ".join(known))
+        return name, why
+    if choice not in known:
+        from ..errors import closest
+        raise ConfigError(source, "energy.dram_interface", choice,
+                          "expected auto or one of " + ", ".join(known) + closest(choice, known))
+    return choice, "set in the config"
+
+
+def check_config(arch_dict, source="<config>"):
+    """Validate the energy section against its preset; called when a config loads."""
+    table = resolve_table(arch_dict, source)
+    dram_interface(arch_dict, table, source)
+    p = arch_dict["precision"]
+    g, fmt = table["groups"], {k: e["value"] for k, e in table["groups"]["format"].items()}
+    need = [("multiply_pj", fmt["mac"], max(p["q_bits"], p["k_msb_bits"])),
+            ("add_pj", fmt["mac"], g["mac"]["accumulate_bits"]["value"]),
+            ("multiply_pj", fmt["softmax"], p["score_bits"]),
+            ("add_pj", fmt["softmax"], p["score_bits"]),
+            ("add_pj", fmt["compare"], p["score_bits"])]
+    for group, f, bits in need:
+        if presets.nearest_width(g[group], f, bits)[0] is None:
+            raise ConfigError(source, f"energy.overrides.{group}", None,
+                              f"the energy preset has no {f} entry in {group} (needed for {bits}-bit operands)")
+    return table
+
+
+def _op(ops, name, unit, count, group, fmt, bits, table, what):
+    entry, e = presets.nearest_width(table["groups"][group], fmt, bits)
+    ops[name] = {"unit": unit, "count": count, "pj_each": float(e["value"]), "entry": f"{group}.{entry}",
+                 "operand_bits": bits, "origin": e["origin"], "what": what,
+                 "pj": count * float(e["value"])}
+
+
+def operation_energy(arch_dict, counts, table):
+    """Per-operation energy: ``{name: {unit, count, pj_each, entry, origin, pj}}``.
+
+    ``counts``: ``macs_qk``, ``macs_lsb_recompute``, ``macs_pv``,
+    ``softmax_elements``, ``topk_comparisons``, ``dram_bytes`` and
+    ``buffers: {name: {bytes_read, bytes_written}}``.
+    """
+    p = arch_dict["precision"]
+    g = table["groups"]
+    fmt = {k: e["value"] for k, e in g["format"].items()}
+    acc = int(g["mac"]["accumulate_bits"]["value"])
+    pv_unit = "dot_pv" if arch_dict["dot"]["arrays"] == "separate" else "dot"
+    ops = {}
+    mac_kinds = (("qk", "dot", counts["macs_qk"], max(p["q_bits"], p["k_msb_bits"]),
+                  f"q.K: {p['q_bits']}-bit q x {p['k_msb_bits']}-bit key MSB plane"),
+                 ("lsb", "dot", counts["macs_lsb_recompute"], max(p["q_bits"], p["k_lsb_bits"]),
+                  f"LSB recompute: {p['q_bits']}-bit q x {p['k_lsb_bits']}-bit key LSB plane"),
+                 ("pv", pv_unit, counts["macs_pv"], max(p["score_bits"], p["v_bits"]),
+                  f"p.V: {p['score_bits']}-bit probability x {p['v_bits']}-bit value"))
+    for kind, unit, n, bits, what in mac_kinds:
+        _op(ops, f"{kind}_multiply", unit, n, "multiply_pj", fmt["mac"], bits, table, what)
+        _op(ops, f"{kind}_accumulate", unit, n, "add_pj", fmt["mac"], acc, table,
+            f"{acc}-bit accumulate of each {kind} product")
+    sb = p["score_bits"]
+    n_sm = counts["softmax_elements"]
+    _op(ops, "softmax_max_compare", "softmax", n_sm, "add_pj", fmt["compare"], sb, table,
+        "running maximum, one compare per score element")
+    sm = g["softmax"]
+    k_mul, k_add = float(sm["exp_multiplies"]["value"]), float(sm["exp_adds"]["value"])
+    _op(ops, "softmax_exp_multiply", "softmax", n_sm * k_mul, "multiply_pj", fmt["softmax"], sb, table,
+        f"exponential: {k_mul:g} multiplies per element")
+    _op(ops, "softmax_exp_add", "softmax", n_sm * k_add, "add_pj", fmt["softmax"], sb, table,
+        f"exponential: {k_add:g} adds per element")
+    _op(ops, "softmax_sum", "softmax", n_sm, "add_pj", fmt["softmax"], sb, table, "running sum")
+    _op(ops, "softmax_normalize", "softmax", n_sm, "multiply_pj", fmt["softmax"], sb, table,
+        "normalize: multiply by the reciprocal of the sum")
+    _op(ops, "topk_compare", "topk", counts["topk_comparisons"], "add_pj", fmt["compare"], sb, table,
+        "one compare per selector comparison")
+    wf = float(g["sram"]["write_factor"]["value"])
+    for name, b in counts["buffers"].items():
+        kib = float(arch_dict["buffers"][f"{name}_kib"])
+        pj, how = presets.sram_per_access(g["sram_read_64b_pj"], kib)
+        unit = f"{name}_buffer"
+        for mode, nbytes, each in (("read", b["bytes_read"], pj), ("write", b["bytes_written"], pj * wf)):
+            ops[f"{name}_buffer_{mode}"] = {
+                "unit": unit, "count": nbytes / 8.0, "pj_each": each, "entry": "sram_read_64b_pj",
+                "operand_bits": 64, "origin": how + ("" if mode == "read" else f"; x sram.write_factor {wf:g}"),
+                "what": f"64-bit {mode}s of the {kib:g} KiB {name} buffer", "pj": nbytes / 8.0 * each}
+    iface, why = dram_interface(arch_dict, table)
+    e = g["dram_pj_per_bit"][iface]
+    bits = counts["dram_bytes"] * 8
+    ops["dram_transfer"] = {"unit": "dram", "count": bits, "pj_each": float(e["value"]),
+                            "entry": f"dram_pj_per_bit.{iface}", "operand_bits": 1,
+                            "origin": f"{e['origin']}; interface {why}", "what": "bits moved to or from DRAM",
+                            "pj": bits * float(e["value"])}
+    return ops
+
+
+def work_of(trace):
+    """Query rows (per head) and tokens the trace processes, the per-row / per-token denominators."""
+    rows = sum(s.q_rows * s.n_heads for s in trace.steps)
+    layers = sorted({s.layer for s in trace.steps})
+    first = layers[0] if layers else 0
+    prefill = sum(s.q_rows for s in trace.steps if s.stage == "prefill" and s.layer == first)
+    decode = sum(1 for s in trace.steps if s.stage == "decode" and s.layer == first)
+    return {"query_rows": int(rows), "tokens": int(prefill + decode),
+            "prefill_tokens": int(prefill), "decode_tokens": int(decode)}
+
+
+def counts_from_document(doc):
+    """The operation counts :func:`operation_energy` needs, read from a result document."""
+    c = doc["compute"]
+    return {"macs_qk": c["macs_qk"], "macs_lsb_recompute": c["macs_lsb_recompute"], "macs_pv": c["macs_pv"],
+            "softmax_elements": c["softmax_elements"], "topk_comparisons": c["topk_comparisons"],
+            "dram_bytes": doc["dram"]["bytes"],
+            "buffers": {k: {"bytes_read": v["bytes_read"], "bytes_written": v["bytes_written"]}
+                        for k, v in doc["buffers"].items()}}
+
+
+def energy_section(arch, doc, trace):
+    """The result document's ``energy`` section for a finished run."""
+    d = arch if isinstance(arch, dict) else arch.to_dict()
+    table = resolve_table(d, getattr(arch, "source", "<config>"))
+    ops = operation_energy(d, counts_from_document(doc), table)
+    units = {}
+    for op in ops.values():
+        units[op["unit"]] = units.get(op["unit"], 0.0) + op["pj"]
+    units = {u: units[u] for u in UNIT_ORDER if u in units}
+    total = sum(units.values())
+    work = work_of(trace)
+    secs = doc["seconds"]
+    return {
+        "model": "dynamic energy of counted operations x per-operation energy (a proxy)",
+        "preset": {"name": table["name"], "source": table["source"], "file": table["file"]},
+        "total_pj": total,
+        "units_pj": units,
+        "operations": ops,
+        "average_power_w": total * 1e-12 / secs if secs else None,
+        "pj_per_query_row": total / work["query_rows"] if work["query_rows"] else None,
+        "pj_per_token": total / work["tokens"] if work["tokens"] else None,
+        "work": work,
+        "not_counted": "leakage, clock tree, control and fetch logic, on-chip wires outside the SRAM figures",
+    }
