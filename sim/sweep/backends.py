@@ -1,0 +1,192 @@
+"""Where sweep points run: in this process, a local process pool, or Dask.
+
+Every backend runs :func:`sim.sweep.worker.run_point` on the same plain
+inputs and offers the same three calls:
+
+* ``submit(task)`` -- start one task (``task.args`` are run_point's arguments);
+* ``wait()`` -- block until at least one task ends; returns ``[(task, outcome)]``
+  where an outcome is ``("ok", doc, build)``, ``("error", line, build)`` or
+  ``("lost", line, None)`` when the process running it died;
+* ``close()``.
+
+``slots`` says how many tasks are worth keeping in flight.
+"""
+
+import concurrent.futures as cf
+import os
+
+from .spec import SweepError
+from .worker import run_point
+
+CONNECT_TIMEOUT_S = 5
+
+
+class SerialBackend:
+    """Runs each task in this process when asked to wait (``--jobs 1``)."""
+
+    name = "serial"
+    slots = 1
+
+    def __init__(self):
+        self._queue = []
+
+    def submit(self, task):
+        self._queue.append(task)
+
+    def wait(self):
+        task = self._queue.pop(0)
+        return [(task, run_point(*task.args))]
+
+    def pending(self):
+        return len(self._queue)
+
+    def close(self):
+        self._queue.clear()
+
+
+class PoolBackend:
+    """A local :class:`concurrent.futures.ProcessPoolExecutor` over ``jobs`` processes.
+
+    When a worker process dies the pool breaks: every task then in flight is
+    reported ``lost`` and a fresh pool takes the next submissions.
+    """
+
+    name = "local pool"
+
+    def __init__(self, jobs=None):
+        jobs = (os.cpu_count() or 1) if jobs is None else jobs
+        if jobs < 1:
+            raise SweepError("--jobs", "jobs", jobs, "expected a whole number >= 1")
+        self.jobs = jobs
+        self.slots = 2 * jobs
+        self._pool = cf.ProcessPoolExecutor(max_workers=jobs)
+        self._futures = {}
+
+    def submit(self, task):
+        try:
+            fut = self._pool.submit(run_point, *task.args)
+        except cf.process.BrokenProcessPool:
+            self._renew()
+            fut = self._pool.submit(run_point, *task.args)
+        self._futures[fut] = task
+
+    def _renew(self):
+        self._pool.shutdown(wait=False, cancel_futures=True)
+        self._pool = cf.ProcessPoolExecutor(max_workers=self.jobs)
+
+    def wait(self):
+        done, _ = cf.wait(list(self._futures), return_when=cf.FIRST_COMPLETED)
+        out, broken = [], False
+        for fut in done:
+            task = self._futures.pop(fut)
+            try:
+                out.append((task, fut.result()))
+            except cf.process.BrokenProcessPool as exc:
+                broken = True
+                out.append((task, ("lost", f"worker process died ({exc})", None)))
+        if broken:
+            # the rest of this pool's futures fail the same way; hand them back now
+            for fut, task in list(self._futures.items()):
+                if fut.done() and not fut.cancelled() and fut.exception() is None:
+                    out.append((task, fut.result()))
+                else:
+                    out.append((task, ("lost", "worker process died", None)))
+            self._futures.clear()
+            self._renew()
+        return out
+
+    def pending(self):
+        return len(self._futures)
+
+    def close(self):
+        self._pool.shutdown(wait=True, cancel_futures=True)
+
+
+class DaskBackend:
+    """Tasks on a Dask distributed scheduler: an existing one or a local cluster.
+
+    ``address`` (``tcp://HOST:PORT``) connects to a running scheduler, failing
+    within :data:`CONNECT_TIMEOUT_S` seconds; ``workers=N`` starts a local
+    cluster of N single-threaded worker processes on 127.0.0.1 instead. Remote
+    workers need this package installed and the traces at the same paths.
+    """
+
+    name = "dask"
+
+    def __init__(self, address=None, workers=None):
+        try:
+            import distributed
+        except ImportError:
+            raise SweepError("--cluster" if address else "--workers", "backend", "dask",
+                             "needs the sweep extra: pip install dask distributed") from None
+        self._distributed = distributed
+        self._cluster = None
+        if address is not None:
+            if not isinstance(address, str) or "://" not in address:
+                raise SweepError("--cluster", "cluster", address, "expected a scheduler address tcp://HOST:PORT")
+            try:
+                self._client = distributed.Client(address, timeout=CONNECT_TIMEOUT_S,
+                                                  set_as_default=False)
+            except (OSError, TimeoutError) as exc:
+                raise SweepError("--cluster", "cluster", address,
+                                 f"no Dask scheduler answered within {CONNECT_TIMEOUT_S} s "
+                                 f"({type(exc).__name__})") from None
+            self.name = f"dask at {address}"
+        else:
+            if workers < 1:
+                raise SweepError("--workers", "workers", workers, "expected a whole number >= 1")
+            self._cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=1,
+                                                     processes=True, host="127.0.0.1",
+                                                     dashboard_address=None)
+            self._client = distributed.Client(self._cluster, set_as_default=False)
+            self.name = f"local dask cluster, {workers} workers"
+        n = sum(self._client.nthreads().values())
+        self.slots = max(4, 2 * n)
+        self._futures = {}
+        self._attempt = 0
+
+    def submit(self, task):
+        self._attempt += 1
+        fut = self._client.submit(run_point, *task.args, key=f"attnsim-point-{task.key}-{self._attempt}",
+                                  pure=False)
+        self._futures[fut] = task
+
+    def wait(self):
+        dist = self._distributed
+        done = dist.wait(list(self._futures), return_when="FIRST_COMPLETED").done
+        out = []
+        for fut in done:
+            task = self._futures.pop(fut)
+            if fut.status == "finished":
+                out.append((task, fut.result()))
+            else:
+                try:
+                    exc = fut.exception()
+                    line = f"{type(exc).__name__}: {' '.join(str(exc).split())}"
+                except Exception as e:  # cancelled futures raise here
+                    line = f"{type(e).__name__}"
+                out.append((task, ("lost", line, None)))
+            fut.release()
+        return out
+
+    def pending(self):
+        return len(self._futures)
+
+    def close(self):
+        for fut in self._futures:
+            fut.cancel()
+        self._futures.clear()
+        self._client.close()
+        if self._cluster is not None:
+            self._cluster.close()
+
+
+def make_backend(jobs=None, cluster=None, workers=None):
+    """The backend the command line asked for (one of the three)."""
+    if cluster is not None:
+        return DaskBackend(address=cluster)
+    if workers is not None:
+        return DaskBackend(workers=workers)
+    if jobs == 1:
+        return SerialBackend()
+    return PoolBackend(jobs)

@@ -1,0 +1,311 @@
+"""Sweep spec: which datapaths to try on which traces, read from YAML.
+
+A spec names a base architecture, the knobs to vary and the traces to run::
+
+    name: buffers-vs-array
+    base: ../mid.yaml                      # relative to this file
+    traces: [../../traces/synth_decode.npz]
+    fixed:                                 # overrides applied to every point
+      engine.grain_rows: 512
+    axes:                                  # cartesian product, in this order
+      dot.multipliers: [256, 512, 1024]
+      buffers.key_kib: {from: 32, to: 256, factor: 2}
+      softmax.lanes: {from: 16, to: 48, step: 16}
+    linked:                                # each group advances together (zipped)
+      - dram.channels: [2, 4, 8]
+        dram.channel_gbps: [51.2, 25.6, 12.8]
+    keep_if:                               # every rule must hold (see constraints.py)
+      - ge: [buffers.value_kib, {mul: [buffers.key_kib, 0.5]}]
+    objectives: [cycles, energy, area]
+
+Everything is checked here, once; errors are :class:`SweepError` lines that
+name the file, the field, the value and what was expected.
+"""
+
+import copy
+import hashlib
+import json
+import math
+import os
+
+import yaml
+
+from .. import arch as archmod
+from ..errors import InputError, closest
+from . import constraints as cons
+from .objectives import OBJECTIVES
+
+TOP_KEYS = ("name", "description", "base", "traces", "fixed", "axes", "linked", "keep_if",
+            "objectives")
+MAX_VALUES = 10000   # per axis; a range that long is a typo, not a plan
+MAX_POINTS = 1_000_000
+
+
+class SweepError(InputError):
+    """A sweep spec, its output folder or its backend is unusable."""
+
+
+class Spec:
+    """A validated sweep spec.
+
+    ``dims`` is the list of grid dimensions: each a list of dotted paths and
+    the tuples of values they take together (an axis is a dimension of one
+    path, a linked group one of several). ``data`` is the spec as plain data
+    (ranges expanded), which is what ``digest`` hashes.
+    """
+
+    def __init__(self, source, name, description, base_path, base, traces, fixed, dims,
+                 rules, objectives, data):
+        self.source = source
+        self.name = name
+        self.description = description
+        self.base_path = base_path
+        self.base = base                  # resolved Arch
+        self.traces = traces              # [(path as written, resolved path)]
+        self.fixed = fixed
+        self.dims = dims
+        self.rules = rules
+        self.objectives = objectives
+        self.data = data
+
+    @property
+    def axis_paths(self):
+        return [p for paths, _vals in self.dims for p in paths]
+
+    @property
+    def grid_size(self):
+        return math.prod(len(vals) for _paths, vals in self.dims)
+
+    def digest(self, trace_digests):
+        """Identity of the sweep: the spec, the resolved base config and the traces' content."""
+        doc = {"spec": self.data, "base": self.base.to_dict(), "traces": list(trace_digests)}
+        text = json.dumps(doc, sort_keys=True, separators=(",", ":"))
+        return hashlib.sha256(text.encode()).hexdigest()
+
+    def __repr__(self):
+        return f"Spec({self.name!r} from {self.source}, {self.grid_size} grid points)"
+
+
+def load_spec(path):
+    """Read and validate a sweep spec file."""
+    path = os.fspath(path)
+    raw = _read(path)
+    return validate_spec(raw, path)
+
+
+def _read(path):
+    try:
+        with open(path, encoding="utf-8") as fh:
+            raw = yaml.safe_load(fh)
+    except FileNotFoundError:
+        raise SweepError(path, "<file>", path, "file not found") from None
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f"line {mark.line + 1}" if mark else "<file>"
+        raise SweepError(path, where, "...", f"not valid YAML ({getattr(exc, 'problem', exc)})") from None
+    if not isinstance(raw, dict):
+        raise SweepError(path, "<root>", raw, "expected a mapping with base, traces and axes")
+    return raw
+
+
+def validate_spec(raw, source):
+    """Check a spec mapping; relative paths are taken from ``source``'s folder."""
+    here = os.path.dirname(os.path.abspath(source)) if source and os.path.exists(source) else os.getcwd()
+    for key in raw:
+        if key not in TOP_KEYS:
+            raise SweepError(source, key, raw[key], "unknown key" + closest(key, TOP_KEYS))
+    name = raw.get("name", os.path.splitext(os.path.basename(source or "sweep"))[0])
+    if not isinstance(name, str) or not name.strip():
+        raise SweepError(source, "name", name, "expected a short text")
+    description = raw.get("description", "")
+    if not isinstance(description, str):
+        raise SweepError(source, "description", description, "expected text")
+
+    base_written = raw.get("base")
+    if not isinstance(base_written, str) or not base_written:
+        raise SweepError(source, "base", base_written, "expected the path of an architecture config")
+    base_path = os.path.normpath(os.path.join(here, base_written))
+    if not os.path.exists(base_path):
+        raise SweepError(source, "base", base_written, f"no such file (looked in {os.path.dirname(base_path)})")
+    base = archmod.load_arch(base_path)
+
+    traces = _traces(raw.get("traces"), source, here)
+    fixed = _fixed(raw.get("fixed", {}), source)
+    dims, dims_data = _dims(raw.get("axes", {}), raw.get("linked", []), source)
+    taken = set(fixed)
+    for paths, _vals in dims:
+        for p in paths:
+            if p in taken:
+                raise SweepError(source, p, None, "set twice (in fixed, axes or linked); give each knob one place")
+            taken.add(p)
+    if not dims:
+        raise SweepError(source, "axes", raw.get("axes"), "empty grid: expected at least one axis or linked group")
+    rules = cons.parse_rules(raw.get("keep_if", []), source, "keep_if")
+    objectives = _objectives(raw.get("objectives", ["cycles"]), source)
+    data = {
+        "name": name, "description": description, "base": base_written,
+        "traces": [w for w, _p in traces], "fixed": fixed, "dims": dims_data,
+        "keep_if": copy.deepcopy(raw.get("keep_if", [])), "objectives": objectives,
+    }
+    return Spec(source, name, description, base_path, base, traces, fixed, dims, rules, objectives, data)
+
+
+def _traces(value, source, here):
+    if isinstance(value, str):
+        value = [value]
+    if not isinstance(value, list) or not value:
+        raise SweepError(source, "traces", value, "expected a list of one or more trace paths")
+    out, seen = [], set()
+    for i, t in enumerate(value):
+        if not isinstance(t, str) or not t:
+            raise SweepError(source, f"traces[{i}]", t, "expected the path of a trace (.npz or .yaml)")
+        p = os.path.normpath(os.path.join(here, t))
+        if not os.path.exists(p):
+            raise SweepError(source, f"traces[{i}]", t, f"no such file (looked in {os.path.dirname(p)})")
+        if p in seen:
+            raise SweepError(source, f"traces[{i}]", t, "listed twice")
+        seen.add(p)
+        out.append((t, p))
+    return out
+
+
+def _knob(path, source, field):
+    if not isinstance(path, str) or archmod.field_for(path) is None:
+        raise SweepError(source, field, path, "no such config knob" + closest(path, archmod.knob_paths()))
+    return archmod.field_for(path)
+
+
+def _fixed(value, source):
+    if value is None:
+        return {}
+    if not isinstance(value, dict):
+        raise SweepError(source, "fixed", value, "expected a mapping of dotted knob paths to values")
+    for path, v in value.items():
+        _knob(path, source, f"fixed.{path}")
+        _scalar(v, source, f"fixed.{path}")
+    return dict(value)
+
+
+def _scalar(v, source, field):
+    if isinstance(v, (dict, list)) or v is None:
+        raise SweepError(source, field, v, "expected a single value (number, text or true/false)")
+    if isinstance(v, float) and not math.isfinite(v):
+        raise SweepError(source, field, v, "expected a finite number")
+    return v
+
+
+def _dims(axes, linked, source):
+    dims, data = [], []
+    if axes is None:
+        axes = {}
+    if not isinstance(axes, dict):
+        raise SweepError(source, "axes", axes, "expected a mapping of dotted knob paths to value lists or ranges")
+    for path, spec in axes.items():
+        field = f"axes.{path}"
+        _knob(path, source, field)
+        vals = values_of(spec, source, field)
+        dims.append(([path], [(v,) for v in vals]))
+        data.append({"paths": [path], "values": [[v] for v in vals]})
+    if linked is None:
+        linked = []
+    if not isinstance(linked, list):
+        raise SweepError(source, "linked", linked, "expected a list of groups, each a mapping of paths to value lists")
+    for g, group in enumerate(linked):
+        gfield = f"linked[{g}]"
+        if not isinstance(group, dict) or not group:
+            raise SweepError(source, gfield, group, "expected a mapping of dotted knob paths to value lists")
+        paths, columns = [], []
+        for path, spec in group.items():
+            field = f"{gfield}.{path}"
+            _knob(path, source, field)
+            columns.append(values_of(spec, source, field, unique=False))
+            paths.append(path)
+        lengths = {len(c) for c in columns}
+        if len(lengths) > 1:
+            raise SweepError(source, gfield, {p: len(c) for p, c in zip(paths, columns)},
+                             "expected value lists of one length (a linked group advances together)")
+        rows = list(zip(*columns))
+        if len(set(map(_hashable, rows))) != len(rows):
+            raise SweepError(source, gfield, rows, "a combination of values repeats")
+        dims.append((paths, rows))
+        data.append({"paths": paths, "values": [list(r) for r in rows]})
+    return dims, data
+
+
+def _hashable(row):
+    return json.dumps(row, sort_keys=True)
+
+
+def values_of(spec, source, field, unique=True):
+    """The values one axis takes: a list, or a ``{from, to, factor|step}`` range."""
+    if isinstance(spec, list):
+        if not spec:
+            raise SweepError(source, field, spec, "empty grid: expected at least one value")
+        vals = [_scalar(v, source, f"{field}[{i}]") for i, v in enumerate(spec)]
+    elif isinstance(spec, dict):
+        vals = _range(spec, source, field)
+    else:
+        vals = [_scalar(spec, source, field)]
+    if len(vals) > MAX_VALUES:
+        raise SweepError(source, field, len(vals), f"expected at most {MAX_VALUES} values on one axis")
+    if unique and len(set(map(_hashable, vals))) != len(vals):
+        raise SweepError(source, field, vals, "a value repeats")
+    return vals
+
+
+def _range(spec, source, field):
+    keys = set(spec)
+    allowed = {"from", "to", "factor", "step"}
+    for k in keys - allowed:
+        raise SweepError(source, f"{field}.{k}", spec[k], "unknown key" + closest(k, sorted(allowed)))
+    if not {"from", "to"} <= keys or len(keys & {"factor", "step"}) != 1:
+        raise SweepError(source, field, spec, "expected {from, to, factor} or {from, to, step}")
+    nums = {}
+    for k in keys:
+        v = spec[k]
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            raise SweepError(source, f"{field}.{k}", v, "expected a finite number")
+        nums[k] = v
+    lo, hi = nums["from"], nums["to"]
+    if hi < lo:
+        raise SweepError(source, f"{field}.to", hi, f"expected at least from={lo}")
+    whole = all(isinstance(v, int) for v in nums.values())
+    out = []
+    if "factor" in nums:
+        f = nums["factor"]
+        if f <= 1:
+            raise SweepError(source, f"{field}.factor", f, "expected a number > 1")
+        if lo <= 0:
+            raise SweepError(source, f"{field}.from", lo, "expected a number > 0 for a factor range")
+        n = int(math.floor(math.log(hi / lo) / math.log(f) + 1e-9)) + 1
+        if n > MAX_VALUES:
+            raise SweepError(source, field, spec, f"expected at most {MAX_VALUES} values on one axis")
+        out = [lo * f ** i for i in range(n)]
+    else:
+        s = nums["step"]
+        if s <= 0:
+            raise SweepError(source, f"{field}.step", s, "expected a number > 0")
+        n = int(math.floor((hi - lo) / s + 1e-9)) + 1
+        if n > MAX_VALUES:
+            raise SweepError(source, field, spec, f"expected at most {MAX_VALUES} values on one axis")
+        out = [lo + s * i for i in range(n)]
+    if whole:
+        return [int(v) for v in out]
+    # round away float noise (0.1 * 3) so values read as written and hash stably
+    return [float(f"{v:.12g}") for v in out]
+
+
+def _objectives(value, source):
+    if isinstance(value, str):
+        value = [value]
+    if not isinstance(value, list) or not value:
+        raise SweepError(source, "objectives", value, f"expected a list drawn from {', '.join(OBJECTIVES)}")
+    out = []
+    for i, name in enumerate(value):
+        if name not in OBJECTIVES:
+            raise SweepError(source, f"objectives[{i}]", name,
+                             f"expected one of {', '.join(OBJECTIVES)}" + closest(name, OBJECTIVES))
+        if name in out:
+            raise SweepError(source, f"objectives[{i}]", name, "listed twice")
+        out.append(name)
+    return out
