@@ -18,7 +18,7 @@ import os
 from .spec import SweepError
 from .worker import run_point
 
-CONNECT_TIMEOUT_S = 5
+CONNECT_TIMEOUT_S = 3
 
 
 class SerialBackend:
