@@ -277,10 +277,48 @@ def _cmd_sweep(args):
 
 def _add_report(sub):
     """`report RESULTS... --out DIR`."""
+    p = sub.add_parser(
+        "report", help="compare runs: Markdown, self-contained HTML, figures and their data as CSV",
+        description="Compare result documents (attnsim run --json) and/or sweep folders. Writes "
+                    "report.md, report.html (figures embedded, opens offline), comparison.csv, "
+                    "figures/*.png and data/*.csv. The first run is simulated again from its recorded "
+                    "config and trace to draw its timeline, unless --timeline gives one.")
+    p.add_argument("results", nargs="+", metavar="RESULTS", help="result JSON files and/or sweep folders")
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder, e.g. reports/NAME/")
+    p.add_argument("--force", action="store_true", help="overwrite an existing output folder")
+    p.add_argument("--timeline", metavar="TL.json",
+                   help="draw the timeline from this attnsim run --timeline file instead of replaying")
+    p.add_argument("--no-replay", action="store_true", help="do not simulate again (no timeline figure)")
+    p.add_argument("--title", help="report title")
+    p.set_defaults(handler=_cmd_report)
+
+
+def _cmd_report(args):
+    import os
+
+    from .report.build import report_from_paths
+
+    runs, manifest = report_from_paths(args.results, args.out, force=args.force, timeline_path=args.timeline,
+                                       replay=not args.no_replay, title=args.title)
+    for w in manifest["warnings"]:
+        print(f"attnsim: warning: {w}", file=sys.stderr)
+    print(f"{len(runs)} runs, {len(manifest['figures'])} figures -> {os.path.join(args.out, 'report.html')}")
+    return 0
 
 
 def _add_demo(sub):
     """`demo`."""
+    p = sub.add_parser("demo", help="replay the bundled traces on the bundled datapaths and write reports/demo/",
+                       description="No arguments: runs the bundled traces (captured ones when present, "
+                                   "synthetic otherwise) on arch_configs/{edge,mid,server,hbm2_stack}.yaml, "
+                                   "prints a comparison and writes the report to reports/demo/.")
+    p.set_defaults(handler=_cmd_demo)
+
+
+def _cmd_demo(args):
+    from .demo import main_demo
+
+    return main_demo()
 
 
 def _add_dram(sub):

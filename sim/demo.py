@@ -1,0 +1,160 @@
+"""``attnsim demo``: the bundled workloads on the bundled datapaths, one command.
+
+Replays the bundled traces -- the captured ones (``traces/captured_*.npz``,
+recorded from a real encoder) when present, seeded synthetic ones otherwise --
+on every bundled datapath (``arch_configs/{edge,mid,server,hbm2_stack}.yaml``),
+prints a comparison table and writes a full report to ``reports/demo/``.
+Runs are spread over the machine's cores (at most two worker processes; the
+pairs are independent).
+"""
+
+import glob
+import os
+import time
+import traceback
+
+CONFIGS = ("edge", "mid", "server", "hbm2_stack")
+TIMELINE_CONFIG = "mid"
+REPORT_TITLE = "attnsim demo: bundled traces on bundled datapaths"
+
+
+def repo_root():
+    """The checkout holding ``arch_configs/`` and ``traces/`` (the package's parent)."""
+    return os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+
+
+def pick_traces(root):
+    """``(kind, [(name, path or None)])``: captured traces if bundled, else synthetic ones."""
+    captured = sorted(glob.glob(os.path.join(root, "traces", "captured_*.npz")))
+    if captured:
+        return "captured", [(os.path.basename(p)[:-4], p) for p in captured]
+    synth = [os.path.join(root, "traces", n) for n in ("synth_prefill.npz", "synth_decode.npz")]
+    if all(os.path.exists(p) for p in synth):
+        return "synthetic", [(os.path.basename(p)[:-4], p) for p in synth]
+    return "synthetic", [("synth_prefill", None), ("synth_decode", None)]
+
+
+def _synth(name):
+    from .trace.synth import synth_trace
+
+    # our own demo workloads, generated when no bundled trace is at hand
+    if name == "synth_prefill":
+        return synth_trace(prompt_tokens=256, decode_steps=0, layers=4, heads=8, head_dim=64,
+                           token_keep=0.8, head_keep=0.9, seed=1, name=name)
+    return synth_trace(prompt_tokens=256, decode_steps=32, layers=4, heads=8, head_dim=64, token_keep=0.8,
+                       value_keep=0.5, lsb_fraction=0.2, include_prefill=False, seed=2, name=name)
+
+
+def _one(job):
+    """Worker: simulate one (config, trace) pair; never raises."""
+    config_path, trace_name, trace_path = job
+    t0 = time.perf_counter()
+    try:
+        from . import load_arch, load_trace
+        from .engine.datapath import run_datapath
+
+        trace = load_trace(trace_path) if trace_path else _synth(trace_name)
+        res = run_datapath(load_arch(config_path), trace, keep_intervals=True)
+        return {"ok": True, "doc": res.to_dict(), "intervals": res.intervals, "trace_path": trace_path,
+                "seconds": time.perf_counter() - t0}
+    except Exception as exc:  # a failing pair is reported, the others still run
+        return {"ok": False, "error": f"{type(exc).__name__}: {exc}", "detail": traceback.format_exc(),
+                "config": config_path, "trace": trace_name, "seconds": time.perf_counter() - t0}
+
+
+def run_pairs(jobs, workers):
+    if workers <= 1 or len(jobs) <= 1:
+        return [_one(j) for j in jobs]
+    import concurrent.futures as cf
+    import multiprocessing as mp
+
+    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else None
+    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+        return list(pool.map(_one, jobs))
+
+
+def terminal_table(runs):
+    """The comparison as fixed-width text, one line per run, grouped by trace."""
+    from .report.verdict import limiting_unit
+
+    head = (f"{'trace':<26} {'config':<11} {'latency us':>12} {'cycles':>12} {'bound':>8} "
+            f"{'limiting':>9} {'busy':>5} {'energy uJ':>11} {'area mm2':>9}")
+    lines = [head, "-" * len(head)]
+    prev = None
+    for r in sorted(runs, key=lambda r: (r.trace_label, r.doc["seconds"])):
+        d = r.doc
+        lim = limiting_unit(d)
+        if prev is not None and r.trace_label != prev:
+            lines.append("")
+        prev = r.trace_label
+        lines.append(f"{r.trace_label:<26} {r.config_label:<11} {d['seconds'] * 1e6:>12,.2f} {d['cycles']:>12,} "
+                     f"{d['bounds']['bound']:>8} {lim:>9} {d['units'][lim]['busy']:>5.0%} "
+                     f"{d['energy']['total_pj'] / 1e6:>11,.2f} {d['area']['total_mm2']:>9.3f}")
+    return "\n".join(lines)
+
+
+def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print):
+    """Run the demo; return ``(runs, failed, out_dir, seconds)``."""
+    from .report.build import build_report
+    from .report.inputs import ReportError, Run
+
+    t0 = time.perf_counter()
+    root = repo_root()
+    out_dir = out_dir or os.path.join(root if os.path.isdir(os.path.join(root, "arch_configs")) else os.getcwd(),
+                                      "reports", "demo")
+    _check_own_folder(out_dir, ReportError)
+    kind, traces = pick_traces(root)
+    cfgs = [os.path.join(root, "arch_configs", f"{c}.yaml") for c in configs]
+    missing = [c for c in cfgs if not os.path.exists(c)]
+    if missing:
+        raise ReportError(missing[0], "<file>", missing[0], "bundled config not found (run from a checkout)")
+    jobs = [(c, name, path) for name, path in traces for c in cfgs]
+    workers = workers or min(2, os.cpu_count() or 1)
+    echo(f"attnsim demo: {len(traces)} {kind} traces x {len(cfgs)} datapaths = {len(jobs)} runs "
+         f"on {workers} worker{'s' if workers > 1 else ''}")
+    results = run_pairs(jobs, workers)
+    runs, failed = [], []
+    for job, res in zip(jobs, results):
+        if res["ok"]:
+            runs.append(Run(res["doc"], f"demo: {os.path.basename(job[0])} x {job[1]}",
+                            trace_path=res["trace_path"], intervals=res["intervals"]))
+        else:
+            failed.append({"origin": f"demo: {os.path.basename(job[0])} x {job[1]}", "trace": job[1],
+                           "point": {"config": os.path.basename(job[0])}, "error": res["error"]})
+    sim_s = time.perf_counter() - t0
+    if not runs:
+        raise RuntimeError("every demo run failed: " + "; ".join(f["error"] for f in failed))
+    timeline = next((r for r in runs if r.doc["arch"]["name"] == TIMELINE_CONFIG), runs[0])
+    build_report(runs, out_dir, failed=failed, force=True, timeline_run=timeline, title=REPORT_TITLE,
+                 notes=[f"Traces: {kind} ({', '.join(n for n, _ in traces)}); datapaths: "
+                        f"{', '.join(configs)}. Simulation took {sim_s:.1f} s of wall time."],
+                 inputs=[p or n for n, p in traces] + cfgs)
+    return runs, failed, out_dir, time.perf_counter() - t0
+
+
+def _check_own_folder(out_dir, error):
+    """The demo overwrites its own previous output, nothing else."""
+    if not os.path.exists(out_dir) or not os.listdir(out_dir):
+        return
+    man = os.path.join(out_dir, "manifest.json")
+    try:
+        import json
+        with open(man, encoding="utf-8") as fh:
+            ok = json.load(fh).get("format") == "attnsim-report"
+    except (OSError, ValueError):
+        ok = False
+    if not ok:
+        raise error(out_dir, "<folder>", out_dir, "exists and holds something other than an attnsim report; "
+                    "move it away first")
+
+
+def main_demo():
+    """Entry point of ``attnsim demo``; returns the exit status."""
+    runs, failed, out_dir, secs = run_demo()
+    print(terminal_table(runs))
+    for f in failed:
+        print(f"FAILED {f['origin']}: {f['error']}")
+    rel = os.path.relpath(out_dir)
+    print(f"\n{len(runs)} runs in {secs:.1f} s. Report: {os.path.join(rel, 'report.html')} "
+          f"(also report.md, figures/, data/*.csv)")
+    return 1 if failed else 0

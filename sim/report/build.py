@@ -1,0 +1,343 @@
+"""Writes a comparison report: Markdown, one self-contained HTML file, CSVs, PNGs.
+
+Layout of the output folder::
+
+    report.md          summary, comparison table, verdicts, limits; links the PNGs
+    report.html        the same with every figure embedded (base64 PNG), opens offline
+    comparison.csv     the comparison table, exact values
+    figures/NAME.png   each figure
+    data/NAME.csv      the numbers each figure was drawn from
+    manifest.json      what was written, from which inputs
+
+An existing folder is refused unless ``force``; with ``force`` the files a
+previous report wrote (its manifest says which) are replaced.
+"""
+
+import base64
+import csv
+import datetime
+import html
+import io
+import json
+import os
+
+import matplotlib
+
+matplotlib.use("Agg")  # noqa: E402  (no display; before anything touches pyplot)
+
+from .. import __version__  # noqa: E402
+from . import figures as F  # noqa: E402
+from .inputs import ReportError, group_key, label_runs  # noqa: E402
+from .tables import display_rows, markdown_table, table_rows  # noqa: E402
+from .verdict import write_verdict  # noqa: E402
+
+MAX_FIGURE_RUNS = 24   # per-run bar charts stay readable up to about this many bars
+MAX_BANDWIDTH_RUNS = 6
+
+LIMITS = (
+    "This is a cycle-approximate model, not sign-off data. Timing comes from a discrete-event "
+    "simulation of transactions (tiles and burst groups), not from RTL: pipelines, arbitration and the "
+    "memory controller are approximated and events are grouped, so cycle counts are estimates whose "
+    "error against real hardware is unknown. Energy counts only the dynamic energy of the modelled "
+    "operations, priced from a named per-operation table (45 nm figures of Horowitz, ISSCC 2014, "
+    "plus derived and recalled values marked in the preset); leakage, clock tree, control and wires are "
+    "left out, and other process nodes are not scaled. Area is a proxy: arithmetic units and SRAM bits "
+    "times per-item areas, without wiring, control, the fetch unit or the memory PHY. Use the numbers "
+    "to compare candidate datapaths with each other on the same workloads, not as absolute figures.")
+
+
+def _csv_text(header, rows):
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(header)
+    for row in rows:
+        w.writerow(["" if v is None else (repr(v) if isinstance(v, float) else v) for v in row])
+    return buf.getvalue()
+
+
+def _png(fig):
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png")
+    return buf.getvalue()
+
+
+def _prepare_out(out_dir, force):
+    if os.path.exists(out_dir):
+        if not os.path.isdir(out_dir):
+            raise ReportError("--out", "out", out_dir, "expected a folder; a file of that name exists")
+        if os.listdir(out_dir) and not force:
+            raise ReportError("--out", "out", out_dir, "folder exists; pass --force to overwrite it")
+        man = os.path.join(out_dir, "manifest.json")
+        if os.path.exists(man):
+            try:
+                with open(man, encoding="utf-8") as fh:
+                    old = json.load(fh).get("files", [])
+            except (OSError, ValueError):
+                old = []
+            for rel in old:
+                p = os.path.join(out_dir, rel)
+                if os.path.isfile(p) and os.path.abspath(p).startswith(os.path.abspath(out_dir) + os.sep):
+                    os.remove(p)
+    os.makedirs(os.path.join(out_dir, "figures"), exist_ok=True)
+    os.makedirs(os.path.join(out_dir, "data"), exist_ok=True)
+
+
+def figure_runs(runs):
+    """The runs per-run figures draw: all, or (many runs) the fronts and the best per trace."""
+    if len(runs) <= MAX_FIGURE_RUNS:
+        return list(runs), None
+    keep = []
+    groups = {}
+    for r in runs:
+        groups.setdefault(group_key(r), []).append(r)
+    for rr in groups.values():
+        pts = [(r.doc["seconds"], r.doc.get("energy", {}).get("total_pj", 0.0)) for r in rr]
+        for i in F.pareto_front(pts):
+            if rr[i] not in keep:
+                keep.append(rr[i])
+    keep = sorted(keep, key=lambda r: r.doc["seconds"])[:MAX_FIGURE_RUNS]
+    return keep, (f"{len(runs)} runs: the per-run figures show {len(keep)} of them (the latency/energy "
+                  "Pareto points of each trace); the tables and the CSVs hold all.")
+
+
+def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_run=None, title=None,
+                 notes=(), inputs=()):
+    """Write the report for ``runs`` into ``out_dir``; return the manifest (a dict)."""
+    _prepare_out(out_dir, force)
+    warnings = list(warnings) + label_runs(runs)
+    fruns, fnote = figure_runs(runs)
+    figs = [F.stall_breakdown(fruns), F.utilization(fruns), F.roofline(fruns), F.latency(runs),
+            F.pareto(runs), F.energy_area(fruns)]
+    skipped = []
+    with_iv = [r for r in runs if r.intervals]
+    if timeline_run is None and with_iv:
+        timeline_run = with_iv[0]
+    if with_iv:
+        pick = [r for r in with_iv if timeline_run is None or r.trace_label == timeline_run.trace_label]
+        figs.append(F.bandwidth(pick[:MAX_BANDWIDTH_RUNS]))
+    else:
+        skipped.append("memory bandwidth over time")
+    if timeline_run is not None and timeline_run.intervals:
+        figs.append(F.timeline(timeline_run))
+    else:
+        skipped.append("per-unit timeline")
+    files = []
+    for fg in figs:
+        png = _png(fg.fig)
+        fg.png = png
+        for rel, data, mode in ((f"figures/{fg.name}.png", png, "wb"),
+                                (f"data/{fg.name}.csv", _csv_text(fg.header, fg.rows), "w")):
+            with open(os.path.join(out_dir, rel), mode, **({} if mode == "wb" else {"encoding": "utf-8"})) as fh:
+                fh.write(data)
+            files.append(rel)
+    header, rows = table_rows(runs)
+    with open(os.path.join(out_dir, "comparison.csv"), "w", encoding="utf-8") as fh:
+        fh.write(_csv_text(header, rows))
+    files.append("comparison.csv")
+    groups = {}
+    for r in runs:
+        groups.setdefault(group_key(r), []).append(r)
+    verdicts = [(r, write_verdict(r, groups[group_key(r)])) for r in runs]
+    ctx = {
+        "title": title or "attnsim comparison report",
+        "made": datetime.datetime.now().strftime("%Y-%m-%d %H:%M"),
+        "version": __version__,
+        "runs": runs, "failed": list(failed), "warnings": warnings, "notes": list(notes)
+        + ([fnote] if fnote else []) + [f"No {s} figure: {why}" for s, why in _skip_reasons(skipped, runs)],
+        "figs": figs, "verdicts": verdicts, "inputs": list(inputs),
+        "timeline_run": timeline_run,
+    }
+    for name, text in (("report.md", _markdown(ctx)), ("report.html", _html(ctx))):
+        with open(os.path.join(out_dir, name), "w", encoding="utf-8") as fh:
+            fh.write(text)
+        files.append(name)
+    manifest = {"format": "attnsim-report", "version": 1, "simulator_version": __version__,
+                "files": files + ["manifest.json"], "figures": [f.name for f in figs],
+                "runs": [{"label": r.label, "origin": r.origin, "trace_digest": r.digest,
+                          "simulator_version": r.version} for r in runs],
+                "warnings": warnings, "failed": list(failed), "inputs": list(inputs)}
+    with open(os.path.join(out_dir, "manifest.json"), "w", encoding="utf-8") as fh:
+        json.dump(manifest, fh, indent=2)
+        fh.write("\n")
+    return manifest
+
+
+def _skip_reasons(skipped, runs):
+    why = ("no run carries per-unit intervals (result documents do not hold them; the report replays "
+           "the first run for them when its trace file is at hand)")
+    return [(s, why) for s in skipped]
+
+
+def _provenance(runs):
+    """Distinct energy and area presets used, with their sources."""
+    seen = []
+    for r in runs:
+        for sec in ("energy", "area"):
+            p = r.doc.get(sec, {}).get("preset")
+            if p and (sec, p["name"], p["source"]) not in seen:
+                seen.append((sec, p["name"], p["source"]))
+    return seen
+
+
+def _markdown(c):
+    out = [f"# {c['title']}", "",
+           f"attnsim {c['version']}, written {c['made']}. {len(c['runs'])} runs"
+           + (f", {len(c['failed'])} failed points" if c["failed"] else "") + ".", ""]
+    if c["warnings"]:
+        out += ["## Warnings", ""] + [f"- {w}" for w in c["warnings"]] + [""]
+    out += ["## Limits of this model", "", LIMITS, ""]
+    header, rows = display_rows(c["runs"])
+    out += ["## Comparison", "", markdown_table(header, rows), "",
+            "Exact values: `comparison.csv`. Latency is simulated time; energy and area are proxies.", ""]
+    out += ["## Verdicts", ""]
+    for r, v in c["verdicts"]:
+        out += [f"- **{r.label}**: {v}"]
+    out += [""]
+    if c["failed"]:
+        out += ["## Failed points", ""] + [f"- {f['origin']}: {f.get('trace')} {f.get('point')}: {f.get('error')}"
+                                           for f in c["failed"]] + [""]
+    out += ["## Figures", ""]
+    for fg in c["figs"]:
+        out += [f"### {fg.title}", "", f"![{fg.title}](figures/{fg.name}.png)", "",
+                f"{fg.caption} Data: `data/{fg.name}.csv`.", ""]
+    if c["notes"]:
+        out += ["## Notes", ""] + [f"- {n}" for n in c["notes"]] + [""]
+    out += ["## Sources of the cost figures", ""]
+    out += [f"- {sec} preset `{name}`: {src}" for sec, name, src in _provenance(c["runs"])] + [""]
+    out += ["## Runs", ""] + [f"- {r.label}: {r.origin} (trace digest {r.digest[:12]}, attnsim {r.version})"
+                              for r in c["runs"]] + [""]
+    return "\n".join(out)
+
+
+CSS = """
+body{font-family:system-ui,-apple-system,"Segoe UI",Roboto,sans-serif;margin:24px auto;max-width:1280px;
+color:#222;line-height:1.45;padding:0 16px}
+h1{font-size:1.6em;margin-bottom:4px}h2{border-bottom:1px solid #ddd;padding-bottom:3px;margin-top:1.6em}
+table{border-collapse:collapse;font-size:13px;margin:8px 0}th,td{border:1px solid #ccc;padding:3px 7px}
+th{background:#f2f4f6}td.num{text-align:right;font-variant-numeric:tabular-nums}
+.limits{background:#fff6e5;border-left:4px solid #e9a23b;padding:8px 12px}
+.warn{background:#fdecea;border-left:4px solid #d62728;padding:8px 12px}
+figure{margin:18px 0}figure img{max-width:100%;border:1px solid #eee}
+figcaption{font-size:13px;color:#555}.verdict{margin:6px 0}.meta{color:#666;font-size:13px}
+"""
+
+SCRIPT = """
+window.addEventListener('load', function () {
+  var imgs = document.querySelectorAll('img.fig'), ok = 0;
+  imgs.forEach(function (im) { if (im.complete && im.naturalWidth > 0) ok++; });
+  document.body.setAttribute('data-figures-loaded', String(ok));
+});
+"""
+
+
+def _html(c):
+    e = html.escape
+    parts = ["<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+             f"<title>{e(c['title'])}</title><style>{CSS}</style></head>",
+             f"<body data-figures-expected='{len(c['figs'])}' data-figures-loaded='0'>",
+             f"<h1>{e(c['title'])}</h1>",
+             f"<p class='meta'>attnsim {e(c['version'])}, written {e(c['made'])}. {len(c['runs'])} runs"
+             + (f", {len(c['failed'])} failed points" if c["failed"] else "") + ".</p>"]
+    if c["warnings"]:
+        parts.append("<div class='warn'><b>Warnings</b><ul>" + "".join(f"<li>{e(w)}</li>" for w in c["warnings"])
+                     + "</ul></div>")
+    parts.append(f"<h2>Limits of this model</h2><p class='limits'>{e(LIMITS)}</p>")
+    header, rows = display_rows(c["runs"])
+    parts.append("<h2>Comparison</h2><table id='comparison'><tr>" + "".join(f"<th>{e(h)}</th>" for h in header)
+                 + "</tr>")
+    for row in rows:
+        parts.append("<tr>" + "".join(f"<td{'' if i < 2 else ' class=num'}>{e(str(v))}</td>"
+                                      for i, v in enumerate(row)) + "</tr>")
+    parts.append("</table><p class='meta'>Exact values in comparison.csv. Energy and area are proxies.</p>")
+    parts.append("<h2>Verdicts</h2>")
+    for r, v in c["verdicts"]:
+        parts.append(f"<p class='verdict'><b>{e(r.label)}</b>: {e(v)}</p>")
+    if c["failed"]:
+        parts.append("<h2>Failed points</h2><ul>" + "".join(
+            f"<li>{e(f['origin'])}: {e(str(f.get('trace')))} {e(str(f.get('point')))}: {e(str(f.get('error')))}</li>"
+            for f in c["failed"]) + "</ul>")
+    parts.append("<h2>Figures</h2>")
+    for fg in c["figs"]:
+        b64 = base64.b64encode(fg.png).decode("ascii")
+        parts.append(f"<figure id='fig-{fg.name}'><h3>{e(fg.title)}</h3>"
+                     f"<img class='fig' alt='{e(fg.title)}' src='data:image/png;base64,{b64}'>"
+                     f"<figcaption>{e(fg.caption)} Data: data/{fg.name}.csv.</figcaption></figure>")
+    if c["notes"]:
+        parts.append("<h2>Notes</h2><ul>" + "".join(f"<li>{e(n)}</li>" for n in c["notes"]) + "</ul>")
+    parts.append("<h2>Sources of the cost figures</h2><ul>" + "".join(
+        f"<li>{e(sec)} preset <code>{e(name)}</code>: {e(src)}</li>" for sec, name, src in _provenance(c["runs"]))
+        + "</ul>")
+    parts.append("<h2>Runs</h2><ul>" + "".join(
+        f"<li>{e(r.label)}: {e(str(r.origin))} (trace digest {e(r.digest[:12])}, attnsim {e(r.version)})</li>"
+        for r in c["runs"]) + "</ul>")
+    parts.append(f"<script>{SCRIPT}</script></body></html>\n")
+    return "\n".join(parts)
+
+
+def replay_intervals(run):
+    """Simulate ``run`` again from its recorded config and trace to get its intervals.
+
+    Returns a note for the report (why the replay was skipped, or how it
+    compares with the document), or None when it matched.
+    """
+    from ..arch import load_arch
+    from ..engine.datapath import run_datapath
+    from ..trace.format import load_trace
+
+    path = run.trace_path
+    if not path or not os.path.exists(path):
+        return f"timeline not drawn: the trace of {run.label} ({path}) is not at hand to replay"
+    trace = load_trace(path)
+    if trace.digest() != run.digest:
+        return (f"timeline not drawn: {path} no longer has the digest recorded for {run.label} "
+                f"({run.digest[:12]})")
+    arch = load_arch(run.doc["arch"]["config"], source=run.doc["arch"].get("source", "<recorded config>"))
+    eng = run.doc.get("engine", {})
+    res = run_datapath(arch, trace, grain_rows=eng.get("grain_rows"), seed=eng.get("seed"), keep_intervals=True)
+    run.intervals = res.intervals
+    note = None
+    if run.version != __version__:
+        note = (f"timeline of {run.label} replayed with attnsim {__version__}; the document was made by "
+                f"{run.version}")
+    if res.cycles != run.doc["cycles"]:
+        note = (note + "; " if note else f"timeline of {run.label}: ") + (
+            f"the replay took {res.cycles:,} cycles, the document says {run.doc['cycles']:,} "
+            "(the figure shows the replay)")
+    return note
+
+
+def attach_timeline(runs, path):
+    """Give the run a timeline file (``attnsim run --timeline``) belongs to its intervals; return it."""
+    from .timeline import read_timeline
+
+    info, intervals = read_timeline(path)
+    for r in runs:
+        if (r.doc["arch"]["name"] == info.get("arch") and r.digest == info.get("trace_digest")
+                and r.version == info.get("simulator_version") and r.doc["cycles"] == info.get("cycles")):
+            r.intervals = intervals
+            return r
+    raise ReportError(path, "otherData", f"{info.get('arch')} x {info.get('trace')}",
+                      "expected the timeline of one of the runs in the report (same arch, trace digest, "
+                      "simulator version and cycles)")
+
+
+def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=True, title=None):
+    """``attnsim report``: load inputs, get one run's intervals, write the report."""
+    from .inputs import load_inputs
+
+    runs, failed = load_inputs(paths)
+    if os.path.exists(out_dir) and os.listdir(out_dir) and not force:
+        raise ReportError("--out", "out", out_dir, "folder exists; pass --force to overwrite it")
+    notes = []
+    timeline_run = None
+    if timeline_path:
+        timeline_run = attach_timeline(runs, timeline_path)
+    elif replay:
+        note = replay_intervals(runs[0])
+        if note:
+            notes.append(note)
+        if runs[0].intervals:
+            timeline_run = runs[0]
+    manifest = build_report(runs, out_dir, failed=failed, force=force, timeline_run=timeline_run, title=title,
+                            notes=notes, inputs=list(paths))
+    return runs, manifest

@@ -1,0 +1,491 @@
+"""The report's figures, each with the table of numbers it was drawn from.
+
+Every function takes runs (see :mod:`sim.report.inputs`) and returns a
+:class:`Figure`: a matplotlib figure (Agg, no display needed), a caption, and
+``header, rows`` -- the data behind the figure, written next to it as CSV.
+Figures are built on ``matplotlib.figure.Figure`` directly, without pyplot's
+global state, so building a report never opens a window or leaks figures.
+"""
+
+import math
+
+import numpy as np
+from matplotlib.figure import Figure as MplFigure
+
+from .inputs import group_key
+from .verdict import limiting_unit
+
+BUSY, IDLE = "#2a9d8f", "#d9d9d9"
+CAUSE_COLORS = ["#e76f51", "#f4a261", "#e9c46a", "#8d6cab", "#457b9d", "#c05780", "#7fb069", "#b0a18f"]
+OTHER = "#9e9e9e"
+SERIES = ["#1f77b4", "#ff7f0e", "#2ca02c", "#d62728", "#9467bd", "#8c564b", "#e377c2", "#7f7f7f",
+          "#bcbd22", "#17becf"]
+MARKERS = ["o", "s", "^", "D", "v", "P", "X", "*", "<", ">"]
+UNIT_ORDER = ("dram", "fetch", "dot", "dot_pv", "softmax", "topk")
+
+
+class Figure:
+    """One report figure: ``name`` (file stem), title, caption, the figure and its data."""
+
+    def __init__(self, name, title, caption, fig, header, rows):
+        self.name = name
+        self.title = title
+        self.caption = caption
+        self.fig = fig
+        self.header = header
+        self.rows = rows
+
+
+def _fig(w, h):
+    fig = MplFigure(figsize=(w, h), dpi=110, layout="constrained")
+    return fig
+
+
+def _units(runs):
+    seen = {u for r in runs for u in r.doc["units"]}
+    return [u for u in UNIT_ORDER if u in seen] + sorted(seen - set(UNIT_ORDER))
+
+
+def _color_map(keys, palette):
+    return {k: palette[i % len(palette)] for i, k in enumerate(keys)}
+
+
+def stall_breakdown(runs):
+    """Stacked bars per run: each unit's time as busy, each stall cause, idle."""
+    units = _units(runs)
+    totals = {}
+    for r in runs:
+        for u in r.doc["units"].values():
+            for c, f in u["stalls"].items():
+                totals[c] = totals.get(c, 0.0) + f
+    top = [c for c, _ in sorted(totals.items(), key=lambda kv: -kv[1])][:len(CAUSE_COLORS)]
+    colors = _color_map(top, CAUSE_COLORS)
+    n = len(runs)
+    fig = _fig(min(3.0 * len(units) + 2.5, 18), 0.32 * n + 2.2)
+    axes = fig.subplots(1, len(units), sharey=True, squeeze=False)[0]
+    y = np.arange(n)
+    rows = []
+    for ax, unit in zip(axes, units):
+        left = np.zeros(n)
+
+        def seg(vals, color, label):
+            nonlocal left
+            ax.barh(y, vals, left=left, color=color, label=label, height=0.75, edgecolor="white", linewidth=0.3)
+            left = left + vals
+
+        get = lambda r, key: r.doc["units"].get(unit, {}).get(key, 0.0)  # noqa: E731
+        seg(np.array([get(r, "busy") for r in runs]), BUSY, "busy")
+        for c in top:
+            seg(np.array([r.doc["units"].get(unit, {}).get("stalls", {}).get(c, 0.0) for r in runs]),
+                colors[c], f"stall: {c}")
+        other = np.array([sum(f for c, f in r.doc["units"].get(unit, {}).get("stalls", {}).items()
+                              if c not in colors) for r in runs])
+        seg(other, OTHER, "stall: other causes")
+        seg(np.array([get(r, "idle") for r in runs]), IDLE, "idle")
+        ax.set_title(unit, fontsize=10)
+        ax.set_xlabel("share of the run", fontsize=8)
+        ax.set_xlim(0, 1)
+        ax.set_xticks([0, 0.5, 1])
+        ax.set_xticklabels(["0", "50%", "100%"])
+        ax.invert_yaxis() if unit == units[0] else None
+        ax.grid(axis="x", alpha=0.3)
+        for r in runs:
+            u = r.doc["units"].get(unit)
+            if u is None:
+                continue
+            rows.append([r.label, unit, "busy", u["busy"]])
+            for c, f in u["stalls"].items():
+                rows.append([r.label, unit, "stall:" + c, f])
+            rows.append([r.label, unit, "idle", u["idle"]])
+    axes[0].set_yticks(y)
+    axes[0].set_yticklabels([r.label for r in runs], fontsize=8)
+    handles, labels = axes[0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="outside lower center", ncol=min(len(labels), 6), fontsize=8, frameon=False)
+    return Figure("stalls", "Where each unit's time goes",
+                  "Each bar is one run; segments are the unit's share of the run's cycles: busy, starved or "
+                  "blocked by cause (the most frequent causes named, the rest grouped), idle.",
+                  fig, ["run", "unit", "state", "fraction"], rows)
+
+
+def utilization(runs):
+    """Heat map: busy fraction of every unit in every run."""
+    units = _units(runs)
+    m = np.array([[r.doc["units"][u]["busy"] if u in r.doc["units"] else np.nan for u in units] for r in runs])
+    fig = _fig(1.3 * len(units) + 4.5, 0.34 * len(runs) + 1.6)
+    ax = fig.subplots()
+    im = ax.imshow(m, vmin=0, vmax=1, cmap="viridis", aspect="auto")
+    ax.set_xticks(range(len(units)))
+    ax.set_xticklabels(units)
+    ax.set_yticks(range(len(runs)))
+    ax.set_yticklabels([r.label for r in runs], fontsize=8)
+    for i in range(len(runs)):
+        for j in range(len(units)):
+            if not math.isnan(m[i, j]):
+                ax.text(j, i, f"{m[i, j]:.0%}", ha="center", va="center", fontsize=8,
+                        color="white" if m[i, j] < 0.6 else "black")
+            else:
+                ax.text(j, i, "no such unit", ha="center", va="center", fontsize=7, color="#888")
+    cb = fig.colorbar(im, ax=ax, fraction=0.04)
+    cb.set_label("busy share of the run")
+    ax.set_xlabel("unit")
+    rows = [[r.label, u, r.doc["units"][u]["busy"]] for r in runs for u in units if u in r.doc["units"]]
+    return Figure("utilization", "Per-unit utilization",
+                  "Busy share of each unit's time per run (1 = busy every cycle of the run).",
+                  fig, ["run", "unit", "busy"], rows)
+
+
+def _peaks(doc):
+    cfg = doc["arch"]["config"]
+    return cfg["dot"]["multipliers"] * cfg["clock_ghz"], doc["dram"]["peak_gbps"]
+
+
+def roofline(runs):
+    """Roofline (Williams, Waterman, Patterson, CACM 2009) per config with each run's achieved point."""
+    fig = _fig(8.5, 5.6)
+    ax = fig.subplots()
+    configs = []
+    for r in runs:
+        if r.config_label not in configs:
+            configs.append(r.config_label)
+    traces = []
+    for r in runs:
+        if r.trace_label not in traces:
+            traces.append(r.trace_label)
+    ccol = _color_map(configs, SERIES)
+    tmark = _color_map(traces, MARKERS)
+    rows = []
+    xs = []
+    for r in runs:
+        peak, bw = _peaks(r.doc)
+        oi = r.doc["bounds"]["operational_intensity_mac_per_byte"]
+        ach = r.doc["compute"]["macs"] / r.doc["seconds"] / 1e9 if r.doc["seconds"] else 0.0
+        att = min(peak, bw * oi) if oi is not None else peak
+        rows.append([r.label, r.config_label, r.trace_label, peak, bw, oi, ach, att])
+        if oi:
+            xs.append(oi)
+        xs.append(peak / bw)
+    lo, hi = min(xs) / 4, max(xs) * 4
+    grid = np.geomspace(lo, hi, 200)
+    drawn = set()
+    for r in runs:
+        if r.config_label in drawn:
+            continue
+        drawn.add(r.config_label)
+        peak, bw = _peaks(r.doc)
+        ax.plot(grid, np.minimum(peak, bw * grid), color=ccol[r.config_label], lw=1.6,
+                label=f"{r.config_label}: {peak:,.0f} GMAC/s, {bw:,.0f} GB/s")
+    for row, r in zip(rows, runs):
+        if row[5]:
+            ax.scatter([row[5]], [row[6]], color=ccol[r.config_label], marker=tmark[r.trace_label], s=55,
+                       edgecolor="black", linewidth=0.6, zorder=3)
+    for t in traces:
+        ax.scatter([], [], marker=tmark[t], color="white", edgecolor="black", label=f"trace {t}")
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    ax.set_xlabel("operational intensity (MAC per DRAM byte)")
+    ax.set_ylabel("throughput (GMAC/s)")
+    ax.grid(True, which="both", alpha=0.25)
+    ax.legend(fontsize=7, loc="lower right")
+    return Figure("roofline", "Roofline with achieved points",
+                  "Lines: attainable = min(peak compute, peak bandwidth x intensity) per config (Williams, "
+                  "Waterman and Patterson, CACM 2009). Markers: each run's achieved MACs per second at its "
+                  "measured intensity (MACs / bytes fetched); colour = config, shape = trace.",
+                  fig, ["run", "config", "trace", "peak_gmac_per_s", "peak_gbps", "intensity_mac_per_byte",
+                        "achieved_gmac_per_s", "attainable_gmac_per_s"], rows)
+
+
+def _numeric_axes(runs):
+    axes = {}
+    for r in runs:
+        for k, v in r.point.items():
+            if isinstance(v, (int, float)) and not isinstance(v, bool):
+                axes.setdefault(k, set()).add(v)
+    return [k for k, vs in sorted(axes.items()) if len(vs) > 1]
+
+
+def latency(runs):
+    """Latency against each numeric sweep axis (or against the config), one line per trace."""
+    axes = _numeric_axes(runs)
+    groups = []
+    for r in runs:
+        if group_key(r) not in groups:
+            groups.append(group_key(r))
+    gcol = _color_map(groups, SERIES)
+    rows = []
+    if axes:
+        fig = _fig(5.2 * min(len(axes), 3), 4.4 * math.ceil(len(axes) / 3))
+        axs = fig.subplots(math.ceil(len(axes) / 3), min(len(axes), 3), squeeze=False).ravel()
+        for ax, axis in zip(axs, axes):
+            for g in groups:
+                best = {}
+                for r in runs:
+                    if group_key(r) == g and axis in r.point:
+                        v = r.point[axis]
+                        if v not in best or r.doc["seconds"] < best[v].doc["seconds"]:
+                            best[v] = r
+                xv = sorted(best)
+                ax.plot(xv, [best[v].doc["seconds"] * 1e6 for v in xv], marker="o", color=gcol[g], label=g[0])
+                rows += [[axis, v, g[0], best[v].doc["seconds"] * 1e6, best[v].label] for v in xv]
+            ax.set_xscale("log", base=2)
+            ax.set_xlabel(axis)
+            ax.set_ylabel("latency (us)")
+            ax.grid(alpha=0.3)
+        for ax in axs[len(axes):]:
+            ax.set_visible(False)
+        axs[0].legend(fontsize=8, title="trace", title_fontsize=8)
+        caption = ("Latency of the best point at each value of a sweep axis (best over the other axes), "
+                   "one line per trace.")
+    else:
+        configs = []
+        for r in runs:
+            if r.config_label not in configs:
+                configs.append(r.config_label)
+        fig = _fig(max(6.5, 1.2 * len(configs) + 3), 4.6)
+        ax = fig.subplots()
+        x = np.arange(len(configs))
+        for g in groups:
+            ys = []
+            for c in configs:
+                rr = [r for r in runs if group_key(r) == g and r.config_label == c]
+                ys.append(rr[0].doc["seconds"] * 1e6 if rr else np.nan)
+                if rr:
+                    rows.append(["config", c, g[0], rr[0].doc["seconds"] * 1e6, rr[0].label])
+            ax.plot(x, ys, marker="o", color=gcol[g], label=g[0])
+        ax.set_xticks(x)
+        ax.set_xticklabels(configs, rotation=20, ha="right")
+        ax.set_yscale("log")
+        ax.set_ylabel("latency (us, log scale)")
+        ax.set_xlabel("config")
+        ax.grid(alpha=0.3, which="both")
+        ax.legend(fontsize=8, title="trace", title_fontsize=8)
+        caption = "Latency of each config, one line per trace (no sweep axis among the inputs)."
+    return Figure("latency", "Latency across the design space", caption, fig,
+                  ["axis", "value", "trace", "latency_us", "run"], rows)
+
+
+def pareto_front(points):
+    """Indices of the points not dominated in (x, y), both minimized."""
+    order = sorted(range(len(points)), key=lambda i: (points[i][0], points[i][1]))
+    front, best_y = [], math.inf
+    for i in order:
+        if points[i][1] < best_y:
+            front.append(i)
+            best_y = points[i][1]
+    return front
+
+
+def pareto(runs):
+    """Latency against energy and against area, per trace, with the Pareto front joined."""
+    fig = _fig(12, 4.8)
+    ax_e, ax_a = fig.subplots(1, 2)
+    groups = []
+    for r in runs:
+        if group_key(r) not in groups:
+            groups.append(group_key(r))
+    gcol = _color_map(groups, SERIES)
+    rows = []
+    for gi, g in enumerate(groups):
+        rr = [r for r in runs if group_key(r) == g and "energy" in r.doc and "area" in r.doc]
+        if not rr:
+            continue
+        lat = [r.doc["seconds"] * 1e6 for r in rr]
+        en = [r.doc["energy"]["total_pj"] / 1e6 for r in rr]
+        ar = [r.doc["area"]["total_mm2"] for r in rr]
+        fe = set(pareto_front(list(zip(lat, en))))
+        fa = set(pareto_front(list(zip(lat, ar))))
+        for ax, ys, front in ((ax_e, en, fe), (ax_a, ar, fa)):
+            ax.scatter(lat, ys, color=gcol[g], marker=MARKERS[gi % len(MARKERS)], alpha=0.45, s=30)
+            f = sorted(front, key=lambda i: lat[i])
+            ax.plot([lat[i] for i in f], [ys[i] for i in f], color=gcol[g], marker=MARKERS[gi % len(MARKERS)],
+                    lw=1.6, ms=7, label=g[0])
+        for i, r in enumerate(rr):
+            rows.append([g[0], r.label, lat[i], en[i], ar[i], i in fe, i in fa])
+        if len(rr) <= 12:
+            for i, r in enumerate(rr):
+                if i in fe:
+                    ax_e.annotate(r.config_label, (lat[i], en[i]), fontsize=7, xytext=(4, 3),
+                                  textcoords="offset points")
+                if i in fa:
+                    ax_a.annotate(r.config_label, (lat[i], ar[i]), fontsize=7, xytext=(4, 3),
+                                  textcoords="offset points")
+    for ax, yl in ((ax_e, "energy per run (uJ)"), (ax_a, "area proxy (mm^2)")):
+        ax.set_xscale("log")
+        ax.set_yscale("log")
+        ax.set_xlabel("latency (us)")
+        ax.set_ylabel(yl)
+        ax.grid(alpha=0.3, which="both")
+    ax_e.set_title("latency vs energy", fontsize=10)
+    ax_a.set_title("latency vs area proxy", fontsize=10)
+    ax_e.legend(fontsize=8, title="trace (front joined)", title_fontsize=8)
+    return Figure("pareto", "Pareto fronts: latency against energy and against area",
+                  "Every run is a point; per trace, the joined points are the Pareto front (no other run on "
+                  "that trace is both faster and cheaper). Energy and area are proxies (see the limits).",
+                  fig, ["trace", "run", "latency_us", "energy_uj", "area_mm2", "front_energy", "front_area"],
+                  rows)
+
+
+def energy_area(runs):
+    """Energy split over units for every run (with its total), and area per unit for every config."""
+    rr = [r for r in runs if "energy" in r.doc and "area" in r.doc]
+    eunits = []
+    for r in rr:
+        eunits += [u for u in r.doc["energy"]["units_pj"] if u not in eunits]
+    aunits = []
+    configs = {}
+    for r in rr:
+        aunits += [u for u in r.doc["area"]["units_mm2"] if u not in aunits]
+        configs.setdefault(r.config_label, r)
+    col = _color_map(sorted(set(eunits) | set(aunits)), SERIES)
+    fig = _fig(13, 0.32 * max(len(rr), len(configs)) + 2.6)
+    ax_e, ax_a = fig.subplots(1, 2, width_ratios=[1.5, 1])
+    rows = []
+    left = np.zeros(len(rr))
+    totals = np.array([r.doc["energy"]["total_pj"] for r in rr], dtype=float)
+    for u in eunits:
+        pj = np.array([r.doc["energy"]["units_pj"].get(u, 0.0) for r in rr])
+        v = np.divide(pj, totals, out=np.zeros_like(pj), where=totals > 0)
+        ax_e.barh(range(len(rr)), v, left=left, color=col[u], label=u, height=0.75)
+        left += v
+        rows += [["energy_uj", r.label, u, r.doc["energy"]["units_pj"].get(u, 0.0) / 1e6] for r in rr]
+    for i, t in enumerate(totals):
+        ax_e.text(1.01, i, f"{t / 1e6:,.3g} uJ", va="center", fontsize=8)
+    ax_e.set_yticks(range(len(rr)))
+    ax_e.set_yticklabels([r.label for r in rr], fontsize=8)
+    ax_e.invert_yaxis()
+    ax_e.set_xlim(0, 1.18)
+    ax_e.set_xticks([0, 0.25, 0.5, 0.75, 1])
+    ax_e.set_xticklabels(["0", "25%", "50%", "75%", "100%"])
+    ax_e.set_xlabel("share of the run's energy (total at the right)")
+    ax_e.grid(axis="x", alpha=0.3)
+    cl = list(configs)
+    left = np.zeros(len(cl))
+    for u in aunits:
+        v = np.array([configs[c].doc["area"]["units_mm2"].get(u, 0.0) for c in cl])
+        ax_a.barh(range(len(cl)), v, left=left, color=col[u], label=u, height=0.75)
+        left += v
+        rows += [["area_mm2", c, u, configs[c].doc["area"]["units_mm2"].get(u, 0.0)] for c in cl]
+    ax_a.set_yticks(range(len(cl)))
+    ax_a.set_yticklabels(cl, fontsize=8)
+    ax_a.invert_yaxis()
+    ax_a.set_xlabel("area proxy (mm^2)")
+    ax_a.grid(axis="x", alpha=0.3)
+    ax_e.set_title("energy by unit", fontsize=10)
+    ax_a.set_title("area proxy by unit", fontsize=10)
+    handles = {}
+    for ax in (ax_e, ax_a):
+        for h, lab in zip(*ax.get_legend_handles_labels()):
+            handles.setdefault(lab, h)
+    fig.legend(list(handles.values()), list(handles), loc="outside lower center", ncol=min(len(handles), 8),
+               fontsize=8, frameon=False)
+    return Figure("energy_area", "Energy and area by unit",
+                  "Left: each run's energy split over the units that spend it (dynamic energy of counted "
+                  "operations), its total at the bar's end. Right: each config's area proxy split over "
+                  "its units.", fig, ["quantity", "run_or_config", "unit", "value"], rows)
+
+
+def bandwidth_series(run, bins=40):
+    """``(t_us, gbps)``: delivered DRAM bandwidth per time bin, from channel busy intervals."""
+    d = run.doc
+    cycles = max(float(d["cycles"]), 1.0)
+    clock = d["arch"]["config"]["clock_ghz"]
+    gbps = d["arch"]["config"]["dram"]["channel_gbps"]
+    edges = np.linspace(0.0, cycles, bins + 1)
+    busy = np.zeros(bins)
+    for chan in run.intervals.get("dram", []):
+        if not chan:
+            continue
+        a = np.asarray(chan, dtype=np.float64)
+        lo = np.maximum(a[:, 0][:, None], edges[None, :-1])
+        hi = np.minimum(a[:, 1][:, None], edges[None, 1:])
+        busy += np.clip(hi - lo, 0, None).sum(axis=0)
+    width = edges[1] - edges[0]
+    return edges[:-1] / (clock * 1e3), busy / width * gbps
+
+
+def bandwidth(runs):
+    """Delivered DRAM bandwidth over time, one line per run that carries intervals."""
+    rr = [r for r in runs if r.intervals and r.intervals.get("dram")]
+    fig = _fig(9, 4.4)
+    ax = fig.subplots()
+    rows = []
+    col = _color_map([r.label for r in rr], SERIES)
+    top = 0.0
+    series = []
+    for r in rr:
+        t, g = bandwidth_series(r)
+        series.append((r, t, g))
+        top = max(top, float(g.max()) if len(g) else 0.0)
+    for r, t, g in series:
+        peak = r.doc["dram"]["peak_gbps"]
+        ax.step(t, g, where="post", color=col[r.label], lw=1.4, label=f"{r.label} (peak {peak:,.0f} GB/s)")
+        if peak <= 2.5 * top:
+            ax.axhline(peak, color=col[r.label], lw=0.8, ls="--", alpha=0.7)
+        rows += [[r.label, float(a), float(b)] for a, b in zip(t, g)]
+    ax.set_xlabel("time (us)")
+    ax.set_ylabel("delivered bandwidth (GB/s)")
+    ax.set_ylim(bottom=0)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    return Figure("bandwidth", "Memory bandwidth over time",
+                  "Delivered DRAM bandwidth per time bin (channel data-bus busy time x channel rate), "
+                  "dashed: the pool's peak where it fits the scale (every peak is in the legend). Only runs "
+                  "simulated with intervals appear.",
+                  fig, ["run", "t_us", "gbps"], rows)
+
+
+STATE_COLORS = {"busy": BUSY, "idle": IDLE, "blocked": "#d62728"}
+STARVED_COLORS = {"memory": "#457b9d", "dependency": "#8d6cab", "upstream": "#f4a261", "other": "#e9c46a"}
+
+
+def _starved_family(cause):
+    if cause in ("memory_latency", "memory_queue", "memory_transfer", "memory_bandwidth", "reorder"):
+        return "memory"
+    if cause in ("layer_dependency", "topk", "start"):
+        return "dependency"
+    if cause in ("dot", "dot_pv", "softmax", "fetch", "fetch_issue"):
+        return "upstream"
+    return "other"
+
+
+def timeline(run, max_channels=16):
+    """Per-unit busy and stalled intervals of one run, plus the DRAM channels' busy time."""
+    iv = run.intervals
+    d = run.doc
+    us = 1.0 / (d["arch"]["config"]["clock_ghz"] * 1e3)
+    units = [u for u in UNIT_ORDER if u in iv and u != "dram"]
+    chans = list(iv.get("dram", []))[:max_channels]
+    lanes = units + [f"dram ch{c}" for c in range(len(chans))]
+    fig = _fig(12, 0.36 * len(lanes) + 2.0)
+    ax = fig.subplots()
+    rows = []
+    for i, u in enumerate(units):
+        groups = {}
+        for t0, t1, state, cause in iv[u]:
+            key = f"starved: {_starved_family(cause)}" if state == "starved" else state
+            groups.setdefault(key, []).append((t0 * us, (t1 - t0) * us))
+            rows.append([u, t0 * us, t1 * us, state, cause or ""])
+        for key, spans in groups.items():
+            color = STARVED_COLORS[key.split(": ")[1]] if key.startswith("starved") else STATE_COLORS.get(key, OTHER)
+            ax.broken_barh(spans, (i - 0.4, 0.8), facecolors=color, linewidth=0)
+    for j, chan in enumerate(chans):
+        spans = [(a * us, (b - a) * us) for a, b in chan]
+        ax.broken_barh(spans, (len(units) + j - 0.35, 0.7), facecolors=BUSY, linewidth=0)
+        rows += [[f"dram ch{j}", a * us, b * us, "busy", ""] for a, b in chan]
+    ax.set_yticks(range(len(lanes)))
+    ax.set_yticklabels(lanes, fontsize=8)
+    ax.invert_yaxis()
+    ax.set_xlim(0, d["cycles"] * us)
+    ax.set_xlabel("time (us)")
+    ax.grid(axis="x", alpha=0.3)
+    from matplotlib.patches import Patch
+    handles = [Patch(color=BUSY, label="busy")] + [Patch(color=c, label=f"starved: {k}")
+                                                  for k, c in STARVED_COLORS.items()]
+    handles += [Patch(color=STATE_COLORS["blocked"], label="blocked"), Patch(color=IDLE, label="idle")]
+    fig.legend(handles=handles, loc="outside lower center", ncol=len(handles), fontsize=8, frameon=False)
+    ax.set_title(f"{run.label}: limiting unit {limiting_unit(d)}", fontsize=10)
+    more = len(iv.get("dram", [])) - len(chans)
+    return Figure("timeline", f"Timeline of one run: {run.label}",
+                  "Each unit's state over the run (starved split by what it waited on: memory, a dependency "
+                  "between layers or on the selector, an upstream unit) and the busy time of each DRAM "
+                  "channel's data bus." + (f" {more} more channels not drawn." if more > 0 else ""),
+                  fig, ["lane", "t0_us", "t1_us", "state", "cause"], rows)

@@ -1,0 +1,194 @@
+"""Report inputs: result documents and sweep folders, read and checked once.
+
+A report compares *runs*: one result document each, from ``attnsim run
+--json`` files or from the points of a sweep folder (``points.jsonl``, see the
+sweep store). Every run gets a label a reader can tell apart from the others.
+Runs from different simulator versions, or of traces that share a name but
+not a digest, are kept apart and labelled, never merged; :func:`label_runs`
+returns the warnings to print.
+"""
+
+import json
+import os
+
+from ..errors import InputError
+
+REQUIRED = ("simulator", "arch", "trace", "cycles", "seconds", "units", "dram", "compute", "bounds")
+
+
+class ReportError(InputError):
+    """A report input (result document, sweep folder, option) is unusable."""
+
+
+class Run:
+    """One result document plus where it came from.
+
+    ``point`` holds a sweep point's axis values (empty for a plain result
+    file); ``intervals`` the per-unit intervals when a run was simulated with
+    them at hand (the demo) or replayed for the timeline.
+    """
+
+    def __init__(self, doc, origin, point=None, trace_path=None, intervals=None):
+        self.doc = doc
+        self.origin = origin
+        self.point = dict(point or {})
+        self.trace_path = trace_path
+        self.intervals = intervals
+        self.config_label = doc["arch"]["name"]
+        self.trace_label = doc["trace"]["name"]
+
+    @property
+    def label(self):
+        return f"{self.config_label} / {self.trace_label}"
+
+    @property
+    def version(self):
+        return self.doc["simulator"]["version"]
+
+    @property
+    def digest(self):
+        return self.doc["trace"]["digest"]
+
+    def __repr__(self):
+        return f"Run({self.label!r} from {self.origin})"
+
+
+def _check_doc(doc, source, field="<root>"):
+    if not isinstance(doc, dict):
+        raise ReportError(source, field, doc, "expected a result document (a JSON object from attnsim run --json)")
+    for key in REQUIRED:
+        if key not in doc:
+            raise ReportError(source, f"{field}.{key}" if field != "<root>" else key, None,
+                              "missing: expected a result document from attnsim run --json")
+    for key in ("name", "config"):
+        if key not in doc["arch"]:
+            raise ReportError(source, "arch." + key, None, "missing: expected a result document")
+    for key in ("name", "digest"):
+        if key not in doc["trace"]:
+            raise ReportError(source, "trace." + key, None, "missing: expected a result document")
+    for name, u in doc["units"].items():
+        if not isinstance(u, dict) or "busy" not in u or "stalls" not in u:
+            raise ReportError(source, f"units.{name}", u, "expected busy/starved/blocked/idle fractions and stalls")
+    return doc
+
+
+def _load_json(path):
+    try:
+        with open(path, encoding="utf-8") as fh:
+            text = fh.read()
+    except FileNotFoundError:
+        raise ReportError(path, "<file>", path, "file not found") from None
+    except UnicodeDecodeError:
+        raise ReportError(path, "<file>", path, "not a UTF-8 text file") from None
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise ReportError(path, f"line {exc.lineno}", text.splitlines()[exc.lineno - 1][:60]
+                          if text.splitlines() else "", f"not valid JSON ({exc.msg}, column {exc.colno})") from None
+
+
+def load_result_file(path):
+    doc = _check_doc(_load_json(path), path)
+    return Run(doc, path, trace_path=doc["trace"].get("source"))
+
+
+def load_sweep(folder):
+    """``(runs, failed)``: the finished points of a sweep folder, and its error points."""
+    meta_path = os.path.join(folder, "sweep.json")
+    pts_path = os.path.join(folder, "points.jsonl")
+    meta = _load_json(meta_path) if os.path.exists(meta_path) else None
+    if not isinstance(meta, dict) or meta.get("format") != "attnsim-sweep":
+        raise ReportError(meta_path, "format", (meta or {}).get("format") if isinstance(meta, dict) else meta,
+                          "expected a sweep folder (sweep.json with format: attnsim-sweep)")
+    if not os.path.exists(pts_path):
+        raise ReportError(pts_path, "<file>", pts_path, "file not found (a sweep folder holds points.jsonl)")
+    runs, failed = [], []
+    with open(pts_path, encoding="utf-8") as fh:
+        for lineno, line in enumerate(fh, 1):
+            if not line.strip():
+                continue
+            where = f"line {lineno}"
+            try:
+                rec = json.loads(line)
+            except json.JSONDecodeError as exc:
+                raise ReportError(pts_path, where, line.strip()[:60], f"not valid JSON ({exc.msg})") from None
+            if not isinstance(rec, dict) or "status" not in rec or "point" not in rec:
+                raise ReportError(pts_path, where, rec, "expected a sweep point record with point and status")
+            if rec["status"] != "ok":
+                failed.append({"origin": f"{pts_path}:{lineno}", "point": rec.get("point"),
+                               "trace": rec.get("trace"), "error": rec.get("error")})
+                continue
+            doc = _check_doc(rec.get("result"), pts_path, f"{where}: result")
+            run = Run(doc, f"{pts_path}:{lineno}", point=rec["point"],
+                      trace_path=rec.get("trace_path") or doc["trace"].get("source"))
+            runs.append(run)
+    return runs, failed
+
+
+def load_inputs(paths):
+    """``(runs, failed)`` from result files and sweep folders, in the order given."""
+    if not paths:
+        raise ReportError("attnsim report", "RESULTS", paths, "expected result JSON files or sweep folders")
+    runs, failed = [], []
+    for p in paths:
+        if os.path.isdir(p):
+            r, f = load_sweep(p)
+            runs += r
+            failed += f
+        else:
+            runs.append(load_result_file(p))
+    if not runs:
+        raise ReportError(paths[0], "points", 0, "no finished (status ok) runs in the inputs")
+    return runs, failed
+
+
+def _point_text(point):
+    return ", ".join(f"{k}={v:g}" if isinstance(v, float) else f"{k}={v}" for k, v in sorted(point.items()))
+
+
+def label_runs(runs):
+    """Give every run distinct config and trace labels; return the warnings.
+
+    * a trace name seen with several digests: each digest is labelled
+      ``name#<first 8 hex>`` and counts as a different trace;
+    * several simulator versions: every config label gets ``[vX]``;
+    * sweep points: the config label names the point's axis values;
+    * any remaining duplicates get ``(2)``, ``(3)``... and a warning.
+    """
+    warnings = []
+    digests = {}
+    for r in runs:
+        digests.setdefault(r.doc["trace"]["name"], set()).add(r.digest)
+    for name, ds in sorted(digests.items()):
+        if len(ds) > 1:
+            warnings.append(f"trace {name!r} appears with {len(ds)} different digests "
+                            f"({', '.join(sorted(d[:8] for d in ds))}): kept apart as {name}#<digest>")
+    versions = sorted({r.version for r in runs})
+    if len(versions) > 1:
+        warnings.append(f"results from {len(versions)} simulator versions ({', '.join(versions)}): "
+                        "labelled [vX] and never compared as one group")
+    for r in runs:
+        name = r.doc["trace"]["name"]
+        r.trace_label = f"{name}#{r.digest[:8]}" if len(digests[name]) > 1 else name
+        cfg = r.doc["arch"]["name"]
+        if r.point:
+            cfg = f"{cfg} ({_point_text(r.point)})"
+        if len(versions) > 1:
+            cfg = f"{cfg} [v{r.version}]"
+        r.config_label = cfg
+    seen = {}
+    for r in runs:
+        n = seen.get(r.label, 0) + 1
+        seen[r.label] = n
+        if n > 1:
+            r.config_label = f"{r.config_label} ({n})"
+    dups = sorted(k for k, n in seen.items() if n > 1)
+    if dups:
+        warnings.append(f"{len(dups)} config/trace pairs appear more than once (numbered (2), (3)...): "
+                        + "; ".join(dups[:5]))
+    return warnings
+
+
+def group_key(run):
+    """Runs comparable with each other: same trace content and simulator version."""
+    return (run.trace_label, run.version)
