@@ -119,7 +119,6 @@ class DaskBackend:
         except ImportError:
             raise SweepError("--cluster" if address else "--workers", "backend", "dask",
                              "needs the sweep extra: pip install dask distributed") from None
-        self._distributed = distributed
         self._cluster = None
         if address is not None:
             if not isinstance(address, str) or "://" not in address:
@@ -144,16 +143,17 @@ class DaskBackend:
         self.slots = max(4, 2 * n)
         self._futures = {}
         self._attempt = 0
+        self._done = distributed.as_completed(loop=self._client.loop)
 
     def submit(self, task):
         self._attempt += 1
         fut = self._client.submit(run_point, *task.args, key=f"attnsim-point-{task.key}-{self._attempt}",
                                   pure=False)
         self._futures[fut] = task
+        self._done.add(fut)
 
     def wait(self):
-        dist = self._distributed
-        done = dist.wait(list(self._futures), return_when="FIRST_COMPLETED").done
+        done = [next(self._done)] + self._done.next_batch(block=False)
         out = []
         for fut in done:
             task = self._futures.pop(fut)
