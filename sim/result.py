@@ -68,9 +68,11 @@ def _dram_states(pool, fetch_state, end):
     t0 = np.array([iv[0] for iv in ivs] + [ivs[-1][1] if ivs else 0.0], dtype=np.float64)
     t1 = np.array([min(iv[1], end) for iv in ivs] + [end], dtype=np.float64)
     t1 = np.maximum(t1, t0)
-    keys = [("idle", None) if iv[2] == "idle" else
-            ("starved", "fetch_issue") if iv[2] == "busy" else
-            ("starved", iv[3] or "fetch") for iv in ivs]
+    keys = []
+    for iv in ivs:
+        state = iv[2]
+        keys.append(("idle", None) if state == "idle" else
+                    ("starved", "fetch_issue") if state == "busy" else ("starved", iv[3] or "fetch"))
     keys.append(("idle", None))  # after the fetch unit's last interval: nothing left to fetch
     busy_total = 0.0
     busy_in = np.zeros(len(t0))

@@ -84,7 +84,8 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
         last_use = {}
 
         def fetch_txn(kind, segments, buf, waits, head, block):
-            t = Txn(kind, s, head, block, sum(len(p) for _h, p in segments), 0, 0.0, "fetch")
+            rows = len(segments[0][1]) if len(segments) == 1 else sum(len(p) for _h, p in segments)
+            t = Txn(kind, s, head, block, rows, 0, 0.0, "fetch")
             t.layer = layer
             t.positions = segments
             t.buffer = buf
@@ -291,7 +292,7 @@ def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True):
         states["dot_pv"] = UnitState(env, "dot_pv", keep_intervals)
     fetch_stats = {"bytes": 0, "transactions": 0, "requests": 0,
                    "bytes_Q": 0, "bytes_K": 0, "bytes_KL": 0, "bytes_V": 0}
-    sm_queue = simpy.Store(env, capacity=2)
+    sm_queue = smmod.ScoreQueue(env, capacity=2)
     lanes = arch.dot.lanes
     mult = arch.dot.multipliers if shared else arch.dot.multipliers // 2
     procs = {

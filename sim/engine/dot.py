@@ -90,7 +90,7 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, produce
         if op.out is not None:
             op.out.mark("dot", env.now + pipeline)
             req = sm_queue.put(op.out)
-            if not req.triggered:
+            if req is not None:
                 state.set("blocked", "softmax_input_full")
                 yield req
         if op.done is not None:

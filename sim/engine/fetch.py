@@ -42,6 +42,7 @@ def fetch_process(env, txns, pool, router, arch, state, stats):
                 ev.succeed()
         return fire
 
+    issue_free = 0.0   # the request port is busy issuing the previous transaction until then
     for txn in txns:
         for ev, cause in txn.waits:
             if not ev.processed:
@@ -72,8 +73,9 @@ def fetch_process(env, txns, pool, router, arch, state, stats):
                 progress[0] = env.event()
             yield progress[0]
             txn.mark(cause, env.now)
+        if env.now < issue_free:  # nothing else to wait for: the port is still issuing
+            yield env.timeout(issue_free - env.now)
         txn.mark("fetch", env.now)
-        state.set("busy")
         pending.append(txn)
         inflight[0] += nreq
         ev = pool.submit(txn)
@@ -83,6 +85,9 @@ def fetch_process(env, txns, pool, router, arch, state, stats):
         stats[f"bytes_{txn.kind}"] += nbytes
         stats["transactions"] += 1
         stats["requests"] += nreq
-        yield env.timeout(nreq)  # one request issued per cycle
-        state.set("starved", "program")
+        # one request issued per cycle; no event unless the next transaction is ready before
+        issue_free = env.now + nreq
+        state.busy_until(issue_free)
+    if env.now < issue_free:
+        yield env.timeout(issue_free - env.now)
     state.set("idle")

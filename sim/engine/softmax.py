@@ -6,6 +6,8 @@ pruning ranks. ``softmax.lanes`` elements per cycle in each pass; the result
 appears ``latency_cycles`` after the unit is done with a block.
 """
 
+from collections import deque
+
 PASSES = 2  # max pass, then exp/sum/normalize pass
 
 
@@ -31,18 +33,65 @@ class SoftmaxOp:
         self.done = None        # event: probabilities ready
 
 
+class ScoreQueue:
+    """The score buffer between the dot array and the softmax unit: ``capacity`` blocks.
+
+    A bounded FIFO like ``simpy.Store``, but a put that fits and a get that
+    finds a block are served on the spot without events (most of them do).
+    """
+
+    def __init__(self, env, capacity):
+        if capacity < 1:
+            raise ValueError(f"score queue capacity must be >= 1, got {capacity!r}")
+        self.env = env
+        self.capacity = capacity
+        self.items = deque()
+        self.getter = None      # event of the waiting consumer
+        self.putters = deque()  # (txn, event) waiting for room
+
+    def put(self, txn):
+        """None if stored now, else an event fired once there is room."""
+        if self.getter is not None:
+            ev, self.getter = self.getter, None
+            ev.succeed(txn)
+            return None
+        if len(self.items) < self.capacity:
+            self.items.append(txn)
+            return None
+        ev = self.env.event()
+        self.putters.append((txn, ev))
+        return ev
+
+    def get(self):
+        """``(txn, None)`` when a block is waiting, else ``(None, event)`` whose value is the block."""
+        if self.items:
+            txn = self.items.popleft()
+            if self.putters:
+                t, ev = self.putters.popleft()
+                self.items.append(t)
+                ev.succeed()
+            return txn, None
+        self.getter = self.env.event()
+        return None, self.getter
+
+
 def softmax_process(env, ops, lanes, latency, state, queue):
     """Run ``ops`` in order, taking each op's score block from ``queue``."""
     from .dot import later
 
     for op in ops:
         t0 = env.now
-        state.set("starved", "dot")
-        txn = yield queue.get()
+        txn, ev = queue.get()
+        if ev is not None:
+            state.set("starved", "dot")
+            txn = yield ev
         ready = txn.log[-1][1]          # the array's pipeline delivers it then
         if ready > env.now:
+            if ev is None:
+                state.set("starved", "dot")
             yield env.timeout(ready - env.now)
-        state.charge_wait(t0, txn, before="dot")
+        if env.now > t0:
+            state.charge_wait(t0, txn, before="dot")
         state.set("busy")
         yield env.timeout(service_cycles(op.rows * op.cols, lanes))
         later(env, latency, op.done)

@@ -51,9 +51,8 @@ class UnitState:
         self.since = t
 
     def set(self, state, cause=None):
-        """Enter ``state`` now; ``cause`` says why for starved and blocked."""
-        now = self.env.now
-        self._close(now)
+        """Enter ``state`` now (or when a :meth:`busy_until` period ends); ``cause`` says why."""
+        self._close(self.env.now)
         self.state = state
         self.cause = cause
 
@@ -82,6 +81,13 @@ class UnitState:
         if self.since < t1:  # the open interval, not logged yet
             out.append((t1, self.name if self.state == "busy" or not self.cause else self.cause))
         return out
+
+    def busy_until(self, t):
+        """Busy from now until ``t`` without waiting for it: what the unit does next
+        starts at ``t`` (a later :meth:`set` before ``t`` takes effect from ``t``)."""
+        self.set("busy")
+        self._close(t)
+        self.state, self.cause = "starved", "program"
 
     def charge_wait(self, t0, txn, before="fetch", producer=None):
         """Charge a starved wait ``[t0, now)`` to the stages in ``txn``'s log.

@@ -44,7 +44,7 @@ class Chunk:
     def __init__(self, plane, segments):
         self.plane = plane
         self.segments = segments
-        self.rows = sum(len(p) for _h, p in segments)
+        self.rows = len(segments[0][1]) if len(segments) == 1 else sum(len(p) for _h, p in segments)
 
 
 class BlockPlan:
@@ -202,7 +202,8 @@ def plan_step(arch, amap, step, grain_rows):
             gp.k_chunks = k_chunks
         if gp.v_resident:
             gp.v_chunks = v_chunks
-        edges = {h: np.floor(np.linspace(0, f, nqb + 1)).astype(np.int64) for h, f in flagged.items()}
+        edges = {h: np.floor(np.linspace(0, f, nqb + 1)).astype(np.int64)
+                 for h, f in flagged.items() if f}
         for b in range(nqb):
             bp = BlockPlan(b, q_pos[b * qb:(b + 1) * qb])
             if not gp.k_resident:
