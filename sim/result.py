@@ -175,7 +175,7 @@ def build_result(arch, trace, prog, pool, states, buffers, fetch_stats, step_tim
     doc["energy"] = energy_section(arch, doc, trace)
     doc["area"] = area_section(arch)
     intervals = {name: st.intervals for name, st in states.items()}
-    intervals["dram"] = [list(map(list, iv)) for iv in pool.busy_intervals]
+    intervals["dram"] = pool.busy_intervals
     return Result(_round(doc), intervals)
 
 

@@ -149,6 +149,8 @@ def group_size(arch, step, grain_rows, nqb):
 
 
 def _split(plane, head, positions, rows_per_chunk):
+    if len(positions) <= rows_per_chunk:
+        return [Chunk(plane, [(head, positions)])]
     return [Chunk(plane, [(head, positions[i:i + rows_per_chunk])])
             for i in range(0, len(positions), rows_per_chunk)]
 
