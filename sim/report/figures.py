@@ -276,15 +276,18 @@ def pareto_front(points):
 
 def pareto(runs):
     """Latency against energy and against area, per trace, with the Pareto front joined."""
-    fig = _fig(12, 4.8)
+    fig = _fig(12, 5.0)
     ax_e, ax_a = fig.subplots(1, 2)
-    groups = []
+    groups, configs = [], []
     for r in runs:
         if group_key(r) not in groups:
             groups.append(group_key(r))
+        if r.config_label not in configs:
+            configs.append(r.config_label)
     gcol = _color_map(groups, SERIES)
+    cmark = _color_map(configs, MARKERS) if len(configs) <= len(MARKERS) else {c: "o" for c in configs}
     rows = []
-    for gi, g in enumerate(groups):
+    for g in groups:
         rr = [r for r in runs if group_key(r) == g and "energy" in r.doc and "area" in r.doc]
         if not rr:
             continue
@@ -294,20 +297,14 @@ def pareto(runs):
         fe = set(pareto_front(list(zip(lat, en))))
         fa = set(pareto_front(list(zip(lat, ar))))
         for ax, ys, front in ((ax_e, en, fe), (ax_a, ar, fa)):
-            ax.scatter(lat, ys, color=gcol[g], marker=MARKERS[gi % len(MARKERS)], alpha=0.45, s=30)
             f = sorted(front, key=lambda i: lat[i])
-            ax.plot([lat[i] for i in f], [ys[i] for i in f], color=gcol[g], marker=MARKERS[gi % len(MARKERS)],
-                    lw=1.6, ms=7, label=g[0])
+            ax.plot([lat[i] for i in f], [ys[i] for i in f], color=gcol[g], lw=1.6, label=g[0] if ax is ax_e else None, zorder=2)
+            for i, r in enumerate(rr):
+                ax.scatter([lat[i]], [ys[i]], color=gcol[g], marker=cmark[r.config_label], zorder=3,
+                           s=60 if i in front else 35, alpha=1.0 if i in front else 0.45,
+                           edgecolor="black" if i in front else "none", linewidth=0.6)
         for i, r in enumerate(rr):
             rows.append([g[0], r.label, lat[i], en[i], ar[i], i in fe, i in fa])
-        if len(rr) <= 12:
-            for i, r in enumerate(rr):
-                if i in fe:
-                    ax_e.annotate(r.config_label, (lat[i], en[i]), fontsize=7, xytext=(4, 3),
-                                  textcoords="offset points")
-                if i in fa:
-                    ax_a.annotate(r.config_label, (lat[i], ar[i]), fontsize=7, xytext=(4, 3),
-                                  textcoords="offset points")
     for ax, yl in ((ax_e, "energy per run (uJ)"), (ax_a, "area proxy (mm^2)")):
         ax.set_xscale("log")
         ax.set_yscale("log")
@@ -316,10 +313,15 @@ def pareto(runs):
         ax.grid(alpha=0.3, which="both")
     ax_e.set_title("latency vs energy", fontsize=10)
     ax_a.set_title("latency vs area proxy", fontsize=10)
-    ax_e.legend(fontsize=8, title="trace (front joined)", title_fontsize=8)
+    ax_e.legend(fontsize=8, title="trace (line: Pareto front)", title_fontsize=8)
+    if len(configs) <= len(MARKERS):
+        for c in configs:
+            ax_a.scatter([], [], marker=cmark[c], color="#888", edgecolor="black", label=c)
+        ax_a.legend(fontsize=8, title="config", title_fontsize=8)
     return Figure("pareto", "Pareto fronts: latency against energy and against area",
-                  "Every run is a point; per trace, the joined points are the Pareto front (no other run on "
-                  "that trace is both faster and cheaper). Energy and area are proxies (see the limits).",
+                  "Every run is a point (colour = trace, shape = config); per trace the line joins the "
+                  "Pareto front, the runs no other run on that trace beats on both axes (drawn solid). "
+                  "Energy and area are proxies (see the limits).",
                   fig, ["trace", "run", "latency_us", "energy_uj", "area_mm2", "front_energy", "front_area"],
                   rows)
 
