@@ -5,7 +5,8 @@ and each one is written to the store the moment it finishes, so an
 interrupted run keeps everything it finished and a rerun starts only the
 missing points. A point whose simulation raises is recorded as an error; a
 point whose worker process died is retried, and recorded as an error after
-:data:`MAX_LOST` deaths.
+:data:`MAX_LOST` deaths. A result computed by a worker running another
+simulator build is not stored (the point stays missing for a rerun).
 
 With ``screen=True`` the points are taken in order of their closed-form lower
 bound, and a point is skipped when a measured point of the same trace
@@ -170,6 +171,7 @@ def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, fo
             backend = make_backend(jobs=jobs, cluster=cluster, workers=workers)
         queue = collections.deque(todo)
         strikes = collections.Counter()
+        wrong_build = collections.Counter()
         try:
             while queue or (backend is not None and backend.pending()):
                 while queue and backend.pending() < backend.slots:
@@ -194,11 +196,12 @@ def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, fo
                             put(record_for(p, "error", f"worker process died {MAX_LOST} times running "
                                                        f"this point ({payload})", None, plan.build))
                         continue
-                    executed += 1
                     if build != plan.build:
-                        put(record_for(p, "error", f"worker runs simulator build {build}, this sweep "
-                                                   f"was planned with {plan.build}", None, plan.build))
-                    elif status == "ok":
+                        # its result belongs to other code: keep the point missing, a rerun runs it
+                        wrong_build[build] += 1
+                        continue
+                    executed += 1
+                    if status == "ok":
                         put(record_for(p, "ok", None, payload, plan.build))
                         fronts.add(p.trace, payload, p.config)
                     else:
@@ -211,8 +214,13 @@ def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, fo
         counts = {"planned": len(plan.points), "filtered_by_keep_if": plan.filtered,
                   "executed_this_run": executed, "reused": reused,
                   "skipped_by_screen": skipped, "worker_deaths": lost,
-                  "store_lines_repaired": store.repaired, "records_set_aside": store.set_aside}
+                  "store_lines_repaired": store.repaired, "records_set_aside": store.set_aside,
+                  "refused_other_build": sum(wrong_build.values())}
         summary = summarize(plan, store.records, spec.objectives, counts, screened=screen)
+        for b, n in wrong_build.items():
+            summary["notes"].append(
+                f"{n} result(s) came from workers running simulator build {b}, not {plan.build}; "
+                "they were not stored (update the workers and rerun)")
         store.write_summary(summary)
         name = backend.name if backend is not None else "none (nothing to run)"
         return SweepRun(out, plan, summary, executed, reused, skipped, lost, store.repaired, name)
@@ -250,6 +258,7 @@ def summarize(plan, records, requested, counts, screened=False):
                    "finished": len(ok) + errors,
                    "missing": len(plan.points) - len(ok) - errors - counts.get("skipped_by_screen", 0)},
         "screened": bool(screened),
+        "notes": [],
         "best": best,
         "pareto": front,
         "pareto_points": detail,
@@ -273,6 +282,8 @@ def format_run(run):
     lines.append(f"  objectives (minimized): {', '.join(o['used'])}")
     for n in o["notes"]:
         lines.append(f"    note: {n}")
+    for n in s["notes"]:
+        lines.append(f"  note: {n}")
     axes = run.plan.spec.axis_paths
     for trace, per in s["best"].items():
         lines.append(f"  trace {trace}:")
