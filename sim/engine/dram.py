@@ -67,6 +67,39 @@ def channel_of(bursts, arch):
     return (bursts // arch.dram.interleave_bytes) % arch.dram.channels
 
 
+class RequestSlots:
+    """Requests a channel holds queued or in service, as ``(done, amount)`` pairs.
+
+    Amounts are in requests of ``fetch.request_bytes`` and may be fractional:
+    a share smaller than a request holds part of one, so the engine's
+    transaction grain does not change how full the queue looks.
+    """
+
+    __slots__ = ("items", "total")
+
+    def __init__(self):
+        self.items = deque()
+        self.total = 0.0
+
+    def room_at(self, now, need, depth):
+        """Earliest time from ``now`` at which ``need`` more requests fit in ``depth``."""
+        items = self.items
+        while items and items[0][0] <= now:
+            self.total -= items.popleft()[1]
+        if self.total + need <= depth + 1e-9 or not items:
+            return now
+        left = self.total
+        for done, amount in items:
+            left -= amount
+            if left + need <= depth + 1e-9:
+                return done
+        return items[-1][0]   # larger than the whole queue: wait until it has drained
+
+    def add(self, done, amount):
+        self.items.append((done, amount))
+        self.total += amount
+
+
 class Timing:
     """The banked model's timings in accelerator cycles (config holds ns)."""
 
@@ -161,7 +194,7 @@ def column_times(gb, row, group, seg_len, t0, base_col, base_group, st, tm):
             D -= d[0]
             base = base_col[0] + d[0]
         else:
-            D -= np.repeat(D[starts] - d[starts], seg_len)
+            D -= np.repeat(D[starts], seg_len)
             base = np.repeat(base_col + d[starts], seg_len)
     elif single:
         D = np.arange(n) * tm.burst
@@ -214,7 +247,7 @@ class ChannelPool:
         self.depth = d.queue_depth
         self.req_bursts = max(1, arch.fetch.request_bytes // self.burst)
         self.free_at = [0.0] * self.n
-        self.outstanding = [deque() for _ in range(self.n)]
+        self.outstanding = [RequestSlots() for _ in range(self.n)]
         self.busy_intervals = [[] for _ in range(self.n)]
         self.busy_cycles = np.zeros(self.n)
         self.bytes = 0
@@ -265,22 +298,17 @@ class ChannelPool:
         t_end = now
         for c in np.flatnonzero(counts).tolist():
             nb = int(counts[c])
-            nreq = -(-nb // self.req_bursts)
+            nreq = nb / self.req_bursts
             start = self.free_at[c] if self.free_at[c] > now else now
-            dq = self.outstanding[c]
-            while dq and dq[0] <= now:
-                dq.popleft()
-            over = len(dq) + nreq - self.depth
-            if over > 0:  # wait until enough queued requests have completed
-                room_at = dq[min(over, len(dq)) - 1]
-                if room_at > start:
-                    start = room_at
+            room_at = self.outstanding[c].room_at(now, nreq, self.depth)
+            if room_at > start:  # wait until enough queued requests have completed
+                start = room_at
             end = start + nb * self.t_burst
             self.free_at[c] = end
             self._busy(c, start, end)
             self.busy_cycles[c] += end - start
             done_c = end + self.t_lat
-            dq.extend([done_c] * nreq)
+            self.outstanding[c].add(done_c, nreq)
             self.requests += nreq
             if start > t_start:
                 t_start = start
@@ -367,7 +395,7 @@ class ChannelPool:
             if n_window and room <= 0:
                 break
             n_window += 1
-            room -= -(-len(share[1]) // self.req_bursts)
+            room -= len(share[1]) / self.req_bursts
         window, rest = held[:n_window], held[n_window:]
         st = self.st
         now = self.env.now
@@ -394,15 +422,10 @@ class ChannelPool:
         t0 = {}
         for c in chans:
             t = now
-            nreq = -(-int(cnt[c]) // self.req_bursts)
-            dq = self.outstanding[c]
-            while dq and dq[0] <= now:
-                dq.popleft()
-            over = len(dq) + nreq - self.depth
-            if over > 0:  # the channel's queue is full: wait for requests to complete
-                room_at = dq[min(over, len(dq)) - 1]
-                if room_at > t:
-                    t = room_at
+            nreq = int(cnt[c]) / self.req_bursts
+            room_at = self.outstanding[c].room_at(now, nreq, self.depth)
+            if room_at > t:  # the channel's queue is full: wait for requests to complete
+                t = room_at
             if self.ref_next[c] <= t:
                 self._refresh(c, t)
             t0[c] = t
@@ -483,9 +506,9 @@ class ChannelPool:
         first = c0 + tail
         done = c1 + tm.burst + tail
         self.busy_cycles[ch] += n * tm.burst
-        nreq = -(-n // self.req_bursts)
+        nreq = n / self.req_bursts
         self.requests += nreq
-        self.outstanding[ch].extend([done] * nreq)
+        self.outstanding[ch].add(done, nreq)
         iv = self.busy_intervals[ch]
         if step > tm.burst * (1 + 1e-9):  # same group back to back: the bus idles between bursts
             s_t = c0 + tm.cl + np.arange(n) * step
@@ -561,9 +584,9 @@ class ChannelPool:
         r_arr = self.rec
         for k, ch in enumerate(chans):
             m = lens_l[k]
-            nreq = -(-m // rq)
+            nreq = m / rq
             self.requests += nreq
-            self.outstanding[ch].extend([done[k]] * nreq)
+            self.outstanding[ch].add(done[k], nreq)
             iv = self.busy_intervals[ch]
             lo, hi = cut[k], cut[k + 1]
             if iv and iv[-1][1] >= pairs[lo][0] - 1e-9:
@@ -670,7 +693,7 @@ class ChannelPool:
             "model": self.model,
             "bytes": int(self.bytes),
             "bursts": int(self.bursts),
-            "requests": int(self.requests),
+            "requests": float(self.requests),
             "transactions": int(self.txns),
             "achieved_gbps": achieved,
             "peak_gbps": self.arch.peak_gbps,
