@@ -22,6 +22,7 @@ import json
 import os
 
 import matplotlib
+import numpy as np
 
 matplotlib.use("Agg")  # noqa: E402  (no display; before anything touches pyplot)
 
@@ -51,8 +52,17 @@ def _csv_text(header, rows):
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(header)
     for row in rows:
-        w.writerow(["" if v is None else (repr(v) if isinstance(v, float) else v) for v in row])
+        w.writerow([_cell(v) for v in row])
     return buf.getvalue()
+
+
+def _cell(v):
+    """Exact text of a value: floats by repr (round-trips), numpy scalars as Python numbers."""
+    if v is None:
+        return ""
+    if isinstance(v, np.generic):
+        v = v.item()
+    return repr(v) if isinstance(v, float) else v
 
 
 def _png(fig):

@@ -1,0 +1,340 @@
+"""attnsim report: numbers shown equal the result documents, bad input, headless rendering.
+
+The HTML check renders the report in headless Chromium (Debian package
+``chromium``), networking disabled, takes a screenshot and reads back how many
+embedded figures the browser decoded.
+"""
+
+import csv
+import json
+import os
+import re
+import shutil
+import subprocess
+import tempfile
+
+import numpy as np
+import pytest
+
+import sim
+from sim.cli import main
+from sim.report.timeline import read_timeline
+
+CONFIGS = ("edge", "mid")
+TRACES = ("traces/demo_prefill.yaml", "traces/demo_decode.yaml")
+
+
+@pytest.fixture(scope="module")
+def results(tmp_path_factory):
+    d = tmp_path_factory.mktemp("results")
+    paths = []
+    for t in TRACES:
+        for c in CONFIGS:
+            out = d / f"{c}_{os.path.basename(t)[:-5]}.json"
+            assert main(["run", "--arch", f"arch_configs/{c}.yaml", "--trace", t, "--json", str(out)]) == 0
+            paths.append(str(out))
+    return paths
+
+
+@pytest.fixture(scope="module")
+def report(results, tmp_path_factory):
+    out = str(tmp_path_factory.mktemp("rep") / "r1")
+    assert main(["report", *results, "--out", out]) == 0
+    docs = [json.load(open(p)) for p in results]
+    return out, {(d["arch"]["name"], d["trace"]["name"]): d for d in docs}
+
+
+# the test's own map from comparison columns to the result document (scale to the shown unit)
+EXPECT = {
+    "cycles": lambda d: d["cycles"],
+    "latency_us": lambda d: d["seconds"] * 1e6,
+    "roofline_pct": lambda d: d["verdict"]["roofline_fraction"] * 100,
+    "dram_mb": lambda d: d["dram"]["bytes"] / 1e6,
+    "dram_gbps": lambda d: d["dram"]["achieved_gbps"],
+    "macs": lambda d: d["compute"]["macs"],
+    "energy_uj": lambda d: d["energy"]["total_pj"] / 1e6,
+    "power_w": lambda d: d["energy"]["average_power_w"],
+    "nj_per_token": lambda d: d["energy"]["pj_per_token"] / 1e3,
+    "area_mm2": lambda d: d["area"]["total_mm2"],
+    "limiting_busy_pct": lambda d: max(u["busy"] for u in d["units"].values()) * 100,
+}
+HEADERS = {"cycles": "cycles", "latency (us)": "latency_us", "of roofline (%)": "roofline_pct",
+           "DRAM (MB)": "dram_mb", "DRAM (GB/s)": "dram_gbps", "MACs": "macs", "energy (uJ)": "energy_uj",
+           "avg power (W)": "power_w", "nJ / token": "nj_per_token", "area proxy (mm^2)": "area_mm2",
+           "its busy (%)": "limiting_busy_pct"}
+
+
+def read_csv(path):
+    with open(path, newline="", encoding="utf-8") as fh:
+        return list(csv.DictReader(fh))
+
+
+def test_comparison_csv_equals_documents(report):
+    out, docs = report
+    rows = read_csv(os.path.join(out, "comparison.csv"))
+    assert len(rows) == len(docs)
+    for row in rows:
+        d = docs[(row["config"], row["trace"])]
+        for key, f in EXPECT.items():
+            assert float(row[key]) == pytest.approx(f(d), rel=1e-12), key
+        assert row["bound"] == d["bounds"]["bound"]
+        busiest = max(d["units"], key=lambda k: d["units"][k]["busy"])
+        assert row["limiting_unit"] == busiest
+        assert row["trace_digest"] == d["trace"]["digest"]
+
+
+def parse_markdown_table(text, first_header):
+    lines = text.splitlines()
+    start = next(i for i, ln in enumerate(lines) if ln.startswith(f"| {first_header} |"))
+    header = [c.strip() for c in lines[start].strip("|").split("|")]
+    rows = []
+    for ln in lines[start + 2:]:
+        if not ln.startswith("|"):
+            break
+        rows.append(dict(zip(header, [c.strip() for c in ln.strip("|").split("|")])))
+    return rows
+
+
+def test_markdown_numbers_equal_documents(report):
+    """Each shown number equals the document's value to the digits shown."""
+    out, docs = report
+    rows = parse_markdown_table(open(os.path.join(out, "report.md")).read(), "config")
+    assert len(rows) == len(docs)
+    for row in rows:
+        d = docs[(row["config"], row["trace"])]
+        for header, key in HEADERS.items():
+            shown = row[header].replace(",", "")
+            digits = len(shown.split(".")[1]) if "." in shown else 0
+            assert abs(float(shown) - EXPECT[key](d)) <= 0.5 * 10 ** -digits + 1e-12, (header, shown)
+        assert row["bound"] == d["bounds"]["bound"]
+
+
+def test_figure_data_equals_documents(report):
+    out, docs = report
+    by_label = {f"{a} / {t}": d for (a, t), d in docs.items()}
+    for row in read_csv(os.path.join(out, "data", "stalls.csv")):
+        u = by_label[row["run"]]["units"][row["unit"]]
+        want = u["stalls"][row["state"][6:]] if row["state"].startswith("stall:") else u[row["state"]]
+        assert float(row["fraction"]) == want
+    for row in read_csv(os.path.join(out, "data", "utilization.csv")):
+        assert float(row["busy"]) == by_label[row["run"]]["units"][row["unit"]]["busy"]
+    for row in read_csv(os.path.join(out, "data", "roofline.csv")):
+        d = by_label[row["run"]]
+        peak = d["arch"]["config"]["dot"]["multipliers"] * d["arch"]["config"]["clock_ghz"]
+        oi = d["bounds"]["operational_intensity_mac_per_byte"]
+        assert float(row["achieved_gmac_per_s"]) == pytest.approx(d["compute"]["macs"] / d["seconds"] / 1e9)
+        # Williams et al., CACM 2009: attainable = min(peak compute, bandwidth x intensity)
+        assert float(row["attainable_gmac_per_s"]) == pytest.approx(min(peak, d["dram"]["peak_gbps"] * oi))
+        assert float(row["achieved_gmac_per_s"]) <= float(row["attainable_gmac_per_s"]) * (1 + 1e-9)
+    pareto = read_csv(os.path.join(out, "data", "pareto.csv"))
+    for row in pareto:
+        d = by_label[row["run"]]
+        assert float(row["latency_us"]) == pytest.approx(d["seconds"] * 1e6, rel=1e-12)
+        assert float(row["energy_uj"]) == pytest.approx(d["energy"]["total_pj"] / 1e6, rel=1e-12)
+        assert float(row["area_mm2"]) == d["area"]["total_mm2"]
+    # the front by brute force: a run is on it unless another run of its trace is no worse on both
+    for row in pareto:
+        same = [r for r in pareto if r["trace"] == row["trace"] and r is not row]
+        dominated = any(float(r["latency_us"]) <= float(row["latency_us"]) and
+                        float(r["energy_uj"]) <= float(row["energy_uj"]) and
+                        (float(r["latency_us"]), float(r["energy_uj"])) !=
+                        (float(row["latency_us"]), float(row["energy_uj"])) for r in same)
+        assert (row["front_energy"] == "True") == (not dominated)
+    for row in read_csv(os.path.join(out, "data", "energy_area.csv")):
+        if row["quantity"] == "energy_uj":
+            want = by_label[row["run_or_config"]]["energy"]["units_pj"][row["unit"]] / 1e6
+            assert float(row["value"]) == pytest.approx(want, rel=1e-12)
+
+
+def test_verdicts_name_the_measured_limit(report):
+    out, docs = report
+    text = open(os.path.join(out, "report.md")).read()
+    verdicts = dict(re.findall(r"^- \*\*(.+?)\*\*: (.+)$", text, re.M))
+    assert len(verdicts) == len(docs)
+    texts = set()
+    for (a, t), d in docs.items():
+        v = verdicts[f"{a} / {t}"]
+        busiest = max(d["units"], key=lambda k: d["units"][k]["busy"])
+        assert busiest in v
+        assert f"{d['units'][busiest]['busy']:.0%}" in v
+        texts.add(re.sub(r"[\d.,]+", "#", v))
+    assert len(texts) > 1  # written from the data: not one sentence with numbers swapped
+
+
+def test_limits_and_sources_stated(report):
+    out, _ = report
+    md = open(os.path.join(out, "report.md")).read()
+    assert "## Limits of this model" in md and "cycle-approximate" in md and "proxy" in md
+    assert "Horowitz" in md
+
+
+def test_timeline_replayed_for_first_run(report):
+    out, docs = report
+    man = json.load(open(os.path.join(out, "manifest.json")))
+    assert "timeline" in man["figures"] and "bandwidth" in man["figures"]
+    rows = read_csv(os.path.join(out, "data", "timeline.csv"))
+    first = docs[("edge", "demo_prefill")]
+    us = first["cycles"] / (first["arch"]["config"]["clock_ghz"] * 1e3)
+    # each unit's intervals tile the run: they sum to its length
+    for unit in ("fetch", "dot", "softmax", "topk"):
+        total = sum(float(r["t1_us"]) - float(r["t0_us"]) for r in rows if r["lane"] == unit)
+        assert total == pytest.approx(us, rel=1e-3)
+
+
+def test_existing_folder_refused_without_force(report, results, capsys):
+    out, _ = report
+    assert main(["report", results[0], "--out", out]) == 2
+    err = capsys.readouterr().err
+    assert "--force" in err and len(err.strip().splitlines()) == 1
+    assert main(["report", results[0], "--out", out, "--force", "--no-replay"]) == 0
+    man = json.load(open(os.path.join(out, "manifest.json")))
+    assert len(man["runs"]) == 1 and "timeline" not in man["figures"]
+    assert not os.path.exists(os.path.join(out, "data", "timeline.csv"))  # the old report's files are gone
+    assert main(["report", *results, "--out", out, "--force"]) == 0  # leave it as the fixture made it
+
+
+def test_unparsable_document_names_file_and_line(tmp_path, results, capsys):
+    bad = tmp_path / "bad.json"
+    text = open(results[0]).read().splitlines()
+    text[5] = text[5] + " oops"
+    bad.write_text("\n".join(text))
+    assert main(["report", str(bad), "--out", str(tmp_path / "o")]) == 2
+    err = capsys.readouterr().err
+    assert str(bad) in err and "line 6" in err
+    notdoc = tmp_path / "list.json"
+    notdoc.write_text(json.dumps({"cycles": 3}))
+    assert main(["report", str(notdoc), "--out", str(tmp_path / "o")]) == 2
+    assert "simulator" in capsys.readouterr().err
+
+
+def test_mixed_versions_and_digests_warned_and_labelled(tmp_path, results, capsys):
+    a, b = json.load(open(results[0])), json.load(open(results[1]))
+    b["simulator"]["version"] = "0.0.9"
+    c = json.load(open(results[0]))
+    c["trace"]["digest"] = "f" * 64
+    c["arch"]["name"] = "edge_copy"
+    paths = []
+    for i, d in enumerate((a, b, c)):
+        p = tmp_path / f"{i}.json"
+        p.write_text(json.dumps(d))
+        paths.append(str(p))
+    out = str(tmp_path / "mixed")
+    assert main(["report", *paths, "--out", out, "--no-replay"]) == 0
+    err = capsys.readouterr().err
+    assert "simulator versions" in err and "different digests" in err
+    rows = read_csv(os.path.join(out, "comparison.csv"))
+    labels = {r["run"] for r in rows}
+    assert len(labels) == 3
+    assert any("[v0.0.9]" in r["config"] for r in rows)
+    assert any(r["trace"].startswith("demo_prefill#") for r in rows)
+    md = open(os.path.join(out, "report.md")).read()
+    assert "## Warnings" in md
+
+
+def test_sweep_folder_input(tmp_path, capsys):
+    """A folder laid out as the sweep store contract says, with one failed point."""
+    folder = tmp_path / "sw"
+    folder.mkdir()
+    (folder / "sweep.json").write_text(json.dumps({"format": "attnsim-sweep", "version": 1, "spec_digest": "x",
+                                                   "spec": {}, "simulator_version": sim.__version__}))
+    base = sim.load_arch("arch_configs/mid.yaml")
+    recs = []
+    for t in TRACES:
+        trace = sim.load_trace(t)
+        for m in (256, 512, 1024):
+            arch = base.with_overrides({"dot.multipliers": m})
+            doc = sim.simulate(arch, trace).to_dict()
+            recs.append({"key": f"k{m}{t}", "point": {"dot.multipliers": m}, "trace": trace.name, "trace_path": t,
+                         "trace_digest": trace.digest(), "simulator_version": sim.__version__, "status": "ok",
+                         "error": None, "config": arch.to_dict(), "result": doc})
+    recs.append({"key": "bad", "point": {"dot.multipliers": 8}, "trace": "demo_decode", "status": "error",
+                 "error": "ConfigError: dot.lanes too wide", "config": None})
+    (folder / "points.jsonl").write_text("".join(json.dumps(r) + "\n" for r in recs))
+    out = str(tmp_path / "swrep")
+    assert main(["report", str(folder), "--out", out]) == 0
+    lat = read_csv(os.path.join(out, "data", "latency.csv"))
+    assert {r["axis"] for r in lat} == {"dot.multipliers"}
+    for r in lat:
+        rec = next(x for x in recs if x["status"] == "ok" and x["point"]["dot.multipliers"] == int(r["value"])
+                   and x["trace"] == r["trace"])
+        assert float(r["latency_us"]) == pytest.approx(rec["result"]["seconds"] * 1e6, rel=1e-12)
+    md = open(os.path.join(out, "report.md")).read()
+    assert "## Failed points" in md and "dot.lanes too wide" in md
+    # a broken line is named
+    with open(folder / "points.jsonl", "a") as fh:
+        fh.write('{"key": "half\n')
+    assert main(["report", str(folder), "--out", str(tmp_path / "o2")]) == 2
+    err = capsys.readouterr().err
+    assert "points.jsonl" in err and f"line {len(recs) + 1}" in err
+
+
+def test_timeline_file_from_run_is_used(tmp_path, capsys):
+    js, tl = tmp_path / "r.json", tmp_path / "tl.json"
+    assert main(["run", "--arch", "arch_configs/mid.yaml", "--trace", "traces/demo_decode.yaml", "--json", str(js),
+                 "--timeline", str(tl)]) == 0
+    doc = json.load(open(js))
+    data = json.load(open(tl))
+    # Trace Event Format: complete events carry ts/dur in microseconds; tracks are named by metadata events
+    xs = [e for e in data["traceEvents"] if e["ph"] == "X"]
+    assert xs and all(e["dur"] >= 0 and e["ts"] >= 0 for e in xs)
+    names = {e["args"]["name"] for e in data["traceEvents"] if e["ph"] == "M" and e["name"] == "thread_name"}
+    assert {"fetch", "dot", "softmax", "topk"} <= names
+    run_us = doc["cycles"] / (doc["arch"]["config"]["clock_ghz"] * 1e3)
+    info, ivs = read_timeline(str(tl))
+    assert info["cycles"] == doc["cycles"]
+    for unit in ("fetch", "dot", "softmax", "topk"):
+        assert sum(b - a for a, b, _s, _c in ivs[unit]) == pytest.approx(doc["cycles"], rel=1e-3)
+        assert sum(e["dur"] for e in xs if e["tid"] < 100 and e["name"].split(":")[0] in
+                   ("busy", "starved", "blocked", "idle") and names) > 0
+    busy_dot = sum(b - a for a, b, s, _c in ivs["dot"] if s == "busy")
+    assert busy_dot / doc["cycles"] == pytest.approx(doc["units"]["dot"]["busy"], abs=1e-3)
+    assert run_us > 0
+    out = str(tmp_path / "rep")
+    assert main(["report", str(js), "--out", out, "--timeline", str(tl)]) == 0
+    assert "timeline" in json.load(open(os.path.join(out, "manifest.json")))["figures"]
+    other = tmp_path / "o.json"
+    d2 = dict(doc)
+    d2["cycles"] = doc["cycles"] + 1
+    other.write_text(json.dumps(d2))
+    assert main(["report", str(other), "--out", str(tmp_path / "rep2"), "--timeline", str(tl)]) == 2
+    assert "otherData" in capsys.readouterr().err
+
+
+def chromium():
+    exe = shutil.which("chromium") or shutil.which("chromium-browser")
+    assert exe, "chromium is not installed (CI: apt-get install -y chromium)"
+    return exe
+
+
+def run_chromium(*args):
+    """Headless Chromium with a fresh profile and every network path closed."""
+    with tempfile.TemporaryDirectory() as profile:
+        cmd = [chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+               "--disable-component-update", "--disable-sync", "--no-first-run", "--disable-extensions",
+               f"--user-data-dir={profile}", "--proxy-server=127.0.0.1:9",
+               "--host-resolver-rules=MAP * ~NOTFOUND", *args]
+        return subprocess.run(cmd, capture_output=True, text=True, timeout=120)
+
+
+def test_html_renders_in_headless_chromium(report, tmp_path):
+    out, _ = report
+    page = "file://" + os.path.abspath(os.path.join(out, "report.html"))
+    html = open(os.path.join(out, "report.html")).read()
+    man = json.load(open(os.path.join(out, "manifest.json")))
+    assert html.count("src='data:image/png;base64,") == len(man["figures"]) >= 7
+    assert "http://" not in html and "https://" not in html  # nothing to fetch: opens offline
+    shot = tmp_path / "shot.png"
+    r = run_chromium("--window-size=1280,4000", "--hide-scrollbars", f"--screenshot={shot}", page)
+    assert shot.exists(), r.stderr[-2000:]
+    from matplotlib.image import imread
+    img = imread(str(shot))[..., :3]
+    assert img.shape[0] >= 1000 and img.shape[1] >= 1000
+    nonwhite = (img < 0.9).any(axis=2).mean()
+    assert nonwhite > 0.05 and float(np.std(img)) > 0.05  # text, tables and figures, not a blank page
+    dom = run_chromium("--virtual-time-budget=10000", "--dump-dom", page).stdout
+    body = re.search(r"<body[^>]*>", dom).group(0)
+    expected = int(re.search(r'data-figures-expected="(\d+)"', body).group(1))
+    loaded = int(re.search(r'data-figures-loaded="(\d+)"', body).group(1))
+    assert expected == len(man["figures"]) and loaded == expected
+    for name in man["figures"]:
+        assert f'id="fig-{name}"' in dom
