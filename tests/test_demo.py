@@ -1,0 +1,66 @@
+"""attnsim demo: every bundled trace on every bundled datapath, a table and a report.
+
+Checks the demo's own promises: it picks the captured traces when they are
+bundled, every (datapath, trace) pair ran, the terminal table and the report
+show the same runs, and the report folder is complete.
+"""
+
+import glob
+import json
+import os
+
+import pytest
+
+from sim import demo
+from sim.cli import build_parser
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory):
+    out = str(tmp_path_factory.mktemp("demo") / "demo")
+    lines = []
+    runs, failed, out_dir, secs = demo.run_demo(out_dir=out, echo=lines.append)
+    return runs, failed, out_dir, lines
+
+
+def test_every_pair_ran(demo_run):
+    runs, failed, _out, lines = demo_run
+    assert failed == []
+    kind, traces = demo.pick_traces(demo.repo_root())
+    if glob.glob(os.path.join(demo.repo_root(), "traces", "captured_*.npz")):
+        assert kind == "captured"
+    pairs = {(r.doc["arch"]["name"], r.doc["trace"]["name"]) for r in runs}
+    assert pairs == {(c, t) for c in demo.CONFIGS for t, _p in traces}
+    assert f"{len(pairs)} runs" in lines[0]
+
+
+def test_terminal_table_matches_runs(demo_run):
+    runs, _f, _o, _l = demo_run
+    table = demo.terminal_table(runs).splitlines()
+    body = [ln for ln in table[2:] if ln.strip()]
+    assert len(body) == len(runs)
+    for r in runs:
+        row = next(ln for ln in body if ln.split()[:2] == [r.trace_label, r.config_label])
+        assert f"{r.doc['cycles']:,}" in row.split()
+        assert f"{r.doc['seconds'] * 1e6:,.2f}" in row.split()
+
+
+def test_report_written_and_complete(demo_run):
+    runs, _f, out, _l = demo_run
+    man = json.load(open(os.path.join(out, "manifest.json")))
+    assert len(man["runs"]) == len(runs)
+    for rel in man["files"]:
+        assert os.path.getsize(os.path.join(out, rel)) > 0
+    assert {"stalls", "utilization", "roofline", "latency", "pareto", "bandwidth", "timeline"} <= set(man["figures"])
+    # a second demo overwrites its own output; a foreign folder is refused
+    foreign = os.path.join(os.path.dirname(out), "foreign")
+    os.makedirs(foreign)
+    open(os.path.join(foreign, "notes.txt"), "w").write("mine")
+    from sim.report.inputs import ReportError
+    with pytest.raises(ReportError):
+        demo.run_demo(out_dir=foreign, configs=("mid",), echo=lambda *_: None)
+
+
+def test_demo_takes_no_arguments():
+    args = build_parser().parse_args(["demo"])
+    assert args.handler.__name__ == "_cmd_demo"
