@@ -59,7 +59,7 @@ class PoolBackend:
             raise SweepError("--jobs", "jobs", jobs, "expected a whole number >= 1")
         self.jobs = jobs
         self.slots = 2 * jobs
-        self._pool = cf.ProcessPoolExecutor(max_workers=jobs)
+        self._pool = self._new_pool()
         self._futures = {}
 
     def submit(self, task):
@@ -72,7 +72,10 @@ class PoolBackend:
 
     def _renew(self):
         self._pool.shutdown(wait=False, cancel_futures=True)
-        self._pool = cf.ProcessPoolExecutor(max_workers=self.jobs)
+        self._pool = self._new_pool()
+
+    def _new_pool(self):
+        return cf.ProcessPoolExecutor(max_workers=self.jobs, initializer=_one_thread_each)
 
     def wait(self):
         done, _ = cf.wait(list(self._futures), return_when=cf.FIRST_COMPLETED)
@@ -100,6 +103,18 @@ class PoolBackend:
 
     def close(self):
         self._pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _one_thread_each():
+    """Pool workers use one BLAS/OpenMP thread each: N processes already fill N cores,
+    and nested threads only contend (Dask's nanny does the same for its workers)."""
+    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ[var] = "1"
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        return
+    threadpool_limits(limits=1)
 
 
 class DaskBackend:
