@@ -31,7 +31,7 @@ from .buffers import Buffer
 from .dram import ChannelPool
 from .fetch import fetch_process
 from .stats import UnitState
-from .tiling import check_fits, plan_step
+from .tiling import check_fits, plan_step, pv_macs
 from .txn import Txn
 
 
@@ -129,8 +129,8 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
                 chunks = resident_v[gi]
             else:
                 chunks = chunk_txns(bp.v_chunks, "V", buffers["value"], waits, head, bp.block)
-            for i, ch in enumerate(chunks):
-                macs = bp.rows * ch.rows * d
+            plan_chunks = gp.v_chunks if gp.v_resident else bp.v_chunks
+            for i, (ch, macs) in enumerate(zip(chunks, pv_macs(gp, plan_chunks, bp.rows, d))):
                 op = dotmod.DotOp("pv", s, head, bp.block, macs, d)
                 if i == 0:
                     op.waits.append((final_sm.done, "softmax"))

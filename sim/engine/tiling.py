@@ -21,8 +21,13 @@ Per step:
 * a query block with rows flagged for the least-significant key plane
   (progressive quantization) fetches that plane's chunks (plus the MSB chunks
   again when K was not resident) and recomputes those rows' scores;
-* V rows are the ones value pruning kept: ``kept_v_idx`` when the trace gives
-  them, else ``kept_v`` positions spread evenly over the kept key rows.
+* value pruning is a decode technique here: in a decode step the selector
+  picks each head's kept V rows after softmax and only those are fetched
+  (``kept_v_idx`` when the trace gives them, else ``kept_v`` positions spread
+  evenly over the kept key rows). In a prefill step every query row keeps its
+  own values, so the union is fetched (all kept key rows) and ``kept_v`` only
+  sets the p.V work the array does -- it skips the pruned products, and no
+  top-k runs per row.
 
 Re-streaming is why buffer size changes DRAM traffic; the result reports the
 bytes fetched against the compulsory bytes (every row once).
@@ -71,7 +76,7 @@ class BlockPlan:
 class GroupPlan:
     """All query blocks of a group of heads, with its resident chunks."""
 
-    __slots__ = ("heads", "n_kv", "v_positions", "k_resident", "v_resident", "k_chunks",
+    __slots__ = ("heads", "n_kv", "v_positions", "v_work", "select", "k_resident", "v_resident", "k_chunks",
                  "v_chunks", "blocks", "k_bytes", "v_bytes", "lsb_bytes")
 
     def __init__(self, heads):
@@ -79,14 +84,20 @@ class GroupPlan:
         self.blocks = []
         self.k_chunks = []        # resident K chunks (fetched once for the group)
         self.v_chunks = []
-        self.v_positions = {}     # head -> kept V positions
+        self.v_positions = {}     # head -> V positions fetched
+        self.v_work = {}          # head -> V rows each query row multiplies (p.V work)
+        self.select = False       # decode value pruning: a top-k picks the V rows
 
     def n_v(self, head):
-        return len(self.v_positions[head])
+        """V rows one query row of ``head`` multiplies."""
+        return self.v_work[head]
 
     @property
     def value_pruned_heads(self):
-        return [h for h in self.heads if len(self.v_positions[h]) < self.n_kv]
+        """Heads whose kept V rows a top-k selects (decode value pruning)."""
+        if not self.select:
+            return []
+        return [h for h in self.heads if self.v_work[h] < self.n_kv]
 
 
 def check_fits(arch, head_dim, source):
@@ -184,8 +195,10 @@ def plan_step(arch, amap, step, grain_rows):
         idx = list(range(start, min(start + g, len(heads))))
         gp = GroupPlan([heads[j] for j in idx])
         gp.n_kv = step.n_kept_k
+        gp.select = step.stage == "decode"
         for j in idx:
-            gp.v_positions[heads[j]] = value_positions(step, j)
+            gp.v_positions[heads[j]] = value_positions(step, j) if gp.select else kept
+            gp.v_work[heads[j]] = int(step.kept_v[j])
         gp.k_bytes = sum(_bytes(amap, layer, "K", h, kept) for h in gp.heads)
         gp.v_bytes = sum(_bytes(amap, layer, "V", h, gp.v_positions[h]) for h in gp.heads)
         gp.lsb_bytes = {h: _bytes(amap, layer, "KL", h, kept) for h in gp.heads} if lsb_plane else {}
@@ -229,6 +242,23 @@ def plan_step(arch, amap, step, grain_rows):
             gp.blocks.append(bp)
         groups.append(gp)
     return groups
+
+
+def pv_macs(gp, chunks, rows, head_dim):
+    """p.V MACs of each V chunk: the head's work spread over its fetched rows, exact in total."""
+    fetched = {h: len(gp.v_positions[h]) for h in gp.heads}
+    seen = dict.fromkeys(gp.heads, 0)
+    out = []
+    for c in chunks:
+        m = 0
+        for h, p in c.segments:
+            a = seen[h]
+            b = a + len(p)
+            w, n = gp.v_work[h], fetched[h]
+            m += (w * b // n - w * a // n) if n else 0
+            seen[h] = b
+        out.append(m * rows * head_dim)
+    return out
 
 
 def chunk_bytes(amap, layer, chunk):
