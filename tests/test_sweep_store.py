@@ -197,3 +197,37 @@ def test_killed_local_sweep_keeps_every_point_and_rerun_finishes_exactly_once(tm
     # and a pooled rerun after that has nothing left to do
     again = run_sweep(spec, out, jobs=2, quiet=True)
     assert again.executed == 0 and again.reused == 24
+
+
+class _Tty:
+    def __init__(self):
+        self.text = ""
+
+    def isatty(self):
+        return True
+
+    def write(self, s):
+        self.text += s
+
+    def flush(self):
+        pass
+
+
+def test_progress_on_a_terminal_and_quiet_otherwise(tmp_path, traces, capsys):
+    """Common practice, no source: a progress line belongs on a terminal only."""
+    spec = spec_file(tmp_path, traces["small"], axes={"buffers.value_kib": [1, 32, 64]})
+    tty = _Tty()
+    run_sweep(spec, str(tmp_path / "a"), jobs=1, stream=tty)
+    assert "3/3 points" in tty.text and "1 failed" in tty.text and "ETA" in tty.text
+    assert tty.text.endswith("\n")
+    quiet = _Tty()
+    run_sweep(spec, str(tmp_path / "b"), jobs=1, stream=quiet, quiet=True)
+    assert quiet.text == ""
+    assert main_quiet(spec, str(tmp_path / "c"), capsys) == ""
+
+
+def main_quiet(spec, out, capsys):
+    from sim.cli import main
+
+    assert main(["sweep", spec, "--out", out, "--jobs", "1"]) == 0
+    return capsys.readouterr().err    # stderr is not a terminal under pytest
