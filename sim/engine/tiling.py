@@ -123,11 +123,15 @@ def query_block_rows(arch, head_dim, q_rows):
     return max(1, min(q_rows, per_block))
 
 
+def _half(arch, plane):
+    """Half of the buffer a plane streams through, in bytes (double buffering)."""
+    return (arch.buffers.value_kib if plane == "V" else arch.buffers.key_kib) * 1024 / 2
+
+
 def _room_rows(arch, plane, head_dim):
-    """Rows of ``plane`` whose burst-rounded size fits half its buffer."""
-    cap = (arch.buffers.value_kib if plane == "V" else arch.buffers.key_kib) * 1024
+    """Contiguous rows of ``plane`` whose burst-rounded size fits half its buffer."""
     # a run of rows may straddle a burst at each end
-    return int((cap / 2 - 2 * arch.dram.burst_bytes) // row_bytes(arch, plane, head_dim))
+    return int((_half(arch, plane) - 2 * arch.dram.burst_bytes) // row_bytes(arch, plane, head_dim))
 
 
 def chunk_rows(arch, plane, head_dim, grain_rows):
@@ -146,24 +150,60 @@ def value_positions(step, j):
     return k[pick]
 
 
-def group_size(arch, step, grain_rows, nqb):
-    """Heads per group: several only when one query block covers a head."""
+def group_size(arch, amap, step, grain_rows, nqb, v_positions):
+    """Heads per group: several only when one query block covers a head.
+
+    A group's K (and its LSB plane, and its V) moves as one transaction, so the
+    group is as many heads as fit ``grain_rows`` rows and half of each buffer,
+    counting whole bursts (scattered rows cost more than their bytes).
+    """
     if nqb > 1:
         return 1
     d = step.head_dim
     n = step.n_kept_k
-    room = min(_room_rows(arch, "K", d), _room_rows(arch, "V", d))
+    layer, h0 = step.layer, int(step.heads[0])
+    half_k, half_v = _half(arch, "K"), _half(arch, "V")
+    per_k = _bytes(amap, layer, "K", h0, step.kept_k)
     if arch.precision.k_lsb_bits:
-        room = min(room, _room_rows(arch, "KL", d))
-    q_room = int(arch.buffers.query_kib * 1024 / 2 // (row_bytes(arch, "Q", d) * step.q_rows + 2 * arch.dram.burst_bytes))
-    return max(1, min(step.n_heads, grain_rows // n, room // n, q_room))
+        per_k = max(per_k, _bytes(amap, layer, "KL", h0, step.kept_k))
+    per_v = max(_bytes(amap, layer, "V", h0, p) for p in v_positions)
+    q_room = int(arch.buffers.query_kib * 1024 / 2
+                 // (row_bytes(arch, "Q", d) * step.q_rows + 2 * arch.dram.burst_bytes))
+    return max(1, min(step.n_heads, grain_rows // n, int(half_k // per_k), int(half_v // per_v), q_room))
 
 
-def _split(plane, head, positions, rows_per_chunk):
-    if len(positions) <= rows_per_chunk:
-        return [Chunk(plane, [(head, positions)])]
-    return [Chunk(plane, [(head, positions[i:i + rows_per_chunk])])
-            for i in range(0, len(positions), rows_per_chunk)]
+def _split(amap, layer, planes, head, positions, max_rows, max_bytes):
+    """Cut ``positions`` into chunks of at most ``max_rows`` rows and ``max_bytes`` bytes.
+
+    Bytes are counted in whole bursts of the widest of ``planes`` (all planes
+    get the same cut, so an LSB chunk pairs with its MSB chunk). A chunk's
+    first row pays its full span; each next row only the bursts it adds.
+    """
+    plane = max(planes, key=lambda p: amap.row_bytes[p])
+    n = len(positions)
+    burst = amap.burst
+    if n <= max_rows and _bytes(amap, layer, plane, head, positions) <= max_bytes:
+        return [[Chunk(p, [(head, positions)]) for p in planes]]
+    row_bits = int(round(amap.row_bytes[plane] * 8))
+    bb = burst * 8
+    start = amap.base(layer, plane, head) * 8 + np.asarray(positions, dtype=np.int64) * row_bits
+    first = start // bb
+    last = (start + row_bits - 1) // bb
+    full = last - first + 1
+    new = full.copy()
+    new[1:] = np.maximum(last[1:] - np.maximum(first[1:], last[:-1] + 1) + 1, 0)
+    cum = np.cumsum(new)
+    limit = max(1, int(max_bytes // burst))
+    out = []
+    i = 0
+    while i < n:
+        # largest j with full[i] + cum[j] - cum[i] <= limit, at most max_rows rows
+        j = int(np.searchsorted(cum, limit - full[i] + cum[i], side="right")) - 1
+        j = max(i, min(j, i + max_rows - 1, n - 1))
+        part = positions[i:j + 1]
+        out.append([Chunk(p, [(head, part)]) for p in planes])
+        i = j + 1
+    return out
 
 
 def _bytes(amap, layer, plane, head, positions):
@@ -188,16 +228,19 @@ def plan_step(arch, amap, step, grain_rows):
     vcap = arch.buffers.value_kib * 1024
     layer = step.layer
     heads = step.heads.tolist()
-    g = group_size(arch, step, grain_rows, nqb)
     kept = step.kept_k
+    select = step.stage == "decode"
+    v_all = [value_positions(step, j) if select else kept for j in range(len(heads))]
+    g = group_size(arch, amap, step, grain_rows, nqb, v_all)
+    half_k, half_v = _half(arch, "K"), _half(arch, "V")
     groups = []
     for start in range(0, len(heads), g):
         idx = list(range(start, min(start + g, len(heads))))
         gp = GroupPlan([heads[j] for j in idx])
         gp.n_kv = step.n_kept_k
-        gp.select = step.stage == "decode"
+        gp.select = select
         for j in idx:
-            gp.v_positions[heads[j]] = value_positions(step, j) if gp.select else kept
+            gp.v_positions[heads[j]] = v_all[j]
             gp.v_work[heads[j]] = int(step.kept_v[j])
         gp.k_bytes = sum(_bytes(amap, layer, "K", h, kept) for h in gp.heads)
         gp.v_bytes = sum(_bytes(amap, layer, "V", h, gp.v_positions[h]) for h in gp.heads)
@@ -211,8 +254,8 @@ def plan_step(arch, amap, step, grain_rows):
             v_chunks = [Chunk("V", [(h, gp.v_positions[h]) for h in gp.heads])]
         else:
             h = gp.heads[0]
-            k_chunks = _split("K", h, kept, kc)
-            v_chunks = _split("V", h, gp.v_positions[h], vc)
+            k_chunks = [c[0] for c in _split(amap, layer, ("K",), h, kept, kc, half_k)]
+            v_chunks = [c[0] for c in _split(amap, layer, ("V",), h, gp.v_positions[h], vc, half_v)]
         if gp.k_resident:
             gp.k_chunks = k_chunks
         if gp.v_resident:
@@ -236,9 +279,10 @@ def plan_step(arch, amap, step, grain_rows):
                         bp.lsb_msb_chunks = [Chunk("K", [(h, kept) for h in bp.lsb])]
                 else:
                     h = gp.heads[0]
-                    bp.lsb_chunks = _split("KL", h, kept, klc)
+                    pairs = _split(amap, layer, ("KL", "K"), h, kept, klc, half_k)
+                    bp.lsb_chunks = [c[0] for c in pairs]
                     if not gp.k_resident:
-                        bp.lsb_msb_chunks = _split("K", h, kept, klc)
+                        bp.lsb_msb_chunks = [c[1] for c in pairs]
             gp.blocks.append(bp)
         groups.append(gp)
     return groups
