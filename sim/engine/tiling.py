@@ -184,6 +184,10 @@ def _split(amap, layer, planes, head, positions, max_rows, max_bytes):
     burst = amap.burst
     if n <= max_rows and _bytes(amap, layer, plane, head, positions) <= max_bytes:
         return [[Chunk(p, [(head, positions)]) for p in planes]]
+    if int(positions[-1]) - int(positions[0]) + 1 == n:
+        # contiguous rows: a run of r rows spans at most r * row_bytes + 2 bursts
+        rows = max(1, min(max_rows, int((max_bytes - 2 * burst) // amap.row_bytes[plane])))
+        return [[Chunk(p, [(head, positions[i:i + rows])]) for p in planes] for i in range(0, n, rows)]
     row_bits = int(round(amap.row_bytes[plane] * 8))
     bb = burst * 8
     start = amap.base(layer, plane, head) * 8 + np.asarray(positions, dtype=np.int64) * row_bits
