@@ -13,8 +13,19 @@ spaced by one burst time on the data bus, or by tCCD_L when back to back in
 the same bank group; data arrives tCL after the column command. All-bank
 refresh blocks a channel for tRFC every tREFI and closes its rows (channels
 are staggered so the pool never refreshes all at once). The page policy keeps
-rows open, or closes a row once the reads queued for it are served. A
-channel's queue is served first come first served, or row hits first.
+rows open, or closes a row once the reads queued for it are served (a read
+queued before the precharge issues still finds the row open). A channel's
+queue holds ``dram.queue_depth`` requests, entered in order (see
+:class:`RequestSlots`), and is served first come first served, or row hits
+first.
+
+Transaction grain: cutting a stream into more transactions must not change
+the answer, so nothing here depends on how bursts are grouped, only on their
+order: queue room is counted by request position, spacing across share
+boundaries is the same as inside a share, and under row hits first a held
+share keeps the time it arrived (the controller could open its row from then;
+only the order is decided later). Row hits first itself reorders whole
+shares, so a finer grain gives it more to reorder.
 
 ``fixed-latency`` is the first, simple model: one pipelined bus per channel,
 a fixed ``dram.latency_ns`` per access, no banks.
@@ -41,6 +52,7 @@ no command-bus contention; refresh is taken on schedule (never postponed) and
 does not wait for tRAS of open rows.
 """
 
+from bisect import bisect_left
 from collections import deque
 
 import numpy as np
@@ -68,36 +80,53 @@ def channel_of(bursts, arch):
 
 
 class RequestSlots:
-    """Requests a channel holds queued or in service, as ``(done, amount)`` pairs.
+    """The requests of one channel's queue, in the order they entered it.
 
     Amounts are in requests of ``fetch.request_bytes`` and may be fractional:
-    a share smaller than a request holds part of one, so the engine's
-    transaction grain does not change how full the queue looks.
+    a share smaller than a request holds part of one. Requests enter in order,
+    each once the request ``depth`` places ahead of it has completed, so a
+    share may start as soon as its first request fits; the rest of it follows
+    as the requests ahead complete. A share's requests complete one after
+    another while its data streams out, linearly from ``first`` (first data)
+    to ``done`` (last data). Counting by position, not by share, is what makes
+    the wait independent of how a stream is cut into shares.
     """
 
-    __slots__ = ("items", "total")
+    __slots__ = ("beg", "end", "first", "done", "head", "total")
 
     def __init__(self):
-        self.items = deque()
-        self.total = 0.0
+        self.beg = []       # requests entered before each share
+        self.end = []       # ... and up to and including it
+        self.first = []
+        self.done = []
+        self.head = 0       # shares before this are complete for every later query
+        self.total = 0.0    # requests entered so far
 
     def room_at(self, now, need, depth):
-        """Earliest time from ``now`` at which ``need`` more requests fit in ``depth``."""
-        items = self.items
-        while items and items[0][0] <= now:
-            self.total -= items.popleft()[1]
-        if self.total + need <= depth + 1e-9 or not items:
+        """Earliest time from ``now`` at which ``need`` more requests (one at most) fit."""
+        level = self.total + min(need, 1.0) - depth   # completions needed first
+        if level <= 1e-9:
             return now
-        left = self.total
-        for done, amount in items:
-            left -= amount
-            if left + need <= depth + 1e-9:
-                return done
-        return items[-1][0]   # larger than the whole queue: wait until it has drained
+        end = self.end
+        i = bisect_left(end, level - 1e-9, self.head)
+        if i >= len(end):
+            return now
+        if i > 4096:        # levels only grow: drop what no later query can reach
+            for a in (self.beg, end, self.first, self.done):
+                del a[:i]
+            i = 0
+        self.head = i
+        lo, hi = self.beg[i], end[i]
+        f, d = self.first[i], self.done[i]
+        t = f + (level - lo) / (hi - lo) * (d - f) if hi > lo else d
+        return t if t > now else now
 
-    def add(self, done, amount):
-        self.items.append((done, amount))
+    def add(self, first, done, amount):
+        self.beg.append(self.total)
         self.total += amount
+        self.end.append(self.total)
+        self.first.append(first)
+        self.done.append(done)
 
 
 class Timing:
@@ -130,6 +159,9 @@ class BankState:
         self.act = np.full(n, -np.inf)                   # last activate
         self.last_col = np.full(n, -np.inf)              # last column command
         self.pre_ready = np.zeros(n)                     # closed bank may activate from here
+        # close page: when the open row's precharge issues; a read queued before then is
+        # still served from the open row (the controller saw it waiting). Open page: never.
+        self.close_at = np.full(n, np.inf)
 
 
 def column_times(gb, row, group, seg_len, t0, base_col, base_group, st, tm):
@@ -165,8 +197,8 @@ def column_times(gb, row, group, seg_len, t0, base_col, base_group, st, tm):
     ht0 = t0 if np.isscalar(t0) else t0[order[hpos]]
     fob = newbank[hpos]                            # first run of its bank in the batch
     orow = st.open_row[hb]
-    hit = fob & (orow == rs[hpos])
-    closed = orow < 0
+    closed = (orow < 0) | (st.close_at[hb] <= ht0)
+    hit = fob & ~closed & (orow == rs[hpos])
     s_act = st.act[hb]
     # from the bank state (exact for first runs, a lower bound for later runs of a bank)
     act = np.where(closed, np.maximum(st.pre_ready[hb], ht0),
@@ -308,7 +340,7 @@ class ChannelPool:
             self._busy(c, start, end)
             self.busy_cycles[c] += end - start
             done_c = end + self.t_lat
-            self.outstanding[c].add(done_c, nreq)
+            self.outstanding[c].add(start + self.t_lat, done_c, nreq)
             self.requests += nreq
             if start > t_start:
                 t_start = start
@@ -403,11 +435,14 @@ class ChannelPool:
         while window:
             pick = 0
             for k, sh in enumerate(window):
-                if st.open_row[sh[2][0]] == sh[3][0]:
+                g0 = sh[2][0]
+                if st.open_row[g0] == sh[3][0] and st.close_at[g0] > now:
                     pick = k
                     break
             rec, ch, gb, row = window.pop(pick)
-            self._commit(rec, ch, gb, row, now)
+            # the controller saw the share since it arrived and may have opened its row
+            # early: only the order is decided now (else a finer grain would lose that)
+            self._commit(rec, ch, gb, row, rec[0])
             if rec[1] == 0 and rec[5] is not None:
                 txn, ev = rec[5]
                 self._finish(txn, rec[0], rec[2], rec[3], rec[4], ev)
@@ -473,6 +508,8 @@ class ChannelPool:
         t = t0[ch]
         orow = st.open_row[g]
         s_act = st.act[g]
+        if orow >= 0 and st.close_at[g] <= t:
+            orow = -1     # close page: precharged before this read was queued
         if orow == r:
             kind, act = HIT, s_act
             ready = max(t, s_act + tm.rcd)
@@ -492,11 +529,10 @@ class ChannelPool:
             return False
         st.act[g] = act
         st.last_col[g] = c1
+        st.open_row[g] = r
         if self.close_page:
-            st.open_row[g] = -1
-            st.pre_ready[g] = max(c1 + tm.rtp, act + tm.ras) + tm.rp
-        else:
-            st.open_row[g] = r
+            st.close_at[g] = max(c1 + tm.rtp, act + tm.ras)
+            st.pre_ready[g] = st.close_at[g] + tm.rp
         self.kinds[kind] += 1
         self.kinds[HIT] += n - 1
         self.ch_col[ch] = c1
@@ -508,7 +544,7 @@ class ChannelPool:
         self.busy_cycles[ch] += n * tm.burst
         nreq = n / self.req_bursts
         self.requests += nreq
-        self.outstanding[ch].add(done, nreq)
+        self.outstanding[ch].add(first, done, nreq)
         iv = self.busy_intervals[ch]
         if step > tm.burst * (1 + 1e-9):  # same group back to back: the bus idles between bursts
             s_t = c0 + tm.cl + np.arange(n) * step
@@ -548,11 +584,11 @@ class ChannelPool:
         lc = c[order[lp]]
         st.act[lg] = act
         st.last_col[lg] = lc
+        st.open_row[lg] = sol["rs"][lp]
         if self.close_page:
-            st.open_row[lg] = -1
-            st.pre_ready[lg] = np.maximum(lc + tm.rtp, act + tm.ras) + tm.rp
-        else:
-            st.open_row[lg] = sol["rs"][lp]
+            shut = np.maximum(lc + tm.rtp, act + tm.ras)
+            st.close_at[lg] = shut
+            st.pre_ready[lg] = shut + tm.rp
         kind = sol["kind"]
         self.kinds += np.bincount(kind, minlength=3)
         self.kinds[HIT] += n - len(kind)
@@ -586,7 +622,7 @@ class ChannelPool:
             m = lens_l[k]
             nreq = m / rq
             self.requests += nreq
-            self.outstanding[ch].add(done[k], nreq)
+            self.outstanding[ch].add(first[k], done[k], nreq)
             iv = self.busy_intervals[ch]
             lo, hi = cut[k], cut[k + 1]
             if iv and iv[-1][1] >= pairs[lo][0] - 1e-9:
