@@ -7,6 +7,7 @@ run (a three-stage pipeline of 64-key tiles), then two scaling checks:
 doubling the decode steps, and a tenfold clock change.
 
     python bench/replay.py [--arch arch_configs/mid.yaml] [--decode 128] [--repeat 3]
+                           [--dram-model banked|fixed-latency]
 """
 
 import argparse
@@ -68,15 +69,19 @@ def main():
     ap.add_argument("--arch", default=os.path.join(os.path.dirname(HERE), "arch_configs", "mid.yaml"))
     ap.add_argument("--decode", type=int, default=128)
     ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--dram-model", choices=["banked", "fixed-latency"], default=None,
+                    help="override dram.model of the config")
     args = ap.parse_args()
 
     arch = sim.load_arch(args.arch)
+    if args.dram_model:
+        arch = arch.with_overrides({"dram.model": args.dram_model})
     trace = synth_trace(prompt_tokens=512, decode_steps=args.decode, layers=12, heads=12, head_dim=64,
                         seed=1)
     rate = bare_simpy_rate()
     wall, doc = timed_replay(arch, trace, args.repeat)
     tiles = doc["fetch"]["transactions"]
-    print(f"config {arch.name}: 12 layers x 12 heads, 512-token prefill + {args.decode} decode steps, "
+    print(f"config {arch.name} (dram.model {arch.dram.model}): 12 layers x 12 heads, 512-token prefill + {args.decode} decode steps, "
           f"grain {doc['engine']['grain_rows']} rows")
     print(f"  wall seconds            {wall:8.3f}  (best of {args.repeat})")
     print(f"  fetch transactions      {tiles:8d}  -> {tiles / wall:,.0f} per second")

@@ -264,6 +264,120 @@ def column_times(gb, row, group, seg_len, t0, base_col, base_group, st, tm):
                "slot": slot, "act": act, "kind": kind}
 
 
+class ShareShape:
+    """What the timing of a batch of bursts needs that depends only on their addresses.
+
+    The batch is one transaction's bursts, sorted by channel (one *segment* per
+    channel). Built once per address pattern and cached: the same rows are read
+    at every decode step, and a pattern shifted by a whole stripe of the address
+    map (every bit below the row) has the same shape with rows moved by
+    ``shift``. Holds the bank/row runs, each burst's offset ``D`` from its
+    segment's first column command, and the few burst positions whose column
+    time the commit needs (segment ends, each bank's last burst, the burst before
+    a bank changes row, and where the data bus may break).
+
+    Why positions suffice: column times obey ``c[i] = max(c[i-1] + spacing[i],
+    ready[run of i])`` and are non-decreasing, so a run's ready time binds only
+    at its first burst; ``c[i] = D[i] + max(base, max over runs r starting at or
+    before i of ready[r] - D[first[r]])``, the same arithmetic as
+    :func:`column_times` restricted to run heads.
+    """
+
+    def __init__(self, ch, gb, row, n_chan, groups, tm):
+        n = len(gb)
+        self.ch, self.gb, self.row = ch, gb, row      # for the general path (refresh cuts)
+        self.n = n
+        if n_chan > 1:
+            cnt = np.bincount(ch, minlength=n_chan)
+            chans = np.flatnonzero(cnt)
+            lens = cnt[chans]
+        else:
+            chans = np.array([int(ch[0])])
+            lens = np.array([n])
+        S = len(chans)
+        self.chans, self.chans_l, self.lens, self.lens_l = chans, chans.tolist(), lens, lens.tolist()
+        ends = np.cumsum(lens)
+        begins = ends - lens
+        group = gb % groups
+        self.first_group = group[begins]
+        self.last_group = group[ends - 1]
+        if n == 1 or (gb[1:] >= gb[:-1]).all():
+            order = np.arange(n)
+        else:
+            order = np.argsort(gb, kind="stable")
+        sb = gb[order]
+        rs = row[order]
+        newbank = np.empty(n, dtype=bool)
+        newbank[0] = True
+        np.not_equal(sb[1:], sb[:-1], out=newbank[1:])
+        newrun = newbank.copy()
+        newrun[1:] |= rs[1:] != rs[:-1]
+        hpos = np.flatnonzero(newrun)
+        runid = np.cumsum(newrun) - 1
+        slot = np.empty(n, dtype=np.int64)
+        slot[order] = runid
+        self.nr = len(hpos)
+        self.hb = sb[hpos]
+        self.hrow = rs[hpos]
+        self.fob = newbank[hpos]
+        fp = order[hpos]                 # stable sort: a run's first burst in service order
+        segid = np.repeat(np.arange(S), lens)
+        self.rseg = segid[fp]
+        inside = np.flatnonzero(~self.fob)
+        self.inside = inside if len(inside) else None
+        self.prev_run = inside - 1
+        prev_last = order[hpos[inside] - 1]
+        lastbank = np.empty(n, dtype=bool)
+        lastbank[-1] = True
+        lastbank[:-1] = newbank[1:]
+        lp = np.flatnonzero(lastbank)
+        self.lg = sb[lp]
+        self.lrun = runid[lp]
+        self.lrow = rs[lp]
+        lpos = order[lp]
+        self.begin_run = slot[begins]
+        self.single_run = self.nr == 1
+        if tm.ccd_l > tm.burst:
+            same = np.zeros(n, dtype=bool)
+            same[1:] = group[1:] == group[:-1]
+            same[begins] = False
+            d = np.where(same, tm.ccd_l, tm.burst)
+            d[begins] = 0.0
+            cs = np.cumsum(d)
+            D = cs - np.repeat(cs[begins], lens)
+            ccd = np.flatnonzero(same)
+        else:
+            D = (np.arange(n) - np.repeat(begins, lens)) * tm.burst
+            ccd = np.zeros(0, dtype=np.int64)
+        self.step_same = None
+        rk = np.argsort(fp, kind="stable")
+        fps = fp[rk]
+        self.rk = rk
+        self.Dfp = D[fps]
+        sseg = self.rseg[rk]
+        self.seg_cuts = None if S == 1 else [0] + (np.flatnonzero(np.diff(sseg)) + 1).tolist() + [self.nr]
+        cand = np.unique(np.concatenate((begins, fps, ccd)))
+        self.cand_begin = np.searchsorted(cand, begins)
+        is_begin = np.zeros(len(cand), dtype=bool)
+        is_begin[self.cand_begin] = True
+        self.is_begin = is_begin
+        I, L, C = len(inside), len(lp), len(cand)
+        q = np.concatenate((begins, ends - 1, prev_last, lpos, cand, np.maximum(cand - 1, 0)))
+        self.o = (S, 2 * S, 2 * S + I, 2 * S + I + L, 2 * S + I + L + C)
+        self.Dq = D[q]
+        self.kq = np.searchsorted(fps, q, side="right") - 1
+        self.D = D
+        self.segid = segid
+        self.kpos = np.searchsorted(fps, np.arange(n), side="right") - 1
+        self.segq = segid[q]
+        # the solve runs on Python lists: a few dozen runs cost less than numpy calls
+        self.L = (self.fob.tolist(), self.hrow.tolist(), self.rseg.tolist(), rk.tolist(),
+                  self.Dfp.tolist(), self.Dq.tolist(), self.kq.tolist(), self.segq.tolist(),
+                  inside.tolist(), self.first_group.tolist(), self.is_begin.tolist(),
+                  self.cand_begin.tolist(), self.lrun.tolist(), self.begin_run.tolist(),
+                  [0] + (np.flatnonzero(np.diff(sseg)) + 1).tolist())
+
+
 class ChannelPool:
     """A pool of memory channels: banks, rows, refresh, queues and scheduling."""
 
@@ -302,6 +416,9 @@ class ChannelPool:
         self.rows_first = d.scheduler == "row_hits_first"
         self.first_free = d.steering == "first_free"
         self.decoder = BurstDecoder(arch)
+        self.shapes = {}
+        # a stripe: every address bit below the row; shifting by stripes only moves rows
+        self.stripe = (1 << self.decoder.low_bits) * self.burst if self.decoder.lut is not None else 0
         self.st = BankState(self.n, self.banks)
         self.ch_col = np.full(self.n, -np.inf)
         self.ch_group = np.full(self.n, -1, dtype=np.int64)
@@ -366,17 +483,24 @@ class ChannelPool:
         b = txn.bursts
         if len(b) == 0:
             return self._finish(txn, now, now, now, now, None)
-        if self.first_free:
+        shape = None
+        if not (self.first_free or self.rows_first):
+            shape, shift = self._shape_of(b)
+        elif self.first_free:
             c = self._first_free_channel(now)
             _, bank, row = self.decoder.decode(b)
             gb = bank + c * self.banks
             ch = np.full(len(b), c, dtype=np.int64)
-        else:
+        if shape is None and not self.first_free:
             ch, gb, row = self.decoder.decode_global(b)
             if self.n > 1:
                 order = np.argsort(ch, kind="stable")
                 ch, gb, row = ch[order], gb[order], row[order]
         rec = [now, 0, now, now, now, None]   # arrival, shares left, start, first data, done, event
+        if shape is not None:
+            rec[1] = -1
+            self._commit_shape(rec, shape, shift, now)
+            return self._finish(txn, now, rec[2], rec[3], rec[4], None)
         if not self.rows_first:
             rec[1] = -1                        # committed in one go
             self._commit(rec, ch, gb, row, now)
@@ -401,6 +525,204 @@ class ChannelPool:
         ev = self.env.event()
         rec[5] = (txn, ev)
         return ev
+
+    def _shape_of(self, b):
+        """The cached :class:`ShareShape` of burst addresses ``b`` and its row shift."""
+        n = len(b)
+        b0 = int(b[0])
+        if self.stripe:
+            shift = b0 // self.stripe
+            base = shift * self.stripe
+        else:
+            shift = base = 0
+        if int(b[-1]) - b0 == (n - 1) * self.burst:     # sorted distinct: a contiguous run
+            key = (b0 - base, n)
+        else:
+            key = (b - base).tobytes() if base else b.tobytes()
+        shape = self.shapes.get(key)
+        if shape is None:
+            rel = b - base if base else b
+            ch, gb, row = self.decoder.decode_global(rel)
+            if self.n > 1:
+                order = np.argsort(ch, kind="stable")
+                ch, gb, row = ch[order], gb[order], row[order]
+            if len(self.shapes) >= 20000:   # bound memory on long runs with ever-new patterns
+                self.shapes.clear()
+            shape = self.shapes[key] = ShareShape(ch, gb, row, self.n, self.groups, self.tm)
+        return shape, shift
+
+    def _commit_shape(self, rec, sh, shift, now):
+        """First come first served commit of a whole transaction from its shape."""
+        t0s = []
+        rq = self.req_bursts
+        for k, c in enumerate(sh.chans_l):
+            t = now
+            room_at = self.outstanding[c].room_at(now, sh.lens_l[k] / rq, self.depth)
+            if room_at > t:
+                t = room_at
+            if self.ref_next[c] <= t:
+                self._refresh(c, t)
+            t0s.append(t)
+        rec[2] = rec[3] = rec[4] = -np.inf
+        slots = {}
+        if sh.single_run:
+            c = sh.chans_l[0]
+            if self._place_run(rec, c, int(sh.hb[0]), int(sh.hrow[0]) + shift, sh.n, {c: t0s[0]}, slots):
+                return
+        else:
+            got = self._solve_shape(rec, sh, shift, t0s, slots)
+            if got is True:
+                return
+            if got is not None:     # a refresh cuts the batch: column times of every burst
+                cm, base = got
+                c = sh.D + np.maximum(np.array(base)[sh.segid], np.array(cm)[sh.kpos])
+                row = sh.row + shift if shift else sh.row
+                self._cut(rec, sh.ch, sh.gb, row, c, c >= self.ref_next[sh.ch],
+                          dict(zip(sh.chans_l, t0s)), slots)
+                return
+        # the general path
+        row = sh.row + shift if shift else sh.row
+        self._place(rec, sh.ch, sh.gb, row, dict(zip(sh.chans_l, t0s)), slots)
+
+    def _solve_shape(self, rec, sh, shift, t0s, slots):
+        """Column times from the shape and the bank state; commit unless a refresh cuts it.
+
+        The arithmetic of :func:`column_times` on run heads and the shape's query
+        positions, in plain Python (the same IEEE operations, so the same numbers).
+        """
+        st, tm = self.st, self.tm
+        (fob, hrow, rseg, rk, Dfp, Dq, kq, segq, inside, fgroup, is_begin, cand_begin, lrun,
+         begin_run, seg_starts) = sh.L
+        chans = sh.chans_l
+        hb = sh.hb
+        orow = st.open_row[hb].tolist()
+        cat = st.close_at[hb].tolist()
+        sact = st.act[hb].tolist()
+        lcol = st.last_col[hb].tolist()
+        prer = st.pre_ready[hb].tolist()
+        rtp, ras, rp, rcd = tm.rtp, tm.ras, tm.rp, tm.rcd
+        nr = sh.nr
+        act = [0.0] * nr
+        ready = [0.0] * nr
+        kind = [0] * nr
+        one_t0 = len(t0s) == 1 or min(t0s) == max(t0s)
+        t_all = t0s[0]
+        for r in range(nr):
+            t = t_all if one_t0 else t0s[rseg[r]]
+            o_r = orow[r]
+            closed = o_r < 0 or cat[r] <= t
+            if fob[r] and not closed and o_r == hrow[r] + shift:
+                kind[r] = HIT
+                a = sact[r]
+                rd = a + rcd
+            else:
+                if closed:
+                    a = prer[r] if prer[r] > t else t
+                    kind[r] = MISS if fob[r] else CONFLICT
+                else:
+                    a = lcol[r] + rtp
+                    b = sact[r] + ras
+                    if b > a:
+                        a = b
+                    if t > a:
+                        a = t
+                    a += rp
+                    kind[r] = CONFLICT
+                rd = a + rcd
+            act[r] = a
+            ready[r] = rd if rd > t else t
+        cc_l, cg_l = self.ch_col, self.ch_group
+        base = [float(cc_l[c]) + (tm.ccd_l if fgroup[k] == cg_l[c] else tm.burst)
+                for k, c in enumerate(chans)]
+        S, o1, o2, o3, o4 = sh.o
+        nseg = len(chans)
+        cm = [0.0] * nr
+        for _ in range(nr + 2):
+            m = -np.inf
+            k = 1
+            nxt = seg_starts[1] if nseg > 1 else nr
+            for j in range(nr):
+                if j == nxt:
+                    m = -np.inf
+                    k += 1
+                    nxt = seg_starts[k] if k < nseg else nr
+                w = ready[rk[j]] - Dfp[j]
+                if w > m:
+                    m = w
+                cm[j] = m
+            cq = []
+            for q in range(len(Dq)):
+                v = cm[kq[q]]
+                bq = base[segq[q]]
+                cq.append(Dq[q] + (bq if bq > v else v))
+            if not inside:
+                break
+            moved = False
+            for i, r in enumerate(inside):
+                pre = cq[o1 + i] + rtp
+                b = act[r - 1] + ras
+                if b > pre:
+                    pre = b
+                t = t_all if one_t0 else t0s[rseg[r]]
+                a = (pre if pre > t else t) + rp
+                if a != act[r]:
+                    act[r] = a
+                    ready[r] = a + rcd
+                    moved = True
+            if not moved:
+                break
+        else:
+            raise AssertionError("column-time passes did not converge")
+        c_last = cq[S:o1]
+        ref = self.ref_next
+        for k, c in enumerate(chans):
+            if c_last[k] >= ref[c]:
+                return cm, base
+        c_first = cq[:S]
+        lg = sh.lg
+        la = [act[r] for r in lrun]
+        lc = cq[o2:o3]
+        st.act[lg] = la
+        st.last_col[lg] = lc
+        st.open_row[lg] = sh.lrow + shift if shift else sh.lrow
+        if self.close_page:
+            shut = np.maximum(np.array(lc) + rtp, np.array(la) + ras)
+            st.close_at[lg] = shut
+            st.pre_ready[lg] = shut + rp
+        kinds = self.kinds
+        for x in kind:
+            kinds[x] += 1
+        kinds[HIT] += sh.n - nr
+        self.ch_col[sh.chans] = c_last
+        self.ch_group[sh.chans] = sh.last_group
+        prep = self._prep
+        tail = tm.cl + tm.ctrl
+        burst = tm.burst
+        start, first, done = [], [], []
+        for k in range(S):
+            p = c_first[k] - prep[kind[begin_run[k]]]
+            start.append(p if p > t0s[k] else t0s[k])
+            first.append(c_first[k] + tail)
+            done.append(c_last[k] + (burst + tail))
+        self.busy_cycles[sh.chans] += sh.lens * burst
+        cl = tm.cl
+        lim = burst * (1 + 1e-9)
+        pairs = []
+        nb = 0
+        seg_at = []
+        cc = cq[o3:o4]
+        cm1 = cq[o4:]
+        for j in range(len(cc)):
+            if is_begin[j] or cc[j] - cm1[j] > lim:
+                if pairs:
+                    pairs[-1][1] = cm1[j] + (cl + burst)
+                pairs.append([cc[j] + cl, 0.0])
+                nb += 1
+            if is_begin[j]:
+                seg_at.append(nb - 1)
+        pairs[-1][1] = c_last[-1] + (cl + burst)
+        self._record(rec, chans, sh.lens_l, start, first, done, pairs, seg_at + [len(pairs)], slots)
+        return True
 
     def _first_free_channel(self, now):
         ready = np.maximum(self.ch_col + self.tm.burst, now)
@@ -487,19 +809,24 @@ class ChannelPool:
                               self.st, tm)
         cross = c >= self.ref_next[ch]
         if cross.any():
-            keep = ~cross
-            if keep.any():
-                self._place(rec, ch[keep], gb[keep], row[keep], t0, slots)
-            late = ch[cross]
-            for k in np.flatnonzero(np.bincount(late, minlength=self.n)).tolist():
-                r = self.ref_next[k]
-                first_late = c[np.flatnonzero(cross & (ch == k))[0]]
-                self.refresh_delay += max(0.0, r + tm.rfc - first_late)
-                self._refresh(k, r)
-                t0[k] = max(t0[k], r + tm.rfc)
-            self._place(rec, late, gb[cross], row[cross], t0, slots)
+            self._cut(rec, ch, gb, row, c, cross, t0, slots)
             return
         self._apply(rec, c, sol, group, chans, lens, t0s, slots)
+
+    def _cut(self, rec, ch, gb, row, c, cross, t0, slots):
+        """Bursts from a refresh on (``cross``) wait for it; place the rest, refresh, then them."""
+        tm = self.tm
+        keep = ~cross
+        if keep.any():
+            self._place(rec, ch[keep], gb[keep], row[keep], t0, slots)
+        late = ch[cross]
+        for k in np.flatnonzero(np.bincount(late, minlength=self.n)).tolist():
+            r = self.ref_next[k]
+            first_late = c[np.flatnonzero(cross & (ch == k))[0]]
+            self.refresh_delay += max(0.0, r + tm.rfc - first_late)
+            self._refresh(k, r)
+            t0[k] = max(t0[k], r + tm.rfc)
+        self._place(rec, late, gb[cross], row[cross], t0, slots)
 
     def _place_run(self, rec, ch, g, r, n, t0, slots):
         """Scalar path for a batch that is one run (one bank, one row): the same
@@ -615,7 +942,10 @@ class ChannelPool:
         e_idx[-1] = n - 1
         pairs = np.column_stack((c[s_idx] + tm.cl, c[e_idx] + (tm.cl + tm.burst))).tolist()
         cut = np.searchsorted(s_idx, begins).tolist() + [len(pairs)]
-        lens_l = lens.tolist()
+        self._record(rec, chans, lens.tolist(), start, first, done, pairs, cut, slots)
+
+    def _record(self, rec, chans, lens_l, start, first, done, pairs, cut, slots):
+        """Book committed shares: queue slots, bus intervals, share records, the transaction's times."""
         rq = self.req_bursts
         r_arr = self.rec
         for k, ch in enumerate(chans):
