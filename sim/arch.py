@@ -119,6 +119,11 @@ SCHEMA = {
         "address_bits": Field("str", "auto", "address map, most significant first: comma-separated "
                               "row, bank, group, column, channel, each optionally :BITS; 'auto' "
                               "derives it from interleave_bytes"),
+        "layout": Field("choice", "head_regions", "where K/V rows live: head_regions (a region per "
+                        "layer, plane and head), head_planes (a head's Q, K, KL, V regions "
+                        "adjacent), heads_interleaved (all heads of a plane take turns every few "
+                        "rows, whole bursts each); see sim/engine/addrmap.py",
+                        choices=["head_regions", "head_planes", "heads_interleaved"]),
         "steering": Field("choice", "address", "address: bursts go to the channel their address "
                           "names; first_free: a whole transaction goes to the channel that frees "
                           "first (one shared queue, for queueing checks)",

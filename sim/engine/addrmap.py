@@ -1,8 +1,24 @@
 """Address map: where each Q, K, V row of each head lives in DRAM.
 
-Layout: one region per (layer, plane, head), plane in ``Q``, ``K`` (most
-significant key bits), ``KL`` (least significant key bits), ``V``; inside a
-region, row ``r`` starts at ``r * row_bytes``. Regions are aligned to 4 KiB.
+Planes are ``Q``, ``K`` (most significant key bits), ``KL`` (least
+significant key bits) and ``V``. ``dram.layout`` picks how they are laid out:
+
+``head_regions`` (default): one region per (layer, plane, head), in that
+order (all heads of one plane of a layer together); inside a region, row
+``r`` starts at ``r * row_bytes``.
+
+``head_planes``: one region per (layer, head, plane): the Q, K, KL and V
+regions of one head are adjacent.
+
+``heads_interleaved``: one region per (layer, plane) shared by all heads,
+which take turns every *granule*: the fewest rows that fill whole bursts
+(``lcm(row bits, burst bits)``), so no burst holds two heads' rows. Reading
+all heads' row ``r`` together is one sequential stream; reading one head
+alone skips the other heads' granules.
+
+Regions are aligned to 4 KiB. Every layout starts each head's rows on a burst
+boundary and keeps a granule's rows in order, so a set of rows costs the same
+bursts in every layout: the layout moves bytes, it never adds any.
 :meth:`AddressMap.bursts` turns a set of row positions into the distinct
 burst addresses that must be read: an isolated kept row still costs whole
 bursts, and adjacent kept rows share them (coalescing).
@@ -12,12 +28,15 @@ channel, bank, bank group and DRAM row the memory pool serves it from, by the
 bit slices of ``dram.address_bits`` (see :func:`sim.arch.address_slices`).
 """
 
+import math
+
 import numpy as np
 
 from ..arch import address_slices
 
 PLANES = ("Q", "K", "KL", "V")
 REGION_ALIGN = 4096
+LAYOUTS = ("head_regions", "head_planes", "heads_interleaved")
 
 
 def row_bytes(arch, plane, head_dim):
@@ -33,13 +52,35 @@ class AddressMap:
     def __init__(self, arch, layers, heads, max_rows, head_dim):
         self.burst = arch.dram.burst_bytes
         self.heads = heads
+        self.layout = arch.dram.layout
         self.row_bytes = {pl: row_bytes(arch, pl, head_dim) for pl in PLANES}
+        burst_bits = self.burst * 8
+        # granule: rows per turn of one head in heads_interleaved (whole bursts)
+        self.granule = {}
+        for pl, rb in self.row_bytes.items():
+            bits = int(round(rb * 8))
+            self.granule[pl] = math.lcm(bits, burst_bits) // bits if bits else 1
         biggest = max(self.row_bytes.values()) * max_rows
+        if self.layout == "heads_interleaved":
+            g = max(self.granule.values())
+            biggest = max(rb * (-(-max_rows // g) * g) for rb in self.row_bytes.values()) * heads
         self.region = int(-(-biggest // REGION_ALIGN) * REGION_ALIGN) or REGION_ALIGN
         self.layers = layers
+        # heads' bursts come out in head order when regions are (datapath concatenates them)
+        self.heads_in_order = self.layout != "heads_interleaved"
 
     def base(self, layer, plane, head):
-        return ((layer * len(PLANES) + PLANES.index(plane)) * self.heads + head) * self.region
+        """Burst-aligned byte address where ``head``'s rows of ``plane`` start counting from.
+
+        For ``heads_interleaved`` that is the shared region's start: a head's
+        rows there cost the same bursts as in a region of its own at that address.
+        """
+        p = PLANES.index(plane)
+        if self.layout == "head_regions":
+            return ((layer * len(PLANES) + p) * self.heads + head) * self.region
+        if self.layout == "head_planes":
+            return ((layer * self.heads + head) * len(PLANES) + p) * self.region
+        return (layer * len(PLANES) + p) * self.region
 
     def bursts(self, layer, plane, head, rows):
         """Sorted distinct burst addresses (bytes) covering ``rows`` of a plane."""
@@ -51,6 +92,9 @@ class AddressMap:
         burst_bits = self.burst * 8
         n = len(rows)
         r0 = int(rows[0])
+        if self.layout == "heads_interleaved":
+            return self._interleaved(layer, plane, head, np.asarray(rows, dtype=np.int64),
+                                     row_bits, burst_bits)
         if int(rows[-1]) - r0 + 1 == n:  # contiguous rows: one run of bursts
             s0 = self.base(layer, plane, head) * 8 + r0 * row_bits
             b0, b1 = s0 // burst_bits, (s0 + n * row_bits - 1) // burst_bits
@@ -70,6 +114,27 @@ class AddressMap:
         keep[0] = True
         np.not_equal(idx[1:], idx[:-1], out=keep[1:])
         return idx[keep] * self.burst
+
+    def _interleaved(self, layer, plane, head, rows, row_bits, burst_bits):
+        g = self.granule[plane]
+        g_bits = g * row_bits                  # whole bursts
+        g_bursts = g_bits // burst_bits
+        # a row's bursts relative to its granule, then the granule's place among the heads'
+        rel = (rows % g) * row_bits
+        first = rel // burst_bits
+        last = (rel + row_bits - 1) // burst_bits
+        span = last - first + 1
+        gran = (rows // g) * self.heads + head
+        if np.all(span == 1):
+            idx = gran * g_bursts + first
+        else:
+            total = int(span.sum())
+            offs = np.arange(total) - np.repeat(np.cumsum(span) - span, span)
+            idx = np.repeat(gran * g_bursts + first, span) + offs
+        keep = np.empty(len(idx), dtype=bool)
+        keep[0] = True
+        np.not_equal(idx[1:], idx[:-1], out=keep[1:])
+        return self.base(layer, plane, head) + idx[keep] * self.burst
 
     def burst_count(self, layer, plane, head, rows):
         """Number of distinct bursts covering ``rows`` (cheap for contiguous rows)."""

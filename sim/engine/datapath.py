@@ -341,7 +341,8 @@ class _amap_router:
             h, p = segs[0]
             return amap.bursts(txn.layer, txn.kind, h, p)
         # heads' regions are laid out in head order, so the concatenation stays sorted
-        return np.concatenate([amap.bursts(txn.layer, txn.kind, h, p) for h, p in segs])
+        out = np.concatenate([amap.bursts(txn.layer, txn.kind, h, p) for h, p in segs])
+        return out if amap.heads_in_order else np.unique(out)
 
 
 def ceil_cycles(t):
