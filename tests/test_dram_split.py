@@ -98,3 +98,17 @@ def test_request_slots_wait_by_position_not_by_share():
         assert q.room_at(70.0, 1.0, 4) == 70.0                  # already room
         assert q.room_at(0.0, 3.0, 4) == pytest.approx(60.0)    # a big share needs its first
     assert RequestSlots().room_at(5.0, 100.0, 4) == 5.0         # empty queue: now
+
+
+def test_row_hits_first_and_close_page_run_in_the_engine():
+    """The engine drops a transaction's burst list once submitted; a share held for a later
+    row-hits-first decision must still count its bytes (same bytes as first come first served)."""
+    from sim.trace.format import load_trace
+
+    tr = load_trace(os.path.join(ROOT, "traces", "demo_prefill.yaml"))
+    base = _arch("mid.yaml")
+    docs = {(s, p): sim.simulate(base.with_overrides({"dram.scheduler": s, "dram.page_policy": p}),
+                                 tr).to_dict()
+            for s in ("fcfs", "row_hits_first") for p in ("open", "close")}
+    assert len({d["dram"]["bytes"] for d in docs.values()}) == 1
+    assert all(d["cycles"] > 0 for d in docs.values())

@@ -523,7 +523,7 @@ class ChannelPool:
         if rec[1] == 0:
             return self._finish(txn, now, rec[2], rec[3], rec[4], None)
         ev = self.env.event()
-        rec[5] = (txn, ev)
+        rec[5] = (txn, ev, len(b))
         return ev
 
     def _shape_of(self, b):
@@ -766,8 +766,9 @@ class ChannelPool:
             # early: only the order is decided now (else a finer grain would lose that)
             self._commit(rec, ch, gb, row, rec[0])
             if rec[1] == 0 and rec[5] is not None:
-                txn, ev = rec[5]
-                self._finish(txn, rec[0], rec[2], rec[3], rec[4], ev)
+                txn, ev, nb = rec[5]
+                # the fetch unit may have dropped txn.bursts since it submitted
+                self._finish(txn, rec[0], rec[2], rec[3], rec[4], ev, nb)
         if rest:
             self.held[c] = rest
             self._arm(c)
@@ -991,14 +992,15 @@ class ChannelPool:
         self.ref_next[c] += k * tm.refi
 
     # ----------------------------------------------------------------- common
-    def _finish(self, txn, t_submit, t_start, t_first, t_done, ev):
+    def _finish(self, txn, t_submit, t_start, t_first, t_done, ev, nbursts=None):
         """Mark the transaction's log, count it, and fire (or return) its completion event."""
         env = self.env
         now = env.now
         t_start = max(t_start, t_submit)
         t_first = max(t_first, t_start)
         t_done = max(t_done, t_first)
-        nbursts = len(txn.bursts)
+        if nbursts is None:
+            nbursts = len(txn.bursts)
         self.bursts += nbursts
         self.bytes += nbursts * self.burst
         self.txns += 1
