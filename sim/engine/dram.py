@@ -641,20 +641,23 @@ class ChannelPool:
             m = -np.inf
             k = 1
             nxt = seg_starts[1] if nseg > 1 else nr
-            for j in range(nr):
+            j = 0
+            for rr, df in zip(map(ready.__getitem__, rk), Dfp):
                 if j == nxt:
                     m = -np.inf
                     k += 1
                     nxt = seg_starts[k] if k < nseg else nr
-                w = ready[rk[j]] - Dfp[j]
+                w = rr - df
                 if w > m:
                     m = w
                 cm[j] = m
-            cq = []
-            for q in range(len(Dq)):
-                v = cm[kq[q]]
-                bq = base[segq[q]]
-                cq.append(Dq[q] + (bq if bq > v else v))
+                j += 1
+            if nseg == 1:
+                b0 = base[0]
+                cq = [d + (b0 if b0 > v else v) for d, v in zip(Dq, map(cm.__getitem__, kq))]
+            else:
+                cq = [d + (b if b > v else v)
+                      for d, v, b in zip(Dq, map(cm.__getitem__, kq), map(base.__getitem__, segq))]
             if not inside:
                 break
             moved = False
