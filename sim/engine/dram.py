@@ -37,7 +37,12 @@ command times come from the recurrence
 with a segmented running maximum (see :func:`column_times`). Row-ready times
 depend on earlier column times of the same bank inside the share, so the
 solve is repeated until nothing moves; that takes one pass more than the
-largest number of row changes of one bank inside the share. Events: one per
+largest number of row changes of one bank inside the share. Under first come
+first served the same arithmetic runs on a cached :class:`ShareShape` (the
+address-only part, shared by every transaction with the same burst pattern up
+to a whole stripe of the map) over run heads only, in plain Python; the array
+path above remains for refresh cuts, row hits first and first_free steering,
+and gives the same numbers. Events: one per
 transaction (its completion), plus one per scheduling decision of a channel
 under ``row_hits_first`` -- never one per burst or per cycle.
 
