@@ -360,7 +360,7 @@ class ShareShape:
         self.rk = rk
         self.Dfp = D[fps]
         sseg = self.rseg[rk]
-        self.seg_cuts = None if S == 1 else [0] + (np.flatnonzero(np.diff(sseg)) + 1).tolist() + [self.nr]
+        seg_starts = [0] + (np.flatnonzero(sseg[1:] != sseg[:-1]) + 1).tolist() if S > 1 else [0]
         cand = np.unique(np.concatenate((begins, fps, ccd)))
         self.cand_begin = np.searchsorted(cand, begins)
         is_begin = np.zeros(len(cand), dtype=bool)
@@ -373,14 +373,19 @@ class ShareShape:
         self.kq = np.searchsorted(fps, q, side="right") - 1
         self.D = D
         self.segid = segid
-        self.kpos = np.searchsorted(fps, np.arange(n), side="right") - 1
+        self.fps = fps
         self.segq = segid[q]
         # the solve runs on Python lists: a few dozen runs cost less than numpy calls
         self.L = (self.fob.tolist(), self.hrow.tolist(), self.rseg.tolist(), rk.tolist(),
                   self.Dfp.tolist(), self.Dq.tolist(), self.kq.tolist(), self.segq.tolist(),
                   inside.tolist(), self.first_group.tolist(), self.is_begin.tolist(),
                   self.cand_begin.tolist(), self.lrun.tolist(), self.begin_run.tolist(),
-                  [0] + (np.flatnonzero(np.diff(sseg)) + 1).tolist())
+                  seg_starts)
+
+    @property
+    def kpos(self):
+        """Index (in first-burst order) of the last run starting at or before each burst."""
+        return np.searchsorted(self.fps, np.arange(self.n), side="right") - 1
 
 
 class ChannelPool:
