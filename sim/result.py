@@ -180,19 +180,26 @@ def build_result(arch, trace, prog, pool, states, buffers, fetch_stats, step_tim
 
 
 def _verdict(units, bounds, cycles):
-    """Which unit limits the run and what it waited on most, from the measurements."""
+    """Which unit limits the run and what held it back most, from the measurements.
+
+    ``largest_stall`` is the busiest unit's own largest stall (what to fix to
+    speed it up); ``worst_stall`` the largest stall of any unit.
+    """
     busiest = max(units, key=lambda k: units[k]["busy"])
+    own = units[busiest]["stalls"]
+    cause = max(own, key=own.get) if own else None
     worst_unit, worst_cause, worst = None, None, 0.0
     for name, u in units.items():
-        for cause, f in u["stalls"].items():
+        for c, f in u["stalls"].items():
             if f > worst:
-                worst_unit, worst_cause, worst = name, cause, f
+                worst_unit, worst_cause, worst = name, c, f
     return {
         "busiest_unit": busiest,
         "busiest_utilization": units[busiest]["busy"],
         "bound": bounds["bound"],
         "roofline_fraction": bounds["roofline_cycles"] / cycles if cycles else 0.0,
-        "largest_stall": {"unit": worst_unit, "cause": worst_cause, "fraction": worst},
+        "largest_stall": {"unit": busiest, "cause": cause, "fraction": own.get(cause, 0.0) if cause else 0.0},
+        "worst_stall": {"unit": worst_unit, "cause": worst_cause, "fraction": worst},
     }
 
 
@@ -220,7 +227,7 @@ def format_summary(result):
     v = d["verdict"]
     ls = v["largest_stall"]
     lines.append(f"  verdict: busiest unit {v['busiest_unit']} ({v['busiest_utilization']:.0%} busy); "
-                 + (f"largest stall: {ls['unit']} waiting on {ls['cause']} ({ls['fraction']:.0%} of the run)"
-                    if ls["unit"] else "no stalls"))
+                 + (f"its largest stall: {ls['cause']} ({ls['fraction']:.0%} of the run)"
+                    if ls["cause"] else "it never stalls"))
     return "\n".join(lines)
 
