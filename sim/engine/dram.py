@@ -57,7 +57,7 @@ no command-bus contention; refresh is taken on schedule (never postponed) and
 does not wait for tRAS of open rows.
 """
 
-from bisect import bisect_left
+from bisect import bisect_left, bisect_right
 from collections import deque
 
 import numpy as np
@@ -288,8 +288,13 @@ class ShareShape:
     :func:`column_times` restricted to run heads.
     """
 
+    SMALL = 32     # up to this many bursts, building from Python lists beats numpy calls
+
     def __init__(self, ch, gb, row, n_chan, groups, tm):
         n = len(gb)
+        if n <= self.SMALL:
+            self._build_small(ch, gb, row, groups, tm)
+            return
         self.ch, self.gb, self.row = ch, gb, row      # for the general path (refresh cuts)
         self.n = n
         if n_chan > 1:
@@ -381,6 +386,124 @@ class ShareShape:
                   inside.tolist(), self.first_group.tolist(), self.is_begin.tolist(),
                   self.cand_begin.tolist(), self.lrun.tolist(), self.begin_run.tolist(),
                   seg_starts)
+
+    def _build_small(self, ch, gb, row, groups, tm):
+        """The same fields as the numpy build, from Python lists (same IEEE operations)."""
+        n = len(gb)
+        self.ch, self.gb, self.row = ch, gb, row
+        self.n = n
+        chl, gbl, rowl = ch.tolist(), gb.tolist(), row.tolist()
+        chans, lens, begins = [], [], []
+        for i, c in enumerate(chl):      # sorted by channel: one segment per channel
+            if not chans or c != chans[-1]:
+                chans.append(c)
+                lens.append(0)
+                begins.append(i)
+            lens[-1] += 1
+        S = len(chans)
+        ends = [b + m for b, m in zip(begins, lens)]
+        self.chans, self.chans_l = np.array(chans, dtype=np.int64), chans
+        self.lens, self.lens_l = np.array(lens, dtype=np.int64), lens
+        group = [g % groups for g in gbl]
+        first_group = [group[b] for b in begins]
+        self.first_group = np.array(first_group, dtype=np.int64)
+        self.last_group = np.array([group[e - 1] for e in ends], dtype=np.int64)
+        if all(gbl[i] <= gbl[i + 1] for i in range(n - 1)):
+            order = list(range(n))
+        else:
+            order = sorted(range(n), key=gbl.__getitem__)     # stable
+        sb = [gbl[i] for i in order]
+        rs = [rowl[i] for i in order]
+        newbank = [True] + [sb[i] != sb[i - 1] for i in range(1, n)]
+        hpos = [i for i in range(n) if newbank[i] or rs[i] != rs[i - 1]]
+        nr = len(hpos)
+        runid = [0] * n
+        r = -1
+        hset = set(hpos)
+        for i in range(n):
+            if i in hset:
+                r += 1
+            runid[i] = r
+        slot = [0] * n
+        for i, o in enumerate(order):
+            slot[o] = runid[i]
+        self.nr = nr
+        hb = [sb[i] for i in hpos]
+        hrow = [rs[i] for i in hpos]
+        fob = [newbank[i] for i in hpos]
+        self.hb = np.array(hb, dtype=np.int64)
+        self.hrow = np.array(hrow, dtype=np.int64)
+        self.fob = np.array(fob, dtype=bool)
+        fp = [order[i] for i in hpos]
+        segid = []
+        for k, m in enumerate(lens):
+            segid += [k] * m
+        rseg = [segid[i] for i in fp]
+        self.rseg = np.array(rseg, dtype=np.int64)
+        inside = [r for r in range(nr) if not fob[r]]
+        self.inside = np.array(inside, dtype=np.int64) if inside else None
+        self.prev_run = np.array([r - 1 for r in inside], dtype=np.int64)
+        prev_last = [order[hpos[r] - 1] for r in inside]
+        lp = [i for i in range(n) if i == n - 1 or newbank[i + 1]]
+        self.lg = np.array([sb[i] for i in lp], dtype=np.int64)
+        lrun = [runid[i] for i in lp]
+        self.lrun = np.array(lrun, dtype=np.int64)
+        self.lrow = np.array([rs[i] for i in lp], dtype=np.int64)
+        lpos = [order[i] for i in lp]
+        begin_run = [slot[b] for b in begins]
+        self.begin_run = np.array(begin_run, dtype=np.int64)
+        self.single_run = nr == 1
+        D = [0.0] * n
+        ccd = []
+        if tm.ccd_l > tm.burst:
+            bset = set(begins)
+            cs = 0.0
+            b0 = 0.0
+            for i in range(n):
+                if i in bset:
+                    d = 0.0
+                elif group[i] == group[i - 1]:
+                    d = tm.ccd_l
+                    ccd.append(i)
+                else:
+                    d = tm.burst
+                cs = d if i == 0 else cs + d     # running sum, as np.cumsum
+                if i in bset:
+                    b0 = cs
+                D[i] = cs - b0
+        else:
+            for k, b in enumerate(begins):
+                for i in range(b, ends[k]):
+                    D[i] = (i - b) * tm.burst
+        self.step_same = None
+        rk = sorted(range(nr), key=fp.__getitem__)
+        fps = [fp[j] for j in rk]
+        self.rk = np.array(rk, dtype=np.int64)
+        Dfp = [D[i] for i in fps]
+        self.Dfp = np.array(Dfp)
+        sseg = [rseg[j] for j in rk]
+        seg_starts = [0] + [j for j in range(1, nr) if sseg[j] != sseg[j - 1]] if S > 1 else [0]
+        cand = sorted(set(begins) | set(fps) | set(ccd))
+        where = {x: j for j, x in enumerate(cand)}
+        cand_begin = [where[b] for b in begins]
+        is_begin = [False] * len(cand)
+        for j in cand_begin:
+            is_begin[j] = True
+        self.cand_begin = np.array(cand_begin, dtype=np.int64)
+        self.is_begin = np.array(is_begin, dtype=bool)
+        I, L, C = len(inside), len(lp), len(cand)
+        q = (begins + [e - 1 for e in ends] + prev_last + lpos + cand
+             + [c - 1 if c > 0 else 0 for c in cand])
+        self.o = (S, 2 * S, 2 * S + I, 2 * S + I + L, 2 * S + I + L + C)
+        Dq = [D[i] for i in q]
+        kq = [bisect_right(fps, i) - 1 for i in q]
+        segq = [segid[i] for i in q]
+        self.Dq, self.kq, self.segq = np.array(Dq), np.array(kq, dtype=np.int64), np.array(segq, dtype=np.int64)
+        self.D = np.array(D)
+        self.segid = np.array(segid, dtype=np.int64)
+        self.fps = np.array(fps, dtype=np.int64)
+        self.L = (fob, hrow, rseg, rk, Dfp, Dq, kq, segq, inside, first_group, is_begin,
+                  cand_begin, lrun, begin_run, seg_starts)
 
     @property
     def kpos(self):
