@@ -826,9 +826,10 @@ class ChannelPool:
             st.close_at[lg] = shut
             st.pre_ready[lg] = shut + rp
         kinds = self.kinds
-        for x in kind:
-            kinds[x] += 1
-        kinds[HIT] += sh.n - nr
+        n_hit, n_miss = kind.count(HIT), kind.count(MISS)
+        kinds[HIT] += n_hit + (sh.n - nr)
+        kinds[MISS] += n_miss
+        kinds[CONFLICT] += nr - n_hit - n_miss
         self.ch_col[sh.chans] = c_last
         self.ch_group[sh.chans] = sh.last_group
         prep = self._prep
@@ -840,7 +841,9 @@ class ChannelPool:
             start.append(p if p > t0s[k] else t0s[k])
             first.append(c_first[k] + tail)
             done.append(c_last[k] + (burst + tail))
-        self.busy_cycles[sh.chans] += sh.lens * burst
+        busy = self.busy_cycles
+        for c, m in zip(chans, sh.lens_l):
+            busy[c] += m * burst
         cl = tm.cl
         lim = burst * (1 + 1e-9)
         pairs = []
