@@ -1088,12 +1088,19 @@ class ChannelPool:
         """Book committed shares: queue slots, bus intervals, share records, the transaction's times."""
         rq = self.req_bursts
         r_arr = self.rec
+        r_ch, r_arr_t, r_start, r_first, r_done, r_bursts = (
+            r_arr["channel"], r_arr["arrival"], r_arr["start"], r_arr["first"], r_arr["done"],
+            r_arr["bursts"])
+        outstanding, intervals = self.outstanding, self.busy_intervals
+        requests = self.requests
+        t_arr, t_start, t_first, t_done = rec[0], rec[2], rec[3], rec[4]
         for k, ch in enumerate(chans):
             m = lens_l[k]
             nreq = m / rq
-            self.requests += nreq
-            self.outstanding[ch].add(first[k], done[k], nreq)
-            iv = self.busy_intervals[ch]
+            requests += nreq
+            f_k, d_k = first[k], done[k]
+            outstanding[ch].add(f_k, d_k, nreq)
+            iv = intervals[ch]
             lo, hi = cut[k], cut[k + 1]
             if iv and iv[-1][1] >= pairs[lo][0] - 1e-9:
                 if pairs[lo][1] > iv[-1][1]:
@@ -1102,22 +1109,24 @@ class ChannelPool:
             iv.extend(pairs[lo:hi])
             slot = slots.get(ch)
             if slot is None:
-                slots[ch] = len(r_arr["done"])
-                r_arr["channel"].append(ch)
-                r_arr["arrival"].append(rec[0])
-                r_arr["start"].append(start[k])
-                r_arr["first"].append(first[k])
-                r_arr["done"].append(done[k])
-                r_arr["bursts"].append(m)
-                if start[k] > rec[2]:
-                    rec[2] = start[k]
-                if first[k] > rec[3]:
-                    rec[3] = first[k]
+                slots[ch] = len(r_done)
+                r_ch.append(ch)
+                r_arr_t.append(t_arr)
+                r_start.append(start[k])
+                r_first.append(f_k)
+                r_done.append(d_k)
+                r_bursts.append(m)
+                if start[k] > t_start:
+                    t_start = start[k]
+                if f_k > t_first:
+                    t_first = f_k
             else:  # the rest of a share cut by a refresh
-                r_arr["done"][slot] = done[k]
-                r_arr["bursts"][slot] += m
-            if done[k] > rec[4]:
-                rec[4] = done[k]
+                r_done[slot] = d_k
+                r_bursts[slot] += m
+            if d_k > t_done:
+                t_done = d_k
+        self.requests = requests
+        rec[2], rec[3], rec[4] = t_start, t_first, t_done
 
     def _refresh(self, c, t):
         """Apply channel ``c``'s refreshes that start at or before ``t``: rows close."""
