@@ -15,9 +15,8 @@ import math
 import os
 import types
 
-import yaml
-
 from .errors import ConfigError, closest
+from .yamlio import read_mapping
 
 
 class Field:
@@ -307,20 +306,7 @@ def load_arch(spec, source=None):
 
 
 def _read_yaml(path):
-    try:
-        with open(path, encoding="utf-8") as fh:
-            data = yaml.safe_load(fh)
-    except FileNotFoundError:
-        raise ConfigError(path, "<file>", path, "file not found") from None
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f"line {mark.line + 1}" if mark else "<file>"
-        raise ConfigError(path, where, "...", f"not valid YAML ({getattr(exc, 'problem', exc)})") from None
-    if data is None:
-        data = {}
-    if not isinstance(data, dict):
-        raise ConfigError(path, "<root>", data, "expected a mapping of config sections")
-    return data
+    return read_mapping(path, ConfigError, "expected a mapping of config sections", empty_ok=True)
 
 
 def _resolve_extends(raw, path, seen):

@@ -121,7 +121,7 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
         mac_total = 0
 
         def emit_pv(gi, gp, bp, final_sm, vsel):
-            nonlocal last_pv_done, mac_total, shared_q
+            nonlocal last_pv_done, mac_total
             waits = dep_kv + ([(vsel.done, "topk")] if vsel is not None else [])
             head = gp.heads[0]
             if gp.v_resident:

@@ -58,8 +58,6 @@ does not wait for tRAS of open rows.
 """
 
 from bisect import bisect_left, bisect_right
-from collections import deque
-
 import numpy as np
 
 from .addrmap import BurstDecoder

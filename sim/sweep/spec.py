@@ -28,10 +28,9 @@ import json
 import math
 import os
 
-import yaml
-
 from .. import arch as archmod
 from ..errors import InputError, closest
+from ..yamlio import read_mapping
 from . import constraints as cons
 from .objectives import OBJECTIVES
 
@@ -94,18 +93,7 @@ def load_spec(path):
 
 
 def _read(path):
-    try:
-        with open(path, encoding="utf-8") as fh:
-            raw = yaml.safe_load(fh)
-    except FileNotFoundError:
-        raise SweepError(path, "<file>", path, "file not found") from None
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f"line {mark.line + 1}" if mark else "<file>"
-        raise SweepError(path, where, "...", f"not valid YAML ({getattr(exc, 'problem', exc)})") from None
-    if not isinstance(raw, dict):
-        raise SweepError(path, "<root>", raw, "expected a mapping with base, traces and axes")
-    return raw
+    return read_mapping(path, SweepError, "expected a mapping with base, traces and axes")
 
 
 def validate_spec(raw, source):
