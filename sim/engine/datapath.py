@@ -18,7 +18,6 @@ done. Statistics come from each unit's :class:`~sim.engine.stats.UnitState`.
 """
 
 import gc
-import math
 
 import numpy as np
 import simpy
@@ -32,7 +31,7 @@ from .buffers import Buffer
 from .dram import ChannelPool
 from .fetch import fetch_process
 from .stats import UnitState
-from .tiling import check_fits, plan_step, pv_macs
+from .tiling import check_fits, plan_step, pv_macs, selects_next
 from .txn import Txn
 
 
@@ -234,21 +233,12 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
         step_done = last_pv_done
         selected = False
         nxt = steps[s + 1] if s + 1 < len(steps) else None
-        if nxt is not None and nxt.stage == step.stage and nxt.layer == step.layer + 1 \
-                and nxt.kv_rows == step.kv_rows:
-            sel_ops = []
-            if nxt.n_kept_k < step.n_kept_k:
-                if step.token_scores is not None:
-                    comps = tkmod.counted_quickselect(step.token_scores, nxt.n_kept_k, rng)
-                else:
-                    comps = tkmod.select_cost(step.n_kept_k, nxt.n_kept_k)
-                sel_ops.append(tkmod.TopkOp("tokens", s, -1, step.n_kept_k, nxt.n_kept_k, comps))
-            if nxt.n_heads < step.n_heads:
-                if step.head_scores is not None:
-                    comps = tkmod.counted_quickselect(step.head_scores, nxt.n_heads, rng)
-                else:
-                    comps = tkmod.select_cost(step.n_heads, nxt.n_heads)
-                sel_ops.append(tkmod.TopkOp("heads", s, -1, step.n_heads, nxt.n_heads, comps))
+        if selects_next(step, nxt):
+            sel_ops = [tkmod.TopkOp(kind, s, -1, n, keep, tkmod.selection_comparisons(scores, n, keep, rng))
+                       for kind, scores, n, keep in (
+                           ("tokens", step.token_scores, step.n_kept_k, nxt.n_kept_k),
+                           ("heads", step.head_scores, step.n_heads, nxt.n_heads))
+                       if keep < n]
             for op in sel_ops:
                 op.waits.append((last_pv_done, "dot"))
                 op.done = env.event()
@@ -358,6 +348,3 @@ class _amap_router:
         out = np.concatenate([amap.bursts(txn.layer, txn.kind, h, p) for h, p in segs])
         return out if amap.heads_in_order else np.unique(out)
 
-
-def ceil_cycles(t):
-    return int(math.ceil(t - 1e-9))

@@ -167,6 +167,28 @@ class BankState:
         self.close_at = np.full(n, np.inf)
 
 
+def run_structure(gb, row, order):
+    """Runs of bursts to one bank and row, with the bursts taken in ``order`` (bank-sorted).
+
+    Returns ``(sb, rs, newbank, hpos, runid, slot)``: bank and row of each
+    sorted burst, whether it starts its bank, the sorted positions of run heads,
+    the run of each sorted position and the run of each burst in service order.
+    """
+    sb = gb[order]
+    rs = row[order]
+    n = len(sb)
+    newbank = np.empty(n, dtype=bool)
+    newbank[0] = True
+    np.not_equal(sb[1:], sb[:-1], out=newbank[1:])
+    newrun = newbank.copy()
+    newrun[1:] |= rs[1:] != rs[:-1]
+    hpos = np.flatnonzero(newrun)                  # run heads, in bank-sorted positions
+    runid = np.cumsum(newrun) - 1
+    slot = np.empty(n, dtype=np.int64)
+    slot[order] = runid
+    return sb, rs, newbank, hpos, runid, slot
+
+
 def column_times(gb, row, group, seg_len, t0, base_col, base_group, st, tm):
     """Column-command times of a batch of bursts, one segment per channel.
 
@@ -185,17 +207,7 @@ def column_times(gb, row, group, seg_len, t0, base_col, base_group, st, tm):
     """
     n = len(gb)
     order = np.argsort(gb, kind="stable")
-    sb = gb[order]
-    rs = row[order]
-    newbank = np.empty(n, dtype=bool)
-    newbank[0] = True
-    np.not_equal(sb[1:], sb[:-1], out=newbank[1:])
-    newrun = newbank.copy()
-    newrun[1:] |= rs[1:] != rs[:-1]
-    hpos = np.flatnonzero(newrun)                  # run heads, in bank-sorted positions
-    runid = np.cumsum(newrun) - 1
-    slot = np.empty(n, dtype=np.int64)
-    slot[order] = runid
+    sb, rs, newbank, hpos, runid, slot = run_structure(gb, row, order)
     hb = sb[hpos]
     ht0 = t0 if np.isscalar(t0) else t0[order[hpos]]
     fob = newbank[hpos]                            # first run of its bank in the batch
@@ -313,17 +325,7 @@ class ShareShape:
             order = np.arange(n)
         else:
             order = np.argsort(gb, kind="stable")
-        sb = gb[order]
-        rs = row[order]
-        newbank = np.empty(n, dtype=bool)
-        newbank[0] = True
-        np.not_equal(sb[1:], sb[:-1], out=newbank[1:])
-        newrun = newbank.copy()
-        newrun[1:] |= rs[1:] != rs[:-1]
-        hpos = np.flatnonzero(newrun)
-        runid = np.cumsum(newrun) - 1
-        slot = np.empty(n, dtype=np.int64)
-        slot[order] = runid
+        sb, rs, newbank, hpos, runid, slot = run_structure(gb, row, order)
         self.nr = len(hpos)
         self.hb = sb[hpos]
         self.hrow = rs[hpos]

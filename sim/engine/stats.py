@@ -31,17 +31,12 @@ class UnitState:
         self.since = env.now
         self.totals = defaultdict(float)   # (state, cause) -> cycles
         self.intervals = []                # [t0, t1, state, cause]
-        self.last_busy_end = 0.0
-        self.busy_cycles = 0.0
 
     def _close(self, t):
         if t <= self.since:
             return
         key = (self.state, self.cause)
         self.totals[key] += t - self.since
-        if self.state == "busy":
-            self.busy_cycles += t - self.since
-            self.last_busy_end = t
         if self.keep_intervals:
             iv = self.intervals
             if iv and iv[-1][1] == self.since and iv[-1][2] == self.state and iv[-1][3] == self.cause:

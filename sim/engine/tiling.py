@@ -309,6 +309,13 @@ def pv_macs(gp, chunks, rows, head_dim):
     return out
 
 
+def selects_next(step, nxt):
+    """True when ``nxt`` is the next layer of the same pass, whose live tokens and
+    heads the top-k after ``step`` chooses (cascade pruning)."""
+    return (nxt is not None and nxt.stage == step.stage and nxt.layer == step.layer + 1
+            and nxt.kv_rows == step.kv_rows)
+
+
 def chunk_bytes(amap, layer, chunk):
     return sum(_bytes(amap, layer, chunk.plane, h, p) for h, p in chunk.segments)
 

@@ -73,6 +73,14 @@ def counted_quickselect(values, keep, rng):
             a = a[a > pivot]
 
 
+def selection_comparisons(scores, n, keep, rng):
+    """Comparisons to keep the top ``keep`` of ``n``: counted on ``scores`` when the
+    trace has them, else the expected count."""
+    if scores is not None:
+        return counted_quickselect(scores, keep, rng)
+    return select_cost(n, keep)
+
+
 def service_cycles(comparisons, comparators):
     if comparisons <= 0:
         return 0

@@ -36,9 +36,5 @@ class Txn:
         """Record that the transaction spent time until ``t_end`` in ``stage``."""
         self.log.append((stage, t_end))
 
-    @property
-    def created(self):
-        return self.log[0][1]
-
     def __repr__(self):
         return f"Txn({self.kind} step={self.step} head={self.head} block={self.block} rows={self.rows})"

@@ -55,7 +55,7 @@ def bounds_from_counts(arch, macs_by_dim, macs_pv_by_dim, softmax_elements, topk
 def closed_form(arch, trace, grain_rows=None):
     """Bounds for ``trace`` on ``arch`` without simulating (for screening)."""
     from ..engine.addrmap import AddressMap
-    from ..engine.tiling import plan_step, step_traffic
+    from ..engine.tiling import plan_step, selects_next, step_traffic
 
     g = arch.engine.grain_rows if grain_rows is None else grain_rows
     dims = sorted({s.head_dim for s in trace.steps})
@@ -85,8 +85,7 @@ def closed_form(arch, trace, grain_rows=None):
                 elements += (bp.rows * nh + bp.lsb_rows) * gp.n_kv
                 comps += bp.rows * sum(tkmod.select_cost(gp.n_kv, gp.n_v(h)) for h in gp.value_pruned_heads)
         nxt = steps[i + 1] if i + 1 < len(steps) else None
-        if nxt is not None and nxt.stage == step.stage and nxt.layer == step.layer + 1 \
-                and nxt.kv_rows == step.kv_rows:
+        if selects_next(step, nxt):
             # counted selections need the engine's generator; the expectation is no bound,
             # so only the part every selection must do (one look at each key) counts here
             if nxt.n_kept_k < step.n_kept_k:
