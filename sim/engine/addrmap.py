@@ -68,6 +68,9 @@ class AddressMap:
         self.layers = layers
         # heads' bursts come out in head order when regions are (datapath concatenates them)
         self.heads_in_order = self.layout != "heads_interleaved"
+        # every region starting on a burst boundary, the bursts a set of rows costs do
+        # not depend on the layer or head the rows belong to (only where they land)
+        self.costs_anywhere = self.region % self.burst == 0
 
     def base(self, layer, plane, head):
         """Burst-aligned byte address where ``head``'s rows of ``plane`` start counting from.

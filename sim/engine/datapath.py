@@ -61,19 +61,110 @@ def _engine_options(arch, grain_rows, seed):
     return g, s
 
 
+def _array_key(a):
+    a = np.asarray(a)
+    return a.dtype.str, a.shape, a.tobytes()
+
+
+def _shape_key(step, amap):
+    """What a step's plan depends on: its shape and kept rows, and its layer only
+    when where the layer sits in DRAM can change what its rows cost."""
+    return (None if amap.costs_anywhere else step.layer, step.stage, step.head_dim, step.q_rows,
+            step.kv_rows, _array_key(step.heads), _array_key(step.kept_k), _array_key(step.kept_v),
+            _array_key(step.lsb_rows),
+            None if step.kept_v_idx is None else tuple(_array_key(a) for a in step.kept_v_idx))
+
+
+class _BlockShape:
+    """One query block of a planned step, with the work counts of its operations."""
+
+    __slots__ = ("gi", "gp", "bp", "head", "score_rows", "q_segments", "q_rows", "qk_macs",
+                 "lsb_macs", "pv_chunks", "pv_macs", "pruned", "value_comps")
+
+
+class _StepShape:
+    """A step's plan and the numbers the program derives from it, without simpy objects.
+
+    Steps that plan alike share one (in decode every layer of a token usually
+    does), so each step only makes its own transactions and operations.
+    """
+
+    def __init__(self, arch, amap, step, grain_rows, q_room):
+        d = step.head_dim
+        layer = step.layer
+        n_kv = step.n_kept_k
+        plan = plan_step(arch, amap, step, grain_rows)
+        self.plan = plan
+        compulsory = 0
+        for gp in plan:  # every row once: what an infinite buffer would fetch
+            compulsory += gp.k_bytes + gp.v_bytes + amap.burst * sum(
+                amap.burst_count(layer, "Q", h, bp.q_positions) for bp in gp.blocks for h in gp.heads)
+            compulsory += sum(gp.lsb_bytes[h] for h in {h for bp in gp.blocks for h in bp.lsb})
+        self.compulsory_bytes = compulsory
+        # one query block per group: the step's whole query vector is one transaction
+        self.shared_q = None
+        heads = step.heads.tolist()
+        if all(len(gp.blocks) == 1 for gp in plan):
+            q_rows = plan[0].blocks[0].q_positions
+            q_bytes = amap.burst * sum(amap.burst_count(layer, "Q", h, q_rows) for h in heads)
+            if q_bytes <= q_room:
+                segs = [(h, q_rows) for h in heads]
+                self.shared_q = (segs, _rows(segs))
+        self.blocks = []
+        macs = {"qk": 0, "lsb": 0, "pv": 0}
+        elements = value_selections = 0
+        for gi, gp in enumerate(plan):
+            for bp in gp.blocks:
+                b = _BlockShape()
+                b.gi, b.gp, b.bp = gi, gp, bp
+                b.head = gp.heads[0]
+                b.score_rows = bp.rows * len(gp.heads)
+                b.q_segments = [(h, bp.q_positions) for h in gp.heads]
+                b.q_rows = _rows(b.q_segments)
+                kplan = gp.k_chunks if gp.k_resident else bp.k_chunks
+                b.qk_macs = [bp.rows * c.rows * d for c in kplan]
+                b.lsb_macs = [sum(bp.lsb[h] * len(p) for h, p in c.segments) * d for c in bp.lsb_chunks]
+                b.pv_chunks = gp.v_chunks if gp.v_resident else bp.v_chunks
+                b.pv_macs = pv_macs(gp, b.pv_chunks, bp.rows, d)
+                b.pruned = gp.value_pruned_heads
+                b.value_comps = (bp.rows * sum(tkmod.select_cost(n_kv, gp.n_v(h)) for h in b.pruned)
+                                 if b.pruned else 0.0)
+                macs["qk"] += sum(b.qk_macs)
+                macs["lsb"] += sum(b.lsb_macs)
+                macs["pv"] += sum(b.pv_macs)
+                elements += b.score_rows * n_kv + (bp.lsb_rows * n_kv if bp.lsb else 0)
+                value_selections += bp.rows * len(b.pruned)
+                self.blocks.append(b)
+        self.macs = macs
+        self.mac_total = macs["qk"] + macs["lsb"] + macs["pv"]
+        self.softmax_elements = elements
+        self.value_selections = value_selections
+
+
+def _rows(segments):
+    return len(segments[0][1]) if len(segments) == 1 else sum(len(p) for _h, p in segments)
+
+
 def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
     """Turn the trace into per-unit programs with their dependency events."""
     prog = Program()
     shared = arch.dot.arrays == "shared"
     prog.dot_pv = prog.dot_qk if shared else []
     counts = prog.counts
+    fetch, dot_qk, dot_pv, softmax, topk = prog.fetch, prog.dot_qk, prog.dot_pv, prog.softmax, prog.topk
+    q_buf, k_buf, v_buf = buffers["query"], buffers["key"], buffers["value"]
+    event = env.event
+    shapes = {}
     prev_done = None
     prev_selected = False
     steps = trace.steps
     for s, step in enumerate(steps):
         d = step.head_dim
         amap = amaps[d]
-        plan = plan_step(arch, amap, step, grain_rows)
+        key = _shape_key(step, amap)
+        shape = shapes.get(key)
+        if shape is None:
+            shape = shapes[key] = _StepShape(arch, amap, step, grain_rows, q_buf.capacity / 2)
         layer = step.layer
         n_kv = step.n_kept_k
         dep_q = [(prev_done, "layer_dependency")] if prev_done is not None else []
@@ -81,105 +172,80 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
             dep_kv = [(prev_done, "topk" if prev_selected else "layer_dependency")]
         else:
             dep_kv = []
-        last_use = {}
+        last_use = {}   # id(txn) -> (txn, the last op that reads it)
 
-        def fetch_txn(kind, segments, buf, waits, head, block):
-            rows = len(segments[0][1]) if len(segments) == 1 else sum(len(p) for _h, p in segments)
+        def fetch_txn(kind, segments, rows, buf, waits, head, block):
             t = Txn(kind, s, head, block, rows, 0, 0.0, "fetch")
             t.layer = layer
             t.positions = segments
             t.buffer = buf
             t.waits = waits
-            t.done = env.event()
-            prog.fetch.append(t)
+            t.done = event()
+            fetch.append(t)
             return t
 
-        def chunk_txns(chunks, kind, buf, waits, head, block):
-            return [fetch_txn(kind, c.segments, buf, waits, head, block) for c in chunks]
-
-        def use(op, txn):
-            op.inputs.append(txn)
-            last_use[id(txn)] = (txn, op)
-
-        blocks = [(gp, bp) for gp in plan for bp in gp.blocks]
-        for gp in plan:  # every row once: what an infinite buffer would fetch
-            prog.compulsory_bytes += gp.k_bytes + gp.v_bytes + amap.burst * sum(
-                amap.burst_count(layer, "Q", h, bp.q_positions) for bp in gp.blocks for h in gp.heads)
-            prog.compulsory_bytes += sum(gp.lsb_bytes[h] for h in {h for bp in gp.blocks for h in bp.lsb})
-        # one query block per group: the step's whole query vector is one transaction
-        shared_q = shared_q_rows = None
-        if all(len(gp.blocks) == 1 for gp in plan):
-            q_rows = plan[0].blocks[0].q_positions
-            q_bytes = amap.burst * sum(amap.burst_count(layer, "Q", h, q_rows) for h in step.heads.tolist())
-            if q_bytes <= buffers["query"].capacity / 2:
-                shared_q_rows = q_rows
+        shared_q = None
         resident_k = {}
         resident_v = {}
         pending_pv = None
         last_pv_done = None
-        mac_total = 0
 
-        def emit_pv(gi, gp, bp, final_sm, vsel):
-            nonlocal last_pv_done, mac_total
+        def emit_pv(b, final_sm, vsel):
+            nonlocal last_pv_done
             waits = dep_kv + ([(vsel.done, "topk")] if vsel is not None else [])
-            head = gp.heads[0]
-            if gp.v_resident:
-                if gi not in resident_v:
-                    resident_v[gi] = chunk_txns(gp.v_chunks, "V", buffers["value"], waits, head, bp.block)
-                chunks = resident_v[gi]
-            else:
-                chunks = chunk_txns(bp.v_chunks, "V", buffers["value"], waits, head, bp.block)
-            plan_chunks = gp.v_chunks if gp.v_resident else bp.v_chunks
-            for i, (ch, macs) in enumerate(zip(chunks, pv_macs(gp, plan_chunks, bp.rows, d))):
-                op = dotmod.DotOp("pv", s, head, bp.block, macs, d)
+            gp, bp = b.gp, b.bp
+            chunks = resident_v.get(b.gi) if gp.v_resident else None
+            if chunks is None:
+                chunks = [fetch_txn("V", c.segments, c.rows, v_buf, waits, b.head, bp.block)
+                          for c in b.pv_chunks]
+                if gp.v_resident:
+                    resident_v[b.gi] = chunks
+            for i, (ch, macs) in enumerate(zip(chunks, b.pv_macs)):
+                op = dotmod.DotOp("pv", s, b.head, bp.block, macs, d)
                 if i == 0:
                     op.waits.append((final_sm.done, "softmax"))
-                use(op, ch)
-                counts["macs_pv"] += macs
-                mac_total += macs
-                prog.dot_pv.append(op)
-            op.done = env.event()
+                op.inputs.append(ch)
+                last_use[id(ch)] = (ch, op)
+                dot_pv.append(op)
+            op.done = event()
             last_pv_done = op.done
 
-        for gi, gp, bp in ((plan.index(g), g, b) for g, b in blocks):
-            head = gp.heads[0]
-            nh = len(gp.heads)
+        for b in shape.blocks:
+            gp, bp = b.gp, b.bp
+            head = b.head
             # Transactions are created in the order the array first reads them, so the
             # in-order fetch unit can never wait for room that only a later read frees.
             # The first key chunk goes before the query: in decode, cached keys may
             # stream in before the previous layer is done, the query may not.
             if gp.k_resident:
-                kch = resident_k.setdefault(gi, [None] * len(gp.k_chunks))
                 kplan = gp.k_chunks
+                kch = resident_k.get(b.gi)
+                if kch is None:
+                    kch = resident_k[b.gi] = [None] * len(kplan)
             else:
-                kch = [None] * len(bp.k_chunks)
                 kplan = bp.k_chunks
+                kch = [None] * len(kplan)
             q = None
             for i, c in enumerate(kplan):
-                if kch[i] is None:
-                    kch[i] = fetch_txn("K", c.segments, buffers["key"], dep_kv, head, bp.block)
+                ch = kch[i]
+                if ch is None:
+                    ch = kch[i] = fetch_txn("K", c.segments, c.rows, k_buf, dep_kv, head, bp.block)
                 if q is None:
-                    if shared_q_rows is not None:
+                    if shape.shared_q is not None:
                         if shared_q is None:
-                            shared_q = fetch_txn("Q", [(h, shared_q_rows) for h in step.heads.tolist()],
-                                                 buffers["query"], dep_q, -1, 0)
+                            shared_q = fetch_txn("Q", *shape.shared_q, q_buf, dep_q, -1, 0)
                         q = shared_q
                     else:
-                        q = fetch_txn("Q", [(h, bp.q_positions) for h in gp.heads], buffers["query"],
-                                      dep_q, head, bp.block)
-                ch = kch[i]
-                macs = bp.rows * ch.rows * d
-                op = dotmod.DotOp("qk", s, head, bp.block, macs, d)
-                use(op, q)
-                use(op, ch)
-                counts["macs_qk"] += macs
-                mac_total += macs
-                prog.dot_qk.append(op)
-            op.out = Txn("S", s, head, bp.block, bp.rows * nh, 0, 0.0, "dot")
-            sm1 = smmod.SoftmaxOp(s, head, bp.block, bp.rows * nh, n_kv)
-            sm1.done = env.event()
-            prog.softmax.append(sm1)
-            counts["softmax_elements"] += bp.rows * nh * n_kv
+                        q = fetch_txn("Q", b.q_segments, b.q_rows, q_buf, dep_q, head, bp.block)
+                op = dotmod.DotOp("qk", s, head, bp.block, b.qk_macs[i], d)
+                op.inputs += (q, ch)
+                last_use[id(q)] = (q, op)
+                last_use[id(ch)] = (ch, op)
+                dot_qk.append(op)
+            op.out = Txn("S", s, head, bp.block, b.score_rows, 0, 0.0, "dot")
+            sm1 = smmod.SoftmaxOp(s, head, bp.block, b.score_rows, n_kv)
+            sm1.done = event()
+            softmax.append(sm1)
             # p.V of the previous block: one block of lookahead
             if pending_pv is not None:
                 emit_pv(*pending_pv)
@@ -188,46 +254,47 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
             if bp.lsb:
                 kl_waits = dep_kv + [(sm1.done, "softmax")]
                 for i, c in enumerate(bp.lsb_chunks):
-                    ch = fetch_txn("KL", c.segments, buffers["key"], kl_waits, head, bp.block)
+                    ch = fetch_txn("KL", c.segments, c.rows, k_buf, kl_waits, head, bp.block)
                     km = None
                     if bp.lsb_msb_chunks:
-                        km = fetch_txn("K", bp.lsb_msb_chunks[i].segments, buffers["key"], kl_waits,
-                                       head, bp.block)
-                    rows_of = {h: len(p) for h, p in c.segments}
-                    macs = sum(bp.lsb[h] * r for h, r in rows_of.items()) * d
-                    op = dotmod.DotOp("lsb", s, head, bp.block, macs, d)
+                        m = bp.lsb_msb_chunks[i]
+                        km = fetch_txn("K", m.segments, m.rows, k_buf, kl_waits, head, bp.block)
+                    elif gp.k_resident:
+                        km = kch[min(i, len(kch) - 1)]
+                    op = dotmod.DotOp("lsb", s, head, bp.block, b.lsb_macs[i], d)
                     if i == 0:
                         op.waits.append((sm1.done, "softmax"))
-                    use(op, q)
-                    use(op, ch)
+                    op.inputs += (q, ch)
+                    last_use[id(q)] = (q, op)
+                    last_use[id(ch)] = (ch, op)
                     if km is not None:
-                        use(op, km)
-                    elif gp.k_resident:
-                        use(op, kch[min(i, len(kch) - 1)])
-                    counts["macs_lsb"] += macs
-                    mac_total += macs
-                    prog.dot_qk.append(op)
+                        op.inputs.append(km)
+                        last_use[id(km)] = (km, op)
+                    dot_qk.append(op)
                 op.out = Txn("S", s, head, bp.block, bp.lsb_rows, 0, 0.0, "dot")
                 final_sm = smmod.SoftmaxOp(s, head, bp.block, bp.lsb_rows, n_kv, second=True)
-                final_sm.done = env.event()
-                prog.softmax.append(final_sm)
-                counts["softmax_elements"] += bp.lsb_rows * n_kv
+                final_sm.done = event()
+                softmax.append(final_sm)
             vsel = None
-            pruned = gp.value_pruned_heads
-            if pruned:
-                comps = bp.rows * sum(tkmod.select_cost(n_kv, gp.n_v(h)) for h in pruned)
-                vsel = tkmod.TopkOp("value", s, head, n_kv, len(pruned), comps)
+            if b.pruned:
+                vsel = tkmod.TopkOp("value", s, head, n_kv, len(b.pruned), b.value_comps)
                 vsel.waits.append((final_sm.done, "softmax"))
-                vsel.done = env.event()
-                prog.topk.append(vsel)
-                counts["topk_comparisons"] += comps
-                counts["value_selections"] += bp.rows * len(pruned)
-            pending_pv = (gi, gp, bp, final_sm, vsel)
+                vsel.done = event()
+                topk.append(vsel)
+                counts["topk_comparisons"] += b.value_comps
+            pending_pv = (b, final_sm, vsel)
         emit_pv(*pending_pv)
 
         for txn, op in last_use.values():
             op.release.append(txn)
-        prog.macs_by_dim[d] = prog.macs_by_dim.get(d, 0) + mac_total
+        macs = shape.macs
+        counts["macs_qk"] += macs["qk"]
+        counts["macs_lsb"] += macs["lsb"]
+        counts["macs_pv"] += macs["pv"]
+        counts["softmax_elements"] += shape.softmax_elements
+        counts["value_selections"] += shape.value_selections
+        prog.compulsory_bytes += shape.compulsory_bytes
+        prog.macs_by_dim[d] = prog.macs_by_dim.get(d, 0) + shape.mac_total
 
         # after the layer: the selector picks the next layer's tokens and heads
         step_done = last_pv_done
@@ -241,8 +308,8 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
                        if keep < n]
             for op in sel_ops:
                 op.waits.append((last_pv_done, "dot"))
-                op.done = env.event()
-                prog.topk.append(op)
+                op.done = event()
+                topk.append(op)
                 counts["topk_comparisons"] += op.comparisons
                 counts["topk_selections"] += 1
                 step_done = op.done
