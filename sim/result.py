@@ -9,6 +9,9 @@ simulation: data flows engine -> stats -> result.
 import copy
 import json
 import math
+from collections import defaultdict
+from itertools import chain
+from operator import itemgetter
 
 import numpy as np
 
@@ -64,22 +67,33 @@ def _dram_states(pool, fetch_state, end):
     channels, so fractions stay per unit and sum to 1.
     """
     n = pool.n
-    ivs = [iv for iv in fetch_state.intervals if min(iv[1], end) > iv[0]]
-    t0 = np.array([iv[0] for iv in ivs] + [ivs[-1][1] if ivs else 0.0], dtype=np.float64)
-    t1 = np.array([min(iv[1], end) for iv in ivs] + [end], dtype=np.float64)
-    t1 = np.maximum(t1, t0)
-    keys = []
-    for iv in ivs:
-        state = iv[2]
-        keys.append(("idle", None) if state == "idle" else
-                    ("starved", "fetch_issue") if state == "busy" else ("starved", iv[3] or "fetch"))
-    keys.append(("idle", None))  # after the fetch unit's last interval: nothing left to fetch
+    iv = fetch_state.intervals
+    m = len(iv)
+    a = np.fromiter(map(itemgetter(0), iv), np.float64, m)
+    b = np.fromiter(map(itemgetter(1), iv), np.float64, m)
+    b_end = np.minimum(b, end)
+    kept = np.flatnonzero(b_end > a)
+    # after the fetch unit's last interval: nothing left to fetch
+    t0 = np.append(a[kept], b[kept[-1]] if len(kept) else 0.0)
+    t1 = np.maximum(np.append(b_end[kept], end), t0)
+    # one code per distinct (state, cause) of the fetch unit, then its class here
+    codes = defaultdict(lambda: len(codes))
+    raw = np.fromiter(map(codes.__getitem__, zip(map(itemgetter(2), iv), map(itemgetter(3), iv))),
+                      np.intp, m)[kept]
+    classes = {}
+    class_of = np.empty(len(codes), dtype=np.intp)
+    for (state, cause), code in codes.items():
+        key = (("idle", None) if state == "idle" else
+               ("starved", "fetch_issue") if state == "busy" else ("starved", cause or "fetch"))
+        class_of[code] = classes.setdefault(key, len(classes))
+    keys = list(classes)
     busy_total = 0.0
     busy_in = np.zeros(len(t0))
-    for iv in pool.busy_intervals:
-        if not iv:
+    for busy in pool.busy_intervals:
+        if not busy:
             continue
-        arr = np.clip(np.asarray(iv, dtype=np.float64), 0, end)
+        arr = np.fromiter(chain.from_iterable(busy), np.float64, 2 * len(busy)).reshape(-1, 2)
+        arr = np.clip(arr, 0, end)
         dur = arr[:, 1] - arr[:, 0]
         c = np.cumsum(dur)
         xs = arr.reshape(-1)
@@ -89,9 +103,12 @@ def _dram_states(pool, fetch_state, end):
         busy_total += float(c[-1])
         busy_in += np.interp(t1, xs, ys) - np.interp(t0, xs, ys)
     free = np.maximum((t1 - t0) * n - busy_in, 0.0)
-    totals = {}
-    for key, f in zip(keys, free.tolist()):
-        totals[key] = totals.get(key, 0.0) + f
+    # sums per class in time order (bincount adds in input order), classes in order of first use
+    cls = class_of[raw]
+    sums = np.bincount(cls, weights=free[:-1], minlength=len(keys)).tolist()
+    labels, first = np.unique(cls, return_index=True)
+    totals = {keys[k]: sums[k] for k in labels[np.argsort(first)].tolist()}
+    totals[("idle", None)] = totals.get(("idle", None), 0.0) + float(free[-1])
     scale = n * end if end else 1.0
     frac = {"busy": busy_total / scale if end else 0.0, "starved": 0.0, "blocked": 0.0, "idle": 0.0}
     stalls = {}
