@@ -69,31 +69,42 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, produce
     buffer room, then hand the score block to the softmax unit (blocked while
     its input queue is full).
     """
+    rates = {}   # head_dim -> MACs per cycle
+    set_state = state.set
     for op in ops:
-        for txn in op.inputs:
+        inputs = op.inputs
+        for txn in inputs:
             ev = txn.done
             if not ev.processed:
                 t0 = env.now
-                state.set("starved", "fetch")
+                set_state("starved", "fetch")
                 yield ev
                 state.charge_wait(t0, txn, producer=producer)
         for ev, cause in op.waits:
             if not ev.processed:
-                state.set("starved", cause)
+                set_state("starved", cause)
                 yield ev
-        state.set("busy")
-        for txn in op.inputs:
+        set_state("busy")
+        for txn in inputs:
             txn.buffer.note_read(txn.nbytes)
-        yield env.timeout(service_cycles(op.macs, multipliers, lanes, op.head_dim))
+        macs = op.macs
+        if macs > 0:
+            rate = rates.get(op.head_dim)
+            if rate is None:
+                rate = rates[op.head_dim] = macs_per_cycle(multipliers, lanes, op.head_dim)
+            yield env.timeout(macs / rate)
+        else:
+            yield env.timeout(0)
         for txn in op.release:
             txn.buffer.release(txn.hold)
-        if op.out is not None:
-            op.out.mark("dot", env.now + pipeline)
-            req = sm_queue.put(op.out)
+        out = op.out
+        if out is not None:
+            out.log.append(("dot", env.now + pipeline))
+            req = sm_queue.put(out)
             if req is not None:
-                state.set("blocked", "softmax_input_full")
+                set_state("blocked", "softmax_input_full")
                 yield req
         if op.done is not None:
             later(env, pipeline, op.done)
-        state.set("starved", None)
-    state.set("idle")
+        set_state("starved", None)
+    set_state("idle")

@@ -21,72 +21,81 @@ def fetch_process(env, txns, pool, router, arch, state, stats):
     req_bytes = arch.fetch.request_bytes
     burst = arch.dram.burst_bytes
     pending = deque()        # issued, not yet handed over, in issue order
-    inflight = [0.0]         # requests issued and not yet handed over
-    early = [0.0]            # requests completed but waiting for an earlier transaction
-    progress = [env.event()]
+    inflight = 0.0           # requests issued and not yet handed over
+    early = 0.0              # requests completed but waiting for an earlier transaction
+    progress = env.event()
+    bursts_for = router.bursts_for
+    set_state = state.set
+    plane_bytes = {}         # txn kind -> its key in ``stats``
 
     def on_complete(txn):
         def fire(_ev):
+            nonlocal inflight, early
             txn.completed = True
-            early[0] += txn.nbytes / req_bytes
+            early += txn.nbytes / req_bytes
             now = env.now
             while pending and pending[0].completed:
                 t = pending.popleft()
                 r = t.nbytes / req_bytes
-                early[0] -= r
-                inflight[0] -= r
-                t.mark("reorder", now)
+                early -= r
+                inflight -= r
+                t.log.append(("reorder", now))
                 t.done.succeed()
-            ev = progress[0]
-            if not ev.triggered:
-                ev.succeed()
+            if not progress.triggered:
+                progress.succeed()
         return fire
 
     issue_free = 0.0   # the request port is busy issuing the previous transaction until then
     for txn in txns:
+        log = txn.log
         for ev, cause in txn.waits:
             if not ev.processed:
-                txn.mark("fetch", env.now)
-                state.set("starved", cause)
+                log.append(("fetch", env.now))
+                set_state("starved", cause)
                 yield ev
-                txn.mark(cause, env.now)
-        bursts = router.bursts_for(txn)
+                log.append((cause, env.now))
+        bursts = bursts_for(txn)
         nbytes = len(bursts) * burst
         txn.bursts = bursts
         txn.nbytes = nbytes
         txn.hold = nbytes
-        req = txn.buffer.reserve(nbytes)
+        buf = txn.buffer
+        req = buf.reserve(nbytes)
         if req is not None:
-            txn.mark("fetch", env.now)
-            cause = f"{txn.buffer.name}_buffer_full"
-            state.set("blocked", cause)
+            log.append(("fetch", env.now))
+            cause = f"{buf.name}_buffer_full"
+            set_state("blocked", cause)
             yield req
-            txn.mark(cause, env.now)
+            log.append((cause, env.now))
         # limits count requests (fetch.request_bytes each), not simulated transactions,
         # so the engine's grain does not change the hardware being modelled
         nreq = nbytes / req_bytes
-        while pending and (inflight[0] + nreq > inflight_cap or early[0] >= reorder_cap):
-            cause = "inflight_limit" if inflight[0] + nreq > inflight_cap else "reorder_full"
-            txn.mark("fetch", env.now)
-            state.set("blocked", cause)
-            if progress[0].triggered:
-                progress[0] = env.event()
-            yield progress[0]
-            txn.mark(cause, env.now)
-        if env.now < issue_free:  # nothing else to wait for: the port is still issuing
-            yield env.timeout(issue_free - env.now)
-        txn.mark("fetch", env.now)
+        while pending and (inflight + nreq > inflight_cap or early >= reorder_cap):
+            cause = "inflight_limit" if inflight + nreq > inflight_cap else "reorder_full"
+            log.append(("fetch", env.now))
+            set_state("blocked", cause)
+            if progress.triggered:
+                progress = env.event()
+            yield progress
+            log.append((cause, env.now))
+        now = env.now
+        if now < issue_free:  # nothing else to wait for: the port is still issuing
+            yield env.timeout(issue_free - now)
+            now = env.now
+        log.append(("fetch", now))
         pending.append(txn)
-        inflight[0] += nreq
-        ev = pool.submit(txn)
-        ev.callbacks.append(on_complete(txn))
+        inflight += nreq
+        pool.submit(txn).callbacks.append(on_complete(txn))
         txn.bursts = None
+        key = plane_bytes.get(txn.kind)
+        if key is None:
+            key = plane_bytes[txn.kind] = f"bytes_{txn.kind}"
         stats["bytes"] += nbytes
-        stats[f"bytes_{txn.kind}"] += nbytes
+        stats[key] += nbytes
         stats["transactions"] += 1
         stats["requests"] += nreq
         # one request issued per cycle; no event unless the next transaction is ready before
-        issue_free = env.now + nreq
+        issue_free = now + nreq
         state.busy_until(issue_free)
     if env.now < issue_free:
         yield env.timeout(issue_free - env.now)

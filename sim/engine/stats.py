@@ -33,21 +33,27 @@ class UnitState:
         self.intervals = []                # [t0, t1, state, cause]
 
     def _close(self, t):
-        if t <= self.since:
+        since = self.since
+        if t <= since:
             return
-        key = (self.state, self.cause)
-        self.totals[key] += t - self.since
+        state, cause = self.state, self.cause
+        self.totals[state, cause] += t - since
         if self.keep_intervals:
             iv = self.intervals
-            if iv and iv[-1][1] == self.since and iv[-1][2] == self.state and iv[-1][3] == self.cause:
-                iv[-1][1] = t
-            else:
-                iv.append([self.since, t, self.state, self.cause])
+            if iv:
+                last = iv[-1]
+                if last[1] == since and last[2] == state and last[3] == cause:
+                    last[1] = t
+                    self.since = t
+                    return
+            iv.append([since, t, state, cause])
         self.since = t
 
     def set(self, state, cause=None):
         """Enter ``state`` now (or when a :meth:`busy_until` period ends); ``cause`` says why."""
-        self._close(self.env.now)
+        t = self.env.now
+        if t > self.since:  # a transition at the same instant as the last closes nothing
+            self._close(t)
         self.state = state
         self.cause = cause
 
@@ -96,17 +102,18 @@ class UnitState:
         if now <= t0:
             self.state, self.cause, self.since = "starved", None, now
             return
+        log = txn.log
         start = t0
-        prev_end = None
-        for stage, t_end in txn.log:
-            if prev_end is None:
-                # creation: the wait before it is charged to whoever created it late
-                if t_end > start:
-                    self._charge(start, min(t_end, now), "starved", before)
-                    start = min(t_end, now)
-                prev_end = t_end
-                continue
-            if t_end > start and start < now:
+        created = log[0][1]
+        if created > start:
+            # creation: the wait before it is charged to whoever created it late
+            start = min(created, now)
+            self._charge(t0, start, "starved", before)
+        for i in range(1, len(log)):
+            if start >= now:
+                break
+            stage, t_end = log[i]
+            if t_end > start:
                 seg_end = min(t_end, now)
                 if producer is not None and stage == producer.name:
                     for piece_end, cause in producer.explain(start, seg_end):
@@ -118,10 +125,9 @@ class UnitState:
                 else:
                     self._charge(start, seg_end, "starved", stage)
                 start = seg_end
-            prev_end = t_end
         if start < now:
             # done but handed over late (e.g. the consumer itself was elsewhere)
-            self._charge(start, now, "starved", txn.log[-1][0])
+            self._charge(start, now, "starved", log[-1][0])
         self.state, self.cause, self.since = "starved", None, now
 
     def _charge(self, t0, t1, state, cause):
