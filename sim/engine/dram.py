@@ -52,11 +52,11 @@ no command-bus contention; refresh is taken on schedule (never postponed) and
 does not wait for tRAS of open rows.
 """
 
-from bisect import bisect_left
 import numpy as np
 
 from .addrmap import BurstDecoder
-from .dram_timing import CONFLICT, HIT, MISS, serve, timing_vector
+from .dram_timing import (CONFLICT, HIT, MISS, decode_sorted, serve_and_book, serve_fixed,
+                          slots_add, slots_room_at, timing_vector)
 
 OCCUPANCY_BINS = 32
 
@@ -78,7 +78,7 @@ def channel_of(bursts, arch):
 
 
 class RequestSlots:
-    """The requests of one channel's queue, in the order they entered it.
+    """The requests of each channel's queue, in the order they entered it.
 
     Amounts are in requests of ``fetch.request_bytes`` and may be fractional:
     a share smaller than a request holds part of one. Requests enter in order,
@@ -88,43 +88,41 @@ class RequestSlots:
     another while its data streams out, linearly from ``first`` (first data)
     to ``done`` (last data). Counting by position, not by share, is what makes
     the wait independent of how a stream is cut into shares.
+
+    The rows live in numpy arrays (see :mod:`sim.engine.dram_timing`) so the
+    compiled loops read and extend them directly.
     """
 
-    __slots__ = ("beg", "end", "first", "done", "head", "total")
+    def __init__(self, channels=1, capacity=1024):
+        if channels < 1:
+            raise ValueError(f"RequestSlots: channels must be >= 1, got {channels!r}")
+        self.S = np.zeros((channels, capacity, 4))     # entered before, up to, first, done
+        self.SI = np.zeros((channels, 2), dtype=np.int64)  # head, rows
+        self.ST = np.zeros(channels)                   # requests entered so far
 
-    def __init__(self):
-        self.beg = []       # requests entered before each share
-        self.end = []       # ... and up to and including it
-        self.first = []
-        self.done = []
-        self.head = 0       # shares before this are complete for every later query
-        self.total = 0.0    # requests entered so far
-
-    def room_at(self, now, need, depth):
+    def room_at(self, now, need, depth, channel=0):
         """Earliest time from ``now`` at which ``need`` more requests (one at most) fit."""
-        level = self.total + min(need, 1.0) - depth   # completions needed first
-        if level <= 1e-9:
-            return now
-        end = self.end
-        i = bisect_left(end, level - 1e-9, self.head)
-        if i >= len(end):
-            return now
-        if i > 4096:        # levels only grow: drop what no later query can reach
-            for a in (self.beg, end, self.first, self.done):
-                del a[:i]
-            i = 0
-        self.head = i
-        lo, hi = self.beg[i], end[i]
-        f, d = self.first[i], self.done[i]
-        t = f + (level - lo) / (hi - lo) * (d - f) if hi > lo else d
-        return t if t > now else now
+        return slots_room_at(self.S, self.SI, self.ST, channel, float(now), float(need), depth)
 
-    def add(self, first, done, amount):
-        self.beg.append(self.total)
-        self.total += amount
-        self.end.append(self.total)
-        self.first.append(first)
-        self.done.append(done)
+    def add(self, first, done, amount, channel=0):
+        if self.SI[channel, 1] + 1 > self.S.shape[1]:
+            self.make_room(1)
+        slots_add(self.S, self.SI, self.ST, channel, float(first), float(done), float(amount))
+
+    def make_room(self, rows):
+        """Room for ``rows`` more rows per channel: drop what no query reaches, or grow."""
+        head, count = self.SI[:, 0], self.SI[:, 1]
+        keep = count - head
+        cap = self.S.shape[1]
+        new_cap = cap
+        while keep.max() + rows > new_cap // 2:
+            new_cap *= 2
+        S = np.zeros((self.S.shape[0], new_cap, 4)) if new_cap != cap else self.S
+        for c in range(len(head)):
+            S[c, :keep[c]] = self.S[c, head[c]:count[c]]
+        self.S = S
+        self.SI[:, 0] = 0
+        self.SI[:, 1] = keep
 
 
 class Timing:
@@ -288,13 +286,17 @@ class ChannelPool:
         self.t_lat = latency_cycles(arch)
         self.depth = d.queue_depth
         self.req_bursts = max(1, arch.fetch.request_bytes // self.burst)
-        self.free_at = [0.0] * self.n
-        self.outstanding = [RequestSlots() for _ in range(self.n)]
-        self.busy_intervals = [[] for _ in range(self.n)]
+        self.free_at = np.zeros(self.n)
+        self.outstanding = RequestSlots(self.n)
+        self.IV = np.zeros((self.n, 1024, 2))            # data-bus busy intervals per channel
+        self.IVN = np.zeros(self.n, dtype=np.int64)
         self.busy_cycles = np.zeros(self.n)
+        self.acc = np.zeros(2)                           # requests, refresh delay
+        self._counts = np.zeros(self.n, dtype=np.int64)
+        self.R = np.zeros((1024, 6))                     # share records (banked)
+        self.RN = np.zeros(1, dtype=np.int64)
         self.bytes = 0
         self.bursts = 0
-        self.requests = 0
         self.txns = 0
         self.wait_total = 0.0
         self.latency_total = 0.0
@@ -321,9 +323,10 @@ class ChannelPool:
         self.kinds = np.zeros(3, dtype=np.int64)
         self.tvec = timing_vector(self.tm)
         self.t0 = np.zeros(self.n)                  # earliest start per channel of a batch
-        self.refresh_delay = 0.0
         # per-share records (channel, arrival, start, first data, done, bursts)
-        self.rec = {k: [] for k in ("channel", "arrival", "start", "first", "done", "bursts")}
+        self._times = np.zeros(3)
+        lut = self.decoder.lut
+        self._lut = (lut[0], lut[2], self.decoder.low_bits, self.decoder.low_mask) if lut else None
         # row_hits_first: shares held per channel until its decision time
         self.held = [[] for _ in range(self.n)]
         self.timer_at = [None] * self.n
@@ -332,42 +335,51 @@ class ChannelPool:
     # ------------------------------------------------------------------ fixed
     def _submit_fixed(self, txn):
         """Serve ``txn.bursts`` on the fixed-latency model."""
-        env = self.env
-        now = env.now
+        now = self.env.now
         self._arrive(now)
-        ch = channel_of(txn.bursts, self.arch)
-        counts = np.bincount(ch, minlength=self.n)
-        t_start = now
-        t_end = now
-        for c in np.flatnonzero(counts).tolist():
-            nb = int(counts[c])
-            nreq = nb / self.req_bursts
-            start = self.free_at[c] if self.free_at[c] > now else now
-            room_at = self.outstanding[c].room_at(now, nreq, self.depth)
-            if room_at > start:  # wait until enough queued requests have completed
-                start = room_at
-            end = start + nb * self.t_burst
-            self.free_at[c] = end
-            self._busy(c, start, end)
-            self.busy_cycles[c] += end - start
-            done_c = end + self.t_lat
-            self.outstanding[c].add(start + self.t_lat, done_c, nreq)
-            self.requests += nreq
-            if start > t_start:
-                t_start = start
-            if end > t_end:
-                t_end = end
+        q = self.outstanding
+        while True:
+            ok, t_start, t_end = serve_fixed(
+                txn.bursts, self.arch.dram.interleave_bytes, now, self.free_at, self.t_burst,
+                self.t_lat, self.depth, self.req_bursts, q.S, q.SI, q.ST, self.IV, self.IVN,
+                self.busy_cycles, self.acc, self._counts)
+            if ok > 0:
+                break
+            self._make_room(1)
         t_first = t_start + self.t_lat
         t_done = max(t_end, t_start) + self.t_lat
         return self._finish(txn, now, t_start, t_first, t_done, None)
 
-    def _busy(self, c, start, end):
-        iv = self.busy_intervals[c]
-        if iv and iv[-1][1] >= start:
-            if end > iv[-1][1]:
-                iv[-1][1] = end
-        else:
-            iv.append([start, end])
+    def _make_room(self, rows):
+        """Grow the queue, interval and share tables so ``rows`` more fit per channel."""
+        self.outstanding.make_room(rows)
+        if self.IVN.max() + rows > self.IV.shape[1]:
+            cap = self.IV.shape[1]
+            while self.IVN.max() + rows > cap:
+                cap *= 2
+            IV = np.zeros((self.n, cap, 2))
+            IV[:, :self.IV.shape[1]] = self.IV
+            self.IV = IV
+        if self.RN[0] + rows > len(self.R):
+            cap = len(self.R)
+            while self.RN[0] + rows > cap:
+                cap *= 2
+            R = np.zeros((cap, 6))
+            R[:len(self.R)] = self.R
+            self.R = R
+
+    @property
+    def busy_intervals(self):
+        """Per channel, the merged data-bus busy intervals ``[[begin, end], ...]``."""
+        return [self.IV[c, :self.IVN[c]].tolist() for c in range(self.n)]
+
+    @property
+    def requests(self):
+        return float(self.acc[0])
+
+    @property
+    def refresh_delay(self):
+        return float(self.acc[1])
 
     # ----------------------------------------------------------------- banked
     def _submit_banked(self, txn):
@@ -382,9 +394,11 @@ class ChannelPool:
             _, bank, row = self.decoder.decode(b)
             gb = bank + c * self.banks
             ch = np.full(len(b), c, dtype=np.int64)
+        elif self._lut is not None:
+            ch, gb, row = decode_sorted(b, self.burst, *self._lut, self.n)
         else:
             ch, gb, row = self.decoder.decode_global(b)
-            if self.n > 1 and not (ch[1:] >= ch[:-1]).all():
+            if self.n > 1:
                 order = np.argsort(ch, kind="stable")
                 ch, gb, row = ch[order], gb[order], row[order]
         rec = [now, 0, now, now, now, None]   # arrival, shares left, start, first data, done, event
@@ -464,83 +478,24 @@ class ChannelPool:
 
     def _commit(self, rec, ch, gb, row, now):
         """Fix the timing of one batch of bursts ``ch``/``gb``/``row`` (sorted by channel)."""
-        rq, depth, t0 = self.req_bursts, self.depth, self.t0
-        if self.n == 1 or ch[0] == ch[-1]:
-            c = int(ch[0])
-            room_at = self.outstanding[c].room_at(now, len(ch) / rq, depth)
-            t0[c] = room_at if room_at > now else now
-            nch = 1
-        else:
-            cnt = np.bincount(ch)
-            chans = np.flatnonzero(cnt).tolist()
-            for c, m in zip(chans, cnt[chans].tolist()):
-                # the channel's queue is full: wait for requests to complete
-                room_at = self.outstanding[c].room_at(now, m / rq, depth)
-                t0[c] = room_at if room_at > now else now
-            nch = len(chans)
+        times = self._times
+        times[0] = -np.inf
+        times[1] = -np.inf
+        times[2] = -np.inf if rec[4] == rec[0] else rec[4]
+        st, q = self.st, self.outstanding
+        while True:
+            nch = serve_and_book(
+                ch, gb, row, now, rec[0], times, self.depth, self.req_bursts, self.groups,
+                self.banks, self.close_page, self.tvec, st.open_row, st.act, st.last_col,
+                st.pre_ready, st.close_at, self.ch_col, self.ch_group, self.ref_next, self.kinds,
+                q.S, q.SI, q.ST, self.R, self.RN, self.IV, self.IVN, self.busy_cycles, self.acc,
+                self.t0)
+            if nch >= 0:
+                break
+            self._make_room(len(ch))
         if rec[1] > 0:
             rec[1] -= nch
-        rec[2] = -np.inf
-        rec[3] = -np.inf
-        rec[4] = -np.inf if rec[4] == rec[0] else rec[4]
-        st = self.st
-        pieces, ivs, delay = serve(ch, gb, row, t0, self.groups, self.banks, self.close_page,
-                                   self.tvec, st.open_row, st.act, st.last_col, st.pre_ready,
-                                   st.close_at, self.ch_col, self.ch_group, self.ref_next,
-                                   self.kinds)
-        if delay:
-            self.refresh_delay += delay
-        self._record(rec, pieces.tolist(), ivs.tolist())
-
-    def _record(self, rec, pieces, ivs):
-        """Book served pieces: queue slots, bus intervals, share records, the transaction's times."""
-        rq = self.req_bursts
-        burst = self.tm.burst
-        r_arr = self.rec
-        r_ch, r_arr_t, r_start, r_first, r_done, r_bursts = (
-            r_arr["channel"], r_arr["arrival"], r_arr["start"], r_arr["first"], r_arr["done"],
-            r_arr["bursts"])
-        outstanding, intervals, busy = self.outstanding, self.busy_intervals, self.busy_cycles
-        requests = self.requests
-        t_arr, t_start, t_first, t_done = rec[0], rec[2], rec[3], rec[4]
-        slot = {}
-        for c, start, first, done, m, cont in pieces:
-            c = int(c)
-            m = int(m)
-            nreq = m / rq
-            requests += nreq
-            outstanding[c].add(first, done, nreq)
-            busy[c] += m * burst
-            if cont:        # the rest of a share cut by a refresh
-                k = slot[c]
-                r_done[k] = done
-                r_bursts[k] += m
-            else:
-                slot[c] = len(r_done)
-                r_ch.append(c)
-                r_arr_t.append(t_arr)
-                r_start.append(start)
-                r_first.append(first)
-                r_done.append(done)
-                r_bursts.append(m)
-                if start > t_start:
-                    t_start = start
-                if first > t_first:
-                    t_first = first
-            if done > t_done:
-                t_done = done
-        last = -1
-        for k, b, e in ivs:
-            c = int(pieces[int(k)][0])
-            iv = intervals[c]
-            if k != last and iv and iv[-1][1] >= b - 1e-9:    # joins the channel's last interval
-                if e > iv[-1][1]:
-                    iv[-1][1] = e
-            else:
-                iv.append([b, e])
-            last = k
-        self.requests = requests
-        rec[2], rec[3], rec[4] = t_start, t_first, t_done
+        rec[2], rec[3], rec[4] = times.tolist()
 
     # ----------------------------------------------------------------- common
     def _finish(self, txn, t_submit, t_start, t_first, t_done, ev, nbursts=None):
@@ -600,7 +555,11 @@ class ChannelPool:
         """Per channel share: channel, arrival, start, first data, done, bursts (numpy)."""
         if self.model != "banked":
             raise ValueError("share records exist only for dram.model: banked")
-        return {k: np.asarray(v) for k, v in self.rec.items()}
+        R = self.R[:self.RN[0]]
+        out = {k: R[:, i] for i, k in enumerate(("channel", "arrival", "start", "first", "done", "bursts"))}
+        out["channel"] = out["channel"].astype(np.int64)
+        out["bursts"] = out["bursts"].astype(np.int64)
+        return out
 
     def report(self, total_cycles):
         """The result document's ``dram`` section (before the engine adds peaks)."""

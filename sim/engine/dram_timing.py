@@ -230,3 +230,210 @@ def serve(ch, gb, row, t0, groups, banks, close_page, P,
                     t = w + rfc
             i = j
     return pieces[:npc], intervals[:niv], delay
+
+
+# ---------------------------------------------------------------- queue slots
+# A channel's queue as rows ``[entered before, entered up to, first data, last data]``
+# of ``S[channel]``; ``SI[channel] = (head, count)``; ``ST[channel]`` requests entered.
+# :class:`sim.engine.dram.RequestSlots` owns the arrays and says what they model.
+
+@_compile
+def slots_room_at(S, SI, ST, c, now, need, depth):
+    """Earliest time from ``now`` at which ``need`` more requests (one at most) fit in ``c``'s queue."""
+    level = ST[c] + min(need, 1.0) - depth       # completions needed first
+    if level <= 1e-9:
+        return now
+    x = level - 1e-9
+    lo = SI[c, 0]
+    hi = SI[c, 1]
+    while lo < hi:                               # first share whose end reaches the level
+        mid = (lo + hi) // 2
+        if S[c, mid, 1] < x:
+            lo = mid + 1
+        else:
+            hi = mid
+    if lo >= SI[c, 1]:
+        return now
+    SI[c, 0] = lo                                # levels only grow: nothing before is needed again
+    b = S[c, lo, 0]
+    e = S[c, lo, 1]
+    f = S[c, lo, 2]
+    d = S[c, lo, 3]
+    t = f + (level - b) / (e - b) * (d - f) if e > b else d
+    return t if t > now else now
+
+
+@_compile
+def slots_add(S, SI, ST, c, first, done, amount):
+    """``amount`` requests enter ``c``'s queue, completing linearly from ``first`` to ``done``."""
+    k = SI[c, 1]
+    S[c, k, 0] = ST[c]
+    ST[c] += amount
+    S[c, k, 1] = ST[c]
+    S[c, k, 2] = first
+    S[c, k, 3] = done
+    SI[c, 1] = k + 1
+
+
+# ---------------------------------------------------------------- whole batches
+
+@_compile
+def decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels):
+    """Channel, global bank and row of burst addresses ``b``, stably sorted by channel."""
+    n = len(b)
+    cnt = np.zeros(channels + 1, dtype=np.int64)
+    low = np.empty(n, dtype=np.int64)
+    for i in range(n):
+        x = b[i] // burst
+        low[i] = x & low_mask
+        cnt[lut_ch[low[i]] + 1] += 1
+    for c in range(channels):
+        cnt[c + 1] += cnt[c]
+    ch = np.empty(n, dtype=np.int64)
+    gb = np.empty(n, dtype=np.int64)
+    row = np.empty(n, dtype=np.int64)
+    for i in range(n):
+        c = lut_ch[low[i]]
+        k = cnt[c]
+        cnt[c] = k + 1
+        ch[k] = c
+        gb[k] = lut_gb[low[i]]
+        row[k] = (b[i] // burst) >> low_bits
+    return ch, gb, row
+
+
+@_compile
+def serve_and_book(ch, gb, row, now, arrival, times, depth, rq, groups, banks, close_page, P,
+                   open_row, act, last_col, pre_ready, close_at, ch_col, ch_group, ref_next,
+                   kinds, S, SI, ST, R, RN, IV, IVN, busy, acc, t0):
+    """Queue, serve and book one batch (sorted by channel) arriving at ``now``.
+
+    Each channel's share starts once its first request fits in the channel's
+    queue; :func:`serve` times it; then its pieces enter the queue slots
+    (``S``...), the share records (``R``, ``RN`` rows: channel, arrival, start,
+    first data, last data, bursts), the data-bus intervals (``IV``, ``IVN``)
+    and the busy cycles. ``times`` holds the batch's start, first data and last
+    data, raised here. ``acc`` = (requests, refresh delay). Returns the number
+    of channels served, or -1 without touching anything if a table is full.
+    """
+    n = len(ch)
+    if RN[0] + n > R.shape[0]:
+        return -1
+    i = 0
+    while i < n:
+        c = ch[i]
+        if SI[c, 1] + n > S.shape[1] or IVN[c] + n > IV.shape[1]:
+            return -1
+        while i < n and ch[i] == c:
+            i += 1
+    nch = 0
+    i = 0
+    while i < n:
+        c = ch[i]
+        j = i
+        while j < n and ch[j] == c:
+            j += 1
+        # the channel's queue is full: wait for requests to complete
+        t0[c] = slots_room_at(S, SI, ST, c, now, (j - i) / rq, depth)
+        nch += 1
+        i = j
+    pieces, ivs, delay = serve(ch, gb, row, t0, groups, banks, close_page, P, open_row, act,
+                               last_col, pre_ready, close_at, ch_col, ch_group, ref_next, kinds)
+    burst = P[P_BURST]
+    t_start = times[0]
+    t_first = times[1]
+    t_done = times[2]
+    slot = np.empty(len(ch_col), dtype=np.int64)
+    for k in range(len(pieces)):
+        c = int(pieces[k, 0])
+        m = pieces[k, 4]
+        first = pieces[k, 2]
+        done = pieces[k, 3]
+        nreq = m / rq
+        acc[0] += nreq
+        slots_add(S, SI, ST, c, first, done, nreq)
+        busy[c] += m * burst
+        if pieces[k, 5] != 0.0:          # the rest of a share cut by a refresh
+            R[slot[c], 4] = done
+            R[slot[c], 5] += m
+        else:
+            r = RN[0]
+            slot[c] = r
+            R[r, 0] = c
+            R[r, 1] = arrival
+            R[r, 2] = pieces[k, 1]
+            R[r, 3] = first
+            R[r, 4] = done
+            R[r, 5] = m
+            RN[0] = r + 1
+            if pieces[k, 1] > t_start:
+                t_start = pieces[k, 1]
+            if first > t_first:
+                t_first = first
+        if done > t_done:
+            t_done = done
+    last = -1.0
+    for q in range(len(ivs)):
+        k = ivs[q, 0]
+        c = int(pieces[int(k), 0])
+        m = IVN[c]
+        if k != last and m > 0 and IV[c, m - 1, 1] >= ivs[q, 1] - 1e-9:   # joins the last one
+            if ivs[q, 2] > IV[c, m - 1, 1]:
+                IV[c, m - 1, 1] = ivs[q, 2]
+        else:
+            IV[c, m, 0] = ivs[q, 1]
+            IV[c, m, 1] = ivs[q, 2]
+            IVN[c] = m + 1
+        last = k
+    acc[1] += delay
+    times[0] = t_start
+    times[1] = t_first
+    times[2] = t_done
+    return nch
+
+
+@_compile
+def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, S, SI, ST, IV, IVN,
+                busy, acc, counts):
+    """The fixed-latency model: each channel's bursts on one pipelined bus after the ones before.
+
+    Returns ``(status, start, end)``: -1 without touching anything if a table
+    is full, else 1 with the latest start and bus end over the channels.
+    """
+    nch = len(free_at)
+    for c in range(nch):
+        counts[c] = 0
+    for i in range(len(b)):
+        counts[(b[i] // interleave) % nch] += 1
+    for c in range(nch):
+        if counts[c] and (SI[c, 1] + 1 > S.shape[1] or IVN[c] + 1 > IV.shape[1]):
+            return -1, 0.0, 0.0
+    t_start = now
+    t_end = now
+    for c in range(nch):
+        nb = counts[c]
+        if nb == 0:
+            continue
+        nreq = nb / rq
+        start = free_at[c] if free_at[c] > now else now
+        room = slots_room_at(S, SI, ST, c, now, nreq, depth)
+        if room > start:  # wait until enough queued requests have completed
+            start = room
+        end = start + nb * t_burst
+        free_at[c] = end
+        m = IVN[c]
+        if m > 0 and IV[c, m - 1, 1] >= start:
+            if end > IV[c, m - 1, 1]:
+                IV[c, m - 1, 1] = end
+        else:
+            IV[c, m, 0] = start
+            IV[c, m, 1] = end
+            IVN[c] = m + 1
+        busy[c] += end - start
+        slots_add(S, SI, ST, c, start + t_lat, end + t_lat, nreq)
+        acc[0] += nreq
+        if start > t_start:
+            t_start = start
+        if end > t_end:
+            t_end = end
+    return 1, t_start, t_end
