@@ -71,6 +71,8 @@ class AddressMap:
         # every region starting on a burst boundary, the bursts a set of rows costs do
         # not depend on the layer or head the rows belong to (only where they land)
         self.costs_anywhere = self.region % self.burst == 0
+        self.row_bits = {pl: int(round(rb * 8)) for pl, rb in self.row_bytes.items()}
+        self.plane_index = {pl: i for i, pl in enumerate(PLANES)}
 
     def base(self, layer, plane, head):
         """Burst-aligned byte address where ``head``'s rows of ``plane`` start counting from.
@@ -78,7 +80,7 @@ class AddressMap:
         For ``heads_interleaved`` that is the shared region's start: a head's
         rows there cost the same bursts as in a region of its own at that address.
         """
-        p = PLANES.index(plane)
+        p = self.plane_index[plane]
         if self.layout == "head_regions":
             return ((layer * len(PLANES) + p) * self.heads + head) * self.region
         if self.layout == "head_planes":
@@ -87,21 +89,21 @@ class AddressMap:
 
     def bursts(self, layer, plane, head, rows):
         """Sorted distinct burst addresses (bytes) covering ``rows`` of a plane."""
-        rb = self.row_bytes[plane]
-        if rb == 0 or len(rows) == 0:
-            return np.zeros(0, dtype=np.int64)
         # work in bits: a row of 32 elements at 4 bits is 16 bytes, at 3 bits 12
-        row_bits = int(round(rb * 8))
-        burst_bits = self.burst * 8
+        row_bits = self.row_bits[plane]
         n = len(rows)
-        r0 = int(rows[0])
+        if row_bits == 0 or n == 0:
+            return np.zeros(0, dtype=np.int64)
+        burst = self.burst
+        burst_bits = burst * 8
         if self.layout == "heads_interleaved":
             return self._interleaved(layer, plane, head, np.asarray(rows, dtype=np.int64),
                                      row_bits, burst_bits)
+        r0 = int(rows[0])
         if int(rows[-1]) - r0 + 1 == n:  # contiguous rows: one run of bursts
             s0 = self.base(layer, plane, head) * 8 + r0 * row_bits
             b0, b1 = s0 // burst_bits, (s0 + n * row_bits - 1) // burst_bits
-            return np.arange(b0, b1 + 1, dtype=np.int64) * self.burst
+            return np.arange(b0 * burst, (b1 + 1) * burst, burst, dtype=np.int64)
         start = self.base(layer, plane, head) * 8 + np.asarray(rows, dtype=np.int64) * row_bits
         first = start // burst_bits
         last = (start + row_bits - 1) // burst_bits
@@ -146,7 +148,7 @@ class AddressMap:
             return 0
         r0, r1 = int(rows[0]), int(rows[-1])
         if r1 - r0 + 1 == n:
-            row_bits = int(round(self.row_bytes[plane] * 8))
+            row_bits = self.row_bits[plane]
             burst_bits = self.burst * 8
             start = self.base(layer, plane, head) * 8 + r0 * row_bits
             return (start + n * row_bits - 1) // burst_bits - start // burst_bits + 1

@@ -79,21 +79,22 @@ def softmax_process(env, ops, lanes, latency, state, queue):
     """Run ``ops`` in order, taking each op's score block from ``queue``."""
     from .dot import later
 
+    set_state = state.set
     for op in ops:
         t0 = env.now
         txn, ev = queue.get()
         if ev is not None:
-            state.set("starved", "dot")
+            set_state("starved", "dot")
             txn = yield ev
         ready = txn.log[-1][1]          # the array's pipeline delivers it then
         if ready > env.now:
             if ev is None:
-                state.set("starved", "dot")
+                set_state("starved", "dot")
             yield env.timeout(ready - env.now)
         if env.now > t0:
             state.charge_wait(t0, txn, before="dot")
-        state.set("busy")
+        set_state("busy")
         yield env.timeout(service_cycles(op.rows * op.cols, lanes))
         later(env, latency, op.done)
-        state.set("starved", None)
-    state.set("idle")
+        set_state("starved", None)
+    set_state("idle")

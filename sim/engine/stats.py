@@ -86,7 +86,10 @@ class UnitState:
     def busy_until(self, t):
         """Busy from now until ``t`` without waiting for it: what the unit does next
         starts at ``t`` (a later :meth:`set` before ``t`` takes effect from ``t``)."""
-        self.set("busy")
+        now = self.env.now
+        if now > self.since:
+            self._close(now)
+        self.state, self.cause = "busy", None
         self._close(t)
         self.state, self.cause = "starved", "program"
 
