@@ -55,8 +55,8 @@ does not wait for tRAS of open rows.
 import numpy as np
 
 from .addrmap import BurstDecoder
-from .dram_timing import (CONFLICT, HIT, MISS, decode_sorted, serve_and_book, serve_fixed,
-                          slots_add, slots_room_at, timing_vector)
+from .dram_timing import (CONFLICT, HIT, MISS, decode_sorted, serve_addresses, serve_and_book,
+                          serve_fixed, slots_add, slots_room_at, timing_vector)
 
 OCCUPANCY_BINS = 32
 
@@ -389,6 +389,8 @@ class ChannelPool:
         b = txn.bursts
         if len(b) == 0:
             return self._finish(txn, now, now, now, now, None)
+        if self._lut is not None and not (self.first_free or self.rows_first):
+            return self._serve_now(txn, b, now)
         if self.first_free:
             c = self._first_free_channel(now)
             _, bank, row = self.decoder.decode(b)
@@ -475,6 +477,22 @@ class ChannelPool:
         if rest:
             self.held[c] = rest
             self._arm(c)
+
+    def _serve_now(self, txn, b, now):
+        """First come first served with a table address map: decode, serve and book in one call."""
+        times = self._times
+        times[:] = -np.inf
+        st, q = self.st, self.outstanding
+        lut_ch, lut_gb, low_bits, low_mask = self._lut
+        while serve_addresses(
+                b, self.burst, lut_ch, lut_gb, low_bits, low_mask, now, times, self.depth,
+                self.req_bursts, self.groups, self.banks, self.close_page, self.tvec, st.open_row,
+                st.act, st.last_col, st.pre_ready, st.close_at, self.ch_col, self.ch_group,
+                self.ref_next, self.kinds, q.S, q.SI, q.ST, self.R, self.RN, self.IV, self.IVN,
+                self.busy_cycles, self.acc, self.t0) < 0:
+            self._make_room(len(b))
+        t_start, t_first, t_done = times.tolist()
+        return self._finish(txn, now, t_start, t_first, t_done, None)
 
     def _commit(self, rec, ch, gb, row, now):
         """Fix the timing of one batch of bursts ``ch``/``gb``/``row`` (sorted by channel)."""

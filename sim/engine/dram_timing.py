@@ -437,3 +437,14 @@ def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, S, SI, S
         if end > t_end:
             t_end = end
     return 1, t_start, t_end
+
+
+@_compile
+def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, depth, rq, groups,
+                    banks, close_page, P, open_row, act, last_col, pre_ready, close_at, ch_col,
+                    ch_group, ref_next, kinds, S, SI, ST, R, RN, IV, IVN, busy, acc, t0):
+    """:func:`decode_sorted` then :func:`serve_and_book` for a transaction arriving now."""
+    ch, gb, row = decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, len(ch_col))
+    return serve_and_book(ch, gb, row, now, now, times, depth, rq, groups, banks, close_page, P,
+                          open_row, act, last_col, pre_ready, close_at, ch_col, ch_group,
+                          ref_next, kinds, S, SI, ST, R, RN, IV, IVN, busy, acc, t0)
