@@ -203,7 +203,7 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
             for i, (ch, macs) in enumerate(zip(chunks, b.pv_macs)):
                 op = dotmod.DotOp("pv", s, b.head, bp.block, macs, d)
                 if i == 0:
-                    op.waits.append((final_sm.done, "softmax"))
+                    op.waits = [(final_sm.done, "softmax")]
                 op.inputs.append(ch)
                 last_use[id(ch)] = (ch, op)
                 dot_pv.append(op)
@@ -263,7 +263,7 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
                         km = kch[min(i, len(kch) - 1)]
                     op = dotmod.DotOp("lsb", s, head, bp.block, b.lsb_macs[i], d)
                     if i == 0:
-                        op.waits.append((sm1.done, "softmax"))
+                        op.waits = [(sm1.done, "softmax")]
                     op.inputs += (q, ch)
                     last_use[id(q)] = (q, op)
                     last_use[id(ch)] = (ch, op)
@@ -286,7 +286,10 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
         emit_pv(*pending_pv)
 
         for txn, op in last_use.values():
-            op.release.append(txn)
+            if op.release:
+                op.release.append(txn)
+            else:
+                op.release = [txn]
         macs = shape.macs
         counts["macs_qk"] += macs["qk"]
         counts["macs_lsb"] += macs["lsb"]

@@ -39,8 +39,8 @@ class DotOp:
         self.macs = macs
         self.head_dim = head_dim
         self.inputs = []        # fetched transactions it reads
-        self.waits = []         # (event, cause) it must see fired first
-        self.release = []       # transactions whose buffer room it frees
+        self.waits = ()         # (event, cause) it must see fired first
+        self.release = ()       # transactions whose buffer room it frees
         self.out = None         # score transaction for the softmax unit
         self.done = None        # event fired when its result is out
         self.score_rows = 0

@@ -101,17 +101,21 @@ class UnitState:
         stages the transaction was in during the wait.
         """
         now = self.env.now
-        self._close(t0)  # anything pending up to t0 stays as it was
-        if now <= t0:
-            self.state, self.cause, self.since = "starved", None, now
-            return
+        if t0 > self.since:
+            self._close(t0)  # anything pending up to t0 stays as it was
+        if now > t0:
+            self._split_wait(t0, now, txn, before, producer)
+        self.state, self.cause, self.since = "starved", None, now
+
+    def _split_wait(self, t0, now, txn, before, producer):
         log = txn.log
+        starved = self._starved
         start = t0
         created = log[0][1]
         if created > start:
             # creation: the wait before it is charged to whoever created it late
             start = min(created, now)
-            self._charge(t0, start, "starved", before)
+            starved(t0, start, before)
         for i in range(1, len(log)):
             if start >= now:
                 break
@@ -121,22 +125,28 @@ class UnitState:
                 if producer is not None and stage == producer.name:
                     for piece_end, cause in producer.explain(start, seg_end):
                         if piece_end > start:
-                            self._charge(start, piece_end, "starved", cause)
+                            starved(start, piece_end, cause)
                             start = piece_end
                     if start < seg_end:
-                        self._charge(start, seg_end, "starved", stage)
+                        starved(start, seg_end, stage)
                 else:
-                    self._charge(start, seg_end, "starved", stage)
+                    starved(start, seg_end, stage)
                 start = seg_end
         if start < now:
             # done but handed over late (e.g. the consumer itself was elsewhere)
-            self._charge(start, now, "starved", log[-1][0])
-        self.state, self.cause, self.since = "starved", None, now
+            starved(start, now, log[-1][0])
 
-    def _charge(self, t0, t1, state, cause):
-        self.since = t0
-        self.state, self.cause = state, cause
-        self._close(t1)
+    def _starved(self, t0, t1, cause):
+        """Log ``[t0, t1)`` as starved by ``cause`` (a piece of a wait, t0 < t1)."""
+        self.totals["starved", cause] += t1 - t0
+        if self.keep_intervals:
+            iv = self.intervals
+            if iv:
+                last = iv[-1]
+                if last[1] == t0 and last[2] == "starved" and last[3] == cause:
+                    last[1] = t1
+                    return
+            iv.append([t0, t1, "starved", cause])
 
     def finish(self, t_end):
         """Close the log at the end of the run; the tail after the last busy is idle."""
