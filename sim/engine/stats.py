@@ -10,6 +10,7 @@ One helper for every unit, so a new unit gets utilization and stalls for free.
 """
 
 from collections import defaultdict
+from itertools import islice
 
 STATES = ("busy", "starved", "blocked", "idle")
 
@@ -116,10 +117,9 @@ class UnitState:
             # creation: the wait before it is charged to whoever created it late
             start = min(created, now)
             starved(t0, start, before)
-        for i in range(1, len(log)):
+        for stage, t_end in islice(log, 1, None):
             if start >= now:
                 break
-            stage, t_end = log[i]
             if t_end > start:
                 seg_end = min(t_end, now)
                 if producer is not None and stage == producer.name:
