@@ -304,8 +304,10 @@ class ChannelPool:
         # live occupancy: transactions submitted and not yet complete
         self.in_flight = 0
         self._occ = []                              # (t, +1 / -1) as they happen
+        self.interleave = d.interleave_bytes
         if self.model == "fixed-latency":
             self.submit = self._submit_fixed
+            self._bind()
             return
         self.banks = d.banks
         self.groups = d.bank_groups
@@ -331,18 +333,16 @@ class ChannelPool:
         self.held = [[] for _ in range(self.n)]
         self.timer_at = [None] * self.n
         self.submit = self._submit_banked
+        self._bind()
 
     # ------------------------------------------------------------------ fixed
     def _submit_fixed(self, txn):
         """Serve ``txn.bursts`` on the fixed-latency model."""
         now = self.env.now
         self._arrive(now)
-        q = self.outstanding
         while True:
-            ok, t_start, t_end = serve_fixed(
-                txn.bursts, self.arch.dram.interleave_bytes, now, self.free_at, self.t_burst,
-                self.t_lat, self.depth, self.req_bursts, q.S, q.SI, q.ST, self.IV, self.IVN,
-                self.busy_cycles, self.acc, self._counts)
+            ok, t_start, t_end = serve_fixed(txn.bursts, self.interleave, now, self.free_at,
+                                             *self._fixed_args)
             if ok > 0:
                 break
             self._make_room(1)
@@ -367,6 +367,7 @@ class ChannelPool:
             R = np.zeros((cap, 6))
             R[:len(self.R)] = self.R
             self.R = R
+        self._bind()
 
     @property
     def busy_intervals(self):
@@ -482,17 +483,26 @@ class ChannelPool:
         """First come first served with a table address map: decode, serve and book in one call."""
         times = self._times
         times[:] = -np.inf
-        st, q = self.st, self.outstanding
-        lut_ch, lut_gb, low_bits, low_mask = self._lut
-        while serve_addresses(
-                b, self.burst, lut_ch, lut_gb, low_bits, low_mask, now, times, self.depth,
-                self.req_bursts, self.groups, self.banks, self.close_page, self.tvec, st.open_row,
-                st.act, st.last_col, st.pre_ready, st.close_at, self.ch_col, self.ch_group,
-                self.ref_next, self.kinds, q.S, q.SI, q.ST, self.R, self.RN, self.IV, self.IVN,
-                self.busy_cycles, self.acc, self.t0) < 0:
+        while serve_addresses(b, *self._lut_args, now, times, *self._state_args) < 0:
             self._make_room(len(b))
         t_start, t_first, t_done = times.tolist()
         return self._finish(txn, now, t_start, t_first, t_done, None)
+
+    def _bind(self):
+        """The kernels' argument tuples: the state arrays, bound again when a table grows."""
+        q = self.outstanding
+        self._fixed_args = (self.t_burst, self.t_lat, self.depth, self.req_bursts, q.S, q.SI,
+                            q.ST, self.IV, self.IVN, self.busy_cycles, self.acc, self._counts)
+        if self.model == "fixed-latency":
+            return
+        st = self.st
+        self._state_args = (self.depth, self.req_bursts, self.groups, self.banks,
+                            self.close_page, self.tvec, st.open_row, st.act, st.last_col,
+                            st.pre_ready, st.close_at, self.ch_col, self.ch_group,
+                            self.ref_next, self.kinds, q.S, q.SI, q.ST, self.R, self.RN,
+                            self.IV, self.IVN, self.busy_cycles, self.acc, self.t0)
+        if self._lut is not None:
+            self._lut_args = (self.burst,) + self._lut
 
     def _commit(self, rec, ch, gb, row, now):
         """Fix the timing of one batch of bursts ``ch``/``gb``/``row`` (sorted by channel)."""
@@ -500,14 +510,8 @@ class ChannelPool:
         times[0] = -np.inf
         times[1] = -np.inf
         times[2] = -np.inf if rec[4] == rec[0] else rec[4]
-        st, q = self.st, self.outstanding
         while True:
-            nch = serve_and_book(
-                ch, gb, row, now, rec[0], times, self.depth, self.req_bursts, self.groups,
-                self.banks, self.close_page, self.tvec, st.open_row, st.act, st.last_col,
-                st.pre_ready, st.close_at, self.ch_col, self.ch_group, self.ref_next, self.kinds,
-                q.S, q.SI, q.ST, self.R, self.RN, self.IV, self.IVN, self.busy_cycles, self.acc,
-                self.t0)
+            nch = serve_and_book(ch, gb, row, now, rec[0], times, *self._state_args)
             if nch >= 0:
                 break
             self._make_room(len(ch))
