@@ -524,9 +524,12 @@ class ChannelPool:
         """Mark the transaction's log, count it, and fire (or return) its completion event."""
         env = self.env
         now = env.now
-        t_start = max(t_start, t_submit)
-        t_first = max(t_first, t_start)
-        t_done = max(t_done, t_first)
+        if t_start < t_submit:
+            t_start = t_submit
+        if t_first < t_start:
+            t_first = t_start
+        if t_done < t_first:
+            t_done = t_first
         if nbursts is None:
             nbursts = len(txn.bursts)
         self.bursts += nbursts
@@ -535,9 +538,8 @@ class ChannelPool:
         self.wait_total += t_start - t_submit
         self.latency_total += t_done - t_submit
         self.latencies.append(t_done - t_submit)
-        txn.mark("memory_queue", t_start)
-        txn.mark("memory_latency", t_first)
-        txn.mark("memory_transfer", t_done)
+        txn.log += (("memory_queue", t_start), ("memory_latency", t_first),
+                    ("memory_transfer", t_done))
         if ev is None:
             out = env.timeout(t_done - now)
             out.callbacks.append(self._left)
