@@ -58,6 +58,8 @@ def main():
     args = ap.parse_args()
     base = sim.load_arch(args.arch)
     print(f"config {base.name}: {base.dram.channels} channels, burst {base.dram.burst_bytes} B")
+    for model in ("fixed-latency", "banked"):    # load the compiled loops outside the timing
+        pool_cost(base.with_overrides({"dram.model": model}), "sequential", 2)
     for pattern in ("sequential", "pruned", "random"):
         row = []
         for model in ("fixed-latency", "banked"):
