@@ -53,6 +53,24 @@ def bare_simpy_rate(tiles=50_000):
     return tiles / (time.perf_counter() - t0)
 
 
+def count_events(arch, trace):
+    """simpy events one replay schedules (an untimed run): the simulator's work, free of machine noise."""
+    env_cls = simpy.Environment
+    orig = env_cls.schedule
+    count = [0]
+
+    def schedule(self, *a, **k):
+        count[0] += 1
+        return orig(self, *a, **k)
+
+    env_cls.schedule = schedule
+    try:
+        sim.simulate(arch, trace)
+    finally:
+        env_cls.schedule = orig
+    return count[0]
+
+
 def timed_replay(arch, trace, repeat):
     best = None
     result = None
@@ -107,6 +125,8 @@ def main():
           f"steps, {w2 - w0:.3f} s at {2 * args.decode} steps -> ratio {(w2 - w0) / (wall - w0):.2f} "
           f"(whole replay {w2 / wall:.2f}x)")
     print(f"  clock x10: {docs['clock']['cycles']:,} cycles, wall {w10:.3f} s ({(w10 - wall) / wall:+.1%} vs base)")
+    e1, e10 = count_events(arch, trace), count_events(fast, trace)
+    print(f"  simpy events scheduled: {e1:,} at the base clock, {e10:,} at x10 ({(e10 - e1) / e1:+.2%})")
 
 if __name__ == "__main__":
     main()
