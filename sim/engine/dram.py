@@ -72,11 +72,6 @@ def latency_cycles(arch):
     return arch.dram.latency_ns * arch.clock_ghz
 
 
-def channel_of(bursts, arch):
-    """Channel index of each burst address (bytes), fixed-latency model."""
-    return (bursts // arch.dram.interleave_bytes) % arch.dram.channels
-
-
 class RequestSlots:
     """The requests of each channel's queue, in the order they entered it.
 
@@ -140,7 +135,6 @@ class Timing:
         self.refi = d.t_refi_ns * ghz
         self.rfc = d.t_rfc_ns * ghz
         self.ctrl = d.controller_ns * ghz
-        self.rc = self.ras + self.rp
         # how far ahead of its bus slot a queued share is committed under row_hits_first:
         # enough to hide a precharge and an activate behind the previous share's data
         self.lookahead = self.rp + self.rcd

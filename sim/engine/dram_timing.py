@@ -58,6 +58,18 @@ def timing_vector(tm):
 
 
 @_compile
+def _reopen(last_col, act, t, rtp, ras, rp):
+    """Activate time of a bank switching rows: precharge no earlier than tRTP after its
+    last column, tRAS after its activate and the time the batch may start, then tRP."""
+    a = last_col + rtp
+    if act + ras > a:
+        a = act + ras
+    if t > a:
+        a = t
+    return a + rp
+
+
+@_compile
 def _refresh(c, banks, end, open_row, pre_ready):
     """Channel ``c`` refreshes until ``end``: its rows close and none opens before then."""
     for b in range(c * banks, (c + 1) * banks):
@@ -146,23 +158,13 @@ def serve(ch, gb, row, t0, groups, banks, close_page, P,
                         a = pre_ready[b] if pre_ready[b] > t else t
                     else:
                         kind = CONFLICT
-                        a = last_col[b] + rtp
-                        if act[b] + ras > a:
-                            a = act[b] + ras
-                        if t > a:
-                            a = t
-                        a += rp
+                        a = _reopen(last_col[b], act[b], t, rtp, ras, rp)
                     ready = a + rcd
                     if t > ready:
                         ready = t
                 else:                                     # the bank changes rows in the batch
                     kind = CONFLICT
-                    a = b_col[b] + rtp
-                    if b_act[b] + ras > a:
-                        a = b_act[b] + ras
-                    if t > a:
-                        a = t
-                    a += rp
+                    a = _reopen(b_col[b], b_act[b], t, rtp, ras, rp)
                     ready = a + rcd
                 cc = prev_c + d
                 if ready > cc:
