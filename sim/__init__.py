@@ -17,19 +17,21 @@ from .errors import ConfigError, InputError, SimulationStalled, TraceError  # no
 from .trace.format import Trace, load_trace  # noqa: E402
 
 
-def simulate(arch, trace, **engine_options):
+def simulate(arch, trace, keep_intervals=True, **engine_options):
     """Replay ``trace`` on ``arch`` and return a :class:`sim.result.Result`.
 
     ``arch`` may be an Arch, a YAML path or a mapping; ``trace`` a Trace or a
     path. ``engine_options`` override the config's ``engine`` section
-    (``grain_rows``, ``seed``).
+    (``grain_rows``, ``seed``). ``keep_intervals=False`` skips the per-unit
+    intervals a timeline needs (the document is the same).
     """
     from .engine.datapath import run_datapath
+    from .result import build_result
 
     arch = load_arch(arch)
     if not isinstance(trace, Trace):
         trace = load_trace(trace)
-    return run_datapath(arch, trace, **engine_options)
+    return build_result(run_datapath(arch, trace, keep_intervals=keep_intervals, **engine_options))
 
 
 __all__ = ["Arch", "ConfigError", "InputError", "SimulationStalled", "Trace", "TraceError",

@@ -132,6 +132,9 @@ SCHEMA = {
         "request_bytes": Field("int", 1024, "largest request the fetch unit sends to one channel"),
         "inflight": Field("int", 32, "transactions the fetch unit may have outstanding"),
         "reorder_entries": Field("int", 16, "completed transactions the reorder stage can hold"),
+        "issue_window": Field("int", 0, "transactions the fetch unit may issue past one that waits for "
+                              "a result (a top-k, a softmax decision, the previous layer); 0: strict "
+                              "program order", minimum=0),
     },
     "buffers": {
         "query_kib": Field("float", 16.0, "on-chip query buffer, KiB"),

@@ -31,7 +31,7 @@ def _cmd_run(args):
     import json
 
     from .arch import load_arch
-    from .engine.datapath import run_datapath
+    from . import simulate
     from .result import format_summary
     from .trace.format import load_trace
 
@@ -44,7 +44,7 @@ def _cmd_run(args):
         opts["grain_rows"] = args.grain_rows
     if args.seed is not None:
         opts["seed"] = args.seed
-    result = run_datapath(arch, trace, keep_intervals=bool(args.timeline), **opts)
+    result = simulate(arch, trace, keep_intervals=bool(args.timeline), **opts)
     print(format_summary(result))
     if args.json:
         with open(args.json, "w", encoding="utf-8") as fh:

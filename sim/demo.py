@@ -51,10 +51,10 @@ def _one(job):
     t0 = time.perf_counter()
     try:
         from . import load_arch, load_trace
-        from .engine.datapath import run_datapath
+        from . import simulate
 
         trace = load_trace(trace_path) if trace_path else _synth(trace_name)
-        res = run_datapath(load_arch(config_path), trace, keep_intervals=True)
+        res = simulate(load_arch(config_path), trace, keep_intervals=True)
         return {"ok": True, "doc": res.to_dict(), "intervals": res.intervals, "trace_path": trace_path,
                 "seconds": time.perf_counter() - t0}
     except Exception as exc:  # a failing pair is reported, the others still run

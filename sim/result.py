@@ -120,8 +120,11 @@ def _dram_states(pool, fetch_state, end):
     return frac
 
 
-def build_result(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end, engine):
-    """Assemble the result document from a finished run."""
+def build_result(stats):
+    """Assemble the result document from a finished run's :class:`~sim.engine.stats.RunStats`."""
+    arch, trace, prog, pool, states = stats.arch, stats.trace, stats.prog, stats.pool, stats.states
+    buffers, fetch_stats, step_times, end = stats.buffers, stats.fetch_stats, stats.step_times, stats.end
+    engine = stats.engine
     clock = arch.clock_ghz * 1e9
     cycles = int(math.ceil(end - 1e-9))
     seconds = cycles / clock

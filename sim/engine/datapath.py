@@ -30,7 +30,7 @@ from .addrmap import AddressMap
 from .buffers import Buffer
 from .dram import ChannelPool
 from .fetch import fetch_process
-from .stats import UnitState
+from .stats import RunStats, UnitState
 from .tiling import check_fits, plan_step, pv_macs, selects_next
 from .txn import Txn
 
@@ -324,7 +324,10 @@ def build_program(env, arch, trace, amaps, buffers, grain_rows, rng):
 
 
 def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True):
-    """Replay ``trace`` on ``arch``; return a :class:`sim.result.Result`."""
+    """Replay ``trace`` on ``arch``; return the run's :class:`~sim.engine.stats.RunStats`.
+
+    :func:`sim.result.build_result` turns them into the result document.
+    """
     # A run allocates hundreds of thousands of small objects that live until it
     # ends; the cyclic collector would walk them over and over (a third of the
     # wall time on long decode traces). Reference counting frees the rest.
@@ -338,8 +341,6 @@ def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True):
 
 
 def _run(arch, trace, grain_rows, seed, keep_intervals):
-    from ..result import build_result
-
     grain_rows, seed = _engine_options(arch, grain_rows, seed)
     dims = sorted({s.head_dim for s in trace.steps})
     for d in dims:
@@ -396,8 +397,8 @@ def _run(arch, trace, grain_rows, seed, keep_intervals):
             f"no progress at cycle {env.now:.0f} after {done}/{len(step_times)} steps; "
             f"waiting units: {', '.join(stuck) or 'none'} (arch {arch.source}, trace {trace.source})")
     end = max(step_times)
-    return build_result(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end,
-                        {"grain_rows": grain_rows, "seed": seed})
+    return RunStats(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end,
+                    {"grain_rows": grain_rows, "seed": seed})
 
 
 class _amap_router:

@@ -168,3 +168,26 @@ class UnitState:
         out = {s: frac[s] / total for s in STATES}
         out["stalls"] = {k: v / total for k, v in sorted(stalls.items(), key=lambda kv: -kv[1])}
         return out
+
+
+class RunStats:
+    """What a finished run measured: the raw material of the result document.
+
+    The engine hands this over and is done; :func:`sim.result.build_result`
+    reads it (and closes the unit logs at ``end``).
+    """
+
+    __slots__ = ("arch", "trace", "prog", "pool", "states", "buffers", "fetch_stats", "step_times",
+                 "end", "engine")
+
+    def __init__(self, arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end, engine):
+        self.arch = arch
+        self.trace = trace
+        self.prog = prog                # per-unit programs and work counts
+        self.pool = pool                # the channel pool, with its counters
+        self.states = states            # unit name -> UnitState
+        self.buffers = buffers          # buffer name -> Buffer
+        self.fetch_stats = fetch_stats  # bytes, transactions, requests by plane
+        self.step_times = step_times    # cycle each step finished
+        self.end = end                  # cycle the last step finished
+        self.engine = engine            # engine settings the run used

@@ -291,7 +291,7 @@ def replay_intervals(run):
     compares with the document), or None when it matched.
     """
     from ..arch import load_arch
-    from ..engine.datapath import run_datapath
+    from .. import simulate
     from ..trace.format import load_trace
 
     path = run.trace_path
@@ -303,7 +303,7 @@ def replay_intervals(run):
                 f"({run.digest[:12]})")
     arch = load_arch(run.doc["arch"]["config"], source=run.doc["arch"].get("source", "<recorded config>"))
     eng = run.doc.get("engine", {})
-    res = run_datapath(arch, trace, grain_rows=eng.get("grain_rows"), seed=eng.get("seed"), keep_intervals=True)
+    res = simulate(arch, trace, grain_rows=eng.get("grain_rows"), seed=eng.get("seed"), keep_intervals=True)
     run.intervals = res.intervals
     note = None
     if run.version != __version__:

@@ -66,9 +66,9 @@ def _trace(path, digest):
 
 def _simulate(config, trace):
     from ..arch import load_arch
-    from ..engine.datapath import run_datapath
+    from .. import simulate
 
-    return run_datapath(load_arch(config, source="sweep point"), trace).to_dict()
+    return simulate(load_arch(config, source="sweep point"), trace).to_dict()
 
 
 def run_point(config, trace_path, trace_digest):
