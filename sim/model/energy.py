@@ -1,13 +1,10 @@
-"""Energy model: what a run costs, counted operation by operation.
+"""Energy model: what a run costs, dynamic and static, counted item by item.
 
-Energy is the count of each operation the run performed times the energy of
-one such operation in a technology preset (default: the 45 nm figures of
-Horowitz, ISSCC 2014, in ``presets/energy_horowitz45.yaml``). Only dynamic
-energy of the modelled operations is counted: no leakage, no clock tree, no
-control logic of the fetch unit, no on-chip wires beyond what the SRAM figures
-hold.
+Every item is a count times the energy of one, from a technology preset
+(default: the 45 nm figures of Horowitz, ISSCC 2014, in
+``presets/energy_horowitz45.yaml``; every value there names its origin).
 
-Operations and how each is priced:
+Dynamic energy -- operations the run performed, and the clock:
 
 * q.K MAC: a ``q_bits x k_msb_bits`` multiply plus an accumulate add of
   ``mac.accumulate_bits``; the LSB recompute multiplies ``q_bits x
@@ -18,12 +15,24 @@ Operations and how each is priced:
   (``softmax.exp_multiplies`` multiplies and ``exp_adds`` adds at
   ``score_bits``), one add (running sum), one multiply (normalize);
 * top-k: one compare per comparison the selector made;
-* SRAM: one 64-bit access per 8 bytes read or written, priced by the
-  buffer's size (power-law interpolation between table sizes);
-* DRAM: bytes moved x 8 x pJ per bit of the interface.
+* SRAM: accesses of the buffer's width. Reads are as wide as the array
+  consumes a row (``dot.lanes`` elements of the buffer's plane), writes as
+  wide as a DRAM burst. One access of ``W`` bits to a buffer of ``S`` KiB costs
+  ``read_64b(S) x (f + (1 - f) x W / 64)``: ``read_64b`` by power-law
+  interpolation between the table's sizes, ``f`` the preset's
+  ``sram_access.fixed_share`` (decode and word line, not repeated per bit);
+* DRAM: bytes moved x 8 x pJ per bit of the interface;
+* clock and control: per busy cycle of each logic unit (dot arrays, softmax,
+  top-k), ``clock.pj_per_mm2_busy_cycle`` x the unit's area proxy; an idle
+  or waiting unit is taken to be clock-gated.
 
-Pure functions of the architecture, the counts in a result document and the
-trace: no simpy here.
+Static energy -- leakage: every unit's area proxy (``sim.model.area``) times
+the preset's leakage density (``leakage_mw_per_mm2``: logic or SRAM) times the
+run's time. Nothing is power-gated, so a larger datapath leaks more for as
+long as the run lasts: a bigger array that finishes sooner can win or lose.
+
+Pure functions of the architecture, the counts and state shares in a result
+document and the trace: no simpy here.
 """
 
 from ..errors import ConfigError
@@ -87,9 +96,23 @@ def check_config(arch_dict, source="<config>"):
 
 def _op(ops, name, unit, count, group, fmt, bits, table, what):
     entry, e = presets.nearest_width(table["groups"][group], fmt, bits)
-    ops[name] = {"unit": unit, "count": count, "pj_each": float(e["value"]), "entry": f"{group}.{entry}",
+    ops[name] = {"unit": unit, "kind": "dynamic", "count": count, "pj_each": float(e["value"]), "entry": f"{group}.{entry}",
                  "operand_bits": bits, "origin": e["origin"], "what": what,
                  "pj": count * float(e["value"])}
+
+
+PLANE_BITS = {"query": "q_bits", "key": "k_msb_bits", "value": "v_bits"}
+LOGIC_UNITS = ("dot", "dot_pv", "softmax", "topk")
+
+
+def access_bits(arch_dict, buffer):
+    """``{"read": W, "write": W}``: bits one access to ``buffer`` moves.
+
+    Reads feed the dot array one row of ``dot.lanes`` elements at a time (of
+    the buffer's plane: q, the key MSB plane, v); writes land a DRAM burst.
+    """
+    bits = arch_dict["precision"][PLANE_BITS[buffer]]
+    return {"read": arch_dict["dot"]["lanes"] * bits, "write": arch_dict["dram"]["burst_bytes"] * 8}
 
 
 def operation_energy(arch_dict, counts, table):
@@ -131,19 +154,26 @@ def operation_energy(arch_dict, counts, table):
     _op(ops, "topk_compare", "topk", counts["topk_comparisons"], "add_pj", fmt["compare"], sb, table,
         "one compare per selector comparison")
     wf = float(g["sram"]["write_factor"]["value"])
+    fixed = float(g["sram_access"]["fixed_share"]["value"])
     for name, b in counts["buffers"].items():
         kib = float(arch_dict["buffers"][f"{name}_kib"])
-        pj, how = presets.sram_per_access(g["sram_read_64b_pj"], kib)
+        pj64, how = presets.sram_per_access(g["sram_read_64b_pj"], kib)
         unit = f"{name}_buffer"
-        for mode, nbytes, each in (("read", b["bytes_read"], pj), ("write", b["bytes_written"], pj * wf)):
+        widths = access_bits(arch_dict, name)
+        for mode, nbytes, factor in (("read", b["bytes_read"], 1.0), ("write", b["bytes_written"], wf)):
+            w = widths[mode]
+            each = pj64 * (fixed + (1.0 - fixed) * w / 64.0) * factor
+            n = nbytes * 8.0 / w
             ops[f"{name}_buffer_{mode}"] = {
-                "unit": unit, "count": nbytes / 8.0, "pj_each": each, "entry": "sram_read_64b_pj",
-                "operand_bits": 64, "origin": how + ("" if mode == "read" else f"; x sram.write_factor {wf:g}"),
-                "what": f"64-bit {mode}s of the {kib:g} KiB {name} buffer", "pj": nbytes / 8.0 * each}
+                "unit": unit, "kind": "dynamic", "count": n, "pj_each": each, "entry": "sram_read_64b_pj",
+                "operand_bits": w,
+                "origin": f"{how}; {w}-bit access = 64-bit x ({fixed:g} + {1 - fixed:g} x {w}/64)"
+                          + ("" if mode == "read" else f"; x sram.write_factor {wf:g}"),
+                "what": f"{w}-bit {mode}s of the {kib:g} KiB {name} buffer", "pj": n * each}
     iface, why = dram_interface(arch_dict, table)
     e = g["dram_pj_per_bit"][iface]
     bits = counts["dram_bytes"] * 8
-    ops["dram_transfer"] = {"unit": "dram", "count": bits, "pj_each": float(e["value"]),
+    ops["dram_transfer"] = {"unit": "dram", "kind": "dynamic", "count": bits, "pj_each": float(e["value"]),
                             "entry": f"dram_pj_per_bit.{iface}", "operand_bits": 1,
                             "origin": f"{e['origin']}; interface {why}", "what": "bits moved to or from DRAM",
                             "pj": bits * float(e["value"])}
@@ -171,27 +201,82 @@ def counts_from_document(doc):
                         for k, v in doc["buffers"].items()}}
 
 
+def clock_and_leakage(arch_dict, units_mm2, busy_cycles, cycles, table):
+    """Clock/control (dynamic) and leakage (static) items per unit, like :func:`operation_energy`'s.
+
+    ``units_mm2``: the area proxy per unit; ``busy_cycles``: busy cycles per
+    logic unit; ``cycles``: the run's length. Leakage is priced per cycle:
+    ``mW / clock_ghz`` pJ per cycle (1 mW for 1 ns is 1 pJ).
+    """
+    g = table["groups"]
+    clk = g["clock"]["pj_per_mm2_busy_cycle"]
+    leak = g["leakage_mw_per_mm2"]
+    ghz = float(arch_dict["clock_ghz"])
+    ops = {}
+    for unit, mm2 in units_mm2.items():
+        if unit in LOGIC_UNITS:
+            each = float(clk["value"]) * mm2
+            n = float(busy_cycles.get(unit, 0.0))
+            ops[f"{unit}_clock"] = {
+                "unit": unit, "kind": "dynamic", "count": n, "pj_each": each, "entry": "clock.pj_per_mm2_busy_cycle",
+                "operand_bits": None, "origin": clk["origin"],
+                "what": f"clock and control per busy cycle of {mm2:.4g} mm^2 of logic", "pj": n * each}
+        kind = "sram" if unit.endswith("_buffer") else "logic"
+        mw = float(leak[kind]["value"]) * mm2
+        each = mw / ghz
+        ops[f"{unit}_leakage"] = {
+            "unit": unit, "kind": "static", "count": float(cycles), "pj_each": each,
+            "entry": f"leakage_mw_per_mm2.{kind}", "operand_bits": None, "origin": leak[kind]["origin"],
+            "what": f"leakage of {mm2:.4g} mm^2 of {kind} ({mw:.4g} mW) per cycle of the run", "pj": cycles * each,
+            "mw": mw}
+    return ops
+
+
 def energy_section(arch, doc, trace):
-    """The result document's ``energy`` section for a finished run."""
+    """The result document's ``energy`` section for a finished run.
+
+    Reads the document's counts, ``cycles``, ``seconds`` and the units' busy
+    shares; the area proxy is computed from the config.
+    """
+    from .area import area_section
+
     d = arch if isinstance(arch, dict) else arch.to_dict()
     table = resolve_table(d, getattr(arch, "source", "<config>"))
     ops = operation_energy(d, counts_from_document(doc), table)
-    units = {}
+    cycles = doc["cycles"]
+    busy = {u: doc["units"][u]["busy"] * cycles for u in LOGIC_UNITS if u in doc["units"]}
+    ops.update(clock_and_leakage(d, area_section(arch)["units_mm2"], busy, cycles, table))
+    per_kind = {"dynamic": {}, "static": {}}
     for op in ops.values():
-        units[op["unit"]] = units.get(op["unit"], 0.0) + op["pj"]
-    units = {u: units[u] for u in UNIT_ORDER if u in units}
+        k = per_kind[op["kind"]]
+        k[op["unit"]] = k.get(op["unit"], 0.0) + op["pj"]
+    units = {u: per_kind["dynamic"].get(u, 0.0) + per_kind["static"].get(u, 0.0)
+             for u in UNIT_ORDER if u in per_kind["dynamic"] or u in per_kind["static"]}
+    dynamic = sum(per_kind["dynamic"].values())
+    static = sum(per_kind["static"].values())
     total = sum(units.values())
     work = work_of(trace)
     secs = doc["seconds"]
+    leak_mw = {op["unit"]: op["mw"] for op in ops.values() if op["kind"] == "static"}
     return {
-        "model": "dynamic energy of counted operations x per-operation energy (a proxy)",
+        "model": "a proxy: dynamic = counted operations x per-operation energy + clock and control per busy "
+                 "cycle and mm^2 of logic; static = leakage density x area proxy x run time",
         "preset": {"name": table["name"], "source": table["source"], "file": table["file"]},
         "total_pj": total,
+        "dynamic_pj": dynamic,
+        "static_pj": static,
         "units_pj": units,
+        "dynamic_units_pj": {u: per_kind["dynamic"][u] for u in UNIT_ORDER if u in per_kind["dynamic"]},
+        "static_units_pj": {u: per_kind["static"][u] for u in UNIT_ORDER if u in per_kind["static"]},
+        "leakage_mw": leak_mw,
+        "leakage_total_mw": sum(leak_mw.values()),
         "operations": ops,
         "average_power_w": total * 1e-12 / secs if secs else None,
+        "dynamic_power_w": dynamic * 1e-12 / secs if secs else None,
+        "static_power_w": static * 1e-12 / secs if secs else None,
         "pj_per_query_row": total / work["query_rows"] if work["query_rows"] else None,
         "pj_per_token": total / work["tokens"] if work["tokens"] else None,
         "work": work,
-        "not_counted": "leakage, clock tree, control and fetch logic, on-chip wires outside the SRAM figures",
+        "not_counted": "on-chip wires outside the SRAM figures, the fetch unit's own logic beyond the clock and "
+                       "control share, DRAM background and refresh power, the memory PHY; no power gating",
     }

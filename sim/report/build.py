@@ -39,10 +39,12 @@ LIMITS = (
     "This is a cycle-approximate model, not sign-off data. Timing comes from a discrete-event "
     "simulation of transactions (tiles and burst groups), not from RTL: pipelines, arbitration and the "
     "memory controller are approximated and events are grouped, so cycle counts are estimates whose "
-    "error against real hardware is unknown. Energy counts only the dynamic energy of the modelled "
-    "operations, priced from a named per-operation table (45 nm figures of Horowitz, ISSCC 2014, "
-    "plus derived and recalled values marked in the preset); leakage, clock tree, control and wires are "
-    "left out, and other process nodes are not scaled. Area is a proxy: arithmetic units and SRAM bits "
+    "error against real hardware is unknown. Energy is a proxy: the dynamic energy of the modelled "
+    "operations priced from a named per-operation table (45 nm figures of Horowitz, ISSCC 2014, plus "
+    "derived and recalled values marked in the preset), a clock and control share per busy cycle and "
+    "area, and leakage as a recalled density times the area proxy times the run time; wires outside "
+    "the SRAM figures, DRAM background power and power gating are left out, and other process nodes "
+    "are not scaled. Area is a proxy: arithmetic units and SRAM bits "
     "times per-item areas, without wiring, control, the fetch unit or the memory PHY. Use the numbers "
     "to compare candidate datapaths with each other on the same workloads, not as absolute figures.")
 

@@ -380,8 +380,8 @@ def energy_area(runs):
     fig.legend(list(handles.values()), list(handles), loc="outside lower center", ncol=min(len(handles), 8),
                fontsize=8, frameon=False)
     return Figure("energy_area", "Energy and area by unit",
-                  "Left: each run's energy split over the units that spend it (dynamic energy of counted "
-                  "operations), its total at the bar's end. Right: each config's area proxy split over "
+                  "Left: each run's energy split over the units that spend it (operations, clock and "
+                  "leakage of each unit), its total at the bar's end. Right: each config's area proxy split over "
                   "its units.", fig, ["quantity", "run_or_config", "unit", "value"], rows)
 
 
