@@ -73,6 +73,28 @@ class Field:
         raise AssertionError(self.kind)
 
 
+# Refresh modes of each memory standard (all from memory): JESD79-4 DDR4 refreshes all banks;
+# JESD79-5 DDR5 adds same-bank refresh (one bank of every bank group); JESD235 HBM2, JESD238
+# HBM3, JESD209-5 LPDDR5/5X and JESD250 GDDR6 add per-bank refresh.
+REFRESH_MODES = ("all_bank", "per_bank", "same_bank")
+STANDARDS = {
+    "custom": REFRESH_MODES,
+    "ddr4": ("all_bank",),
+    "ddr5": ("all_bank", "same_bank"),
+    "hbm2": ("all_bank", "per_bank"),
+    "hbm3": ("all_bank", "per_bank"),
+    "lpddr5x": ("all_bank", "per_bank"),
+    "gddr6": ("all_bank", "per_bank"),
+}
+# Timings the banked model reads in every mode, and those each refresh mode adds.
+CORE_TIMINGS = ("t_cl_ns", "t_rcd_ns", "t_rp_ns", "t_ras_ns", "t_rc_ns", "t_rtp_ns", "t_ccd_l_ns",
+                "t_rrd_s_ns", "t_rrd_l_ns", "t_faw_ns", "t_cwl_ns", "t_wr_ns", "t_wtr_s_ns",
+                "t_wtr_l_ns", "t_rtw_ns")
+REFRESH_TIMINGS = {"all_bank": ("t_refi_ns", "t_rfc_ns"),
+                   "per_bank": ("t_refi_ns", "t_rfc_pb_ns", "t_refi_pb_ns"),
+                   "same_bank": ("t_refi_ns", "t_rfc_pb_ns", "t_refi_pb_ns")}
+
+
 # Section -> field -> Field. Sections own disjoint knobs; other modules read
 # them through the loaded Arch, never from raw YAML.
 SCHEMA = {
@@ -105,9 +127,33 @@ SCHEMA = {
         "t_rtp_ns": Field("float", 4.0, "column read to precharge, ns", minimum=0),
         "t_ccd_l_ns": Field("float", 4.0, "column to column in the same bank group, ns "
                             "(other groups: one burst time)", minimum=0),
-        "t_refi_ns": Field("float", 3900.0, "interval between all-bank refreshes, ns"),
-        "t_rfc_ns": Field("float", 260.0, "time one refresh blocks the channel, ns (0: no refresh)",
+        "t_rc_ns": Field("float", 47.0, "activate to activate in one bank (row cycle), ns; at least "
+                         "t_ras_ns + t_rp_ns"),
+        "t_rrd_s_ns": Field("float", 4.0, "activate to activate in different bank groups of one channel, ns",
+                            minimum=0),
+        "t_rrd_l_ns": Field("float", 6.0, "activate to activate in the same bank group, ns", minimum=0),
+        "t_faw_ns": Field("float", 16.0, "window in which one channel issues at most four activates, ns "
+                          "(0: no window)", minimum=0),
+        "t_cwl_ns": Field("float", 4.0, "column write to first write data (write latency), ns", minimum=0),
+        "t_wr_ns": Field("float", 16.0, "end of write data to precharge (write recovery), ns", minimum=0),
+        "t_wtr_s_ns": Field("float", 3.0, "end of write data to a read in another bank group, ns", minimum=0),
+        "t_wtr_l_ns": Field("float", 8.0, "end of write data to a read in the same bank group, ns", minimum=0),
+        "t_rtw_ns": Field("float", 14.0, "column read to column write on one channel (read-to-write bus "
+                          "turnaround), ns", minimum=0),
+        "refresh": Field("choice", "all_bank", "all_bank: the whole channel refreshes for t_rfc_ns every "
+                         "t_refi_ns; per_bank: one bank (or bank set) at a time for t_rfc_pb_ns, a command "
+                         "every t_refi_pb_ns; same_bank: the same bank of every bank group at once",
+                         choices=list(REFRESH_MODES)),
+        "t_refi_ns": Field("float", 3900.0, "interval at which every bank is refreshed once, ns"),
+        "t_rfc_ns": Field("float", 260.0, "time an all-bank refresh blocks the channel, ns (0: no refresh)",
                           minimum=0),
+        "t_rfc_pb_ns": Field("float", 160.0, "time a per-bank or same-bank refresh blocks its banks, ns "
+                             "(0: no refresh)", minimum=0),
+        "t_refi_pb_ns": Field("float", 243.75, "interval between per-bank or same-bank refresh commands "
+                              "of one channel, ns"),
+        "standard": Field("choice", "custom", "memory standard the timings follow; a named one allows only "
+                          "its refresh modes and must give every timing the modes in use need",
+                          choices=list(STANDARDS)),
         "controller_ns": Field("float", 0.0, "controller and interconnect time added to every access "
                                "in the banked model, ns", minimum=0),
         "page_policy": Field("choice", "open", "open: a row stays open after access; close: "
@@ -115,6 +161,11 @@ SCHEMA = {
                              choices=["open", "close"]),
         "scheduler": Field("choice", "fcfs", "order a channel serves its queue: first come first "
                            "served, or row hits first", choices=["fcfs", "row_hits_first"]),
+        "write_queue": Field("int", 64, "write bursts one channel's write queue holds"),
+        "write_high": Field("float", 0.75, "write-queue fill (a fraction) at which the channel turns "
+                            "to draining writes"),
+        "write_low": Field("float", 0.25, "write-queue fill (a fraction) at which a drain stops",
+                           minimum=0),
         "address_bits": Field("str", "auto", "address map, most significant first: comma-separated "
                               "row, bank, group, column, channel, each optionally :BITS; 'auto' "
                               "derives it from interleave_bytes"),
@@ -368,6 +419,7 @@ def _validate(raw, source):
         out[section] = {key: (field.check(source, f"{section}.{key}", given[key]) if key in given
                               else copy.deepcopy(field.default))
                         for key, field in fields.items()}
+    _check_dram_given(raw.get("dram") or {}, out["dram"], source)
     _check_consistency(out, source)
     _check_cost_models(out, source)
     return out
@@ -415,9 +467,81 @@ def _check_dram(dram, source):
     if dram["banks"] % dram["bank_groups"]:
         raise ConfigError(source, "dram.bank_groups", dram["bank_groups"],
                           f"expected a divisor of dram.banks={dram['banks']}")
+    _check_dram_timings(dram, source)
+    _check_write_queue(dram, source)
+    _check_refresh(dram, source)
     if dram["model"] != "banked":
         return
     address_slices(dram, source)
+
+
+def _check_dram_timings(dram, source):
+    """Timings that contradict each other (JEDEC defines tRC = tRAS + tRP at least, and four
+    activates at tRRD_S spacing inside one tFAW window)."""
+    ras, rp = dram["t_ras_ns"], dram["t_rp_ns"]
+    if dram["t_rc_ns"] < ras + rp - 1e-9:
+        raise ConfigError(source, "dram.t_rc_ns", dram["t_rc_ns"],
+                          f"expected at least dram.t_ras_ns + dram.t_rp_ns = {ras + rp:g} (a bank cannot "
+                          "open its next row before the last one closed)")
+    if dram["t_faw_ns"] and dram["t_faw_ns"] < 4 * dram["t_rrd_s_ns"] - 1e-9:
+        raise ConfigError(source, "dram.t_faw_ns", dram["t_faw_ns"],
+                          f"expected at least 4 x dram.t_rrd_s_ns = {4 * dram['t_rrd_s_ns']:g} (or 0: no "
+                          "window); four activates at tRRD_S spacing already span that")
+    for short, long_ in (("t_rrd_s_ns", "t_rrd_l_ns"), ("t_wtr_s_ns", "t_wtr_l_ns")):
+        if dram[long_] < dram[short]:
+            raise ConfigError(source, f"dram.{long_}", dram[long_],
+                              f"expected at least dram.{short}={dram[short]:g} (the same bank group "
+                              "waits at least as long as another group)")
+
+
+def _check_write_queue(dram, source):
+    lo, hi = dram["write_low"], dram["write_high"]
+    if hi > 1:
+        raise ConfigError(source, "dram.write_high", hi, "expected a fraction of dram.write_queue in (0, 1]")
+    if lo >= hi:
+        raise ConfigError(source, "dram.write_low", lo,
+                          f"expected less than dram.write_high={hi:g} (a drain must empty some of the queue)")
+
+
+def _check_refresh(dram, source):
+    """The refresh mode against the standard, and the per-bank cadence against the banks."""
+    mode = dram["refresh"]
+    _check_refresh_mode(dram, source)
+    if mode == "all_bank":
+        return
+    refi, refi_pb, banks = dram["t_refi_ns"], dram["t_refi_pb_ns"], dram["banks"]
+    turns = refi / refi_pb
+    want = banks // dram["bank_groups"] if mode == "same_bank" else None
+    if (abs(turns - round(turns)) > 1e-6 * turns or round(turns) < 1 or banks % round(turns)
+            or (want is not None and round(turns) != want)):
+        need = (f"dram.t_refi_ns / {want} = {refi / want:g} (one command per bank of a group)"
+                if want is not None else
+                f"dram.t_refi_ns={refi:g} divided by a divisor of dram.banks={banks} (each command "
+                "refreshes the same number of banks)")
+        raise ConfigError(source, "dram.t_refi_pb_ns", refi_pb, f"expected {need}")
+    if dram["t_rfc_pb_ns"] >= refi:
+        raise ConfigError(source, "dram.t_rfc_pb_ns", dram["t_rfc_pb_ns"],
+                          f"expected less than dram.t_refi_ns={refi:g} (a bank would only refresh)")
+
+
+def _check_refresh_mode(dram, source):
+    mode, std = dram["refresh"], dram["standard"]
+    if mode not in STANDARDS[std]:
+        raise ConfigError(source, "dram.refresh", mode,
+                          f"expected {' or '.join(STANDARDS[std])}: dram.standard {std} has no {mode} refresh")
+
+
+def _check_dram_given(given, dram, source):
+    """A config that names its memory standard gives every timing its modes need itself."""
+    _check_refresh_mode(dram, source)
+    std = dram["standard"]
+    if std == "custom" or dram["model"] != "banked":
+        return
+    for key in CORE_TIMINGS + REFRESH_TIMINGS[dram["refresh"]]:
+        if key not in given:
+            raise ConfigError(source, f"dram.{key}", None,
+                              f"missing: dram.standard {std} with {dram['refresh']} refresh needs it "
+                              "(give the value with its source, or set dram.standard: custom for defaults)")
 
 
 MAP_FIELDS = ("row", "bank", "group", "column", "channel")

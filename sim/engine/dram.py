@@ -49,7 +49,8 @@ per channel (merged data-bus busy intervals).
 
 Simplifications, on purpose: reads only; no tRRD / tFAW activate-rate limit;
 no command-bus contention; refresh is taken on schedule (never postponed) and
-does not wait for tRAS of open rows.
+does not wait for tRAS of open rows; every ``dram.refresh`` mode is served as
+all-bank refresh (``t_rfc_ns`` every ``t_refi_ns``).
 """
 
 import numpy as np
