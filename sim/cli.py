@@ -131,13 +131,25 @@ def _cmd_trace_info(args):
         return 0
     prov = sm["provenance"]
     made = ", ".join(f"{k}={v}" for k, v in prov.items() if k != "method")
-    print(f"{args.trace}: {sm['name']} (format version {sm['version']})")
+    version = f"format version {sm['file_version']}"
+    if sm["file_version"] != sm["version"]:
+        version += f", read as version {sm['version']}"
+    print(f"{args.trace}: {sm['name']} ({version})")
     print(f"  made by    {prov.get('method')}" + (f" ({made})" if made else ""))
     print(f"  steps      {sm['steps']} ({sm['prefill_steps']} prefill, {sm['decode_steps']} decode) "
           f"over {sm['layers']} layers; {sm['head_steps']} head-steps")
     print(f"  head_dim   {', '.join(map(str, sm['head_dims']))}; "
           f"kv_rows up to {sm['max_kv_rows']}, q_rows up to {sm['max_q_rows']}")
-    print(f"  MACs       q.K {sm['macs_qk']:,}   p.V {sm['macs_pv']:,}")
+    model = sm["model"]
+    if model:
+        print("  model      " + ", ".join(f"{k} {model[k]}" for k in ("layers", "heads", "kv_heads", "head_dim")
+                                          if k in model))
+    print(f"  requests   {sm['requests']}; {sm['causal_steps']} causal steps, {sm['window_steps']} windowed; "
+          f"{sm['kv_head_steps']} KV-head-steps")
+    print(f"  MACs       q.K {sm['macs_qk']:,}   p.V {sm['macs_pv']:,}   LSB recompute {sm['macs_lsb']:,}; "
+          f"softmax elements {sm['softmax_elements']:,}")
+    print(f"  writes     {sm['kv_rows_written']:,} K/V rows (per KV head), "
+          f"{sm['out_rows_written']:,} output rows (per query head)")
     print(f"  kept       keys {sm['kept_key_fraction']:.1%} of dense, values {sm['kept_value_fraction']:.1%} "
           f"of kept keys; LSB refetch on {sm['lsb_refetch_head_fraction']:.1%} of head-steps")
     print(f"  scores     token scores on {sm['token_score_steps']} steps, "
@@ -160,13 +172,30 @@ def _cmd_trace_check(args):
 
 def _add_trace_synth(s):
     """`trace synth`."""
-    p = s.add_parser("synth", help="write a seeded synthetic prefill/decode trace")
+    p = s.add_parser(
+        "synth", help="write a seeded synthetic prefill/decode trace",
+        description="Write a seeded synthetic trace (format version 2). --shape takes layers, heads, "
+                    "KV heads and head width from a named model shape (traces/shapes.yaml) or a shape "
+                    "file; --layers/--heads/--kv-heads/--head-dim given too override it.")
     p.add_argument("--out", required=True, metavar="T", help="output trace (.npz or .yaml)")
-    p.add_argument("--prompt", type=int, default=512, help="prompt tokens (prefill length)")
-    p.add_argument("--decode", type=int, default=128, help="generated tokens (decode steps)")
-    p.add_argument("--layers", type=int, default=12, help="layers")
-    p.add_argument("--heads", type=int, default=12, help="heads per layer")
-    p.add_argument("--head-dim", type=int, default=64, help="head width")
+    p.add_argument("--prompt", type=int, default=512, help="prompt tokens (prefill length; request 0's in a batch)")
+    p.add_argument("--decode", type=int, default=128, help="generated tokens (decode steps) per request")
+    p.add_argument("--shape", metavar="NAME|FILE", help="model shape: a bundled name (dec-8b, ...), a shape "
+                                                        "file holding one shape, or FILE:NAME")
+    p.add_argument("--layers", type=int, help="layers (default 12, or the shape's)")
+    p.add_argument("--heads", type=int, help="query heads per layer (default 12, or the shape's)")
+    p.add_argument("--kv-heads", type=int, help="K/V heads, a divisor of --heads (default: one per query head, "
+                                                "or the shape's)")
+    p.add_argument("--head-dim", type=int, help="head width (default 64, or the shape's)")
+    p.add_argument("--batch", type=int, default=1, help="requests decoded together")
+    p.add_argument("--length-spread", type=float, default=0.5, metavar="S",
+                   help="requests after the first get prompts of round(prompt x (1 - S x u)) tokens, u seeded "
+                        "uniform in [0, 1)")
+    p.add_argument("--causal", action="store_true", help="causal prefill (row i sees keys at positions <= its own)")
+    p.add_argument("--window", default="0", metavar="W[,W...]",
+                   help="sliding window in positions, one number or one per layer (0: none)")
+    p.add_argument("--no-writes", action="store_true",
+                   help="record no KV-cache writes or output write-back (new_kv_rows = out_rows = 0)")
     p.add_argument("--token-keep", default="1.0", metavar="R[,R...]",
                    help="cascade token pruning: keep ratio per layer, one number or one per layer")
     p.add_argument("--head-keep", default="1.0", metavar="R[,R...]",
@@ -186,24 +215,28 @@ def _cmd_trace_synth(args):
     from .trace.format import save_trace
     from .trace.synth import synth_trace
 
-    def ratios(option, text):
+    def numbers(option, text, kind=float):
         try:
-            vals = [float(x) for x in text.split(",")]
+            vals = [kind(x) for x in text.split(",")]
         except ValueError:
-            raise InputError("trace synth", option, text, "expected a number or comma-separated numbers") from None
+            what = "whole numbers" if kind is int else "numbers"
+            raise InputError("trace synth", option, text, f"expected a number or comma-separated {what}") from None
         return vals[0] if len(vals) == 1 else vals
 
     if not args.out.lower().endswith((".npz", ".yaml", ".yml")):
         raise InputError("trace synth", "out", args.out, "expected a .npz or .yaml file name")
     trace = synth_trace(prompt_tokens=args.prompt, decode_steps=args.decode, layers=args.layers,
-                        heads=args.heads, head_dim=args.head_dim,
-                        token_keep=ratios("token_keep", args.token_keep),
-                        head_keep=ratios("head_keep", args.head_keep), value_keep=args.value_keep,
+                        heads=args.heads, head_dim=args.head_dim, kv_heads=args.kv_heads, shape=args.shape,
+                        token_keep=numbers("token_keep", args.token_keep),
+                        head_keep=numbers("head_keep", args.head_keep), value_keep=args.value_keep,
                         lsb_fraction=args.lsb_fraction, lsb_fraction_rows=args.lsb_fraction_rows,
-                        seed=args.seed, name=args.name, include_prefill=not args.no_prefill)
+                        seed=args.seed, name=args.name, include_prefill=not args.no_prefill,
+                        batch=args.batch, length_spread=args.length_spread, causal=args.causal,
+                        window=numbers("window", args.window, int), writes=not args.no_writes)
     save_trace(trace, args.out)
     sm = trace.summary()
-    print(f"{args.out}: {sm['steps']} steps ({sm['prefill_steps']} prefill, {sm['decode_steps']} decode), "
+    print(f"{args.out}: {sm['steps']} steps ({sm['prefill_steps']} prefill, {sm['decode_steps']} decode, "
+          f"{sm['requests']} request{'s' if sm['requests'] != 1 else ''}), "
           f"{sm['macs_qk'] + sm['macs_pv']:,} MACs, kept keys {sm['kept_key_fraction']:.1%}")
     return 0
 

@@ -2,6 +2,7 @@
 
 import math
 import os
+import tempfile
 
 import numpy as np
 import pytest
@@ -20,8 +21,10 @@ PRUNED = dict(prompt_tokens=300, decode_steps=12, layers=6, heads=8, head_dim=64
               token_keep=0.7, head_keep=0.8, value_keep=0.4, lsb_fraction=0.3,
               lsb_fraction_rows=0.25, seed=11)
 
-ARGS = ("prompt_tokens", "decode_steps", "layers", "heads", "head_dim", "token_keep", "head_keep",
-        "value_keep", "lsb_fraction", "lsb_fraction_rows", "seed", "include_prefill")
+# the arguments of synth_version 1; version 2 adds the rest of ARGS
+ARGS_V1 = ("prompt_tokens", "decode_steps", "layers", "heads", "head_dim", "token_keep", "head_keep",
+           "value_keep", "lsb_fraction", "lsb_fraction_rows", "seed", "include_prefill")
+ARGS = ARGS_V1 + ("kv_heads", "batch", "length_spread", "causal", "window", "writes")
 
 
 def prefill(trace):
@@ -58,15 +61,35 @@ def test_provenance_records_every_argument():
     assert prov["token_keep"] == 0.7
     assert prov["token_keep_per_layer"] == [1.0] + [0.7] * 5
     assert t.header["name"] == "x"
-    assert t.header["model"] == {"layers": 6, "heads": 8, "head_dim": 64}
+    assert t.header["model"] == {"layers": 6, "heads": 8, "kv_heads": 8, "head_dim": 64}
 
 
 @pytest.mark.parametrize("name", ["synth_prefill.npz", "synth_decode.npz", "demo_decode.yaml"])
 def test_bundled_synthetic_traces_remake_from_their_provenance(name):
+    """The bundled synthetic traces were made by synth_version 1 (before cache
+    writes): the same arguments with writes off remake their steps exactly."""
     t = load_trace(os.path.join(TRACES, name))
     prov = t.header["provenance"]
-    assert prov["method"] == "synth"
+    assert prov["method"] == "synth" and prov["synth_version"] == 1
+    again = synth_trace(**{k: prov[k] for k in ARGS_V1}, name=t.header["name"], writes=False)
+    again.header = t.header  # version 2 records more provenance; the steps are what must agree
+    assert again.digest() == t.digest()
+
+
+def test_bundled_version_2_synthetic_trace_remakes_from_its_provenance():
+    t = load_trace(os.path.join(TRACES, "demo_gqa_batch.yaml"))
+    prov = t.header["provenance"]
+    assert prov["synth_version"] == 2
     again = synth_trace(**{k: prov[k] for k in ARGS}, name=t.header["name"])
+    assert again.digest() == t.digest()
+
+
+def test_a_version_2_trace_remakes_from_its_provenance(tmp_path):
+    t = synth_trace(prompt_tokens=40, decode_steps=3, layers=3, heads=4, kv_heads=2, batch=3, causal=True,
+                    window=[0, 8, 0], token_keep=0.8, value_keep=0.5, seed=5, name="v2")
+    save_trace(t, tmp_path / "v2.npz")
+    prov = load_trace(tmp_path / "v2.npz").header["provenance"]
+    again = synth_trace(**{k: prov[k] for k in ARGS}, name="v2")
     assert again.digest() == t.digest()
 
 
@@ -286,3 +309,168 @@ def test_any_arguments_give_a_valid_cascade(prompt, dec, layers, heads, tk, hk, 
     for i, s in enumerate(dcd):
         assert s.kv_rows == prompt + i // layers + 1
         assert s.n_kept_k == pre[s.layer].n_kept_k + i // layers + 1
+
+
+# --------------------------------------------------------------------------
+# Version 2: KV heads, batches, causal prefill, windows, cache writes, shapes
+
+
+def test_kv_heads_group_query_heads_evenly():
+    """Grouped-query attention (Ainslie et al., EMNLP 2023): g = heads / kv_heads
+    consecutive query heads share a KV head; with head pruning the survivors keep
+    their KV head."""
+    t = synth_trace(prompt_tokens=50, decode_steps=2, layers=3, heads=8, kv_heads=2, head_keep=0.6, seed=4)
+    for s in t.steps:
+        np.testing.assert_array_equal(s.kv_heads, s.heads // 4)
+    assert t.header["model"]["kv_heads"] == 2
+    with pytest.raises(TraceError) as err:
+        synth_trace(heads=8, kv_heads=3)
+    assert err.value.field == "kv_heads" and "divisor" in err.value.expected
+
+
+def test_batch_requests_have_their_own_seeded_contexts():
+    """Request 0 has the prompt; the others round(P (1 - S u)) tokens with u in
+    [0, 1), so within [ceil(P (1 - S)), P]. Steps interleave as batched
+    execution does: prefill layer by layer over the requests, then per token
+    and layer one step per request."""
+    P, B, S, D, L = 400, 6, 0.5, 3, 2
+    t = synth_trace(prompt_tokens=P, decode_steps=D, layers=L, heads=2, batch=B, length_spread=S, seed=9)
+    prompts = t.header["provenance"]["prompt_tokens_per_request"]
+    assert prompts[0] == P and len(prompts) == B
+    assert all(math.ceil(P * (1 - S)) <= p <= P for p in prompts)
+    assert len(set(prompts)) > 1
+    order = [(s.stage, s.layer, s.request) for s in t.steps]
+    assert order == ([("prefill", l, r) for l in range(L) for r in range(B)]
+                     + [("decode", l, r) for _ in range(D) for l in range(L) for r in range(B)])
+    for i, s in enumerate(decode(t)):
+        tok = i // (L * B)
+        assert s.kv_rows == prompts[s.request] + tok + 1
+    for s in prefill(t):
+        assert s.kv_rows == prompts[s.request] == s.q_rows
+    again = synth_trace(prompt_tokens=P, decode_steps=D, layers=L, heads=2, batch=B, length_spread=S, seed=9)
+    assert again.digest() == t.digest()
+
+
+def test_request_zero_of_a_batch_is_the_single_request():
+    one = synth_trace(**PRUNED)
+    many = synth_trace(**PRUNED, batch=3)
+    mine = [s for s in many.steps if s.request == 0]
+    assert len(mine) == len(one.steps)
+    for a, b in zip(one.steps, mine):
+        np.testing.assert_array_equal(a.kept_k, b.kept_k)
+        np.testing.assert_array_equal(a.lsb_rows, b.lsb_rows)
+        assert (a.kept_v_idx is None) == (b.kept_v_idx is None)
+
+
+def test_causal_flag_marks_prefill_only():
+    t = synth_trace(prompt_tokens=30, decode_steps=2, layers=2, heads=2, causal=True)
+    assert all(s.causal for s in prefill(t)) and not any(s.causal for s in decode(t))
+
+
+def test_window_keeps_the_decode_cache_inside_the_window():
+    """Sliding window W (Beltagy et al., 2020): the decode query at position
+    kv_rows - 1 sees positions > kv_rows - 1 - W, and the synthetic cache keeps
+    exactly those of its live rows; a window of 0 on a layer means full context."""
+    t = synth_trace(prompt_tokens=100, decode_steps=3, layers=2, heads=2, window=[16, 0], token_keep=0.6, seed=2)
+    pre = prefill(t)
+    for s in decode(t):
+        assert s.window == [16, 0][s.layer]
+        full = np.concatenate([pre[s.layer].kept_k, np.arange(100, s.kv_rows)])
+        want = full[full > s.kv_rows - 1 - 16] if s.layer == 0 else full
+        np.testing.assert_array_equal(s.kept_k, want)
+    assert all(s.window == [16, 0][s.layer] for s in pre)
+
+
+def test_writes_follow_the_cache():
+    """Prefill writes the K/V and output of every live token; decode appends one
+    K/V row per KV head and writes one output row."""
+    t = synth_trace(prompt_tokens=40, decode_steps=2, layers=3, heads=4, kv_heads=2, token_keep=0.5)
+    for s in prefill(t):
+        assert s.new_kv_rows == s.out_rows == s.q_rows
+    for s in decode(t):
+        assert s.new_kv_rows == s.out_rows == 1
+    quiet = synth_trace(prompt_tokens=40, decode_steps=2, layers=3, heads=4, writes=False)
+    assert all(s.new_kv_rows == s.out_rows == 0 for s in quiet.steps)
+
+
+def test_named_shapes_fill_the_model_and_options_override():
+    t = synth_trace(prompt_tokens=16, decode_steps=1, shape="dec-8b")
+    assert t.header["model"] == {"layers": 32, "heads": 32, "kv_heads": 8, "head_dim": 128}
+    assert t.header["provenance"]["shape"] == "dec-8b"
+    t = synth_trace(prompt_tokens=16, decode_steps=1, shape="dec-8b", layers=2, kv_heads=4)
+    assert t.header["model"] == {"layers": 2, "heads": 32, "kv_heads": 4, "head_dim": 128}
+
+
+def test_shape_files_are_validated(tmp_path):
+    from sim.trace.shapes import load_shape, read_shapes
+
+    bundled = read_shapes(os.path.join(TRACES, "shapes.yaml"))
+    assert bundled["dec-8b"].description.startswith("8B-class decoder")
+    f = tmp_path / "mine.yaml"
+    f.write_text("shapes:\n  tiny: {layers: 2, heads: 4, kv_heads: 2, head_dim: 16}\n")
+    assert load_shape(str(f)).heads == 4
+    assert load_shape(f"{f}:tiny").kv_heads == 2
+    for text, field in [("shapes:\n  t: {layers: 2, heads: 4, kv_heads: 3, head_dim: 16}\n", "shapes.t.kv_heads"),
+                        ("shapes:\n  t: {layers: 0, heads: 4, kv_heads: 2, head_dim: 16}\n", "shapes.t.layers"),
+                        ("shapes:\n  t: {layers: 2, heads: 4, kv_head: 2, head_dim: 16}\n", "shapes.t.kv_head"),
+                        ("layers: 2\n", "shapes")]:
+        f.write_text(text)
+        with pytest.raises(TraceError) as err:
+            load_shape(str(f))
+        assert err.value.field == field
+    with pytest.raises(TraceError) as err:
+        load_shape("dec-9b")
+    assert "dec-8b" in err.value.expected
+
+
+@pytest.mark.parametrize("arg, value", [("kv_heads", 0), ("batch", 0), ("length_spread", 1.5),
+                                        ("window", -1), ("window", [4, 4]), ("causal", "yes"),
+                                        ("writes", 1)])
+def test_bad_version_2_arguments_name_themselves(arg, value):
+    with pytest.raises(TraceError) as err:
+        synth_trace(**{**PRUNED, arg: value})
+    assert err.value.field == arg
+
+
+@settings(max_examples=40, deadline=None, derandomize=True)
+@given(prompt=st.integers(1, 60), dec=st.integers(0, 3), layers=st.integers(1, 4),
+       groups=st.sampled_from([(4, 1), (4, 2), (4, 4), (6, 3)]), batch=st.integers(1, 4),
+       causal=st.booleans(), window=st.integers(0, 20), tk=st.floats(0.05, 1.0), seed=st.integers(0, 2**32))
+def test_any_version_2_arguments_give_a_valid_trace(prompt, dec, layers, groups, batch, causal, window, tk, seed):
+    """Over random version-2 arguments (hypothesis): the trace validates, every
+    request has one prefill context and a context growing by one per token,
+    and the .npz round trip keeps the digest."""
+    heads, kv = groups
+    t = synth_trace(prompt_tokens=prompt, decode_steps=dec, layers=layers, heads=heads, kv_heads=kv,
+                    head_dim=8, batch=batch, causal=causal, window=window, token_keep=tk, seed=seed)
+    prompts = t.header["provenance"]["prompt_tokens_per_request"]
+    for s in t.steps:
+        if s.stage == "decode":
+            assert s.kv_rows - prompts[s.request] >= 1
+            assert window == 0 or s.kept_k[0] > s.kv_rows - 1 - window
+        else:
+            assert s.kv_rows == prompts[s.request]
+    with tempfile.TemporaryDirectory() as tmp:
+        assert load_trace(save_trace(t, os.path.join(tmp, "t.npz"))).digest() == t.digest()
+
+
+def test_cli_synth_with_version_2_options(tmp_path, capsys):
+    from sim.cli import main
+
+    out = str(tmp_path / "b.npz")
+    code = main(["trace", "synth", "--out", out, "--shape", "dec-1b", "--layers", "2", "--prompt", "64",
+                 "--decode", "2", "--batch", "3", "--causal", "--window", "8,0", "--seed", "4"])
+    assert code == 0
+    assert "3 requests" in capsys.readouterr().out
+    t = load_trace(out)
+    assert t.header["model"] == {"layers": 2, "heads": 32, "kv_heads": 8, "head_dim": 64}
+    assert {s.request for s in t.steps} == {0, 1, 2}
+    assert [s.window for s in t.steps[:2]] == [8, 8] and all(s.causal for s in prefill(t))
+    assert main(["trace", "info", out]) == 0
+    info = capsys.readouterr().out
+    assert "kv_heads 8" in info and "requests   3" in info
+    for bad in (["--shape", "nope"], ["--kv-heads", "5"], ["--window", "-2"], ["--window", "a"],
+                ["--batch", "0"]):
+        assert main(["trace", "synth", "--out", out] + bad) == 2
+        err = capsys.readouterr().err.strip()
+        assert len(err.splitlines()) == 1 and err.startswith("attnsim: error:")

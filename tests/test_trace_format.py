@@ -159,13 +159,14 @@ def test_damaged_npz_is_refused(tmp_path):
 # Versions
 
 
-def test_unknown_version_is_refused_in_yaml(tmp_path):
+@pytest.mark.parametrize("version", [3, 0, "2", True, None])
+def test_unknown_version_is_refused_in_yaml(tmp_path, version):
     doc = base_doc()
-    doc["header"]["version"] = 2
+    doc["header"]["version"] = version
     err = refused(tmp_path, doc)
     assert err.field == "header.version"
-    assert err.value == 2
-    assert f"reads version {FORMAT_VERSION}" in err.expected
+    assert err.value == version
+    assert "reads version 1 or 2" in err.expected and f"writes {FORMAT_VERSION}" in err.expected
 
 
 def test_unknown_version_is_refused_in_npz(tmp_path):
@@ -450,4 +451,5 @@ def test_npz_is_a_zip_of_npy_members(tmp_path):
     p = save_trace(load_trace(bundled("demo_prefill.yaml")), tmp_path / "d.npz")
     with zipfile.ZipFile(p) as z:
         names = set(z.namelist())
-    assert {"header.npy", "layer.npy", "kept_k.npy", "kept_k_off.npy"} <= names
+    assert {"header.npy", "layer.npy", "kept_k.npy", "kept_k_lo.npy", "kept_k_hi.npy", "kv_heads.npy",
+            "request.npy", "causal.npy", "window.npy", "new_kv_rows.npy", "out_rows.npy"} <= names
