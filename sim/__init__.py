@@ -34,5 +34,22 @@ def simulate(arch, trace, keep_intervals=True, **engine_options):
     return build_result(run_datapath(arch, trace, keep_intervals=keep_intervals, **engine_options))
 
 
+def load_sweep(folder, columns=None, filters=None):
+    """A pandas DataFrame with one row per point of sweep folder ``folder`` (see :mod:`sim.sweep.frame`).
+
+    ``filters``: ``[(column, op, value)]``, all must hold; ``columns``: the columns to keep.
+    """
+    from .sweep.frame import load_sweep as _load
+
+    return _load(folder, columns=columns, filters=filters)
+
+
+def open_sweep(folder):
+    """A sweep folder opened for reading: frames, Pareto fronts and whole records on demand."""
+    from .sweep.frame import open_sweep as _open
+
+    return _open(folder)
+
+
 __all__ = ["Arch", "ConfigError", "InputError", "SimulationStalled", "Trace", "TraceError",
-           "load_arch", "load_trace", "simulate", "__version__"]
+           "load_arch", "load_sweep", "load_trace", "open_sweep", "simulate", "__version__"]

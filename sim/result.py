@@ -43,6 +43,18 @@ class Result:
     def to_json(self):
         return json.dumps(self._doc, indent=2, sort_keys=True) + "\n"
 
+    def to_frame(self):
+        """A one-row pandas DataFrame: the figures and knobs under the sweep table's column names."""
+        from .columns import result_frame
+
+        return result_frame(self._doc)
+
+    def unit_frame(self):
+        """A pandas DataFrame with a row per unit: state fractions and ``stall.<cause>`` fractions."""
+        from .columns import unit_frame
+
+        return unit_frame(self._doc)
+
 
 def _round(x, nd=12):
     """Floats to ``nd`` significant digits, so documents are stable and readable."""

@@ -21,7 +21,7 @@ from hypothesis import strategies as st
 from sim.arch import load_arch
 from sim.model.bounds import closed_form
 from sim.sweep import objectives as obj
-from sim.sweep import read_records, run_sweep
+from sim.sweep import open_store, run_sweep
 from sim.sweep.worker import build_id
 from sim.trace.format import load_trace, save_trace
 from sim.trace.synth import synth_trace
@@ -53,7 +53,8 @@ def full(tmp_path_factory):
         traces.append(p)
     out = os.path.join(d, "full")
     run = run_sweep(write_spec(d, traces, GRID, NAMES, "full"), out, jobs=2, quiet=True)
-    recs, _ = read_records(os.path.join(out, "points.jsonl"))
+    with open_store(out) as st:
+        recs = list(st.records())
     assert run.summary["counts"]["ok"] == 2 * 60, [r["error"] for r in recs if r["status"] != "ok"][:3]
     return {"dir": d, "traces": traces, "records": {r["key"]: r for r in recs}}
 
@@ -167,5 +168,6 @@ def test_screen_through_the_command_line(full, capsys, tmp_path):
     assert skipped > 0
     want = brute_front({k: r for k, r in full["records"].items()
                         if r["trace_path"] == full["traces"][0] and in_grid(r, axes)}, ["cycles"])
-    rows = {r["key"] for r in read_records(str(tmp_path / "o" / "points.jsonl"))[0]}
+    with open_store(str(tmp_path / "o")) as st:
+        rows = {r["key"] for r in st.records()}
     assert want and want <= rows

@@ -264,14 +264,10 @@ def latency(runs):
 
 
 def pareto_front(points):
-    """Indices of the points not dominated in (x, y), both minimized."""
-    order = sorted(range(len(points)), key=lambda i: (points[i][0], points[i][1]))
-    front, best_y = [], math.inf
-    for i in order:
-        if points[i][1] < best_y:
-            front.append(i)
-            best_y = points[i][1]
-    return front
+    """Indices of the points not dominated in (x, y), both minimized (the sweep summary's front)."""
+    from ..sweep.pareto import front_indices
+
+    return front_indices(points) if len(points) else []
 
 
 def pareto(runs):

@@ -1,8 +1,8 @@
 """Report inputs: result documents and sweep folders, read and checked once.
 
 A report compares *runs*: one result document each, from ``attnsim run
---json`` files or from the points of a sweep folder (``points.jsonl``, see the
-sweep store). Every run gets a label a reader can tell apart from the others.
+--json`` files or from the points of a sweep folder (``points.db``, see the
+sweep store; ``points.jsonl`` in version-1 folders). Every run gets a label a reader can tell apart from the others.
 Runs from different simulator versions, or of traces that share a name but
 not a digest, are kept apart and labelled, never merged; :func:`label_runs`
 returns the warnings to print.
@@ -100,9 +100,11 @@ def load_sweep(folder):
     if not isinstance(meta, dict) or meta.get("format") != "attnsim-sweep":
         raise ReportError(meta_path, "format", (meta or {}).get("format") if isinstance(meta, dict) else meta,
                           "expected a sweep folder (sweep.json with format: attnsim-sweep)")
+    if os.path.exists(os.path.join(folder, "points.db")):
+        return _load_store(folder)
     if not os.path.exists(pts_path):
-        raise ReportError(pts_path, "<file>", pts_path, "file not found (a sweep folder holds points.jsonl)")
-    runs, failed = [], []
+        raise ReportError(pts_path, "<file>", pts_path, "file not found (a sweep folder holds points.db)")
+    runs, failed = [], []   # a version-1 folder: JSON lines
     with open(pts_path, encoding="utf-8") as fh:
         for lineno, line in enumerate(fh, 1):
             if not line.strip():
@@ -122,6 +124,25 @@ def load_sweep(folder):
             run = Run(doc, f"{pts_path}:{lineno}", point=rec["point"],
                       trace_path=rec.get("trace_path") or doc["trace"].get("source"))
             runs.append(run)
+    return runs, failed
+
+
+def _load_store(folder):
+    """``(runs, failed)`` from a sweep store, records decompressed one at a time."""
+    from ..sweep.store import open_store
+
+    db = os.path.join(folder, "points.db")
+    runs, failed = [], []
+    with open_store(folder) as st:
+        for rec in st.records():
+            origin = f"{db}#{rec['key'][:12]}"
+            if rec["status"] != "ok":
+                failed.append({"origin": origin, "point": rec.get("point"), "trace": rec.get("trace"),
+                               "error": rec.get("error")})
+                continue
+            doc = _check_doc(rec.get("result"), db, f"{rec['key'][:12]}: result")
+            runs.append(Run(doc, origin, point=rec["point"],
+                            trace_path=rec.get("trace_path") or doc["trace"].get("source")))
     return runs, failed
 
 

@@ -1,8 +1,10 @@
-"""Objectives of a sweep (all minimized), the Pareto front, and screening bounds.
+"""Objectives of a sweep (all minimized) and their screening bounds.
 
-An objective reads one number from a finished point. ``energy`` and ``area``
-come from the result document's ``energy.total_pj`` and ``area.total_mm2``;
-when the results carry no such section, ``energy`` falls back to ``cycles`` and
+An objective reads one number from a finished point: from its result and
+config (``measure``), or from the column of the store's table that holds the
+same number (``column``). ``energy`` and ``area`` come from the result
+document's ``energy.total_pj`` and ``area.total_mm2``; when the results carry
+no such section, ``energy`` falls back to ``cycles`` and
 ``area`` to the config's multiplier count and total buffer KiB, and the summary
 says so.
 
@@ -17,8 +19,6 @@ which is monotone, so a bound never exceeds the value the document will show.
 """
 
 import math
-
-import numpy as np
 
 from .constraints import DERIVED
 
@@ -59,9 +59,10 @@ def _area_exact(cf, c):
 class Objective:
     """One minimized quantity: how to read it and how to bound it before running."""
 
-    def __init__(self, name, doc, measure, bound, fallback=()):
+    def __init__(self, name, doc, column, measure, bound, fallback=()):
         self.name = name
         self.doc = doc
+        self.column = column        # the store's table column holding it
         self.measure = measure      # (result, config) -> number or None
         self.bound = bound          # (closed_form dict, config) -> lower bound
         self.fallback = fallback    # names used when ``measure`` finds nothing
@@ -71,18 +72,18 @@ class Objective:
 
 
 OBJECTIVES = {o.name: o for o in (
-    Objective("cycles", "simulated cycles", lambda r, c: _get(r, "cycles"),
+    Objective("cycles", "simulated cycles", "cycles", lambda r, c: _get(r, "cycles"),
               lambda cf, c: math.floor(cf["roofline_cycles"] * (1 - 1e-12))),
-    Objective("energy", "energy of the run, pJ (result energy.total_pj)",
+    Objective("energy", "energy of the run, pJ (result energy.total_pj)", "energy.total_pj",
               lambda r, c: _get(r, "energy", "total_pj"), _energy_floor, fallback=("cycles",)),
-    Objective("area", "area proxy, mm2 (result area.total_mm2)",
+    Objective("area", "area proxy, mm2 (result area.total_mm2)", "area.total_mm2",
               lambda r, c: _get(r, "area", "total_mm2"), _area_exact,
               fallback=("multipliers", "buffer_kib")),
-    Objective("dram_bytes", "bytes moved from DRAM", lambda r, c: _get(r, "dram", "bytes"),
+    Objective("dram_bytes", "bytes moved from DRAM", "dram.bytes", lambda r, c: _get(r, "dram", "bytes"),
               lambda cf, c: cf["compulsory_bytes"]),
-    Objective("multipliers", "dot.multipliers of the config",
+    Objective("multipliers", "dot.multipliers of the config", "config.dot.multipliers",
               lambda r, c: c["dot"]["multipliers"], lambda cf, c: c["dot"]["multipliers"]),
-    Objective("buffer_kib", "query + key + value buffer KiB of the config",
+    Objective("buffer_kib", "query + key + value buffer KiB of the config", "derived.buffer_kib",
               lambda r, c: DERIVED["derived.buffer_kib"][1](c),
               lambda cf, c: DERIVED["derived.buffer_kib"][1](c)),
 )}
@@ -94,12 +95,17 @@ def resolve(requested, results):
     Returns ``(names, notes)``. An objective whose quantity is missing from any
     finished result is replaced by its fallbacks; ``notes`` says which.
     """
+    return resolve_by(requested, bool(results),
+                      lambda name: any(OBJECTIVES[name].measure(r, c) is None for r, c in results))
+
+
+def resolve_by(requested, have_results, missing):
+    """:func:`resolve` where ``missing(name)`` says whether any finished point lacks objective ``name``."""
     used, notes = [], []
     for name in requested:
         obj = OBJECTIVES[name]
-        missing = results and any(obj.measure(r, c) is None for r, c in results)
-        if obj.fallback and (missing or not results):
-            if not results:
+        if obj.fallback and (not have_results or missing(name)):
+            if not have_results:
                 names = [name]  # nothing to judge by yet
             else:
                 names = list(obj.fallback)
@@ -111,6 +117,17 @@ def resolve(requested, results):
             if n not in used:
                 used.append(n)
     return used, notes
+
+
+def row_values(names, row):
+    """Objective vector of one store row (a dict of table columns); None when a quantity is missing."""
+    out = []
+    for n in names:
+        v = row.get(OBJECTIVES[n].column)
+        if v is None:
+            return None
+        out.append(float(v))
+    return out
 
 
 def values(names, result, config):
@@ -136,33 +153,3 @@ def lower_bounds(names, closed, config):
             b = 0.0
         out.append(b if math.isfinite(b) else 0.0)
     return out
-
-
-def pareto_mask(matrix):
-    """Boolean mask of the non-dominated rows of ``matrix`` (all columns minimized).
-
-    A row is dominated when another row is no worse in every column and
-    better in one; equal rows do not dominate each other.
-    """
-    m = np.asarray(matrix, dtype=np.float64)
-    n = len(m)
-    keep = np.ones(n, dtype=bool)
-    for i in range(n):
-        le = np.all(m <= m[i], axis=1)
-        lt = np.any(m < m[i], axis=1)
-        if np.any(le & lt):
-            keep[i] = False
-    return keep
-
-
-def dominated(bound, front):
-    """True when some measured vector in ``front`` dominates the lower-bound vector ``bound``.
-
-    Then every possible outcome of the point (each value >= its bound) is
-    dominated too, so the point cannot be on the Pareto front.
-    """
-    if not front:
-        return False
-    f = np.asarray(front, dtype=np.float64)
-    b = np.asarray(bound, dtype=np.float64)
-    return bool(np.any(np.all(f <= b, axis=1) & np.any(f < b, axis=1)))

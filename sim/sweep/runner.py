@@ -22,6 +22,7 @@ from .. import __version__
 from . import objectives as obj
 from .backends import make_backend
 from .plan import make_plan
+from .pareto import Front
 from .progress import Progress
 from .spec import Spec, load_spec
 from .store import FORMAT, VERSION, Store
@@ -43,7 +44,7 @@ class Task:
 class SweepRun:
     """What one call of :func:`run_sweep` did; ``summary`` is the summary.json document."""
 
-    def __init__(self, folder, plan, summary, executed, reused, skipped, lost, repaired, backend):
+    def __init__(self, folder, plan, summary, executed, reused, skipped, lost, backend):
         self.folder = folder
         self.plan = plan
         self.summary = summary
@@ -51,7 +52,6 @@ class SweepRun:
         self.reused = reused         # points already in the store
         self.skipped = skipped       # screened out
         self.lost = lost             # worker deaths seen (each retried or recorded)
-        self.repaired = repaired     # partial/broken store lines dropped on open
         self.backend = backend
 
 
@@ -66,28 +66,39 @@ def record_for(point, status, error, result, build):
 
 
 class _Fronts:
-    """Measured objective vectors of the current Pareto front, per trace (for screening)."""
+    """Measured objective vectors of the current Pareto front, per trace (for screening).
 
-    def __init__(self, requested):
+    Fed the table row of each finished point. When a requested objective turns
+    out to be missing (and falls back to others), the fronts are rebuilt from
+    the store.
+    """
+
+    def __init__(self, requested, store):
         self.requested = requested
-        self.results = []                          # [(trace, result, config)]
-        self.missing = set()
-        self.used = obj.resolve(requested, [])[0]
-        self.front = collections.defaultdict(list)
+        self.store = store
+        self.missing = {n for n in requested if store.any_missing(obj.OBJECTIVES[n].column)}
+        self.used = self._used()
+        self._rebuild()
 
-    def add(self, trace, result, config):
-        self.results.append((trace, result, config))
+    def _rebuild(self):
+        cols = [obj.OBJECTIVES[n].column for n in self.used]
+        self.front = collections.defaultdict(lambda: Front(len(self.used)))
+        for trace in self.store.traces():
+            for _key, vec in self.store.front(trace, cols):
+                self.front[trace].add(vec)
+
+    def add(self, trace, row):
         for name in self.requested:
-            if obj.OBJECTIVES[name].measure(result, config) is None:
+            if row.get(obj.OBJECTIVES[name].column) is None:
                 self.missing.add(name)
         used = self._used()
         if used != self.used:
             self.used = used
-            self.front.clear()
-            for t, r, c in self.results:
-                self._insert(t, obj.values(used, r, c))
-        else:
-            self._insert(trace, obj.values(used, result, config))
+            self._rebuild()      # the store already holds this row
+            return
+        vec = obj.row_values(self.used, row)
+        if vec is not None:
+            self.front[trace].add(vec)
 
     def _used(self):
         out = []
@@ -97,16 +108,6 @@ class _Fronts:
                 if n not in out:
                     out.append(n)
         return out
-
-    def _insert(self, trace, vec):
-        if vec is None:
-            return
-        f = self.front[trace]
-        if obj.dominated(vec, f):
-            return
-        keep = [v for v in f if not (all(a <= b for a, b in zip(vec, v)) and any(a < b for a, b in zip(vec, v)))]
-        keep.append(vec)
-        self.front[trace] = keep
 
 
 def _bounds(points, plan):
@@ -138,28 +139,28 @@ def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, fo
     plan = make_plan(spec)
     meta = {"format": FORMAT, "version": VERSION, "spec_digest": spec.digest(plan.trace_digests()),
             "spec": spec.data, "simulator_version": __version__, "simulator_build": plan.build}
-    store = Store.open(out, meta, plan.keys, spec.axis_paths, force=force)
+    store = Store.open(out, meta, ((p.key, p.order) for p in plan.points), spec.axis_paths, force=force,
+                       fixed_paths=list(spec.fixed))
     own_backend = backend is None
     executed = skipped = lost = 0
     try:
-        reused = sum(1 for p in plan.points if p.key in store.records)
-        todo = [p for p in plan.points if p.key not in store.records]
+        reused = sum(1 for p in plan.points if p.key in store.keys)
+        todo = [p for p in plan.points if p.key not in store.keys]
         progress = Progress(len(plan.points), already=reused, stream=stream, quiet=quiet)
+        fronts = _Fronts(spec.objectives, store) if screen else None
 
-        def put(record):
-            store.append(record)
+        def put(record, point, measured=False):
+            row = store.append(record, order=point.order)
             progress.update(ran=1, failed=record["status"] != "ok")
+            if measured and fronts is not None and row is not None:
+                fronts.add(point.trace, row)
             if on_record is not None:
                 on_record(record)
 
         for p in [p for p in todo if p.config is None]:
-            put(record_for(p, "error", p.error, None, plan.build))
+            put(record_for(p, "error", p.error, None, plan.build), p)
         todo = [p for p in todo if p.config is not None]
 
-        fronts = _Fronts(spec.objectives)
-        for rec in store.records.values():
-            if rec["status"] == "ok":
-                fronts.add(rec["trace"], rec["result"], rec["config"])
         closed = {}
         if screen and todo:
             closed = _bounds(todo, plan)
@@ -177,8 +178,8 @@ def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, fo
                 while queue and backend.pending() < backend.slots:
                     p = queue.popleft()
                     cfd = closed.get(p.key)
-                    if screen and cfd is not None and obj.dominated(
-                            obj.lower_bounds(fronts.used, cfd, p.config), fronts.front[p.trace]):
+                    if screen and cfd is not None and fronts.front[p.trace].dominates(
+                            obj.lower_bounds(fronts.used, cfd, p.config)):
                         skipped += 1
                         progress.update(skipped=1)
                         continue
@@ -194,7 +195,7 @@ def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, fo
                             queue.appendleft(p)
                         else:
                             put(record_for(p, "error", f"worker process died {MAX_LOST} times running "
-                                                       f"this point ({payload})", None, plan.build))
+                                                       f"this point ({payload})", None, plan.build), p)
                         continue
                     if build != plan.build:
                         # its result belongs to other code: keep the point missing, a rerun runs it
@@ -202,66 +203,71 @@ def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, fo
                         continue
                     executed += 1
                     if status == "ok":
-                        put(record_for(p, "ok", None, payload, plan.build))
-                        fronts.add(p.trace, payload, p.config)
+                        put(record_for(p, "ok", None, payload, plan.build), p, measured=True)
                     else:
-                        put(record_for(p, "error", payload, None, plan.build))
+                        put(record_for(p, "error", payload, None, plan.build), p)
         finally:
             progress.close()
             if own_backend and backend is not None:
                 backend.close()
-        store.rewrite_csv()
         counts = {"planned": len(plan.points), "filtered_by_keep_if": plan.filtered,
                   "executed_this_run": executed, "reused": reused,
                   "skipped_by_screen": skipped, "worker_deaths": lost,
-                  "store_lines_repaired": store.repaired, "records_set_aside": store.set_aside,
+                  "records_set_aside": store.set_aside,
                   "refused_other_build": sum(wrong_build.values())}
-        summary = summarize(plan, store.records, spec.objectives, counts, screened=screen)
+        summary = summarize(plan, store, spec.objectives, counts, screened=screen)
+        summary["notes"] += store.notes
         for b, n in wrong_build.items():
             summary["notes"].append(
                 f"{n} result(s) came from workers running simulator build {b}, not {plan.build}; "
                 "they were not stored (update the workers and rerun)")
         store.write_summary(summary)
         name = backend.name if backend is not None else "none (nothing to run)"
-        return SweepRun(out, plan, summary, executed, reused, skipped, lost, store.repaired, name)
+        return SweepRun(out, plan, summary, executed, reused, skipped, lost, name)
     finally:
         store.close()
 
 
-def summarize(plan, records, requested, counts, screened=False):
-    """The summary.json document: best point per trace per objective, and the Pareto front."""
-    ok = [(p, records[p.key]) for p in plan.points if p.key in records and records[p.key]["status"] == "ok"]
-    errors = sum(1 for p in plan.points if p.key in records and records[p.key]["status"] != "ok")
-    used, notes = obj.resolve(requested, [(r["result"], r["config"]) for _p, r in ok])
-    best, front, detail = {}, {}, {}
+def summarize(plan, store, requested, counts, screened=False):
+    """The summary.json document: best point per trace per objective, and the Pareto front.
+
+    Read from the store's table (streamed), so it costs memory for the fronts,
+    not for the points. The store holds exactly the plan's points.
+    """
+    status = store.status_counts()
+    n_ok = sum(n for (_t, s), n in status.items() if s == "ok")
+    errors = sum(n for (_t, s), n in status.items() if s != "ok")
+    used, notes = obj.resolve_by(requested, n_ok > 0,
+                                 lambda name: store.any_missing(obj.OBJECTIVES[name].column))
+    cols = [obj.OBJECTIVES[n].column for n in used]
+    best, front = {}, {}
     for name, _path, _digest in plan.traces:
-        rows = [(p, r) for p, r in ok if p.trace == name]
-        vecs = [obj.values(used, r["result"], r["config"]) for _p, r in rows]
         best[name] = {}
-        for i, o in enumerate(used):
-            cand = [(v[i], p.order, p, r) for (p, r), v in zip(rows, vecs) if v is not None]
-            if cand:
-                value, _order, p, _r = min(cand, key=lambda c: (c[0], c[1]))
-                best[name][o] = {"key": p.key, "value": value, "point": p.point}
-        good = [(p, v) for (p, _r), v in zip(rows, vecs) if v is not None]
-        mask = obj.pareto_mask([v for _p, v in good]) if good else []
-        on = [(p, v) for (p, v), m in zip(good, mask) if m]
-        on.sort(key=lambda pv: (pv[1], pv[0].order))
-        front[name] = [p.key for p, _v in on]
-        detail[name] = [{"key": p.key, "point": p.point, "objectives": dict(zip(used, v))} for p, v in on]
+        for o, col in zip(used, cols):
+            hit = store.best(name, col)
+            if hit is not None:
+                best[name][o] = {"key": hit[0], "value": float(hit[1])}
+        front[name] = store.front(name, cols)
+    wanted = {b["key"] for per in best.values() for b in per.values()}
+    wanted |= {k for f in front.values() for k, _v in f}
+    points = {p.key: p.point for p in plan.points if p.key in wanted}
+    for per in best.values():
+        for b in per.values():
+            b["point"] = points[b["key"]]
     return {
         "format": "attnsim-sweep-summary", "version": 1,
         "sweep": plan.spec.name, "simulator_version": __version__, "simulator_build": plan.build,
         "objectives": {"requested": list(requested), "used": used, "notes": notes,
                        "direction": "minimize"},
-        "counts": {**counts, "ok": len(ok), "error": errors,
-                   "finished": len(ok) + errors,
-                   "missing": len(plan.points) - len(ok) - errors - counts.get("skipped_by_screen", 0)},
+        "counts": {**counts, "ok": n_ok, "error": errors,
+                   "finished": n_ok + errors,
+                   "missing": len(plan.points) - n_ok - errors - counts.get("skipped_by_screen", 0)},
         "screened": bool(screened),
         "notes": [],
         "best": best,
-        "pareto": front,
-        "pareto_points": detail,
+        "pareto": {t: [k for k, _v in f] for t, f in front.items()},
+        "pareto_points": {t: [{"key": k, "point": points[k], "objectives": dict(zip(used, v))} for k, v in f]
+                          for t, f in front.items()},
     }
 
 
@@ -274,10 +280,9 @@ def format_run(run):
              f"  ran {c['executed_this_run']}, already stored {c['reused']}, failed {c['error']}, "
              f"screened out {c['skipped_by_screen']}, removed by keep_if {c['filtered_by_keep_if']}"
              + (f", missing {c['missing']}" if c["missing"] else "")]
-    if c["store_lines_repaired"]:
-        lines.append(f"  repaired the store: dropped {c['store_lines_repaired']} partial line(s)")
     if c["records_set_aside"]:
-        lines.append(f"  set aside {c['records_set_aside']} record(s) of another build in points.stale.jsonl")
+        lines.append(f"  set aside {c['records_set_aside']} record(s) of another build or spec "
+                     "(table set_aside of points.db)")
     o = s["objectives"]
     lines.append(f"  objectives (minimized): {', '.join(o['used'])}")
     for n in o["notes"]:

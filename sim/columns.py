@@ -1,0 +1,134 @@
+"""A result document as one flat row: the columns of tables and DataFrames.
+
+A run's headline figures, each under a dotted column name. Most names are
+paths into the result document (``cycles``, ``energy.total_pj``,
+``units.dot.busy``); a few are computed from it: ``units.<unit>.stall1`` and
+``stall2`` name a unit's two largest stall causes, with their fractions in
+``stall1_fraction`` and ``stall2_fraction``. Config knobs appear as
+``config.<dotted path>``. The sweep store's table, its CSV and
+:func:`sim.load_sweep` use these same names; :meth:`sim.result.Result.to_frame`
+returns one such row, and :func:`unit_frame` a row per unit.
+
+A column has a kind -- ``int``, ``float`` or ``text`` -- which fixes its type
+in the store and its dtype in a DataFrame.
+"""
+
+from .result import UNIT_ORDER
+
+# (column, kind): paths into the result document
+FIGURES = (
+    ("cycles", "int"), ("seconds", "float"),
+    ("compute.macs", "int"),
+    ("dram.bytes", "int"), ("dram.compulsory_bytes", "int"), ("dram.achieved_gbps", "float"),
+    ("dram.peak_gbps", "float"), ("dram.row_hit_rate", "float"),
+    ("bounds.compute_cycles", "float"), ("bounds.memory_cycles", "float"),
+    ("bounds.roofline_cycles", "float"), ("bounds.bound", "text"),
+    ("energy.total_pj", "float"), ("area.total_mm2", "float"),
+    ("verdict.busiest_unit", "text"),
+    ("verdict.largest_stall.unit", "text"), ("verdict.largest_stall.cause", "text"),
+    ("verdict.largest_stall.fraction", "float"),
+)
+STATES = ("busy", "starved", "blocked", "idle")
+TOP_STALLS = 2
+
+
+def unit_columns(units=UNIT_ORDER):
+    """``[(column, kind)]`` of the per-unit figures: state fractions, then the largest stalls."""
+    out = []
+    for u in units:
+        out += [(f"units.{u}.{s}", "float") for s in STATES]
+        for i in range(1, TOP_STALLS + 1):
+            out += [(f"units.{u}.stall{i}", "text"), (f"units.{u}.stall{i}_fraction", "float")]
+    return out
+
+
+def figure_columns(units=UNIT_ORDER):
+    """Every figure column of a result document, in table order."""
+    return list(FIGURES) + unit_columns(units)
+
+
+def _at(doc, dotted):
+    return _at_parts(doc, dotted.split("."))
+
+
+def _at_parts(doc, parts):
+    node = doc
+    for part in parts:
+        if not isinstance(node, dict) or part not in node:
+            return None
+        node = node[part]
+    return None if isinstance(node, (dict, list)) else node
+
+
+_FIGURE_PARTS = [(name, name.split(".")) for name, _kind in FIGURES]
+
+
+def top_stalls(unit_doc, n=TOP_STALLS):
+    """``[(cause, fraction)]``, largest first (ties by name), at most ``n``."""
+    stalls = (unit_doc or {}).get("stalls") or {}
+    return sorted(stalls.items(), key=lambda cf: (-cf[1], cf[0]))[:n]
+
+
+def figure_row(doc, units=UNIT_ORDER):
+    """``{column: value}`` of the figures of result document ``doc`` (None where it has none)."""
+    row = {name: _at_parts(doc, parts) for name, parts in _FIGURE_PARTS}
+    all_units = doc.get("units") or {}
+    for u in units:
+        ud = all_units.get(u)
+        for s in STATES:
+            row[f"units.{u}.{s}"] = None if ud is None else ud.get(s)
+        top = top_stalls(ud)
+        for i in range(1, TOP_STALLS + 1):
+            cause, frac = top[i - 1] if i <= len(top) else (None, None)
+            row[f"units.{u}.stall{i}"] = cause
+            row[f"units.{u}.stall{i}_fraction"] = frac
+    return row
+
+
+def config_value(config, path):
+    """The value at dotted ``path`` of a resolved config mapping (None when absent)."""
+    return _at(config, path) if isinstance(config, dict) else None
+
+
+def result_row(doc):
+    """One run as a flat row: the figures of its units, then every config knob as ``config.<path>``."""
+    from .arch import knob_paths
+
+    present = [u for u in UNIT_ORDER if u in (doc.get("units") or {})]
+    present += [u for u in (doc.get("units") or {}) if u not in present]
+    row = {"arch": _at(doc, "arch.name"), "trace": _at(doc, "trace.name")}
+    row.update(figure_row(doc, present))
+    config = (doc.get("arch") or {}).get("config") or {}
+    for path in knob_paths():
+        v = config_value(config, path)
+        if v is not None:
+            row[f"config.{path}"] = v
+    return row
+
+
+def result_frame(doc):
+    """A one-row :class:`pandas.DataFrame` of :func:`result_row`."""
+    import pandas as pd
+
+    return pd.DataFrame([result_row(doc)])
+
+
+def unit_frame(doc):
+    """A :class:`pandas.DataFrame` with a row per unit: state fractions, then one column per stall cause.
+
+    Stall columns are named ``stall.<cause>``; a cause a unit never waited on is 0.
+    """
+    import pandas as pd
+
+    units = doc.get("units") or {}
+    names = [u for u in UNIT_ORDER if u in units] + [u for u in units if u not in UNIT_ORDER]
+    causes = []
+    for u in names:
+        causes += [c for c in units[u].get("stalls", {}) if c not in causes]
+    rows = []
+    for u in names:
+        ud = units[u]
+        row = {s: ud.get(s) for s in STATES}
+        row.update({f"stall.{c}": ud.get("stalls", {}).get(c, 0.0) for c in causes})
+        rows.append(row)
+    return pd.DataFrame(rows, index=pd.Index(names, name="unit"))

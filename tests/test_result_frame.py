@@ -1,0 +1,54 @@
+"""`Result.to_frame()` and `Result.unit_frame()` hold the document's numbers under the
+store's column names. Expected values are read from the result document with
+plain dictionary lookups (not through the flattening code); the state fractions
+of a unit sum to 1 by the design's definition of unit states.
+"""
+
+import pytest
+
+import sim
+
+
+@pytest.fixture(scope="module")
+def result():
+    return sim.simulate(sim.load_arch("arch_configs/mid.yaml"), sim.load_trace("traces/demo_decode.yaml"))
+
+
+def test_to_frame_is_one_row_of_the_document(result):
+    doc = result.to_dict()
+    df = result.to_frame()
+    assert len(df) == 1
+    row = df.iloc[0]
+    assert row["cycles"] == doc["cycles"] and row["seconds"] == doc["seconds"]
+    assert row["energy.total_pj"] == doc["energy"]["total_pj"] and row["area.total_mm2"] == doc["area"]["total_mm2"]
+    assert row["dram.bytes"] == doc["dram"]["bytes"] and row["trace"] == doc["trace"]["name"]
+    for unit, u in doc["units"].items():
+        for state in ("busy", "starved", "blocked", "idle"):
+            assert row[f"units.{unit}.{state}"] == u[state]
+        ranked = sorted(u["stalls"].items(), key=lambda kv: (-kv[1], kv[0]))   # largest; ties by name
+        if ranked:
+            assert row[f"units.{unit}.stall1"] == ranked[0][0]
+            assert row[f"units.{unit}.stall1_fraction"] == ranked[0][1]
+    for section, knobs in doc["arch"]["config"].items():
+        if isinstance(knobs, dict):
+            for k, v in knobs.items():
+                if not isinstance(v, (dict, list)):
+                    assert row[f"config.{section}.{k}"] == v
+    # the sweep table's names: every figure column of the store appears here too
+    from sim.columns import figure_columns
+    present = set(doc["units"])
+    for name, _kind in figure_columns():
+        parts = name.split(".")
+        if parts[0] != "units" or parts[1] in present:
+            assert name in df.columns
+
+
+def test_unit_frame_rows_and_stalls(result):
+    doc = result.to_dict()
+    uf = result.unit_frame()
+    assert list(uf.index) == list(doc["units"])
+    for unit, u in doc["units"].items():
+        r = uf.loc[unit]
+        assert r[["busy", "starved", "blocked", "idle"]].sum() == pytest.approx(1.0, abs=1e-9)
+        for cause in [c[len("stall."):] for c in uf.columns if c.startswith("stall.")]:
+            assert r[f"stall.{cause}"] == u["stalls"].get(cause, 0.0)
