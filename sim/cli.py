@@ -286,8 +286,13 @@ def _add_sweep(sub):
     where = p.add_mutually_exclusive_group()
     where.add_argument("--jobs", type=int, metavar="N",
                        help="local worker processes (default: every core; 1 runs in this process)")
-    where.add_argument("--cluster", metavar="tcp://HOST:PORT", help="submit to a running Dask scheduler")
+    where.add_argument("--cluster", metavar="tcp://HOST:PORT",
+                       help="submit to a running Dask scheduler (tls://HOST:PORT with the three options below)")
     where.add_argument("--workers", type=int, metavar="N", help="start a local Dask cluster of N workers")
+    tls = p.add_argument_group("TLS to a Dask scheduler (default: Dask's distributed.comm.tls settings)")
+    tls.add_argument("--cluster-ca", metavar="PEM", help="certificate authority of the cluster")
+    tls.add_argument("--cluster-cert", metavar="PEM", help="this client's certificate")
+    tls.add_argument("--cluster-key", metavar="PEM", help="this client's private key (if not in --cluster-cert)")
     p.add_argument("--screen", action="store_true",
                    help="skip points whose closed-form lower bound is already dominated by a measured point")
     p.add_argument("--force", action="store_true", help="reuse a folder that holds another sweep")
@@ -297,13 +302,18 @@ def _add_sweep(sub):
 
 def _cmd_sweep(args):
     from .sweep import SweepError, format_run, run_sweep
+    from .sweep.backends import TLSFiles
 
     for opt in ("jobs", "workers"):
         n = getattr(args, opt)
         if n is not None and n < 1:
             raise SweepError(f"--{opt}", opt, n, "expected a whole number >= 1")
+    tls = TLSFiles(args.cluster_ca, args.cluster_cert, args.cluster_key)
+    if tls.given() and args.cluster is None:
+        raise SweepError(f"--cluster-{tls.given()[0]}", tls.given()[0], getattr(tls, tls.given()[0]),
+                         "expected --cluster tls://HOST:PORT with it")
     run = run_sweep(args.spec, args.out, jobs=args.jobs, cluster=args.cluster, workers=args.workers,
-                    screen=args.screen, force=args.force, quiet=args.quiet)
+                    screen=args.screen, force=args.force, quiet=args.quiet, security=tls)
     print(format_run(run))
     return 0 if run.summary["counts"]["missing"] == 0 else 1
 

@@ -84,14 +84,44 @@ def _prepare_out(out_dir, force):
             try:
                 with open(man, encoding="utf-8") as fh:
                     old = json.load(fh).get("files", [])
-            except (OSError, ValueError):
+            except (OSError, ValueError, AttributeError):
                 old = []
-            for rel in old:
-                p = os.path.join(out_dir, rel)
-                if os.path.isfile(p) and os.path.abspath(p).startswith(os.path.abspath(out_dir) + os.sep):
+            root = os.path.realpath(out_dir)
+            for rel in old if isinstance(old, list) else []:
+                p = _listed_file(root, rel)
+                if p is not None:
                     os.remove(p)
+    root = os.path.realpath(out_dir)
+    for sub in ("figures", "data"):
+        p = os.path.join(out_dir, sub)
+        if os.path.lexists(p) and not _inside(root, os.path.realpath(p)):
+            raise ReportError("--out", sub, p,
+                              "is a symbolic link out of the output folder; remove it or choose another --out")
     os.makedirs(os.path.join(out_dir, "figures"), exist_ok=True)
     os.makedirs(os.path.join(out_dir, "data"), exist_ok=True)
+
+
+def _inside(root, real):
+    return real != root and os.path.commonpath([root, real]) == root
+
+
+def _listed_file(root, rel):
+    """The path to delete for an old manifest entry, or None.
+
+    Folders on the way are resolved through symbolic links, and the entry must
+    then lie inside the output folder ``root`` (itself resolved): nothing
+    outside it is ever deleted. An entry that is itself a symbolic link is
+    removed as a link; its target is never touched.
+    """
+    if not isinstance(rel, str) or not rel or os.path.isabs(rel):
+        return None
+    head, name = os.path.split(os.path.normpath(rel))
+    if name in ("", ".", ".."):
+        return None
+    where = os.path.join(os.path.realpath(os.path.join(root, head)), name)
+    if not _inside(root, where):
+        return None
+    return where if os.path.islink(where) or os.path.isfile(where) else None
 
 
 def figure_runs(runs):

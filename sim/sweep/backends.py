@@ -117,18 +117,93 @@ def _one_thread_each():
     threadpool_limits(limits=1)
 
 
+class TLSFiles:
+    """The files a client needs to reach a Dask scheduler over ``tls://``.
+
+    ``ca``: the certificate authority that signed the cluster's certificates;
+    ``cert``: this client's certificate; ``key``: its private key (None when
+    the certificate file holds it). Any of them left None is taken from Dask's
+    own configuration (``distributed.comm.tls.ca-file``,
+    ``distributed.comm.tls.client.cert``, ``distributed.comm.tls.client.key``).
+    """
+
+    OPTIONS = {"ca": "--cluster-ca", "cert": "--cluster-cert", "key": "--cluster-key"}
+
+    def __init__(self, ca=None, cert=None, key=None):
+        self.ca, self.cert, self.key = ca, cert, key
+
+    def given(self):
+        return [name for name in self.OPTIONS if getattr(self, name) is not None]
+
+    def check(self):
+        """Every file given must be a readable file (an error names the option)."""
+        for name in self.given():
+            path = getattr(self, name)
+            if not os.path.isfile(path):
+                raise SweepError(self.OPTIONS[name], name, path, "file not found (expected a PEM file)")
+            try:
+                with open(path, "rb") as fh:
+                    fh.read(1)
+            except OSError as exc:
+                raise SweepError(self.OPTIONS[name], name, path, f"cannot be read ({exc.strerror})") from None
+
+    def validate(self, address):
+        """Check the address and the files before anything runs; True when the address is ``tls://``."""
+        if not isinstance(address, str) or "://" not in address \
+                or address.split("://", 1)[0] not in ("tcp", "tls"):
+            raise SweepError("--cluster", "cluster", address,
+                             "expected a scheduler address tcp://HOST:PORT or tls://HOST:PORT")
+        if not address.startswith("tls://"):
+            if self.given():
+                raise SweepError("--cluster", "cluster", address,
+                                 f"{', '.join(self.OPTIONS[n] for n in self.given())} given: expected a "
+                                 "tls://HOST:PORT address")
+            return False
+        self.check()
+        ca, cert = self.ca, self.cert
+        if ca is None or cert is None:
+            try:
+                import dask.config
+            except ImportError:   # the backend says what to install
+                return True
+            ca = ca or dask.config.get("distributed.comm.tls.ca-file", None)
+            cert = cert or dask.config.get("distributed.comm.tls.client.cert", None)
+        if not ca or not cert:
+            raise SweepError("--cluster", "cluster", address,
+                             "a tls:// scheduler needs a CA and a client certificate: --cluster-ca and "
+                             "--cluster-cert (and --cluster-key), or Dask's distributed.comm.tls settings")
+        return True
+
+    def security(self, address):
+        """A :class:`distributed.Security` for ``address`` (None for a plain ``tcp://`` address)."""
+        from distributed import Security
+
+        if not self.validate(address):
+            return None
+        kw = {k: v for k, v in (("tls_ca_file", self.ca), ("tls_client_cert", self.cert),
+                                ("tls_client_key", self.key)) if v is not None}
+        return Security(require_encryption=True, **kw)
+
+
 class DaskBackend:
     """Tasks on a Dask distributed scheduler: an existing one or a local cluster.
 
-    ``address`` (``tcp://HOST:PORT``) connects to a running scheduler, failing
-    within :data:`CONNECT_TIMEOUT_S` seconds; ``workers=N`` starts a local
-    cluster of N single-threaded worker processes on 127.0.0.1 instead. Remote
-    workers need this package installed and the traces at the same paths.
+    ``address`` (``tcp://HOST:PORT`` or ``tls://HOST:PORT``) connects to a
+    running scheduler, failing within :data:`CONNECT_TIMEOUT_S` seconds; a
+    ``tls://`` address uses ``tls`` (:class:`TLSFiles`: CA, certificate, key)
+    for mutual TLS. ``workers=N`` starts a local cluster of N single-threaded
+    worker processes on 127.0.0.1 instead. Remote workers need this package
+    installed and the traces at the same paths.
+
+    Dask ships tasks and results as pickles: whoever can reach a scheduler
+    without TLS can run code on its workers, and a scheduler can send this
+    process data that runs code when unpickled. Use TLS (or a private network)
+    for any cluster others can reach.
     """
 
     name = "dask"
 
-    def __init__(self, address=None, workers=None):
+    def __init__(self, address=None, workers=None, tls=None):
         try:
             import distributed
         except ImportError:
@@ -136,15 +211,16 @@ class DaskBackend:
                              "needs the sweep extra: pip install dask distributed") from None
         self._cluster = None
         if address is not None:
-            if not isinstance(address, str) or "://" not in address:
-                raise SweepError("--cluster", "cluster", address, "expected a scheduler address tcp://HOST:PORT")
+            security = (tls or TLSFiles()).security(address)
             try:
-                self._client = distributed.Client(address, timeout=CONNECT_TIMEOUT_S,
-                                                  set_as_default=False)
+                self._client = distributed.Client(address, timeout=CONNECT_TIMEOUT_S, set_as_default=False,
+                                                  security=security)
             except (OSError, TimeoutError) as exc:
+                why = type(exc).__name__
+                if address.startswith("tls://"):
+                    why += "; with TLS, check that the CA signed the scheduler's certificate and yours"
                 raise SweepError("--cluster", "cluster", address,
-                                 f"no Dask scheduler answered within {CONNECT_TIMEOUT_S} s "
-                                 f"({type(exc).__name__})") from None
+                                 f"no Dask scheduler answered within {CONNECT_TIMEOUT_S} s ({why})") from None
             self.name = f"dask at {address}"
         else:
             if workers < 1:
@@ -196,10 +272,10 @@ class DaskBackend:
             self._cluster.close()
 
 
-def make_backend(jobs=None, cluster=None, workers=None):
-    """The backend the command line asked for (one of the three)."""
+def make_backend(jobs=None, cluster=None, workers=None, security=None):
+    """The backend the command line asked for (one of the three); ``security`` is a :class:`TLSFiles`."""
     if cluster is not None:
-        return DaskBackend(address=cluster)
+        return DaskBackend(address=cluster, tls=security)
     if workers is not None:
         return DaskBackend(workers=workers)
     if jobs == 1:

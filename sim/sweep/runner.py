@@ -20,7 +20,7 @@ import math
 
 from .. import __version__
 from . import objectives as obj
-from .backends import make_backend
+from .backends import TLSFiles, make_backend
 from .plan import make_plan
 from .pareto import Front
 from .progress import Progress
@@ -127,15 +127,18 @@ def _bounds(points, plan):
 
 
 def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, force=False,
-              quiet=False, backend=None, on_record=None, stream=None):
+              quiet=False, backend=None, on_record=None, stream=None, security=None):
     """Run the sweep ``spec`` (a path or a :class:`Spec`) into folder ``out``.
 
     ``backend`` may be given ready-made (it is not closed here then); otherwise
-    it is made from ``jobs`` / ``cluster`` / ``workers``. ``on_record(record)``
-    is called after each record reaches the store.
+    it is made from ``jobs`` / ``cluster`` / ``workers`` (and ``security``,
+    the TLS files of a ``tls://`` cluster). ``on_record(record)`` is called
+    after each record reaches the store.
     """
     if not isinstance(spec, Spec):
         spec = load_spec(spec)
+    if cluster is not None:   # a bad address or TLS file fails here, before anything runs
+        (security or TLSFiles()).validate(cluster)
     plan = make_plan(spec)
     meta = {"format": FORMAT, "version": VERSION, "spec_digest": spec.digest(plan.trace_digests()),
             "spec": spec.data, "simulator_version": __version__, "simulator_build": plan.build}
@@ -169,7 +172,7 @@ def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, fo
                                      if closed[p.key] else -math.inf, p.order))
 
         if todo and own_backend:
-            backend = make_backend(jobs=jobs, cluster=cluster, workers=workers)
+            backend = make_backend(jobs=jobs, cluster=cluster, workers=workers, security=security)
         queue = collections.deque(todo)
         strikes = collections.Counter()
         wrong_build = collections.Counter()
