@@ -26,7 +26,8 @@ HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(HERE)
 sys.path.insert(0, ROOT)
 
-from sim.sweep import run_sweep  # noqa: E402
+from sim.sweep import open_store, run_sweep  # noqa: E402
+from sim.sweep.store import dumps  # noqa: E402
 from sim.trace.format import save_trace  # noqa: E402
 from sim.trace.synth import synth_trace  # noqa: E402
 
@@ -35,8 +36,9 @@ AXES = {"dot.multipliers": [256, 512, 1024, 2048], "buffers.key_kib": [32, 64, 1
 
 
 def records(out):
-    with open(os.path.join(out, "points.jsonl"), encoding="utf-8") as fh:
-        return sorted(fh.read().splitlines())
+    """Every stored record as canonical JSON, sorted (completion order differs between backends)."""
+    with open_store(out) as st:
+        return sorted(dumps(r) for r in st.records())
 
 
 def main(argv=None):
