@@ -6,62 +6,105 @@ A config is a YAML mapping of sections (``dram``, ``fetch``, ``buffers``,
 Every knob is addressable by a dotted path (``dot.multipliers``), which is how
 sweeps and scripts change it.
 
-Validation happens here, once. Errors name the file, the dotted field, the bad
-value and what was expected; the engine trusts a loaded :class:`Arch`.
+Validation happens here, once. Errors name the file (the one that set the
+value, through ``extends``), its line, the dotted field, the bad value and
+what was expected; the engine trusts a loaded :class:`Arch`. A loaded Arch is
+immutable: :meth:`Arch.with_overrides` makes a changed copy, validated again.
 """
 
+from __future__ import annotations
+
 import copy
+import dataclasses
 import math
+import numbers
 import os
 import types
+from typing import Any, Mapping
 
-from .errors import ConfigError, closest
-from .yamlio import read_mapping
+from .errors import NO_VALUE, ConfigError, closest
+from .yamlio import guess_kind, read_mapping_doc
+
+MAX_EXTENDS = 32          # configs in one extends chain
+MAX_TEXT = 1000           # characters of a text knob
 
 
 class Field:
-    """One config knob: its kind, default and the rule its value must meet."""
+    """One config knob: its kind, default, the range its value must lie in and what it means.
 
-    def __init__(self, kind, default, doc, choices=None, minimum=None):
+    Numbers: ``minimum`` None means "> 0", else ">= minimum"; ``maximum`` is
+    inclusive (see :data:`LIMITS`). Whole-number knobs take integers only.
+    """
+
+    def __init__(self, kind, default, doc, choices=None, minimum=None, maximum=None):
         self.kind = kind  # 'int', 'float', 'str', 'bool', 'choice', 'map'
         self.default = default
         self.doc = doc
         self.choices = choices
         self.minimum = minimum
+        self.maximum = maximum
+
+    def range_text(self) -> str:
+        """The accepted range in words, e.g. ``whole number in [1, 4096]``."""
+        if self.kind == "int":
+            low = 1 if self.minimum is None else self.minimum
+            return f"whole number in [{low}, {self.maximum:,}]" if self.maximum is not None else \
+                f"whole number >= {low}"
+        if self.kind == "float":
+            low = "(0" if self.minimum is None else f"[{self.minimum:g}"
+            return f"number in {low}, {self.maximum:g}]" if self.maximum is not None else "number"
+        if self.kind == "choice":
+            return "one of " + ", ".join(map(str, self.choices))
+        if self.kind == "bool":
+            return "true or false"
+        if self.kind == "map":
+            return "mapping"
+        return "text"
 
     def check(self, source, path, value):
         if self.kind == "int":
-            if isinstance(value, bool) or not isinstance(value, int):
-                if isinstance(value, float) and value.is_integer():
-                    value = int(value)
-                else:
-                    raise ConfigError(source, path, value, "expected a whole number")
+            if isinstance(value, numbers.Integral) and not isinstance(value, bool):
+                value = int(value)
+            else:
+                raise ConfigError(source, path, value, "expected a whole number"
+                                  + (" (written without a decimal point or exponent)"
+                                     if isinstance(value, float) else ""))
             low = 1 if self.minimum is None else self.minimum
             if value < low:
                 raise ConfigError(source, path, value, f"expected a whole number >= {low}")
+            if self.maximum is not None and value > self.maximum:
+                raise ConfigError(source, path, value, f"expected a whole number <= {self.maximum:,}")
             return value
         if self.kind == "float":
-            if isinstance(value, bool) or not isinstance(value, (int, float)):
+            if isinstance(value, bool) or not isinstance(value, numbers.Real):
                 raise ConfigError(source, path, value, "expected a number")
-            given, value = value, float(value)  # errors show what the user wrote
+            given = value  # errors show what the user wrote
+            try:
+                value = float(value)
+            except OverflowError:
+                value = math.inf
             if not math.isfinite(value):
                 raise ConfigError(source, path, given, "expected a finite number")
-            if self.minimum is None:
-                if value <= 0:
-                    raise ConfigError(source, path, given, "expected a number > 0")
-            elif value < self.minimum:
-                raise ConfigError(source, path, given, f"expected a number >= {self.minimum}")
+            low_ok = value > 0 if self.minimum is None else value >= self.minimum
+            if not low_ok:
+                raise ConfigError(source, path, given, "expected a number > 0" if self.minimum is None
+                                  else f"expected a number >= {self.minimum}")
+            if self.maximum is not None and value > self.maximum:
+                raise ConfigError(source, path, given, f"expected a number <= {self.maximum:g}")
             return value
         if self.kind == "str":
             if not isinstance(value, str):
                 raise ConfigError(source, path, value, "expected text")
+            if len(value) > MAX_TEXT or not value.isprintable():
+                raise ConfigError(source, path, value, f"expected one line of printable text of at most "
+                                  f"{MAX_TEXT} characters")
             return value
         if self.kind == "bool":
             if not isinstance(value, bool):
                 raise ConfigError(source, path, value, "expected true or false")
             return value
         if self.kind == "choice":
-            if value not in self.choices:
+            if not isinstance(value, str) or value not in self.choices:
                 raise ConfigError(source, path, value,
                                   f"expected one of {', '.join(map(str, self.choices))}"
                                   + closest(value, self.choices))
@@ -236,8 +279,48 @@ SCHEMA = {
 MAIN_KNOBS = ("clock_ghz", "dram.channels", "dram.channel_gbps", "dot.multipliers",
               "buffers.key_kib", "buffers.value_kib", "softmax.lanes", "topk.comparators")
 
+# Upper limits (inclusive) of the numeric knobs: far beyond any real datapath,
+# low enough that no count, size or latency can overflow the engine's integer
+# arithmetic or make it allocate absurd tables. Knobs not listed take the
+# default of their kind: whole numbers up to 2**31 - 1, and for numbers 1e9
+# (a latency in ns: one simulated second).
+INT_LIMIT = 2 ** 31 - 1
+FLOAT_LIMIT = 1e9
+LIMITS = {
+    "clock_ghz": 1000.0,
+    "dram.channels": 4096, "dram.channel_gbps": 1e6, "dram.burst_bytes": 1 << 16,
+    "dram.latency_ns": 1e6, "dram.queue_depth": 1 << 30, "dram.interleave_bytes": 1 << 30,
+    "dram.bus_bits": 1 << 14, "dram.banks": 1 << 12, "dram.bank_groups": 1 << 12,
+    "dram.row_bytes": 1 << 24, "dram.rows": 1 << 26,
+    "dram.t_cl_ns": 1e6, "dram.t_rcd_ns": 1e6, "dram.t_rp_ns": 1e6, "dram.t_ras_ns": 1e6,
+    "dram.t_rtp_ns": 1e6, "dram.t_ccd_l_ns": 1e6, "dram.t_refi_ns": 1e9, "dram.t_rfc_ns": 1e6,
+    "dram.controller_ns": 1e6,
+    "fetch.request_bytes": 1 << 26, "fetch.inflight": 1 << 16, "fetch.reorder_entries": 1 << 16,
+    "fetch.issue_window": 1 << 16,
+    "buffers.query_kib": float(1 << 24), "buffers.key_kib": float(1 << 24),
+    "buffers.value_kib": float(1 << 24),
+    "dot.multipliers": 1 << 24, "dot.lanes": 1 << 16, "dot.tile_rows": 1 << 16,
+    "dot.pipeline_cycles": 1 << 20,
+    "softmax.lanes": 1 << 16, "softmax.latency_cycles": 1 << 20,
+    "topk.comparators": 1 << 16, "topk.latency_cycles": 1 << 20,
+    "precision.q_bits": 64, "precision.k_msb_bits": 32, "precision.k_lsb_bits": 32,
+    "precision.v_bits": 64, "precision.score_bits": 64,
+    "engine.grain_rows": 1 << 24, "engine.seed": 2 ** 63 - 1,
+}
 
-def knob_paths():
+
+def _apply_limits():
+    for section, fields in SCHEMA.items():
+        for key, f in fields.items():
+            path = f"{section}.{key}" if section else key
+            if f.maximum is None and f.kind in ("int", "float"):
+                f.maximum = LIMITS.get(path, INT_LIMIT if f.kind == "int" else FLOAT_LIMIT)
+
+
+_apply_limits()
+
+
+def knob_paths() -> list[str]:
     """Every valid dotted path, in schema order."""
     out = []
     for section, fields in SCHEMA.items():
@@ -246,80 +329,153 @@ def knob_paths():
     return out
 
 
-def field_for(path):
+def field_for(path: str) -> Field | None:
     """The :class:`Field` behind a dotted path, or None."""
+    if not isinstance(path, str):
+        return None
     section, _, key = path.rpartition(".")
     return SCHEMA.get(section, {}).get(key)
 
 
-class Section(types.SimpleNamespace):
-    """Attribute view of one resolved config section."""
+# --------------------------------------------------------------------------
+# The loaded, immutable config
+
+
+def _make_section_class(section: str, fields: Mapping[str, Field]):
+    name = "".join(p.title() for p in section.split("_")) + "Section"
+    cls = dataclasses.make_dataclass(name, [(k, Any) for k in fields], frozen=True)
+    cls.__module__ = __name__
+
+    def refuse(self, key, value):
+        raise dataclasses.FrozenInstanceError(
+            f"{section}.{key} is read-only; use arch.with_overrides({{'{section}.{key}': {value!r}}}), "
+            "which validates and returns a new Arch")
+
+    cls.__setattr__ = refuse
+    cls.__doc__ = f"The resolved ``{section}`` section (read-only; see Arch.with_overrides)."
+    return cls
+
+
+SECTION_CLASSES = {section: _make_section_class(section, fields) for section, fields in SCHEMA.items() if section}
+globals().update({cls.__name__: cls for cls in SECTION_CLASSES.values()})
+
+
+def _frozen_value(value):
+    if isinstance(value, dict):
+        return types.MappingProxyType({k: _frozen_value(v) for k, v in value.items()})
+    if isinstance(value, list):
+        return tuple(_frozen_value(v) for v in value)
+    return value
 
 
 class Arch:
-    """A validated, fully resolved datapath config.
+    """A validated, fully resolved datapath config (read-only).
 
     Sections are attributes (``arch.dot.multipliers``); ``to_dict()`` gives the
-    resolved mapping, which ``load_arch`` accepts back unchanged.
+    resolved mapping, which ``load_arch`` accepts back unchanged. Change a
+    knob with ``arch.with_overrides({"dot.multipliers": 2048})``, which
+    validates and returns a new Arch. ``origins`` maps each dotted path set
+    by a file (or ``--set``) to ``(file, line)``.
     """
 
-    def __init__(self, resolved, source="<dict>"):
-        self._d = resolved
-        self.source = source
-        for section in SCHEMA:
-            if section:
-                setattr(self, section, Section(**resolved[section]))
-        self.name = resolved["name"]
-        self.description = resolved["description"]
-        self.clock_ghz = resolved["clock_ghz"]
+    __slots__ = ("_d", "source", "origins", "name", "description", "clock_ghz") + tuple(
+        s for s in SCHEMA if s)
 
-    def to_dict(self):
+    def __init__(self, resolved: dict, source: Any = "<dict>", origins: dict | None = None):
+        put = object.__setattr__
+        put(self, "_d", resolved)
+        put(self, "source", source)
+        put(self, "origins", types.MappingProxyType(dict(origins or {})))
+        for section, cls in SECTION_CLASSES.items():
+            put(self, section, cls(**{k: _frozen_value(v) for k, v in resolved[section].items()}))
+        put(self, "name", resolved["name"])
+        put(self, "description", resolved["description"])
+        put(self, "clock_ghz", resolved["clock_ghz"])
+
+    def __setattr__(self, name, value):
+        raise AttributeError(f"Arch is read-only (setting {name!r}); change a knob with "
+                             "arch.with_overrides({'dot.multipliers': 2048}), which validates and returns a new Arch")
+
+    def __delattr__(self, name):
+        raise AttributeError("Arch is read-only")
+
+    def __reduce__(self):
+        return (_rebuild, (self._d, self.source, dict(self.origins)))
+
+    def __eq__(self, other):
+        return isinstance(other, Arch) and self._d == other._d
+
+    def __hash__(self):
+        return hash(repr(sorted(self.knobs().items())))
+
+    def to_dict(self) -> dict:
         return copy.deepcopy(self._d)
 
-    def get(self, path):
+    def knobs(self) -> dict:
+        """``{dotted path: value}`` of every knob, in schema order."""
+        return {p: self.get(p) for p in knob_paths()}
+
+    def get(self, path: str) -> Any:
         """The value at a dotted path (``dot.multipliers``)."""
         if field_for(path) is None:
-            raise ConfigError(self.source, path, None, "no such config knob" + closest(path, knob_paths()))
+            raise ConfigError(self.source, path, NO_VALUE, "no such config knob" + closest(path, knob_paths()))
         node = self._d
         for part in path.split("."):
             node = node[part]
-        return node
+        return copy.deepcopy(node)
 
-    def with_overrides(self, overrides, source=None):
-        """A new Arch with dotted-path overrides applied and validated."""
+    def origin(self, path: str):
+        """``(file, line)`` where ``path`` (or its section) was set, or None for a default."""
+        while path:
+            if path in self.origins:
+                return self.origins[path]
+            path = path.rpartition(".")[0]
+        return None
+
+    def with_overrides(self, overrides: Mapping[str, Any], source: Any = None) -> "Arch":
+        """A new Arch with dotted-path overrides applied and validated.
+
+        Errors in an override name ``source`` (default: ``<overrides>``), not
+        the config file.
+        """
+        src = source or "<overrides>"
+        if not isinstance(overrides, Mapping):
+            raise ConfigError(src, "<overrides>", overrides, "expected a mapping of dotted knob paths to values")
         raw = self.to_dict()
+        origins = dict(self.origins)
         for path, value in overrides.items():
-            _set_path(raw, path, value, source or self.source)
-        return load_arch(raw, source=source or self.source)
+            _set_path(raw, path, value, src)
+            origins[path] = (src, None)
+        return _build(raw, self.source, origins)
 
     # Derived peaks -------------------------------------------------------
     @property
-    def peak_macs_per_s(self):
+    def peak_macs_per_s(self) -> float:
         return self.dot.multipliers * self.clock_ghz * 1e9
 
     @property
-    def peak_gbps(self):
+    def peak_gbps(self) -> float:
         return self.dram.channels * self.dram.channel_gbps
 
     @property
-    def bytes_per_cycle(self):
+    def bytes_per_cycle(self) -> float:
         return self.peak_gbps / self.clock_ghz
 
     @property
-    def machine_balance(self):
+    def machine_balance(self) -> float:
         """MACs the array can do per byte the memory can deliver."""
         return self.peak_macs_per_s / (self.peak_gbps * 1e9)
 
-    def key_rows(self, head_dim):
+    def key_rows(self, head_dim: int) -> int:
         return int(self.buffers.key_kib * 1024 // (head_dim * self.precision.k_msb_bits / 8))
 
-    def value_rows(self, head_dim):
+    def value_rows(self, head_dim: int) -> int:
         return int(self.buffers.value_kib * 1024 // (head_dim * self.precision.v_bits / 8))
 
-    def query_rows(self, head_dim):
+    def query_rows(self, head_dim: int) -> int:
         return int(self.buffers.query_kib * 1024 // (head_dim * self.precision.q_bits / 8))
 
-    def peaks(self, head_dim=64):
+    def peaks(self, head_dim: int = 64) -> dict:
         return {
             "macs_per_s": self.peak_macs_per_s,
             "gbps": self.peak_gbps,
@@ -331,11 +487,32 @@ class Arch:
             "query_buffer_rows": self.query_rows(head_dim),
         }
 
-    def __repr__(self):
-        return f"Arch({self.name!r} from {self.source})"
+    def __repr__(self) -> str:
+        d = self.dram
+        return (f"Arch({self.name!r}: {self.dot.multipliers} multipliers at {self.clock_ghz:g} GHz, "
+                f"{d.channels} x {d.channel_gbps:g} GB/s, K/V buffers {self.buffers.key_kib:g}/"
+                f"{self.buffers.value_kib:g} KiB; from {self.source})")
+
+    def _repr_html_(self) -> str:
+        import html
+
+        rows = "".join(f"<tr><td><code>{html.escape(p)}</code></td><td>{html.escape(str(v))}</td></tr>"
+                       for p, v in self.knobs().items() if not isinstance(v, dict))
+        return (f"<div><b>Arch {html.escape(str(self.name))}</b> &mdash; {html.escape(self.description)}"
+                f"<br>{self.peak_macs_per_s / 1e12:.3f} TMAC/s, {self.peak_gbps:g} GB/s, "
+                f"source <code>{html.escape(str(self.source))}</code>"
+                f"<details><summary>{len(knob_paths())} knobs</summary><table>{rows}</table></details></div>")
 
 
-def load_arch(spec, source=None):
+def _rebuild(resolved, source, origins):
+    return Arch(resolved, source, origins)
+
+
+# --------------------------------------------------------------------------
+# Loading
+
+
+def load_arch(spec: Any, source: Any = None) -> Arch:
     """Load and validate an architecture from a YAML path or a mapping.
 
     ``extends`` is resolved relative to the file that names it. The result's
@@ -345,35 +522,87 @@ def load_arch(spec, source=None):
         return spec
     if isinstance(spec, (str, os.PathLike)):
         path = os.fspath(spec)
-        raw = _read_yaml(path)
-        raw = _resolve_extends(raw, path, seen=())
-        source = source or path
-    elif isinstance(spec, dict):
+        raw, origins = _load_file(path, chain=())
+        return _build(raw, source or path, origins)
+    if isinstance(spec, Mapping):
         source = source or "<dict>"
-        raw = copy.deepcopy(spec)
+        raw = copy.deepcopy(dict(spec))
+        origins = {}
         if "extends" in raw:
-            base_dir = os.path.dirname(source) if os.path.exists(str(source)) else "."
-            raw = _resolve_extends(raw, os.path.join(base_dir, "<dict>"), seen=())
-    else:
-        raise ConfigError(source, "<root>", spec, "expected a YAML path or a mapping")
-    return Arch(_validate(raw, source), source)
+            base_dir = os.path.dirname(str(source)) if os.path.exists(str(source)) else "."
+            raw, origins = _extend(raw, {}, os.path.join(base_dir, "<dict>"), None, chain=())
+        return _build(raw, source, origins)
+    raise ConfigError(source, "<root>", spec, "expected a YAML path or a mapping")
+
+
+def _build(raw: dict, source, origins: dict) -> Arch:
+    """Validate ``raw``; an error is attributed to the file and line that set the bad value."""
+    try:
+        resolved = _validate(raw, source, origins)
+    except ConfigError as exc:
+        if exc.line is None and exc.source == source:
+            where = _origin_of(origins, exc.field)
+            if where is not None:
+                exc.located(*where)
+        raise
+    return Arch(resolved, source, origins)
+
+
+def _origin_of(origins, field):
+    path = str(field)
+    while path:
+        if path in origins:
+            return origins[path]
+        path = path.rpartition(".")[0]
+    return None
 
 
 def _read_yaml(path):
-    return read_mapping(path, ConfigError, "expected a mapping of config sections", empty_ok=True)
+    doc = read_mapping_doc(path, ConfigError, "expected a mapping of config sections", empty_ok=True,
+                           what="architecture config")
+    kind = guess_kind(doc.data)
+    if kind not in (None, "an architecture config"):
+        raise ConfigError(path, "<file>", NO_VALUE, f"this looks like {kind}, not an architecture config")
+    return doc
 
 
-def _resolve_extends(raw, path, seen):
-    parent = raw.pop("extends", None)
-    if parent is None:
-        return raw
-    if not isinstance(parent, str):
-        raise ConfigError(path, "extends", parent, "expected the path of another config")
+def _load_file(path, chain):
+    doc = _read_yaml(path)
+    origins = {}
+    for key, value in doc.data.items():
+        origins[str(key)] = (path, doc.lines.get((key,)))
+        if isinstance(value, dict):
+            for k in value:
+                origins[f"{key}.{k}"] = (path, doc.lines.get((key, k)))
+    return _extend(doc.data, origins, path, doc.lines.get(("extends",)), chain)
+
+
+def _extend(raw, origins, path, line, chain):
+    """Resolve ``raw``'s ``extends`` (relative to ``path``); ``(merged raw, merged origins)``."""
+    if "extends" not in raw:
+        return raw, origins
+    parent = raw.pop("extends")
+    origins.pop("extends", None)
+    if not isinstance(parent, str) or not parent.strip():
+        raise ConfigError(path, "extends", parent, "expected the path of another config", line=line)
     parent_path = os.path.normpath(os.path.join(os.path.dirname(path), parent))
-    if parent_path in seen or parent_path == os.path.normpath(path):
-        raise ConfigError(path, "extends", parent, "configs extend each other in a cycle")
-    base = _resolve_extends(_read_yaml(parent_path), parent_path, seen + (os.path.normpath(path),))
-    return _merge(base, raw)
+    here = os.path.normpath(path)
+    if parent_path in chain or parent_path == here:
+        raise ConfigError(path, "extends", parent, "configs extend each other in a cycle", line=line)
+    if len(chain) >= MAX_EXTENDS:
+        raise ConfigError(path, "extends", parent, f"expected at most {MAX_EXTENDS} configs in one extends "
+                          "chain", line=line)
+    try:
+        base, base_origins = _load_file(parent_path, chain + (here,))
+    except ConfigError as exc:
+        if exc.source == parent_path and exc.field == "<file>":
+            # the target itself is unusable: say so at the line that names it
+            what = exc.expected if exc.value is NO_VALUE else f"{exc.expected} ({parent_path})"
+            raise ConfigError(path, "extends", parent, what, line=line) from None
+        raise
+    merged_origins = dict(base_origins)
+    merged_origins.update(origins)
+    return _merge(base, raw), merged_origins
 
 
 def _merge(base, over):
@@ -391,19 +620,22 @@ def _set_path(raw, path, value, source):
         raise ConfigError(source, path, value, "no such config knob" + closest(path, knob_paths()))
     section, _, key = path.rpartition(".")
     node = raw.setdefault(section, {}) if section else raw
+    if not isinstance(node, dict):
+        raise ConfigError(source, section, node, "expected a mapping of knobs")
     node[key] = value
 
 
-def _validate(raw, source):
+def _validate(raw, source, origins=None):
+    origins = origins or {}
     out = {}
     top = SCHEMA[""]
+    unknown = []
     for key, value in raw.items():
-        if key in SCHEMA and key:
+        if isinstance(key, str) and key in SCHEMA and key:
             continue
         if key not in top:
-            raise ConfigError(source, key, value, "unknown key" + closest(key, list(SCHEMA) + list(top)))
-    for key, field in top.items():
-        out[key] = field.check(source, key, raw[key]) if key in raw else copy.deepcopy(field.default)
+            unknown.append((str(key), value, closest(key, list(SCHEMA) + list(top))))
+    sections = {}
     for section, fields in SCHEMA.items():
         if not section:
             continue
@@ -412,10 +644,16 @@ def _validate(raw, source):
             given = {}
         if not isinstance(given, dict):
             raise ConfigError(source, section, given, "expected a mapping of knobs")
+        sections[section] = given
         for key, value in given.items():
             if key not in fields:
-                raise ConfigError(source, f"{section}.{key}", value,
-                                  "unknown key" + closest(key, fields))
+                unknown.append((f"{section}.{key}", value, closest(key, fields)))
+    if unknown:
+        raise _unknown_keys(source, unknown, origins)
+    for key, field in top.items():
+        out[key] = field.check(source, key, raw[key]) if key in raw else copy.deepcopy(field.default)
+    for section, given in sections.items():
+        fields = SCHEMA[section]
         out[section] = {key: (field.check(source, f"{section}.{key}", given[key]) if key in given
                               else copy.deepcopy(field.default))
                         for key, field in fields.items()}
@@ -423,6 +661,27 @@ def _validate(raw, source):
     _check_consistency(out, source)
     _check_cost_models(out, source)
     return out
+
+
+def _unknown_keys(source, unknown, origins):
+    """One error for every unknown key of a config: the first in full, the others by name and line."""
+    field, value, hint = unknown[0]
+    where = _origin_of(origins, field)
+    text = "unknown key" + hint
+    if len(unknown) > 1:
+        others = []
+        for f, _v, h in unknown[1:]:
+            o = _origin_of(origins, f)
+            at = ""
+            if o is not None:
+                at = f" (line {o[1]})" if o[0] == (where or (source,))[0] and o[1] else \
+                    f" ({o[0]}{':' + str(o[1]) if o[1] else ''})"
+            others.append(f"{f}{at}{h}")
+        text += f"; also unknown: {', '.join(others)}"
+    err = ConfigError(source, field, value, text)
+    if where is not None:
+        err.located(*where)
+    return err
 
 
 def _check_cost_models(d, source):

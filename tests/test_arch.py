@@ -126,12 +126,12 @@ def test_extends_itself_is_refused(tmp_path):
         load_arch(p)
 
 
-def test_extends_missing_parent_names_it(tmp_path):
-    p = write(tmp_path, "child.yaml", {"extends": "nowhere.yaml"})
+def test_extends_missing_parent_names_it_and_the_referencing_file(tmp_path):
+    p = write(tmp_path, "child.yaml", {"name": "c", "extends": "nowhere.yaml"})
     with pytest.raises(ConfigError) as err:
         load_arch(p)
-    assert "nowhere.yaml" in err.value.source
-    assert "not found" in err.value.expected
+    assert err.value.source == p and err.value.line is not None and err.value.field == "extends"
+    assert "nowhere.yaml" in str(err.value) and "not found" in err.value.expected
 
 
 def test_extends_in_a_mapping_is_resolved_from_the_working_directory(monkeypatch):
@@ -207,8 +207,11 @@ def test_choice_names_the_closest():
         load_arch({"dot": {"arrays": "shard"}})
 
 
-def test_whole_float_is_accepted_as_int():
-    assert load_arch({"dram": {"channels": 4.0}}).dram.channels == 4
+@pytest.mark.parametrize("value", [4.0, 1e300, 1e3])
+def test_a_float_is_not_a_whole_number(value):
+    """Whole-number knobs take integers only (YAML 1.2 reads 1e3 as a float)."""
+    with pytest.raises(ConfigError, match="expected a whole number"):
+        load_arch({"dram": {"channels": value}})
 
 
 @pytest.mark.parametrize("doc, field", [

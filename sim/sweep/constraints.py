@@ -25,9 +25,11 @@ COMPARE = {
     "eq": lambda a, b: a == b, "ne": lambda a, b: a != b,
 }
 LOGIC = ("all", "any", "not")
+MAX_ARGS = 64       # terms of one add/mul/min/max
+ORDERING = ("le", "lt", "ge", "gt")
 ARITH = {
     "add": (2, None, lambda xs: math.fsum(xs)),
-    "mul": (2, None, lambda xs: math.prod(xs)),
+    "mul": (2, None, lambda xs: float(math.prod(xs))),
     "sub": (2, 2, lambda xs: xs[0] - xs[1]),
     "div": (2, 2, lambda xs: xs[0] / xs[1]),
     "min": (1, None, min),
@@ -82,11 +84,16 @@ class Rule:
 
 
 class Term:
-    """A parsed term: a constant, a config path, a derived quantity or arithmetic."""
+    """A parsed term: a constant, a config path, a derived quantity or arithmetic.
 
-    def __init__(self, kind, payload):
+    ``of`` is what it evaluates to: "number", "text" or "bool" (checked when
+    the rule is parsed, so evaluation never mixes them).
+    """
+
+    def __init__(self, kind, payload, of="number"):
         self.kind = kind
         self.payload = payload
+        self.of = of
 
     def value(self, config):
         if self.kind == "const":
@@ -137,7 +144,14 @@ def parse_rule(raw, source, field):
         return Rule(op, [parse_rule(a, source, f"{where}[{i}]") for i, a in enumerate(args)], field, raw)
     if not isinstance(args, list) or len(args) != 2:
         raise _err(source, where, args, "expected a list of two terms to compare")
-    return Rule(op, [parse_term(a, source, f"{where}[{i}]") for i, a in enumerate(args)], field, raw)
+    terms = [parse_term(a, source, f"{where}[{i}]") for i, a in enumerate(args)]
+    if op in ORDERING and any(t.of != "number" for t in terms):
+        bad = next(i for i, t in enumerate(terms) if t.of != "number")
+        raise _err(source, f"{where}[{bad}]", args[bad], f"is {terms[bad].of}; {op} compares numbers "
+                   "(eq and ne compare text)")
+    if terms[0].of != terms[1].of:
+        raise _err(source, where, args, f"compares {terms[0].of} with {terms[1].of}; expected two of one kind")
+    return Rule(op, terms, field, raw)
 
 
 def parse_term(raw, source, field):
@@ -145,28 +159,41 @@ def parse_term(raw, source, field):
         raise _err(source, field, raw, "expected a number, a config path or an operation "
                    "(write {literal: true} to compare with true/false)")
     if isinstance(raw, numbers.Real):
-        if not math.isfinite(raw):
-            raise _err(source, field, raw, "expected a finite number")
-        return Term("const", raw)
+        if isinstance(raw, float) and not math.isfinite(raw) or abs(raw) > 1e300:
+            raise _err(source, field, raw, "expected a finite number of at most 1e300 in size")
+        return Term("const", float(raw) if isinstance(raw, int) and abs(raw) > 2 ** 53 else raw)
     if isinstance(raw, str):
         if raw in DERIVED:
             return Term("derived", raw)
-        if archmod.field_for(raw) is None:
+        f = archmod.field_for(raw)
+        if f is None:
             names = archmod.knob_paths() + list(DERIVED)
             raise _err(source, field, raw, "no such config knob or derived quantity" + closest(raw, names))
-        return Term("path", raw)
+        if f.kind == "map":
+            raise _err(source, field, raw, "is a mapping of overrides; a rule reads single knobs")
+        of = {"int": "number", "float": "number", "bool": "bool"}.get(f.kind, "text")
+        return Term("path", raw, of)
     if isinstance(raw, dict) and len(raw) == 1:
         (op, args), = raw.items()
         if op == "literal":
-            if isinstance(args, (dict, list)):
+            if isinstance(args, (dict, list)) or args is None:
                 raise _err(source, f"{field}.literal", args, "expected a single value")
-            return Term("const", args)
+            if isinstance(args, bool):
+                return Term("const", args, "bool")
+            if isinstance(args, str):
+                return Term("const", args, "text")
+            return parse_term(args, source, f"{field}.literal")
         if op in ARITH:
             lo, hi, _fn = ARITH[op]
-            if not isinstance(args, list) or len(args) < lo or (hi is not None and len(args) > hi):
-                want = f"exactly {hi}" if hi == lo else f"at least {lo}"
+            if not isinstance(args, list) or len(args) < lo or (hi is not None and len(args) > hi) \
+                    or len(args) > MAX_ARGS:
+                want = f"exactly {hi}" if hi == lo else f"{lo} to {MAX_ARGS}"
                 raise _err(source, f"{field}.{op}", args, f"expected a list of {want} terms")
-            return Term(op, [parse_term(a, source, f"{field}.{op}[{i}]") for i, a in enumerate(args)])
+            terms = [parse_term(a, source, f"{field}.{op}[{i}]") for i, a in enumerate(args)]
+            for i, t in enumerate(terms):
+                if t.of != "number":
+                    raise _err(source, f"{field}.{op}[{i}]", args[i], f"is {t.of}; {op} takes numbers")
+            return Term(op, terms)
         names = list(ARITH) + ["literal"]
         raise _err(source, f"{field}.{op}", args, f"unknown operation, expected one of {', '.join(names)}"
                    + closest(op, names))
@@ -179,7 +206,7 @@ def keeps(rules, config, source, point):
     for rule in rules:
         try:
             ok = rule.holds(config)
-        except (TypeError, ZeroDivisionError, KeyError) as exc:
+        except (TypeError, ZeroDivisionError, KeyError, OverflowError, ValueError) as exc:
             raise _err(source, rule.field, rule.text,
                        f"cannot be evaluated at point {point}: {type(exc).__name__}: {exc}") from None
         if not ok:

@@ -29,8 +29,8 @@ import math
 import os
 
 from .. import arch as archmod
-from ..errors import InputError, closest
-from ..yamlio import read_mapping
+from ..errors import NO_VALUE, InputError, closest
+from ..yamlio import guess_kind, locate, read_mapping_doc, unknown_keys_error
 from . import constraints as cons
 from .objectives import OBJECTIVES
 
@@ -38,6 +38,8 @@ TOP_KEYS = ("name", "description", "base", "traces", "fixed", "axes", "linked", 
             "objectives")
 MAX_VALUES = 10000   # per axis; a range that long is a typo, not a plan
 MAX_POINTS = 1_000_000
+MAX_TRACES = 1000
+MAX_LINKED = 100     # linked groups
 
 
 class SweepError(InputError):
@@ -88,26 +90,28 @@ class Spec:
 def load_spec(path):
     """Read and validate a sweep spec file."""
     path = os.fspath(path)
-    raw = _read(path)
-    return validate_spec(raw, path)
-
-
-def _read(path):
-    return read_mapping(path, SweepError, "expected a mapping with base, traces and axes")
+    doc = read_mapping_doc(path, SweepError, "expected a mapping with base, traces and axes", what="sweep spec")
+    kind = guess_kind(doc.data)
+    if kind not in (None, "a sweep spec"):
+        raise SweepError(path, "<file>", NO_VALUE, f"this looks like {kind}, not a sweep spec")
+    try:
+        return validate_spec(doc.data, path)
+    except SweepError as exc:
+        raise locate(exc, doc) from None
 
 
 def validate_spec(raw, source):
     """Check a spec mapping; relative paths are taken from ``source``'s folder."""
     here = os.path.dirname(os.path.abspath(source)) if source and os.path.exists(source) else os.getcwd()
-    for key in raw:
-        if key not in TOP_KEYS:
-            raise SweepError(source, key, raw[key], "unknown key" + closest(key, TOP_KEYS))
+    unknown = [(str(k), raw[k], closest(k, TOP_KEYS)) for k in raw if k not in TOP_KEYS]
+    if unknown:
+        raise unknown_keys_error(SweepError, source, unknown)
     name = raw.get("name", os.path.splitext(os.path.basename(source or "sweep"))[0])
-    if not isinstance(name, str) or not name.strip():
-        raise SweepError(source, "name", name, "expected a short text")
+    if not isinstance(name, str) or not name.strip() or len(name) > 200 or not name.isprintable():
+        raise SweepError(source, "name", name, "expected a short line of text")
     description = raw.get("description", "")
-    if not isinstance(description, str):
-        raise SweepError(source, "description", description, "expected text")
+    if not isinstance(description, str) or len(description) > 2000:
+        raise SweepError(source, "description", description, "expected text (at most 2,000 characters)")
 
     base_written = raw.get("base")
     if not isinstance(base_written, str) or not base_written:
@@ -115,7 +119,12 @@ def validate_spec(raw, source):
     base_path = os.path.normpath(os.path.join(here, base_written))
     if not os.path.exists(base_path):
         raise SweepError(source, "base", base_written, f"no such file (looked in {os.path.dirname(base_path)})")
-    base = archmod.load_arch(base_path)
+    try:
+        base = archmod.load_arch(base_path)
+    except archmod.ConfigError as exc:
+        if exc.source == base_path and exc.field == "<file>":
+            raise SweepError(source, "base", base_written, exc.expected) from None
+        raise
 
     traces = _traces(raw.get("traces"), source, here)
     fixed = _fixed(raw.get("fixed", {}), source)
@@ -144,12 +153,16 @@ def _traces(value, source, here):
     if not isinstance(value, list) or not value:
         raise SweepError(source, "traces", value, "expected a list of one or more trace paths")
     out, seen = [], set()
+    if len(value) > MAX_TRACES:
+        raise SweepError(source, "traces", len(value), f"expected at most {MAX_TRACES} traces")
     for i, t in enumerate(value):
         if not isinstance(t, str) or not t:
             raise SweepError(source, f"traces[{i}]", t, "expected the path of a trace (.npz or .yaml)")
         p = os.path.normpath(os.path.join(here, t))
         if not os.path.exists(p):
             raise SweepError(source, f"traces[{i}]", t, f"no such file (looked in {os.path.dirname(p)})")
+        if not os.path.isfile(p):
+            raise SweepError(source, f"traces[{i}]", t, "is a folder or device, expected a trace file")
         if p in seen:
             raise SweepError(source, f"traces[{i}]", t, "listed twice")
         seen.add(p)
@@ -179,6 +192,10 @@ def _scalar(v, source, field):
         raise SweepError(source, field, v, "expected a single value (number, text or true/false)")
     if isinstance(v, float) and not math.isfinite(v):
         raise SweepError(source, field, v, "expected a finite number")
+    if isinstance(v, int) and not isinstance(v, bool) and abs(v) > 2 ** 63:
+        raise SweepError(source, field, v, "expected a number of at most 2**63 in size")
+    if isinstance(v, str) and (len(v) > 1000 or not v.isprintable()):
+        raise SweepError(source, field, v, "expected a short line of text")
     return v
 
 
@@ -196,8 +213,9 @@ def _dims(axes, linked, source):
         data.append({"paths": [path], "values": [[v] for v in vals]})
     if linked is None:
         linked = []
-    if not isinstance(linked, list):
-        raise SweepError(source, "linked", linked, "expected a list of groups, each a mapping of paths to value lists")
+    if not isinstance(linked, list) or len(linked) > MAX_LINKED:
+        raise SweepError(source, "linked", linked, f"expected a list of at most {MAX_LINKED} groups, each a "
+                         "mapping of paths to value lists")
     for g, group in enumerate(linked):
         gfield = f"linked[{g}]"
         if not isinstance(group, dict) or not group:
@@ -229,6 +247,8 @@ def values_of(spec, source, field, unique=True):
     if isinstance(spec, list):
         if not spec:
             raise SweepError(source, field, spec, "empty grid: expected at least one value")
+        if len(spec) > MAX_VALUES:
+            raise SweepError(source, field, len(spec), f"expected at most {MAX_VALUES} values on one axis")
         vals = [_scalar(v, source, f"{field}[{i}]") for i, v in enumerate(spec)]
     elif isinstance(spec, dict):
         vals = _range(spec, source, field)
@@ -249,10 +269,11 @@ def _range(spec, source, field):
     if not {"from", "to"} <= keys or len(keys & {"factor", "step"}) != 1:
         raise SweepError(source, field, spec, "expected {from, to, factor} or {from, to, step}")
     nums = {}
-    for k in keys:
+    for k in sorted(keys):
         v = spec[k]
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-            raise SweepError(source, f"{field}.{k}", v, "expected a finite number")
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or abs(v) > 1e15 or \
+                (isinstance(v, float) and not math.isfinite(v)):
+            raise SweepError(source, f"{field}.{k}", v, "expected a finite number of at most 1e15 in size")
         nums[k] = v
     lo, hi = nums["from"], nums["to"]
     if hi < lo:
@@ -265,7 +286,10 @@ def _range(spec, source, field):
             raise SweepError(source, f"{field}.factor", f, "expected a number > 1")
         if lo <= 0:
             raise SweepError(source, f"{field}.from", lo, "expected a number > 0 for a factor range")
-        n = int(math.floor(math.log(hi / lo) / math.log(f) + 1e-9)) + 1
+        ratio = math.log(hi / lo) / math.log(f)
+        if not ratio < MAX_VALUES:
+            raise SweepError(source, field, spec, f"expected at most {MAX_VALUES} values on one axis")
+        n = int(math.floor(ratio + 1e-9)) + 1
         if n > MAX_VALUES:
             raise SweepError(source, field, spec, f"expected at most {MAX_VALUES} values on one axis")
         out = [lo * f ** i for i in range(n)]
@@ -273,7 +297,10 @@ def _range(spec, source, field):
         s = nums["step"]
         if s <= 0:
             raise SweepError(source, f"{field}.step", s, "expected a number > 0")
-        n = int(math.floor((hi - lo) / s + 1e-9)) + 1
+        steps = (hi - lo) / s
+        if not steps < MAX_VALUES:
+            raise SweepError(source, field, spec, f"expected at most {MAX_VALUES} values on one axis")
+        n = int(math.floor(steps + 1e-9)) + 1
         if n > MAX_VALUES:
             raise SweepError(source, field, spec, f"expected at most {MAX_VALUES} values on one axis")
         out = [lo + s * i for i in range(n)]
@@ -290,7 +317,7 @@ def _objectives(value, source):
         raise SweepError(source, "objectives", value, f"expected a list drawn from {', '.join(OBJECTIVES)}")
     out = []
     for i, name in enumerate(value):
-        if name not in OBJECTIVES:
+        if not isinstance(name, str) or name not in OBJECTIVES:
             raise SweepError(source, f"objectives[{i}]", name,
                              f"expected one of {', '.join(OBJECTIVES)}" + closest(name, OBJECTIVES))
         if name in out:

@@ -29,9 +29,9 @@ import math
 import os
 
 import numpy as np
-import yaml
 
-from ..errors import InputError, closest
+from ..errors import NO_VALUE, InputError, closest
+from ..yamlio import guess_kind, locate, read_document, unknown_keys_error
 
 
 class PolicyError(InputError):
@@ -263,34 +263,45 @@ _KEY_KEYS = ("enabled", "msb_bits", "lsb_bits", "threshold")
 _FIT_KEYS = ("cosine", "steps")
 
 
+MAX_SCHEDULE = 1024     # entries of a token/head schedule (one per layer)
+
+
 def load_policy(path_or_dict, source=None):
     """Read and validate a policy from a YAML file or a mapping."""
     if isinstance(path_or_dict, Policy):
         return path_or_dict
+    doc = None
     if isinstance(path_or_dict, dict):
-        doc = copy.deepcopy(path_or_dict)
+        data = copy.deepcopy(path_or_dict)
         src = source or "<policy>"
     else:
         src = os.fspath(path_or_dict)
-        if not os.path.exists(src):
-            raise PolicyError(src, "<file>", src, "policy file not found")
-        try:
-            with open(src, encoding="utf-8") as fh:
-                doc = yaml.safe_load(fh)
-        except yaml.YAMLError as exc:
-            mark = getattr(exc, "problem_mark", None)
-            where = f"line {mark.line + 1}" if mark else "<file>"
-            raise PolicyError(src, where, "...", f"not valid YAML ({getattr(exc, 'problem', exc)})") from None
-        except UnicodeDecodeError:
-            raise PolicyError(src, "<file>", "...", "expected UTF-8 text") from None
+        doc = read_document(src, PolicyError, "pruning policy")
+        data = doc.data
+        kind = guess_kind(data)
+        if kind not in (None, "a pruning policy"):
+            raise PolicyError(src, "<file>", NO_VALUE, f"this looks like {kind}, not a pruning policy")
+    try:
+        return _policy(src, data)
+    except PolicyError as exc:
+        raise (locate(exc, doc) if doc is not None else exc) from None
+
+
+def _policy(src, doc):
     if doc is None:
         doc = {}
     if not isinstance(doc, dict):
         raise PolicyError(src, "<root>", type(doc).__name__, "expected a mapping of policy sections")
-    _no_unknown(src, "", doc, _TOP_KEYS)
+    unknown = [(str(k), doc[k], closest(k, _TOP_KEYS)) for k in doc if k not in _TOP_KEYS]
+    for sec, allowed in (("tokens", _CASCADE_KEYS), ("heads", _CASCADE_KEYS), ("values", _VALUE_KEYS),
+                         ("keys", _KEY_KEYS), ("fit", _FIT_KEYS)):
+        if isinstance(doc.get(sec), dict):
+            unknown += [(f"{sec}.{k}", v, closest(k, allowed)) for k, v in doc[sec].items() if k not in allowed]
+    if unknown:
+        raise unknown_keys_error(PolicyError, src, unknown)
     name = doc.get("name", "unnamed")
-    if not isinstance(name, str) or not name:
-        raise PolicyError(src, "name", name, "expected a non-empty text")
+    if not isinstance(name, str) or not name or len(name) > 200 or not name.isprintable():
+        raise PolicyError(src, "name", name, "expected a non-empty line of text (at most 200 characters)")
     decode = doc.get("decode", False)
     if not isinstance(decode, bool):
         raise PolicyError(src, "decode", decode, "expected true or false")
@@ -328,8 +339,9 @@ def _cascade(src, name, doc):
     sched = doc.get("schedule", [])
     if isinstance(sched, (int, float)) and not isinstance(sched, bool):
         sched = [sched]
-    if not isinstance(sched, list):
-        raise PolicyError(src, f"{name}.schedule", sched, "expected a list of kept fractions, one per layer")
+    if not isinstance(sched, list) or len(sched) > MAX_SCHEDULE:
+        raise PolicyError(src, f"{name}.schedule", sched, f"expected a list of kept fractions, one per layer "
+                          f"(at most {MAX_SCHEDULE})")
     out = tuple(_ratio(src, f"{name}.schedule[{i}]", v) for i, v in enumerate(sched))
     for i in range(1, len(out)):
         if out[i] > out[i - 1]:
@@ -352,6 +364,8 @@ def _values(src, doc):
     if mode == "count":
         if isinstance(amount, bool) or not isinstance(amount, int) or amount < 1:
             raise PolicyError(src, "values.count", amount, "expected a whole number >= 1")
+        if amount > 2 ** 31 - 1:
+            raise PolicyError(src, "values.count", amount, "expected a whole number <= 2**31 - 1")
         return ValueRule("count", int(amount))
     return ValueRule(mode, _ratio(src, f"values.{mode}", amount))
 

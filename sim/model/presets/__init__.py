@@ -18,16 +18,21 @@ import math
 import os
 import re
 
-import yaml
-
-from ...errors import ConfigError, closest
+from ...errors import NO_VALUE, ConfigError, closest
+from ...yamlio import decode_text, guess_kind, locate, parse_text, read_bytes
 
 WIDTH_KEY = re.compile(r"^(int|fp)(\d+)$")
 FORMATS = ("int", "fp")
 
 
 def _number(v, low=0.0):
-    return not isinstance(v, bool) and isinstance(v, (int, float)) and math.isfinite(v) and v >= low
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        return False
+    try:
+        v = float(v)
+    except OverflowError:
+        return False
+    return math.isfinite(v) and low <= v <= 1e12
 
 
 # kind -> group -> (key rule, value rule, what a value must be, fixed keys or None for open)
@@ -89,48 +94,57 @@ def load_preset(kind, spec, source="<config>", field=None):
         names = bundled(kind)
         if spec in names:
             res = importlib.resources.files(__name__).joinpath(_FILES[kind].format(spec))
-            text, where = res.read_text(encoding="utf-8"), f"{kind} preset {spec}"
+            where = f"{kind} preset {spec}"
+            data = res.read_bytes()
         elif spec.endswith((".yaml", ".yml")):
             path = spec if os.path.isabs(spec) or os.path.exists(spec) else os.path.join(
                 os.path.dirname(str(source)), spec)
             try:
-                with open(path, encoding="utf-8") as fh:
-                    text = fh.read()
-            except OSError:
-                raise ConfigError(source, field, spec, "preset file not found") from None
+                data = read_bytes(path, ConfigError, f"{kind} preset")
+            except ConfigError as exc:
+                raise ConfigError(source, field, spec, f"{exc.expected} ({path})") from None
             where = path
         else:
             raise ConfigError(source, field, spec, f"expected a bundled {kind} preset "
                               f"({', '.join(names)}) or a .yaml path" + closest(spec, names))
-        _cache[key] = _check_preset(kind, text, where)
+        doc = parse_text(decode_text(data, where, ConfigError, f"{kind} preset"), where, ConfigError)
+        try:
+            _cache[key] = _check_preset(kind, doc.data, where)
+        except ConfigError as exc:
+            raise locate(exc, doc) from None
     return copy.deepcopy(_cache[key])
 
 
-def _check_preset(kind, text, where):
-    try:
-        raw = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        raise ConfigError(where, f"line {mark.line + 1}" if mark else "<file>", "...",
-                          f"not valid YAML ({getattr(exc, 'problem', exc)})") from None
+def _check_preset(kind, raw, where):
     if not isinstance(raw, dict):
-        raise ConfigError(where, "<root>", raw, "expected a mapping of preset groups")
+        raise ConfigError(where, "<root>", raw if not isinstance(raw, (list, dict)) else type(raw).__name__,
+                          "expected a mapping of preset groups")
+    guessed = guess_kind(raw)
+    if guessed not in (None, "a technology preset"):
+        raise ConfigError(where, "<file>", NO_VALUE, f"this looks like {guessed}, not a {kind} preset")
+    if "kind" in raw and raw["kind"] != kind:
+        raise ConfigError(where, "kind", raw["kind"], f"expected {kind} (this is the {kind}.preset)")
     rules = _RULES[kind]
     meta = ("name", "kind", "description", "source")
+    for m in ("name", "description", "source"):
+        if m in raw and not isinstance(raw[m], str):
+            raise ConfigError(where, m, raw[m], "expected text")
     groups = {}
     for g, entries in raw.items():
         if g in meta:
             continue
         if g not in rules:
-            raise ConfigError(where, g, entries, "unknown group" + closest(g, list(rules) + list(meta)))
+            raise ConfigError(where, str(g), entries, "unknown group" + closest(g, list(rules) + list(meta)))
         if not isinstance(entries, dict):
             raise ConfigError(where, g, entries, "expected a mapping of entries")
         groups[g] = {}
         for k, e in entries.items():
             if not isinstance(e, dict) or set(e) != {"value", "origin"}:
                 raise ConfigError(where, f"{g}.{k}", e, "expected {value: ..., origin: '...'}")
+            if not isinstance(e["origin"], str):
+                raise ConfigError(where, f"{g}.{k}.origin", e["origin"], "expected text saying where the value is from")
             groups[g][_check_key(kind, g, k, where, f"{g}.{k}")] = {
-                "value": _check_value(kind, g, e["value"], where, f"{g}.{k}"), "origin": str(e["origin"])}
+                "value": _check_value(kind, g, e["value"], where, f"{g}.{k}"), "origin": e["origin"]}
     for g, (_rule, _ok, _what, fixed) in rules.items():
         for k in fixed or ():
             if k not in groups.get(g, {}):
@@ -151,15 +165,17 @@ def _check_key(kind, group, key, where, field):
         return key
     if rule == "size":
         try:
-            size = float(key)
-        except (TypeError, ValueError):
+            size = -1.0 if isinstance(key, bool) else float(key)
+        except (TypeError, ValueError, OverflowError):
             size = -1.0
-        if not math.isfinite(size) or size <= 0:
+        if not math.isfinite(size) or size <= 0 or size > 2 ** 30:
             raise ConfigError(where, field, key, "expected a buffer size in KiB > 0")
         return int(size) if size.is_integer() else size
     if rule == "fixed" and key not in fixed:
         raise ConfigError(where, field, key, "unknown entry" + closest(key, fixed))
-    return str(key)
+    if not isinstance(key, str) or not key.isprintable() or len(key) > 100:
+        raise ConfigError(where, field, key, "expected a short name")
+    return key
 
 
 def _check_value(kind, group, value, where, field):
