@@ -5,13 +5,18 @@ recorded from a real encoder) when present, seeded synthetic ones otherwise --
 on every bundled datapath (``arch_configs/{edge,mid,server,hbm2_stack}.yaml``),
 prints a comparison table and writes a full report to ``reports/demo/``.
 Runs are spread over the machine's cores (at most two worker processes; the
-pairs are independent).
+pairs are independent). The bundled files come from the checkout or, after a
+normal install, from the package data (:mod:`sim.bundled`).
 """
 
 import glob
+import json
 import os
+import sys
 import time
 import traceback
+
+from . import bundled
 
 CONFIGS = ("edge", "mid", "server", "hbm2_stack")
 TIMELINE_CONFIG = "mid"
@@ -19,8 +24,16 @@ REPORT_TITLE = "attnsim demo: bundled traces on bundled datapaths"
 
 
 def repo_root():
-    """The checkout holding ``arch_configs/`` and ``traces/`` (the package's parent)."""
-    return os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    """The folder holding the bundled ``arch_configs/`` and ``traces/`` (a checkout or the package data)."""
+    return bundled.root() or os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+
+
+def default_out_dir():
+    """``reports/demo`` in the checkout when run from one, else under the current folder."""
+    checkout = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    if bundled.root() == checkout:
+        return os.path.join(checkout, "reports", "demo")
+    return os.path.join(os.getcwd(), "reports", "demo")
 
 
 def pick_traces(root):
@@ -62,15 +75,33 @@ def _one(job):
                 "config": config_path, "trace": trace_name, "seconds": time.perf_counter() - t0}
 
 
-def run_pairs(jobs, workers):
-    if workers <= 1 or len(jobs) <= 1:
-        return [_one(j) for j in jobs]
-    import concurrent.futures as cf
-    import multiprocessing as mp
+def run_pairs(jobs, workers, progress=False):
+    """Results of ``jobs`` in order; ``progress`` draws a bar on stderr (a terminal or a notebook)."""
+    bar = None
+    if progress:
+        from tqdm.auto import tqdm
+        bar = tqdm(total=len(jobs), desc="attnsim demo", unit="run", file=sys.stderr, leave=False)
+    try:
+        if workers <= 1 or len(jobs) <= 1:
+            out = []
+            for j in jobs:
+                out.append(_one(j))
+                if bar is not None:
+                    bar.update()
+            return out
+        import concurrent.futures as cf
+        import multiprocessing as mp
 
-    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else None
-    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
-        return list(pool.map(_one, jobs))
+        ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else None
+        with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+            futures = [pool.submit(_one, j) for j in jobs]
+            if bar is not None:
+                for _f in cf.as_completed(futures):
+                    bar.update()
+            return [f.result() for f in futures]
+    finally:
+        if bar is not None:
+            bar.close()
 
 
 def terminal_table(runs):
@@ -93,26 +124,25 @@ def terminal_table(runs):
     return "\n".join(lines)
 
 
-def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print):
+def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=False, progress=False):
     """Run the demo; return ``(runs, failed, out_dir, seconds)``."""
     from .report.build import build_report
     from .report.inputs import ReportError, Run
 
     t0 = time.perf_counter()
     root = repo_root()
-    out_dir = out_dir or os.path.join(root if os.path.isdir(os.path.join(root, "arch_configs")) else os.getcwd(),
-                                      "reports", "demo")
-    _check_own_folder(out_dir, ReportError)
+    out_dir = out_dir or default_out_dir()
+    _check_own_folder(out_dir, ReportError, force)
     kind, traces = pick_traces(root)
     cfgs = [os.path.join(root, "arch_configs", f"{c}.yaml") for c in configs]
     missing = [c for c in cfgs if not os.path.exists(c)]
     if missing:
-        raise ReportError(missing[0], "<file>", missing[0], "bundled config not found (run from a checkout)")
+        raise ReportError(missing[0], "<file>", missing[0], "bundled config not found (a broken install?)")
     jobs = [(c, name, path) for name, path in traces for c in cfgs]
     workers = workers or min(2, os.cpu_count() or 1)
     echo(f"attnsim demo: {len(traces)} {kind} traces x {len(cfgs)} datapaths = {len(jobs)} runs "
          f"on {workers} worker{'s' if workers > 1 else ''}")
-    results = run_pairs(jobs, workers)
+    results = run_pairs(jobs, workers, progress=progress)
     runs, failed = [], []
     for job, res in zip(jobs, results):
         if res["ok"]:
@@ -132,29 +162,55 @@ def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print):
     return runs, failed, out_dir, time.perf_counter() - t0
 
 
-def _check_own_folder(out_dir, error):
-    """The demo overwrites its own previous output, nothing else."""
-    if not os.path.exists(out_dir) or not os.listdir(out_dir):
+def _check_own_folder(out_dir, error, force=False):
+    """The demo replaces its own previous output (the files its manifest lists), nothing else."""
+    if os.path.exists(out_dir) and not os.path.isdir(out_dir):
+        raise error(out_dir, "--out", out_dir, "is a file; expected a folder")
+    if not os.path.exists(out_dir):
+        up = os.path.dirname(os.path.abspath(out_dir))
+        while not os.path.exists(up):
+            up = os.path.dirname(up)
+        if not os.path.isdir(up):
+            raise error(out_dir, "--out", out_dir, f"{up} is a file; expected a folder")
+        return
+    if not os.listdir(out_dir) or force:
         return
     man = os.path.join(out_dir, "manifest.json")
     try:
-        import json
         with open(man, encoding="utf-8") as fh:
-            ok = json.load(fh).get("format") == "attnsim-report"
-    except (OSError, ValueError):
-        ok = False
-    if not ok:
-        raise error(out_dir, "<folder>", out_dir, "exists and holds something other than an attnsim report; "
-                    "move it away first")
+            doc = json.load(fh)
+        ours = set(doc.get("files", [])) if doc.get("format") == "attnsim-report" else None
+    except (OSError, ValueError, AttributeError):
+        ours = None
+    if ours is None:
+        raise error(out_dir, "--out", out_dir, "exists and holds something other than an attnsim report; "
+                    "move it away or pass --force")
+    ours |= {"manifest.json"}
+    foreign = []
+    for dirpath, _dirs, files in os.walk(out_dir):
+        for f in files:
+            rel = os.path.relpath(os.path.join(dirpath, f), out_dir).replace(os.sep, "/")
+            if rel not in ours:
+                foreign.append(rel)
+    if foreign:
+        raise error(out_dir, "--out", out_dir, f"holds files the last demo did not write ({', '.join(sorted(foreign)[:3])}"
+                    f"{', ...' if len(foreign) > 3 else ''}); move them away or pass --force")
 
 
-def main_demo():
+def main_demo(out_dir=None, force=False, quiet=False):
     """Entry point of ``attnsim demo``; returns the exit status."""
-    runs, failed, out_dir, secs = run_demo()
-    print(terminal_table(runs))
+    def notice(text):
+        if not quiet:
+            print(text, file=sys.stderr)
+
+    runs, failed, out_dir, secs = run_demo(out_dir=out_dir, echo=notice, force=force,
+                                           progress=not quiet and sys.stderr.isatty())
+    if not quiet:
+        print(terminal_table(runs))
     for f in failed:
-        print(f"FAILED {f['origin']}: {f['error']}")
+        print(f"attnsim: demo run failed: {f['origin']}: {f['error']}", file=sys.stderr)
     rel = os.path.relpath(out_dir)
-    print(f"\n{len(runs)} runs in {secs:.1f} s. Report: {os.path.join(rel, 'report.html')} "
-          f"(also report.md, figures/, data/*.csv)")
+    if not quiet:
+        print(f"\n{len(runs)} runs in {secs:.1f} s. Report: {os.path.join(rel, 'report.html')} "
+              f"(also report.md, figures/, data/*.csv)")
     return 1 if failed else 0

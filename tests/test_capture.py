@@ -247,7 +247,8 @@ def test_user_model_paths_capture(tmp_path, capsys):
     assert code == 0, capsys.readouterr().err
     tr = load_trace(str(out))
     assert tr.header["model"] == {"layers": 1, "heads": 2, "head_dim": 8}
-    code, err = _run_cli(capsys, "--text", SHORT, "--policy", policy("dense"), "--out", str(out), args[0], args[1])
+    code, err = _run_cli(capsys, "--text", SHORT, "--policy", policy("dense"), "--out", str(out), "--force",
+                         args[0], args[1])
     assert code == 2 and "--tokenizer" in err
 
 

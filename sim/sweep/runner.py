@@ -127,19 +127,20 @@ def _bounds(points, plan):
 
 
 def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, force=False,
-              quiet=False, backend=None, on_record=None, stream=None, security=None):
+              quiet=False, backend=None, on_record=None, stream=None, security=None, plan=None):
     """Run the sweep ``spec`` (a path or a :class:`Spec`) into folder ``out``.
 
     ``backend`` may be given ready-made (it is not closed here then); otherwise
     it is made from ``jobs`` / ``cluster`` / ``workers`` (and ``security``,
     the TLS files of a ``tls://`` cluster). ``on_record(record)`` is called
-    after each record reaches the store.
+    after each record reaches the store. ``plan``: the spec's plan, when the
+    caller made it already.
     """
     if not isinstance(spec, Spec):
         spec = load_spec(spec)
     if cluster is not None:   # a bad address or TLS file fails here, before anything runs
         (security or TLSFiles()).validate(cluster)
-    plan = make_plan(spec)
+    plan = plan if plan is not None else make_plan(spec)
     meta = {"format": FORMAT, "version": VERSION, "spec_digest": spec.digest(plan.trace_digests()),
             "spec": spec.data, "simulator_version": __version__, "simulator_build": plan.build}
     store = Store.open(out, meta, ((p.key, p.order) for p in plan.points), spec.axis_paths, force=force,

@@ -462,15 +462,16 @@ class Store(StoreReader):
         if os.path.exists(folder) and not os.path.isdir(folder):
             raise _err(folder, "--out", folder, "expected a folder, found a file")
         os.makedirs(folder, exist_ok=True)
+        old = _claim(folder, meta, force)  # a refused folder gets no lock file
         lock_fd = os.open(os.path.join(folder, LOCK_FILE), os.O_RDWR | os.O_CREAT, 0o644)
         try:
-            fcntl.flock(lock_fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            # a POSIX lock: forked pool workers do not inherit it, so a killed run frees it at once
+            fcntl.lockf(lock_fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except OSError:
             os.close(lock_fd)
             raise _err(folder, "--out", folder, "another sweep run is writing to this folder") from None
         conn = None
         try:
-            old = _claim(folder, meta, force)
             meta = {**meta, "axis_paths": list(axis_paths)}
             conn = _connect(os.path.join(folder, DB_FILE))
             columns = table_columns(config_paths(axis_paths, fixed_paths))
@@ -479,7 +480,7 @@ class Store(StoreReader):
         except BaseException:
             if conn is not None:
                 conn.close()
-            fcntl.flock(lock_fd, fcntl.LOCK_UN)
+            fcntl.lockf(lock_fd, fcntl.LOCK_UN)
             os.close(lock_fd)
             raise
         try:
@@ -643,7 +644,7 @@ class Store(StoreReader):
         super().close()
         if self._lock_fd is not None:
             try:
-                fcntl.flock(self._lock_fd, fcntl.LOCK_UN)
+                fcntl.lockf(self._lock_fd, fcntl.LOCK_UN)
             finally:
                 os.close(self._lock_fd)
                 self._lock_fd = None
