@@ -6,8 +6,9 @@ to a temporary folder (no download), and read back by our decoder from the
 files alone. Logits must agree within 1e-4 for every prompt row and for 8
 cached generation steps (``past_key_values`` on the reference side, our KV
 cache on ours). Rotary positions (with a non-default base), grouped-query and
-multi-query heads, tied and untied output projections and GPT-2's fused
-Q/K/V are covered.
+multi-query heads, tied and untied output projections, attention and
+feed-forward biases, GPT-2's fused Q/K/V, exact GELU and its per-layer score
+scaling option are covered.
 """
 
 import functools
@@ -35,6 +36,11 @@ CASES = {
     "llama_mqa_tied": dict(kind="llama", hidden_size=48, intermediate_size=80, num_hidden_layers=2,
                            num_attention_heads=4, num_key_value_heads=1, max_position_embeddings=96,
                            tie_word_embeddings=True, rms_norm_eps=1e-5),
+    "llama_biases": dict(kind="llama", hidden_size=32, intermediate_size=48, num_hidden_layers=2,
+                         num_attention_heads=4, num_key_value_heads=2, max_position_embeddings=96,
+                         attention_bias=True, mlp_bias=True),
+    "gpt2_layer_scaled": dict(kind="gpt2", n_embd=32, n_layer=2, n_head=2, n_positions=96,
+                              scale_attn_by_inverse_layer_idx=True, activation_function="gelu"),
 }
 
 
@@ -51,6 +57,12 @@ def reference(case, folder):
         model = GPT2LMHeadModel(GPT2Config(vocab_size=VOCAB, bos_token_id=0, eos_token_id=0, **args))
     else:
         model = LlamaForCausalLM(LlamaConfig(vocab_size=VOCAB, bos_token_id=0, eos_token_id=0, **args))
+    # fresh models start with zero biases and unit norm weights: perturb them, so
+    # the check sees whether they are applied where they belong
+    with torch.no_grad():
+        for name, param in model.named_parameters():
+            if "bias" in name or "norm" in name or ".ln_" in name:
+                param.add_(torch.randn_like(param) * 0.05)
     model.eval()
     model.save_pretrained(folder)
     write_tokenizer(folder, VOCAB)
