@@ -31,7 +31,7 @@ import time
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(HERE)
-sys.path.insert(0, os.path.join(ROOT, "tests"))
+sys.path[:0] = [ROOT, os.path.join(ROOT, "tests")]   # this checkout's package, not an installed one
 
 MEMORY_LIMIT = 6 << 30
 
@@ -100,8 +100,9 @@ def _warm_up(fz):
 class Worker:
     def __init__(self, timeout):
         self.timeout = timeout
+        env = dict(os.environ, PYTHONPATH=ROOT + os.pathsep + os.environ.get("PYTHONPATH", ""))
         self.proc = subprocess.Popen([sys.executable, os.path.abspath(__file__), "--worker",
-                                      "--timeout", str(timeout)],
+                                      "--timeout", str(timeout)], env=env,
                                      stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True, bufsize=1)
         self.case = None
         self.sent = 0.0

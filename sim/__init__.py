@@ -10,31 +10,47 @@ store -> report.
     >>> result.to_dict()["cycles"]
 """
 
+from __future__ import annotations
+
 __version__ = "0.1.0"
+
+import os  # noqa: E402
+from typing import TYPE_CHECKING, Any, Mapping, Union  # noqa: E402
 
 from .arch import Arch, load_arch  # noqa: E402
 from .errors import ConfigError, InputError, SimulationStalled, TraceError  # noqa: E402
 from .trace.format import Trace, load_trace  # noqa: E402
 
+if TYPE_CHECKING:
+    from .result import Result
 
-def simulate(arch, trace, keep_intervals=True, **engine_options):
+ArchLike = Union[Arch, str, "os.PathLike[str]", Mapping[str, Any]]
+TraceLike = Union[Trace, str, "os.PathLike[str]"]
+
+
+def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, **engine_options: Any) -> Result:
     """Replay ``trace`` on ``arch`` and return a :class:`sim.result.Result`.
 
     ``arch`` may be an Arch, a YAML path or a mapping; ``trace`` a Trace or a
     path. ``engine_options`` override the config's ``engine`` section
     (``grain_rows``, ``seed``). ``keep_intervals=False`` skips the per-unit
-    intervals a timeline needs (the document is the same).
+    intervals a timeline needs (the document is the same). A run that would
+    not fit the address map or the machine's memory is refused first
+    (:mod:`sim.budget`).
     """
+    from .budget import check_run
     from .engine.datapath import run_datapath
     from .result import build_result
 
     arch = load_arch(arch)
     if not isinstance(trace, Trace):
         trace = load_trace(trace)
+    check_run(arch, trace, engine_options.get("grain_rows"))
     return build_result(run_datapath(arch, trace, keep_intervals=keep_intervals, **engine_options))
 
 
-def load_sweep(folder, columns=None, filters=None):
+def load_sweep(folder: str | os.PathLike, columns: list[str] | None = None,
+               filters: list[tuple] | None = None) -> Any:
     """A pandas DataFrame with one row per point of sweep folder ``folder`` (see :mod:`sim.sweep.frame`).
 
     ``filters``: ``[(column, op, value)]``, all must hold; ``columns``: the columns to keep.
@@ -44,7 +60,7 @@ def load_sweep(folder, columns=None, filters=None):
     return _load(folder, columns=columns, filters=filters)
 
 
-def open_sweep(folder):
+def open_sweep(folder: str | os.PathLike) -> Any:
     """A sweep folder opened for reading: frames, Pareto fronts and whole records on demand."""
     from .sweep.frame import open_sweep as _open
 

@@ -351,7 +351,7 @@ def _make_section_class(section: str, fields: Mapping[str, Field]):
             f"{section}.{key} is read-only; use arch.with_overrides({{'{section}.{key}': {value!r}}}), "
             "which validates and returns a new Arch")
 
-    cls.__setattr__ = refuse
+    setattr(cls, "__setattr__", refuse)
     cls.__doc__ = f"The resolved ``{section}`` section (read-only; see Arch.with_overrides)."
     return cls
 
@@ -380,6 +380,23 @@ class Arch:
 
     __slots__ = ("_d", "source", "origins", "name", "description", "clock_ghz") + tuple(
         s for s in SCHEMA if s)
+    # set once in __init__ (the sections are frozen dataclasses made from SCHEMA)
+    _d: dict
+    source: Any
+    origins: Mapping[str, tuple]
+    name: str
+    description: str
+    clock_ghz: float
+    dram: Any
+    fetch: Any
+    buffers: Any
+    dot: Any
+    softmax: Any
+    topk: Any
+    precision: Any
+    engine: Any
+    energy: Any
+    area: Any
 
     def __init__(self, resolved: dict, source: Any = "<dict>", origins: dict | None = None):
         put = object.__setattr__
@@ -522,6 +539,9 @@ def load_arch(spec: Any, source: Any = None) -> Arch:
         return spec
     if isinstance(spec, (str, os.PathLike)):
         path = os.fspath(spec)
+        if not os.path.exists(path) and isinstance(spec, str):
+            from . import bundled
+            path = bundled.config(path) or path  # a bundled config by name: "edge", "memory/hbm2"
         raw, origins = _load_file(path, chain=())
         return _build(raw, source or path, origins)
     if isinstance(spec, Mapping):

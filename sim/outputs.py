@@ -115,7 +115,7 @@ def check_folder_writable(option: str, path: str) -> None:
     os.unlink(tmp)
 
 
-def write_atomic(path: str, write: Callable[[IO], None], binary: bool = False, option: str = "output") -> str:
+def write_atomic(path: str, write: Callable[[IO], object], binary: bool = False, option: str = "output") -> str:
     """Write ``path`` through ``write(fh)`` on a temporary file, then rename it into place.
 
     ``path`` ``-`` writes to standard output instead. An OS error (a full
@@ -133,7 +133,7 @@ def write_atomic(path: str, write: Callable[[IO], None], binary: bool = False, o
     tmp = None
     try:
         fd, tmp = tempfile.mkstemp(dir=folder, prefix=".tmp-", suffix=os.path.splitext(path)[1])
-        with os.fdopen(fd, "wb" if binary else "w", **({} if binary else {"encoding": "utf-8"})) as fh:
+        with (os.fdopen(fd, "wb") if binary else os.fdopen(fd, "w", encoding="utf-8")) as fh:
             write(fh)
             fh.flush()
             os.fsync(fh.fileno())
@@ -153,4 +153,6 @@ def write_atomic(path: str, write: Callable[[IO], None], binary: bool = False, o
 
 
 def write_text(path: str, text: str, option: str = "output") -> str:
-    return write_atomic(path, lambda fh: fh.write(text), option=option)
+    def put(fh: IO) -> None:
+        fh.write(text)
+    return write_atomic(path, put, option=option)

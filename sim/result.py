@@ -6,6 +6,8 @@ buffers, counters) into a plain, JSON-ready mapping. :class:`Result` wraps it;
 simulation: data flows engine -> stats -> result.
 """
 
+from __future__ import annotations
+
 import copy
 import json
 import math
@@ -26,22 +28,43 @@ UNIT_ORDER = ("dram", "fetch", "dot", "dot_pv", "softmax", "topk")
 class Result:
     """One run's measurements. ``to_dict()`` gives the result document."""
 
-    def __init__(self, doc, intervals=None):
+    def __init__(self, doc: dict, intervals: dict | None = None):
         self._doc = doc
         self.intervals = intervals or {}
 
-    def to_dict(self):
+    def to_dict(self) -> dict:
         return copy.deepcopy(self._doc)
 
-    def __getitem__(self, key):
+    def __getitem__(self, key: str):
         return self._doc[key]
 
     @property
-    def cycles(self):
+    def cycles(self) -> int:
         return self._doc["cycles"]
 
-    def to_json(self):
+    def to_json(self) -> str:
         return json.dumps(self._doc, indent=2, sort_keys=True) + "\n"
+
+    def __repr__(self) -> str:
+        d = self._doc
+        arch = (d.get("arch") or {}).get("name")
+        trace = (d.get("trace") or {}).get("name")
+        return f"Result({arch!r} x {trace!r}: {d.get('cycles', 0):,} cycles, {d.get('seconds', 0.0) * 1e6:,.2f} us)"
+
+    def _repr_html_(self) -> str:
+        import html
+
+        d = self._doc
+        units = d.get("units") or {}
+        rows = "".join(
+            f"<tr><td>{html.escape(str(u))}</td>"
+            + "".join(f"<td>{float(v.get(k, 0.0)):.1%}</td>" for k in ("busy", "starved", "blocked", "idle"))
+            + "</tr>" for u, v in units.items() if isinstance(v, dict))
+        dram = d.get("dram") or {}
+        return (f"<div><b>{html.escape(repr(self))}</b><br>DRAM {float(dram.get('achieved_gbps', 0.0)):,.1f} of "
+                f"{float(dram.get('peak_gbps', 0.0)):,.1f} GB/s"
+                f"<table><tr><th>unit</th><th>busy</th><th>starved</th><th>blocked</th><th>idle</th></tr>"
+                f"{rows}</table></div>")
 
     def to_frame(self):
         """A one-row pandas DataFrame: the figures and knobs under the sweep table's column names."""

@@ -36,7 +36,7 @@ MAX_NODES = 2_000_000          # scalars + collections after alias expansion
 MAX_BYTES = 4 << 20            # configs, policies, presets, sweep specs
 MAX_TRACE_BYTES = 256 << 20    # YAML traces (large traces belong in .npz)
 
-_BASE = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
+_BASE: Any = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
 
 # What a file's first bytes say it is, when it is not text.
 _MAGIC = (
@@ -182,11 +182,15 @@ _Loader.add_constructor(None, _refuse_tag)
 # Reading
 
 
-def read_bytes(path, error, what: str, max_bytes: int = MAX_BYTES) -> bytes:
-    """The bytes of a regular file ``path``; folders, devices, missing and oversized files refused."""
+def _a(what: str) -> str:
+    return ("an " if what[:1].lower() in "aeiou." else "a ") + what
+
+
+def check_file(path, error, what: str) -> os.stat_result:
+    """``path`` names an existing regular file (not a folder, device or pipe), or ``error``."""
     path = os.fspath(path)
     if path == "":
-        raise error("<input>", "<file>", path, f"expected the path of a {what}, got an empty name")
+        raise error("<input>", "<file>", path, f"expected the path of {_a(what)}, got an empty name")
     try:
         st = os.stat(path)
     except FileNotFoundError:
@@ -194,12 +198,19 @@ def read_bytes(path, error, what: str, max_bytes: int = MAX_BYTES) -> bytes:
     except OSError as exc:
         raise error(path, "<file>", path, f"cannot be read ({exc.strerror or exc})") from None
     if stat.S_ISDIR(st.st_mode):
-        raise error(path, "<file>", path, f"is a folder, expected a {what} file")
+        raise error(path, "<file>", path, f"is a folder, expected {_a(what)} file")
     if not stat.S_ISREG(st.st_mode):
-        raise error(path, "<file>", path, f"is not a regular file (a device or pipe), expected a {what} file")
+        raise error(path, "<file>", path, f"is not a regular file (a device or pipe), expected {_a(what)} file")
+    return st
+
+
+def read_bytes(path, error, what: str, max_bytes: int = MAX_BYTES) -> bytes:
+    """The bytes of a regular file ``path``; folders, devices, missing and oversized files refused."""
+    path = os.fspath(path)
+    st = check_file(path, error, what)
     if st.st_size > max_bytes:
         raise error(path, "<file>", f"{st.st_size:,} bytes",
-                    f"expected a {what} of at most {max_bytes:,} bytes")
+                    f"expected {_a(what)} of at most {max_bytes:,} bytes")
     try:
         with open(path, "rb") as fh:
             return fh.read(max_bytes + 1)
@@ -221,7 +232,7 @@ def decode_text(data: bytes, source: str, error, what: str) -> str:
     """UTF-8 text of ``data`` (a byte-order mark is dropped); binary data refused by kind."""
     kind = kind_of_bytes(data)
     if kind is not None:
-        raise error(source, "<file>", NO_VALUE, f"this looks like {kind}, not a {what} (YAML text)")
+        raise error(source, "<file>", NO_VALUE, f"this looks like {kind}, not {_a(what)} (YAML text)")
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -235,7 +246,9 @@ def decode_text(data: bytes, source: str, error, what: str) -> str:
 
 def _check_events(text: str, source: str, error, max_depth: int, max_nodes: int) -> None:
     """Walk the parse events once: nesting depth, alias expansion and document count."""
-    stack, sizes, docs = [], {}, 0
+    stack: list[list[Any]] = []
+    sizes: dict[str, int] = {}
+    docs = 0
     loader = _Loader(text)
     try:
         while True:
@@ -246,12 +259,12 @@ def _check_events(text: str, source: str, error, max_depth: int, max_nodes: int)
                 docs += 1
                 if docs > 1:
                     raise error(source, "<yaml>", NO_VALUE, "expected one YAML document, found a "
-                                "second one", line=ev.start_mark.line + 1)
+                                "second one", line=_line(ev.start_mark))
             elif isinstance(ev, (yaml.MappingStartEvent, yaml.SequenceStartEvent)):
                 stack.append([1, ev.anchor])
                 if len(stack) > max_depth:
                     raise error(source, "<yaml>", NO_VALUE, f"nested deeper than {max_depth} levels",
-                                line=ev.start_mark.line + 1)
+                                line=_line(ev.start_mark))
             elif isinstance(ev, (yaml.MappingEndEvent, yaml.SequenceEndEvent)):
                 n, anchor = stack.pop()
                 if anchor is not None:
@@ -266,14 +279,18 @@ def _check_events(text: str, source: str, error, max_depth: int, max_nodes: int)
             elif isinstance(ev, yaml.AliasEvent):
                 if ev.anchor not in sizes:
                     raise error(source, "<yaml>", f"*{ev.anchor}",
-                                "alias to an anchor that is not defined before it", line=ev.start_mark.line + 1)
+                                "alias to an anchor that is not defined before it", line=_line(ev.start_mark))
                 if stack:
                     stack[-1][0] += sizes[ev.anchor]
             if stack and stack[-1][0] > max_nodes:
                 raise error(source, "<yaml>", NO_VALUE, f"expands to more than {max_nodes:,} values "
-                            "(aliases repeat too much)", line=ev.start_mark.line + 1)
+                            "(aliases repeat too much)", line=_line(ev.start_mark))
     finally:
         loader.dispose()
+
+
+def _line(mark) -> int | None:
+    return mark.line + 1 if mark is not None else None
 
 
 def _lines(node, path=(), out=None) -> dict:
@@ -288,6 +305,8 @@ def _lines(node, path=(), out=None) -> dict:
                 _lines(v, p, out)
     elif isinstance(node, yaml.SequenceNode):
         for i, v in enumerate(node.value):
+            if isinstance(v, yaml.ScalarNode):
+                continue  # a list of numbers points at its key's line (keeps long traces cheap)
             p = path + (i,)
             out[p] = v.start_mark.line + 1
             _lines(v, p, out)
@@ -314,6 +333,11 @@ def _scalar_key(node):
 def parse_text(text: str, source: str, error, *, max_depth: int = MAX_DEPTH,
                max_nodes: int = MAX_NODES, want_lines: bool = True) -> Document:
     """Parse one YAML document from ``text``; every YAML problem becomes ``error`` in one line."""
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError as exc:
+        raise error(source, "<yaml>", NO_VALUE, f"expected UTF-8 text (undecodable character at "
+                    f"position {exc.start})") from None
     try:
         _check_events(text, source, error, max_depth, max_nodes)
         loader = _Loader(text)
@@ -438,3 +462,25 @@ def unknown_keys_error(error, source, unknown, line_of=None):
             others.append(f"{f}{f' (line {line})' if line else ''}{h}")
         text += f"; also unknown: {', '.join(others)}"
     return error(source, field, value, text, line=line_of(field) if line_of else None)
+
+
+# --------------------------------------------------------------------------
+# Writing YAML that reads back the same under YAML 1.1 and 1.2
+
+
+_DUMPER_BASE: Any = getattr(yaml, "CSafeDumper", yaml.SafeDumper)
+
+
+class _Dumper(_DUMPER_BASE):
+    """Quotes every text that either YAML 1.1 or 1.2 would read as something else."""
+
+
+_Dumper.yaml_implicit_resolvers = {k: list(v) for k, v in yaml.SafeDumper.yaml_implicit_resolvers.items()}
+for _tag, _rx, _first in _IMPLICIT:
+    _Dumper.add_implicit_resolver(_tag, re.compile(_rx), list(_first))
+
+
+def dump(data: Any, stream=None, **options):
+    """``yaml.dump`` with :class:`_Dumper` (block style by default)."""
+    options.setdefault("sort_keys", False)
+    return yaml.dump(data, stream, Dumper=_Dumper, **options)

@@ -19,6 +19,7 @@ import io
 import json
 import os
 import random
+import re
 import signal
 import traceback
 import zipfile
@@ -70,7 +71,7 @@ def bad_for(value, rng):
     if isinstance(value, str):
         return rng.choice([123, -1, 1.5, True, None, [], {"a": 1}, [["x"]], 2 ** 64])
     if isinstance(value, list):
-        return rng.choice([{"a": 1}, 5, "abc", True, [[[[1]]]], [None], [float("nan")], [-1] * 3,
+        return rng.choice([{"a": 1}, -5, "abc", True, [[[[1]]]], [None], [float("nan")], [-1] * 3,
                            [2 ** 63], [[2 ** 64]]])
     if isinstance(value, dict):
         return rng.choice([5, "abc", [1, 2], True, 1.5, [[]]])
@@ -388,6 +389,7 @@ def case_trace_npz(rng, folder):
         k = rng.choice(names)
         arrays[k] = np.concatenate([arrays[k], arrays[k][:1]]) if arrays[k].size else np.zeros(3, arrays[k].dtype)
         note = f"{k} one longer"
+        must = k != "kept_k"  # the row pool may hold rows no step reads
     elif kind == "drop":
         k = rng.choice(list(arrays))
         del arrays[k]
@@ -402,24 +404,10 @@ def case_trace_npz(rng, folder):
     elif kind == "bad_magic":
         extra = {"junk.npy": b"\x93NUMPX" + b"\x00" * 40}
     elif kind == "zip_bomb":
-        # a member declaring a huge array whose zeros compress to almost nothing
-        n = rng.choice([50_000_000, 300_000_000])
-        hdr = {"descr": "<i8", "fortran_order": False, "shape": (n,)}
-        buf = io.BytesIO()
-        np.lib.format.write_array_header_1_0(buf, hdr)
-        name = rng.choice(names) + ".npy"
-        arrays.pop(name[:-4])
-        with zipfile.ZipFile(p, "w", zipfile.ZIP_DEFLATED) as zf:
-            for k, a in arrays.items():
-                b2 = io.BytesIO()
-                np.lib.format.write_array(b2, a, allow_pickle=False)
-                zf.writestr(k + ".npy", b2.getvalue())
-            with zf.open(name, "w", force_zip64=True) as fh:
-                fh.write(buf.getvalue())
-                chunk = bytes(1 << 20)
-                for _ in range(n * 8 // len(chunk)):
-                    fh.write(chunk)
-        return ["trace", "check", p], True, f"zip bomb: {name} of {n} int64"
+        name = rng.choice(names)
+        arrays.pop(name)
+        os.link(_zip_bomb(arrays, name), p)
+        return ["trace", "check", p], True, f"zip bomb: {name} of {BOMB_ROWS:,} int64 zeros"
     elif kind == "huge_header_shape":
         k = rng.choice(names)
         buf = io.BytesIO()
@@ -458,6 +446,38 @@ def case_trace_npz(rng, folder):
     return cmd, must, note
 
 
+BOMB_ROWS = 300_000_000        # 2.4 GB of zeros; a few MB compressed
+_BOMBS = {}
+
+
+def _zip_bomb(arrays, name):
+    """A valid trace .npz whose member ``name`` inflates to 2.4 GB (made once per process)."""
+    import atexit
+    import shutil
+    import tempfile
+
+    if name not in _BOMBS:
+        folder = tempfile.mkdtemp(prefix="attnsim-bomb-")
+        atexit.register(shutil.rmtree, folder, True)
+        path = os.path.join(folder, f"{name}.npz")
+        buf = io.BytesIO()
+        np.lib.format.write_array_header_1_0(buf, {"descr": "<i8", "fortran_order": False,
+                                                   "shape": (BOMB_ROWS,)})
+        with zipfile.ZipFile(path, "w", zipfile.ZIP_DEFLATED, compresslevel=1) as zf:
+            for k, a in arrays.items():
+                b2 = io.BytesIO()
+                np.lib.format.write_array(b2, a, allow_pickle=False)
+                zf.writestr(k + ".npy", b2.getvalue())
+            with zf.open(name + ".npy", "w", force_zip64=True) as fh:
+                fh.write(buf.getvalue())
+                chunk = bytes(1 << 22)
+                for _ in range(BOMB_ROWS * 8 // len(chunk)):
+                    fh.write(chunk)
+                fh.write(bytes(BOMB_ROWS * 8 % len(chunk)))
+        _BOMBS[name] = path
+    return _BOMBS[name]
+
+
 def case_policy(rng, folder):
     doc = _load(repo("traces", "policies", rng.choice(["moderate.yaml", "fit95.yaml", "dense.yaml",
                                                         "tokens_fit95.yaml"])))
@@ -486,6 +506,9 @@ def case_sweep(rng, folder):
     if kind == "tree":
         bad, note = mutate_tree(doc, rng, skip=("description",))
         p = write(folder, "s.yaml", dump(bad))
+        if note.startswith("keep_if"):  # a rule's constant may be any finite number
+            value = note.split(" = ", 1)[-1]
+            must = not re.fullmatch(r"-?[0-9.e+]+", value) or value in ("-1e+300", "1e+300")
     elif kind == "text":
         data, must, note = damage_text(dump(doc), rng)
         p = write(folder, "s.yaml", data)
@@ -500,18 +523,22 @@ def case_sweep(rng, folder):
         must = r != {"from": 512, "to": 512, "step": 1}
     elif kind == "keep_if":
         n = rng.choice([3, 200, 3000])
-        deep = "buffers.key_kib"
-        for _ in range(n):
-            deep = {"add": [deep, 1]}
-        rule = rng.choice([[{"le": [deep, 0]}],
+        rule = rng.choice([None,
                            [{"ge": [{"mul": ["dot.multipliers"] + [1e300] * 3}, 1]}],
                            [{"ge": [{"add": [1e308, 1e308]}, 1]}],
                            [{"eq": [{"mul": [{"literal": "abc"}, 10 ** 12]}, 1]}],
                            [{"le": [{"div": ["dot.multipliers", 0]}, 1]}],
                            [{"lt": [{"literal": "x"}, 1]}]])
-        doc["keep_if"] = rule
-        note = "keep_if"
-        p = write(folder, "s.yaml", dump(doc))
+        if rule is None:  # nested n deep: written as text (a YAML writer would recurse as deep)
+            deep = "{add: [" * n + "buffers.key_kib" + ", 1]}" * n
+            doc["keep_if"] = []
+            p = write(folder, "s.yaml", dump(doc).replace("keep_if: []", f"keep_if: [{{le: [{deep}, 0]}}]"))
+            note = f"keep_if nested {n} deep"
+            must = True  # 3 deep removes every point; deeper passes the nesting limit
+        else:
+            doc["keep_if"] = rule
+            note = "keep_if"
+            p = write(folder, "s.yaml", dump(doc))
     else:
         doc["objectives"] = rng.choice([[["cycles"]], [{"a": 1}], ["cycles", "cycles"], [], "nope", [None]])
         note = f"objectives {doc['objectives']}"
@@ -775,10 +802,17 @@ def run_case(case, timeout=20.0):
 
 
 def listing(folder):
-    """Every path under ``folder`` with its size and mtime (to see what a command wrote)."""
+    """Every path under ``folder`` with its size and mtime (to see what a command wrote).
+
+    Folders are listed by name only: checking that an output folder takes a
+    new file creates and removes a temporary file, which touches the folder's
+    mtime but leaves nothing behind.
+    """
     out = {}
     for dirpath, dirnames, filenames in os.walk(folder):
-        for n in dirnames + filenames:
+        for n in dirnames:
+            out[os.path.relpath(os.path.join(dirpath, n), folder) + "/"] = None
+        for n in filenames:
             p = os.path.join(dirpath, n)
             try:
                 st = os.lstat(p)

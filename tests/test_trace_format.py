@@ -416,7 +416,8 @@ def test_error_message_is_one_line(tmp_path):
     doc["steps"][1]["kept_k"] = [0, 2, 4, 60]
     err = refused(tmp_path, doc)
     assert "\n" not in str(err)
-    assert str(err).startswith(err.source + ": steps[1].kept_k = [60]: ")
+    assert err.line is not None  # the line of the key in the file
+    assert str(err).startswith(f"{err.source}:{err.line}: steps[1].kept_k = [60]: ")
 
 
 # --------------------------------------------------------------------------

@@ -76,7 +76,8 @@ def refused(tmp_path, doc):
     with pytest.raises(TraceError) as err:
         load_trace(write_yaml(tmp_path, doc))
     assert "\n" not in str(err.value)
-    assert str(err.value).startswith(err.value.source + ": ")
+    where = f"{err.value.source}:{err.value.line}" if err.value.line else err.value.source
+    assert str(err.value).startswith(where + ": ")  # the file and, when known, the line of the key
     return err.value
 
 

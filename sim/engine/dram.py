@@ -55,6 +55,7 @@ all-bank refresh (``t_rfc_ns`` every ``t_refi_ns``).
 
 import numpy as np
 
+from ..errors import SimulationStalled
 from .addrmap import BurstDecoder
 from .dram_timing import (CONFLICT, HIT, MISS, decode_sorted, serve_addresses, serve_and_book,
                           serve_fixed, slots_add, slots_room_at, timing_vector)
@@ -71,6 +72,17 @@ def burst_cycles(arch):
 def latency_cycles(arch):
     """The fixed-latency model's access latency in cycles."""
     return arch.dram.latency_ns * arch.clock_ghz
+
+
+# A serve call that asks for room gets its tables grown (each growth at least
+# doubles them); a call that still asks after this many growths never will.
+MAX_ROOM_TRIES = 64
+
+
+def _room_or_stall(tries, where):
+    if tries >= MAX_ROOM_TRIES:
+        raise SimulationStalled(f"dram: the {where} asked for table room {tries} times in a row without "
+                                "progress (timings out of range?)", unit="dram", cause="table_room")
 
 
 class RequestSlots:
@@ -335,11 +347,12 @@ class ChannelPool:
         """Serve ``txn.bursts`` on the fixed-latency model."""
         now = self.env.now
         self._arrive(now)
-        while True:
+        for tries in range(MAX_ROOM_TRIES + 1):
             ok, t_start, t_end = serve_fixed(txn.bursts, self.interleave, now, self.free_at,
                                              *self._fixed_args)
             if ok > 0:
                 break
+            _room_or_stall(tries, "fixed-latency serve")
             self._make_room(1)
         t_first = t_start + self.t_lat
         t_done = max(t_end, t_start) + self.t_lat
@@ -478,7 +491,10 @@ class ChannelPool:
         """First come first served with a table address map: decode, serve and book in one call."""
         times = self._times
         times[:] = -np.inf
+        tries = 0
         while serve_addresses(b, *self._lut_args, now, times, *self._state_args) < 0:
+            _room_or_stall(tries, "banked serve")
+            tries += 1
             self._make_room(len(b))
         t_start, t_first, t_done = times.tolist()
         return self._finish(txn, now, t_start, t_first, t_done, None)
@@ -505,10 +521,11 @@ class ChannelPool:
         times[0] = -np.inf
         times[1] = -np.inf
         times[2] = -np.inf if rec[4] == rec[0] else rec[4]
-        while True:
+        for tries in range(MAX_ROOM_TRIES + 1):
             nch = serve_and_book(ch, gb, row, now, rec[0], times, *self._state_args)
             if nch >= 0:
                 break
+            _room_or_stall(tries, "banked commit")
             self._make_room(len(ch))
         if rec[1] > 0:
             rec[1] -= nch

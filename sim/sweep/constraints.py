@@ -106,7 +106,10 @@ class Term:
         if self.kind == "derived":
             return DERIVED[self.payload][1](config)
         _lo, _hi, fn = ARITH[self.kind]
-        return fn([t.value(config) for t in self.payload])
+        out = fn([t.value(config) for t in self.payload])
+        if isinstance(out, float) and not math.isfinite(out):
+            raise OverflowError(f"{self.kind} gives {out}")
+        return out
 
     def paths(self):
         if self.kind in ("path", "derived"):

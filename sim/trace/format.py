@@ -18,6 +18,8 @@ write version 2. Validation happens on load, once; the engine trusts a loaded
 :class:`Trace`.
 """
 
+from __future__ import annotations
+
 import dataclasses
 import hashlib
 import json
@@ -25,9 +27,9 @@ import os
 import tempfile
 
 import numpy as np
-import yaml
 
-from ..errors import TraceError, closest
+from .. import yamlio
+from ..errors import NO_VALUE, TraceError, closest
 from .step import STAGES, Step, Work, dense_rows, make_step  # noqa: F401 (re-exported)
 
 FORMAT_NAME = "attnsim-trace"
@@ -45,9 +47,17 @@ STEP_KEYS = STEP_KEYS_V1 + STEP_KEYS_V2_ONLY
 HEADER_KEYS = ("format", "version", "name", "provenance", "model", "fidelity", "notes")
 MODEL_KEYS = ("layers", "heads", "kv_heads", "head_dim")
 
-# libyaml's safe loader and dumper when present (same documents, many times faster)
-_YAML_LOADER = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
-_YAML_DUMPER = getattr(yaml, "CSafeDumper", yaml.SafeDumper)
+# Ranges the engine relies on: addresses, counts and products stay far inside int64,
+# and nothing a trace asks for makes the reader or the engine allocate absurd arrays.
+MAX_LAYERS = 1 << 20          # layer ids and header.model.layers
+MAX_HEADS = 1 << 16           # query and KV head ids and counts
+MAX_HEAD_DIM = 1 << 14
+MAX_POSITIONS = 1 << 40       # kv_rows, q_rows, window, key positions
+MAX_REQUESTS = 1 << 31
+MAX_KEPT_ROWS = 1 << 26       # kept positions one step lists (8 bytes each)
+MAX_STEP_MACS = 1 << 60       # q.K MACs of one step
+MAX_STEP_BYTES = 2 << 30      # working memory the reader and engine need for one step
+MAX_STEPS = 1 << 24
 
 
 @dataclasses.dataclass
@@ -66,6 +76,26 @@ class Trace:
     @property
     def name(self):
         return self.header.get("name", os.path.basename(self.source))
+
+    def __repr__(self):
+        st = self.steps
+        pre = sum(s.stage == "prefill" for s in st)
+        layers = len({s.layer for s in st})
+        return (f"Trace({self.name!r}: {len(st)} steps ({pre} prefill, {len(st) - pre} decode), "
+                f"{layers} layers, from {self.source})")
+
+    def _repr_html_(self):
+        import html
+
+        sm = self.summary()
+        rows = [("steps", f"{sm['steps']} ({sm['prefill_steps']} prefill, {sm['decode_steps']} decode)"),
+                ("layers", sm["layers"]), ("requests", sm["requests"]), ("head_dims", sm["head_dims"]),
+                ("q.K MACs", f"{sm['macs_qk']:,}"), ("p.V MACs", f"{sm['macs_pv']:,}"),
+                ("kept keys", f"{sm['kept_key_fraction']:.1%} of dense"),
+                ("made by", sm["provenance"].get("method")), ("digest", sm["digest"][:16])]
+        body = "".join(f"<tr><td>{html.escape(str(k))}</td><td>{html.escape(str(v))}</td></tr>" for k, v in rows)
+        return (f"<div><b>Trace {html.escape(str(self.name))}</b> <code>{html.escape(str(self.source))}</code>"
+                f"<table>{body}</table></div>")
 
     def digest(self):
         """SHA-256 over the canonical content (independent of the encoding and of
@@ -108,13 +138,15 @@ class Trace:
         """Totals a person reads first (used by ``attnsim trace info``)."""
         stages = {st: [s for s in self.steps if s.stage == st] for st in STAGES}
         work = self.work()
-        dense_k = sum(s.kv_rows * s.n_heads for s in self.steps)
-        kept_k = sum(s.n_kept_k * s.n_heads for s in self.steps)
+        model = self.header.get("model") or {}
+        # dense: every head of the model reads every context row, pruned heads included
+        all_heads = model.get("heads") or max((int(s.heads.max()) + 1 for s in self.steps), default=0)
+        dense_k = sum(s.kv_rows * max(all_heads, s.n_heads) for s in self.steps)
+        kept_k = sum(_kept_per_head(s) for s in self.steps)
         kept_v = sum(int(np.sum(s.kept_v)) for s in self.steps)
         lsb_heads = sum(int(np.count_nonzero(s.lsb_rows)) for s in self.steps)
         head_steps = sum(s.n_heads for s in self.steps)
         kv_head_steps = sum(len(s.kv_ids()) for s in self.steps)
-        model = self.header.get("model") or {}
         return {
             "name": self.name,
             "version": self.header.get("version"),
@@ -137,6 +169,8 @@ class Trace:
             "kv_rows_written": sum(s.new_kv_rows * len(s.kv_ids()) for s in self.steps),
             "out_rows_written": sum(s.out_rows * s.n_heads for s in self.steps),
             "kept_key_fraction": kept_k / dense_k if dense_k else 1.0,
+            "kept_key_rows": kept_k,
+            "dense_key_rows": dense_k,
             "kept_value_fraction": kept_v / kept_k if kept_k else 1.0,
             "lsb_refetch_head_fraction": lsb_heads / head_steps if head_steps else 0.0,
             "head_dims": sorted({s.head_dim for s in self.steps}),
@@ -146,6 +180,15 @@ class Trace:
             "head_score_steps": sum(s.head_scores is not None for s in self.steps),
             "digest": self.digest(),
         }
+
+
+def _kept_per_head(s):
+    """Key rows the step's active query heads read, each its KV head's kept set."""
+    if s.kv_kept_k is None:
+        return s.n_kept_k * s.n_heads
+    ids = np.unique(s.kv_heads)
+    sizes = np.array([len(a) for a in s.kv_kept_k], dtype=np.int64)
+    return int(sizes[np.searchsorted(ids, s.kv_heads)].sum())
 
 
 def _v1_defaults(s):
@@ -175,9 +218,18 @@ def validate(trace):
     if not isinstance(hdr.get("provenance"), dict) or not hdr["provenance"].get("method"):
         raise TraceError(src, "header.provenance", hdr.get("provenance"),
                          "expected a mapping with at least 'method' (how the trace was made)")
+    if "name" in hdr and (not isinstance(hdr["name"], str) or not hdr["name"].strip()
+                          or len(hdr["name"]) > 200 or not hdr["name"].isprintable()):
+        raise TraceError(src, "header.name", hdr["name"], "expected a short line of text")
+    if "notes" in hdr and not isinstance(hdr["notes"], (str, list)):
+        raise TraceError(src, "header.notes", hdr["notes"], "expected text or a list of texts")
+    if "fidelity" in hdr and not isinstance(hdr["fidelity"], dict):
+        raise TraceError(src, "header.fidelity", hdr["fidelity"], "expected a mapping")
     model = _validate_model(src, hdr.get("model"))
-    if not trace.steps:
+    if not isinstance(trace.steps, list) or not trace.steps:
         raise TraceError(src, "steps", [], "expected at least one attention step")
+    if len(trace.steps) > MAX_STEPS:
+        raise TraceError(src, "steps", len(trace.steps), f"expected at most {MAX_STEPS:,} steps")
     seen = {}
     for i, s in enumerate(trace.steps):
         _validate_step(src, f"steps[{i}]", s, model, seen)
@@ -195,22 +247,42 @@ def _validate_model(src, model):
     model = model or {}
     if not isinstance(model, dict):
         raise TraceError(src, "header.model", model, "expected a mapping (layers, heads, kv_heads, head_dim)")
+    for key in model:
+        if key not in MODEL_KEYS:
+            raise TraceError(src, f"header.model.{key}", model[key], "unknown key" + closest(key, MODEL_KEYS))
+    limits = {"layers": MAX_LAYERS, "heads": MAX_HEADS, "kv_heads": MAX_HEADS, "head_dim": MAX_HEAD_DIM}
     for key in MODEL_KEYS:
-        if key in model and not _int_ok(model[key], 1):
-            raise TraceError(src, f"header.model.{key}", model[key], "expected a whole number >= 1")
+        if key in model and not _int_ok(model[key], 1, limits[key]):
+            raise TraceError(src, f"header.model.{key}", model[key],
+                             f"expected a whole number in [1, {limits[key]:,}]")
     if "kv_heads" in model and "heads" in model and model["kv_heads"] > model["heads"]:
         raise TraceError(src, "header.model.kv_heads", model["kv_heads"],
                          f"expected at most header.model.heads={model['heads']} (query heads share K/V heads)")
     return model
 
 
-def _int_ok(v, low):
-    return isinstance(v, (int, np.integer)) and not isinstance(v, bool) and v >= low
+def _int_ok(v, low, high=None):
+    return (isinstance(v, (int, np.integer)) and not isinstance(v, bool) and v >= low
+            and (high is None or v <= high))
+
+
+def _whole(src, field, v, low, high):
+    if not _int_ok(v, low):
+        raise TraceError(src, field, v, f"expected a whole number >= {low}")
+    if v > high:
+        raise TraceError(src, field, v, f"expected a whole number <= {high:,}")
 
 
 def _validate_step(src, at, s, model, seen):
-    if not _int_ok(s.layer, 0):
-        raise TraceError(src, f"{at}.layer", s.layer, "expected a whole number >= 0")
+    if not isinstance(s, Step):
+        raise TraceError(src, at, type(s).__name__, "expected an attention step")
+    _whole(src, f"{at}.layer", s.layer, 0, MAX_LAYERS - 1)
+    _whole(src, f"{at}.head_dim", s.head_dim, 1, MAX_HEAD_DIM)
+    _whole(src, f"{at}.q_rows", s.q_rows, 1, MAX_POSITIONS)
+    _whole(src, f"{at}.kv_rows", s.kv_rows, 1, MAX_POSITIONS)
+    _whole(src, f"{at}.request", s.request, 0, MAX_REQUESTS - 1)
+    if not isinstance(s.stage, str):
+        raise TraceError(src, f"{at}.stage", s.stage, "expected 'prefill' or 'decode'")
     if "layers" in model and s.layer >= model["layers"]:
         raise TraceError(src, f"{at}.layer", s.layer, f"expected < header.model.layers={model['layers']}")
     if s.stage not in STAGES:
@@ -231,6 +303,7 @@ def _validate_step(src, at, s, model, seen):
     _validate_heads(src, at, s, model)
     k = s.kept_k
     _validate_rows(src, f"{at}.kept_k", k, s.kv_rows, seen)
+    _validate_size(src, at, s)
     if s.stage == "prefill" and s.q_rows != len(k):
         raise TraceError(src, f"{at}.q_rows", s.q_rows,
                          f"a prefill step has one query row per live token: expected {len(k)} (len of kept_k)")
@@ -238,7 +311,7 @@ def _validate_step(src, at, s, model, seen):
     sizes = _validate_kv_kept(src, at, s, seen)
     for name in ("kept_v", "lsb_rows"):
         arr = getattr(s, name)
-        if not isinstance(arr, np.ndarray) or arr.shape != s.heads.shape:
+        if not isinstance(arr, np.ndarray) or arr.shape != s.heads.shape or arr.dtype.kind not in "iu":
             raise TraceError(src, f"{at}.{name}", _shown(arr),
                              f"expected one entry per active head ({len(s.heads)})")
     if np.any(s.kept_v < 1) or np.any(s.kept_v > sizes):
@@ -251,46 +324,70 @@ def _validate_step(src, at, s, model, seen):
     if s.kept_v_idx is not None:
         _validate_kept_v_idx(src, at, s)
     if s.token_scores is not None:
-        if s.token_scores.shape != k.shape or not np.all(np.isfinite(s.token_scores)):
-            raise TraceError(src, f"{at}.token_scores", s.token_scores.shape,
-                             f"expected {len(k)} finite scores (one per kept key row)")
+        if not isinstance(s.token_scores, np.ndarray) or s.token_scores.dtype.kind not in "fiu" or \
+                s.token_scores.shape != k.shape or not np.all(np.isfinite(s.token_scores)) or \
+                np.any(np.abs(s.token_scores) > 3e38):
+            raise TraceError(src, f"{at}.token_scores", _shown(s.token_scores),
+                             f"expected {len(k)} finite scores (one per kept key row, float32 range)")
     if s.head_scores is not None:
-        if s.head_scores.shape != s.heads.shape or not np.all(np.isfinite(s.head_scores)):
-            raise TraceError(src, f"{at}.head_scores", s.head_scores.shape,
-                             f"expected {len(s.heads)} finite scores (one per active head)")
+        if not isinstance(s.head_scores, np.ndarray) or s.head_scores.dtype.kind not in "fiu" or \
+                s.head_scores.shape != s.heads.shape or not np.all(np.isfinite(s.head_scores)) or \
+                np.any(np.abs(s.head_scores) > 3e38):
+            raise TraceError(src, f"{at}.head_scores", _shown(s.head_scores),
+                             f"expected {len(s.heads)} finite scores (one per active head, float32 range)")
     _validate_visible(src, at, s)
 
 
+def _validate_size(src, at, s):
+    """Refuse a step whose work or working memory is absurd, with the estimate, before the engine runs."""
+    macs = int(s.q_rows) * len(s.kept_k) * int(s.head_dim) * len(s.heads)
+    if macs > MAX_STEP_MACS:
+        raise TraceError(src, f"{at}.q_rows", int(s.q_rows),
+                         f"the step asks for about {macs:.3g} q.K MACs; expected at most {MAX_STEP_MACS:.3g}")
+    # per query row and per kept row the reader and engine hold a few int64 arrays
+    need = 8 * (4 * int(s.q_rows) + 4 * len(s.kept_k)) + 8 * 8 * len(s.heads)
+    if need > MAX_STEP_BYTES:
+        raise TraceError(src, f"{at}.q_rows", int(s.q_rows),
+                         f"a step of {int(s.q_rows):,} query rows and {len(s.kept_k):,} kept rows needs about "
+                         f"{need / 2**30:,.1f} GiB of working memory; expected at most "
+                         f"{MAX_STEP_BYTES / 2**30:g} GiB per step")
+
+
 def _shown(arr):
-    return arr.tolist()[:8] if isinstance(arr, np.ndarray) else arr
+    if isinstance(arr, np.ndarray):
+        return arr.item() if arr.ndim == 0 else arr.reshape(-1)[:8].tolist()
+    return arr
 
 
 def _validate_heads(src, at, s, model):
     h = s.heads
-    if not isinstance(h, np.ndarray) or h.ndim != 1 or len(h) == 0:
+    if not isinstance(h, np.ndarray) or h.ndim != 1 or len(h) == 0 or h.dtype.kind not in "iu":
         raise TraceError(src, f"{at}.heads", _shown(h), "expected at least one active head id")
-    if np.any(h < 0) or len(np.unique(h)) != len(h):
-        raise TraceError(src, f"{at}.heads", h.tolist(), "expected distinct head ids >= 0")
+    if len(h) > MAX_HEADS or np.any(h < 0) or np.any(h >= MAX_HEADS) or len(np.unique(h)) != len(h):
+        raise TraceError(src, f"{at}.heads", h.tolist()[:8], f"expected distinct head ids in [0, {MAX_HEADS})")
     if "heads" in model and np.any(h >= model["heads"]):
         raise TraceError(src, f"{at}.heads", h.tolist(), f"expected head ids < header.model.heads={model['heads']}")
     g = s.kv_heads
-    if not isinstance(g, np.ndarray) or g.shape != h.shape:
+    if not isinstance(g, np.ndarray) or g.shape != h.shape or g.dtype.kind not in "iu":
         raise TraceError(src, f"{at}.kv_heads", _shown(g),
                          f"expected one KV head per active query head ({len(h)} entries, parallel to heads)")
     limit, where = (model["kv_heads"], "header.model.kv_heads") if "kv_heads" in model else \
-        (model.get("heads"), "header.model.heads")
-    if np.any(g < 0) or (limit is not None and np.any(g >= limit)):
-        bad = g[(g < 0) | (g >= (limit if limit is not None else np.inf))]
+        (model.get("heads"), "header.model.heads" if "heads" in model else None)
+    limit = MAX_HEADS if limit is None else limit
+    if np.any(g < 0) or np.any(g >= limit):
+        bad = g[(g < 0) | (g >= limit)]
         raise TraceError(src, f"{at}.kv_heads", bad[:4].tolist(),
-                         "expected KV head ids >= 0" + (f" and < {where}={limit}" if limit is not None else ""))
+                         "expected KV head ids >= 0" + (f" and < {where}={limit}" if where else f" and < {limit}"))
 
 
 def _validate_rows(src, field, k, kv_rows, seen):
     """Sorted distinct positions in [0, kv_rows). Rows that are views of an
     array already checked from the same start are checked for their range only
     (steps of a long trace share storage)."""
-    if not isinstance(k, np.ndarray) or k.ndim != 1 or len(k) == 0:
+    if not isinstance(k, np.ndarray) or k.ndim != 1 or len(k) == 0 or k.dtype.kind not in "iu":
         raise TraceError(src, field, _shown(k), "expected at least one kept key row")
+    if len(k) > MAX_KEPT_ROWS:
+        raise TraceError(src, field, len(k), f"expected at most {MAX_KEPT_ROWS:,} kept rows in one step")
     key = _view_key(k)
     if key is None or seen.get(key, 0) < len(k):
         if k[0] < 0 or np.any(np.diff(k) <= 0):
@@ -318,7 +415,7 @@ def _validate_rules(src, at, s):
     if s.causal and s.stage != "prefill":
         raise TraceError(src, f"{at}.causal", True,
                          "expected false on a decode step (causal masking applies to prefill only)")
-    if not _int_ok(s.window, 0):
+    if not _int_ok(s.window, 0, MAX_POSITIONS):
         raise TraceError(src, f"{at}.window", s.window,
                          "expected a whole number >= 1 (keys within the last W positions), or 0 for no window")
     for name in ("new_kv_rows", "out_rows"):
@@ -361,6 +458,8 @@ def _validate_kept_v_idx(src, at, s):
         n = len(s.kept_v_idx) if isinstance(s.kept_v_idx, list) else s.kept_v_idx
         raise TraceError(src, f"{at}.kept_v_idx", n, f"expected one index list per active head ({len(h)})")
     for j, idx in enumerate(s.kept_v_idx):
+        if not isinstance(idx, np.ndarray) or idx.ndim != 1 or idx.dtype.kind not in "iu":
+            raise TraceError(src, f"{at}.kept_v_idx[{j}]", _shown(idx), "expected a list of positions")
         if len(idx) != s.kept_v[j]:
             raise TraceError(src, f"{at}.kept_v_idx[{j}]", len(idx), f"expected kept_v[{j}]={int(s.kept_v[j])} indices")
     keys_of = s.kv_keys() if s.kv_kept_k is not None else None
@@ -456,21 +555,36 @@ def _validate_cascade(src, steps):
 # Reading
 
 
-def load_trace(path):
+def load_trace(path: str | os.PathLike) -> Trace:
     """Read and validate a trace from ``.npz`` or ``.yaml``/``.yml``."""
-    from .npz import read_npz
+    from .npz import ZIP_MAGIC, read_npz
 
     path = os.fspath(path)
-    if not os.path.exists(path):
-        raise TraceError(path, "<file>", path, "file not found")
     ext = os.path.splitext(path)[1].lower()
-    if ext == ".npz":
-        trace = read_npz(path)
-    elif ext in (".yaml", ".yml"):
-        trace = _read_yaml(path)
-    else:
+    yamlio.check_file(path, TraceError, "trace")  # a missing file, a folder or a device first
+    if ext not in (".npz", ".yaml", ".yml"):
         raise TraceError(path, "<file>", ext, "expected a .npz or .yaml trace")
-    return validate(trace)
+    if ext == ".npz":
+        head = _head(path)
+        if not head.startswith(ZIP_MAGIC):
+            kind = yamlio.kind_of_bytes(head) or _text_kind(head)
+            raise TraceError(path, "<file>", NO_VALUE, f"this looks like {kind}, not an .npz trace (a zip archive)")
+        return validate(read_npz(path))
+    return _read_yaml(path)  # validated there, so errors get their lines
+
+
+def _head(path, n=4096):
+    with open(path, "rb") as fh:
+        return fh.read(n)
+
+
+def _text_kind(head):
+    """What a text file that should have been an .npz looks like."""
+    try:
+        doc = yamlio.parse_text(head.decode("utf-8"), "<head>", TraceError, want_lines=False).data
+    except (TraceError, UnicodeDecodeError):
+        return "a text file"
+    return yamlio.guess_kind(doc) or "a text file"
 
 
 def check_version(path, header):
@@ -485,15 +599,19 @@ def check_version(path, header):
 
 
 def _read_yaml(path):
+    ydoc = yamlio.read_mapping_doc(path, TraceError, "expected a mapping with 'header' and 'steps'",
+                                   what="YAML trace", max_bytes=yamlio.MAX_TRACE_BYTES)
+    kind = yamlio.guess_kind(ydoc.data)
+    if kind not in (None, "an attention trace"):
+        raise TraceError(path, "<file>", NO_VALUE, f"this looks like {kind}, not an attention trace")
     try:
-        with open(path, encoding="utf-8") as fh:
-            doc = yaml.load(fh, Loader=_YAML_LOADER)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f"line {mark.line + 1}" if mark else "<file>"
-        raise TraceError(path, where, "...", f"not valid YAML ({getattr(exc, 'problem', exc)})") from None
-    if not isinstance(doc, dict):
-        raise TraceError(path, "<root>", type(doc).__name__, "expected a mapping with 'header' and 'steps'")
+        trace = _trace_of(path, ydoc.data)
+        return validate(trace)
+    except TraceError as exc:
+        raise yamlio.locate(exc, ydoc) from None
+
+
+def _trace_of(path, doc):
     for key in doc:
         if key not in ("header", "steps"):
             raise TraceError(path, key, doc[key], "unknown key" + closest(key, ("header", "steps")))
@@ -505,6 +623,8 @@ def _read_yaml(path):
     raw_steps = doc.get("steps")
     if not isinstance(raw_steps, list):
         raise TraceError(path, "steps", raw_steps, "expected a list of attention steps")
+    if len(raw_steps) > MAX_STEPS:
+        raise TraceError(path, "steps", len(raw_steps), f"expected at most {MAX_STEPS:,} steps")
     steps = [_yaml_step(path, f"steps[{i}]", raw, allowed) for i, raw in enumerate(raw_steps)]
     return Trace(header, steps, path, version)
 
@@ -523,21 +643,39 @@ def _yaml_step(path, at, raw, allowed):
             raise TraceError(path, f"{at}.{key}", None, "required field is missing")
     for key in ("layer", "head_dim", "q_rows", "kv_rows", "heads", "kept_k", "kept_v", "lsb_rows",
                 "kept_v_idx", "request", "kv_heads", "window", "kv_kept_k", "new_kv_rows", "out_rows"):
-        # numpy would quietly truncate 1.5 to 1; refuse it here instead
+        # numpy would quietly truncate 1.5 to 1 (or overflow past 2**63); refuse it here instead
         if key in raw and not _all_whole(raw[key]):
-            raise TraceError(path, f"{at}.{key}", raw[key], "expected whole numbers")
+            raise TraceError(path, f"{at}.{key}", raw[key], f"expected whole numbers below {MAX_POSITIONS:,}")
+    if not isinstance(raw["stage"], str):
+        raise TraceError(path, f"{at}.stage", raw["stage"], "expected 'prefill' or 'decode'")
+    # counts stand for 0..n-1 and are built before validation: bound them first
+    for key, limit in (("heads", MAX_HEADS), ("kept_k", MAX_KEPT_ROWS)):
+        if isinstance(raw.get(key), int) and not 0 <= raw[key] <= limit:
+            raise TraceError(path, f"{at}.{key}", raw[key], f"expected a count in [0, {limit:,}] or a list")
+    if isinstance(raw.get("kept_k"), int) and raw["kept_k"] > raw["kv_rows"]:
+        raise TraceError(path, f"{at}.kept_k", raw["kept_k"], f"expected at most kv_rows={raw['kv_rows']}")
+    for j, rows in enumerate(raw.get("kv_kept_k") or []):
+        if isinstance(rows, int) and not 0 <= rows <= min(MAX_KEPT_ROWS, raw["kv_rows"]):
+            raise TraceError(path, f"{at}.kv_kept_k[{j}]", rows, "expected a count in [0, kv_rows] or a list")
+    for key in ("kept_v_idx", "kv_kept_k", "token_scores", "head_scores"):
+        if key in raw and raw[key] is not None and not isinstance(raw[key], list):
+            raise TraceError(path, f"{at}.{key}", raw[key], "expected a list")
+    for key in ("token_scores", "head_scores"):
+        if isinstance(raw.get(key), list) and not all(
+                isinstance(v, (int, float)) and not isinstance(v, bool) for v in raw[key]):
+            raise TraceError(path, f"{at}.{key}", raw[key], "expected a list of numbers")
     if "causal" in raw and not isinstance(raw["causal"], bool):
         raise TraceError(path, f"{at}.causal", raw["causal"], "expected true or false")
     try:
         return make_step(**raw)
-    except (TypeError, ValueError) as exc:
-        raise TraceError(path, at, raw, f"fields of the wrong kind ({exc})") from None
+    except (TypeError, ValueError, OverflowError) as exc:
+        raise TraceError(path, at, NO_VALUE, f"fields of the wrong kind ({exc})") from None
 
 
 def _all_whole(value):
     if isinstance(value, list):
         return all(_all_whole(v) for v in value)
-    return isinstance(value, int) and not isinstance(value, bool)
+    return isinstance(value, int) and not isinstance(value, bool) and -MAX_POSITIONS <= value <= MAX_POSITIONS
 
 
 # --------------------------------------------------------------------------
@@ -555,7 +693,7 @@ def new_header(method, name=None, model=None, **provenance):
     return hdr
 
 
-def save_trace(trace, path):
+def save_trace(trace: Trace, path: str | os.PathLike) -> str:
     """Validate and write a trace (format version 2); the file appears whole or not at all."""
     from .npz import to_arrays
 
@@ -571,8 +709,7 @@ def save_trace(trace, path):
                 np.savez_compressed(fh, **to_arrays(trace))
         elif ext in (".yaml", ".yml"):
             with open(tmp, "w", encoding="utf-8") as fh:
-                yaml.dump(_to_yaml_doc(trace), fh, Dumper=_YAML_DUMPER, sort_keys=False,
-                          default_flow_style=None, width=100)
+                yamlio.dump(_to_yaml_doc(trace), fh, default_flow_style=None, width=100)
         else:
             raise TraceError(trace.source, "<file>", ext, "expected a .npz or .yaml trace")
         # mkstemp makes the file private; give it the permissions open() would

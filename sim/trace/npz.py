@@ -19,11 +19,16 @@ and had no version-2 columns; it reads with their defaults.
 """
 
 import json
+import zipfile
 
 import numpy as np
 
-from ..errors import TraceError
+from ..errors import NO_VALUE, TraceError
 from .format import FORMAT_VERSION, STAGES, Step, Trace, check_version
+
+ZIP_MAGIC = b"PK"
+MAX_ARRAY_BYTES = 2 << 30       # all arrays of one trace together, in memory
+MAX_HEADER_BYTES = 16 << 20     # the JSON header member
 
 # version-1 columns every file has; version 2 adds the rest of REQUIRED_V2
 REQUIRED_V1 = ("layer", "stage", "head_dim", "q_rows", "kv_rows", "heads", "heads_off", "kept_k",
@@ -34,6 +39,10 @@ REQUIRED_V2 = ("layer", "stage", "head_dim", "q_rows", "kv_rows", "heads", "head
 PER_STEP = ("stage", "head_dim", "q_rows", "kv_rows", "request", "causal", "window", "new_kv_rows",
             "out_rows", "kept_k_lo", "kept_k_hi")
 PER_HEAD_STEP = ("kept_v", "lsb_rows", "head_scores", "kv_heads")
+OPTIONAL = ("kept_v_idx", "kept_v_idx_off", "token_scores", "token_scores_off", "head_scores",
+            "kv_kept_k_lo", "kv_kept_k_hi", "kv_kept_k_off")
+KNOWN = frozenset(("header",) + REQUIRED_V1 + REQUIRED_V2 + OPTIONAL)
+FLOAT_MEMBERS = ("token_scores", "head_scores")
 
 
 # --------------------------------------------------------------------------
@@ -141,14 +150,13 @@ class _RowPool:
 
 
 def read_npz(path):
-    """Read a version-1 or version-2 ``.npz`` trace (not yet validated)."""
-    try:
-        with np.load(path, allow_pickle=False) as z:
-            arrays = {k: z[k] for k in z.files}
-    except ValueError as exc:
-        raise TraceError(path, "<file>", "...", f"not a plain-array .npz ({exc})") from None
-    except Exception as exc:  # zip or format damage
-        raise TraceError(path, "<file>", "...", f"cannot read as .npz ({exc})") from None
+    """Read a version-1 or version-2 ``.npz`` trace (not yet validated).
+
+    The member list and every array's declared dtype and shape are checked
+    before any array is inflated, so an unknown member, an object array or a
+    member that would inflate past :data:`MAX_ARRAY_BYTES` is refused by name.
+    """
+    arrays = _read_members(path)
     if "header" not in arrays:
         raise TraceError(path, "header", None, "missing JSON header array")
     try:
@@ -168,6 +176,73 @@ def read_npz(path):
     return Trace(header, _steps(a), path, version)
 
 
+def _read_members(path):
+    """``{name: array}`` of the archive, each member checked from its .npy header first."""
+    try:
+        zf = zipfile.ZipFile(path)
+    except (zipfile.BadZipFile, OSError, ValueError, EOFError) as exc:
+        raise TraceError(path, "<file>", NO_VALUE, f"cannot read as a zip archive ({exc})") from None
+    with zf:
+        plan, total = [], 0
+        infos = zf.infolist()
+        if len(infos) > 4 * len(KNOWN):
+            raise TraceError(path, "<file>", len(infos), f"expected at most {len(KNOWN)} members")
+        names = set()
+        for info in infos:
+            member = info.filename
+            if info.is_dir() or not member.endswith(".npy"):
+                raise TraceError(path, member, NO_VALUE, "unexpected member of an .npz trace (only the "
+                                 "trace's .npy arrays belong there)")
+            name = member[:-4]
+            if name not in KNOWN:
+                raise TraceError(path, member, NO_VALUE, "unknown array in an .npz trace")
+            if name in names:
+                raise TraceError(path, member, NO_VALUE, "member appears twice in the archive")
+            names.add(name)
+            dtype, shape, header_len = _npy_header(path, zf, info)
+            if dtype.hasobject or dtype.kind not in "iufb":
+                raise TraceError(path, name, str(dtype), "expected a plain-array member (numbers, no objects)")
+            if len(shape) != 1:
+                raise TraceError(path, name, shape, "expected a one-dimensional array")
+            need = int(shape[0]) * dtype.itemsize
+            if info.file_size != header_len + need:
+                raise TraceError(path, name, info.file_size, f"member size does not match its header "
+                                 f"({shape[0]:,} x {dtype.itemsize} bytes after {header_len} header bytes)")
+            if name == "header" and need > MAX_HEADER_BYTES:
+                raise TraceError(path, name, need, f"expected a JSON header of at most {MAX_HEADER_BYTES:,} bytes")
+            total += need
+            if total > MAX_ARRAY_BYTES:
+                raise TraceError(path, name, f"{shape[0]:,} x {dtype}",
+                                 f"the arrays would take more than {MAX_ARRAY_BYTES / 2**30:g} GiB in memory; "
+                                 "refused before inflating them")
+            plan.append((name, info))
+        arrays = {}
+        for name, info in plan:
+            try:
+                with zf.open(info) as fh:
+                    arrays[name] = np.lib.format.read_array(fh, allow_pickle=False)
+            except (ValueError, OSError, EOFError, zipfile.BadZipFile, RuntimeError) as exc:
+                raise TraceError(path, name, NO_VALUE, f"cannot read the array ({exc})") from None
+    return arrays
+
+
+def _npy_header(path, zf, info):
+    """``(dtype, shape, header bytes)`` of one member, read without inflating its data."""
+    try:
+        with zf.open(info) as fh:
+            version = np.lib.format.read_magic(fh)
+            if version == (1, 0):
+                shape, fortran, dtype = np.lib.format.read_array_header_1_0(fh)
+            elif version in ((2, 0), (3, 0)):
+                shape, fortran, dtype = np.lib.format.read_array_header_2_0(fh)
+            else:
+                raise ValueError(f"unknown .npy version {version}")
+            header_len = fh.tell()
+    except (ValueError, OSError, EOFError, zipfile.BadZipFile, RuntimeError, SyntaxError) as exc:
+        raise TraceError(path, info.filename, NO_VALUE, f"not a plain .npy array ({exc})") from None
+    return dtype, shape, header_len
+
+
 def _upgrade_v1(a):
     """Version-1 columns as version 2: segments become pool slices, new columns their defaults."""
     off = a.pop("kept_k_off")
@@ -179,14 +254,20 @@ def _upgrade_v1(a):
 
 
 def _check_layout(path, a):
-    """Array kinds, lengths and offsets agree, so slicing cannot go wrong."""
+    """Array kinds, lengths, values and offsets agree, so slicing and the engine cannot go wrong."""
+    from .format import MAX_POSITIONS
+
     for key, arr in a.items():
         if arr.ndim != 1:
             raise TraceError(path, key, arr.shape, "expected a one-dimensional array")
-        want = "f" if key in ("token_scores", "head_scores") else "iu"
+        want = "f" if key in FLOAT_MEMBERS else "iu"
         if arr.dtype.kind not in want and not (want == "f" and arr.dtype.kind in "iu"):
             raise TraceError(path, key, str(arr.dtype),
                              "expected " + ("numbers" if want == "f" else "whole numbers"))
+        if want == "iu" and arr.size and (arr.dtype == np.uint64 and int(arr.max()) > MAX_POSITIONS
+                                          or int(arr.min()) < -MAX_POSITIONS or int(arr.max()) > MAX_POSITIONS):
+            bad = arr[(arr.astype(np.float64) > MAX_POSITIONS) | (arr.astype(np.float64) < -MAX_POSITIONS)]
+            raise TraceError(path, key, bad[:4].tolist(), f"expected values within +-{MAX_POSITIONS:,}")
     n = len(a["layer"])
     for key in PER_STEP:
         if len(a[key]) != n:

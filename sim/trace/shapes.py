@@ -9,12 +9,12 @@ bundled name, a shape file holding one shape, or ``FILE:NAME``.
 import dataclasses
 import os
 
-import yaml
-
+from .. import bundled, yamlio
 from ..errors import TraceError, closest
 
-BUNDLED = os.path.join(os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))),
-                       "traces", "shapes.yaml")
+BUNDLED = bundled.path("traces", "shapes.yaml") or os.path.join(
+    os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))), "traces", "shapes.yaml")
+LIMITS = {"layers": 1 << 20, "heads": 1 << 16, "kv_heads": 1 << 16, "head_dim": 1 << 14}
 SHAPE_KEYS = ("description", "layers", "heads", "kv_heads", "head_dim")
 
 
@@ -32,13 +32,15 @@ class Shape:
 
 def read_shapes(path):
     """All shapes of a shape file, validated: ``{name: Shape}``."""
-    if not os.path.isfile(path):
-        raise TraceError(path, "<file>", path, "shape file not found")
+    ydoc = yamlio.read_document(path, TraceError, "shape file")
+    doc = ydoc.data
     try:
-        with open(path, encoding="utf-8") as fh:
-            doc = yaml.safe_load(fh)
-    except yaml.YAMLError as exc:
-        raise TraceError(path, "<file>", "...", f"not valid YAML ({getattr(exc, 'problem', exc)})") from None
+        return _shapes(path, doc)
+    except TraceError as exc:
+        raise yamlio.locate(exc, ydoc) from None
+
+
+def _shapes(path, doc):
     if not isinstance(doc, dict) or set(doc) != {"shapes"} or not isinstance(doc["shapes"], dict) \
             or not doc["shapes"]:
         raise TraceError(path, "shapes", doc if not isinstance(doc, dict) else list(doc),
@@ -57,6 +59,8 @@ def _shape(path, name, entry):
         v = entry.get(key)
         if isinstance(v, bool) or not isinstance(v, int) or v < 1:
             raise TraceError(path, f"{at}.{key}", v, "expected a whole number >= 1")
+        if v > LIMITS[key]:
+            raise TraceError(path, f"{at}.{key}", v, f"expected a whole number <= {LIMITS[key]:,}")
     if entry["heads"] % entry["kv_heads"]:
         raise TraceError(path, f"{at}.kv_heads", entry["kv_heads"],
                          f"expected a divisor of heads={entry['heads']} (equal groups of query heads)")

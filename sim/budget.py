@@ -1,0 +1,83 @@
+"""What a run will cost before it starts: address space, transactions, memory.
+
+:func:`check_run` is called by :func:`sim.simulate` after the config and the
+trace are loaded and before the engine builds anything. It refuses, with the
+estimate, a pair whose DRAM address map would not fit 62 bits or whose
+program would hold more transactions than the machine has memory for. The
+transaction count is an upper estimate from the tiling rule's own formulas
+(query blocks x chunks per head, K, V and LSB planes), not a run.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+
+from .errors import InputError
+
+ADDRESS_BITS = 62
+BYTES_PER_TXN = 1024          # Python objects of one transaction and its ops, measured order of magnitude
+MAX_TXNS = 50_000_000
+
+
+class RunTooLarge(InputError):
+    """A config and trace pair that would not fit the address map or the machine."""
+
+
+def physical_memory() -> int | None:
+    try:
+        return os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError, AttributeError):
+        return None
+
+
+def address_span(arch, trace) -> int:
+    """Bytes the address map spans: regions per layer, plane and head, each the largest context."""
+    from .engine.addrmap import PLANES, REGION_ALIGN, row_bytes
+
+    steps = trace.steps
+    layers = max(s.layer for s in steps) + 1
+    heads = max(max(int(s.heads.max()), int(s.kv_heads.max())) for s in steps) + 1
+    rows = max(s.kv_rows for s in steps)
+    d = max(s.head_dim for s in steps)
+    row = max(row_bytes(arch, p, d) for p in PLANES)
+    region = -(-math.ceil(rows * row) // REGION_ALIGN) * REGION_ALIGN
+    return layers * len(PLANES) * heads * region
+
+
+def transactions(arch, trace, grain_rows=None) -> int:
+    """Upper estimate of the transactions the engine's program holds."""
+    from .engine.tiling import chunk_rows, query_block_rows
+
+    grain = grain_rows or arch.engine.grain_rows
+    total = 0
+    lsb = arch.precision.k_lsb_bits > 0
+    for s in trace.steps:
+        d = s.head_dim
+        nqb = math.ceil(s.q_rows / query_block_rows(arch, d, s.q_rows))
+        kc = chunk_rows(arch, "K", d, grain)
+        vc = chunk_rows(arch, "V", d, grain)
+        k = math.ceil(s.n_kept_k / kc)
+        v = math.ceil(int(s.kept_v.max()) / vc)
+        per_head = nqb * (k + v) + (k if lsb and int(s.lsb_rows.max()) else 0)
+        total += s.n_heads * per_head
+    return total
+
+
+def check_run(arch, trace, grain_rows=None) -> None:
+    """Refuse (one line, with the estimate) a run that cannot fit; return quietly otherwise."""
+    span = address_span(arch, trace)
+    if span >= 1 << ADDRESS_BITS:
+        raise RunTooLarge(trace.source, "kv_rows", max(s.kv_rows for s in trace.steps),
+                          f"the trace's K/V regions at head_dim {max(s.head_dim for s in trace.steps)} would span "
+                          f"about 2**{span.bit_length() - 1} bytes of DRAM addresses; the address map holds "
+                          f"2**{ADDRESS_BITS}")
+    n = transactions(arch, trace, grain_rows)
+    need = n * BYTES_PER_TXN
+    mem = physical_memory()
+    limit = min(MAX_TXNS, mem // BYTES_PER_TXN // 2) if mem else MAX_TXNS
+    if n > limit:
+        raise RunTooLarge(trace.source, "steps", len(trace.steps),
+                          f"this run would hold about {n:,} transactions (~{need / 2**30:,.1f} GiB of memory"
+                          + (f" of this machine's {mem / 2**30:,.0f} GiB" if mem else "")
+                          + f"); expected at most {limit:,}: raise engine.grain_rows or the buffers, or cut the trace")
