@@ -105,11 +105,13 @@ def run_pairs(jobs, workers, progress=False):
 
 
 def terminal_table(runs):
-    """The comparison as fixed-width text, one line per run, grouped by trace."""
+    """The comparison as fixed-width text, one line per run, grouped by trace (numbers as the report shows them)."""
+    from .formats import value
+    from .limits import verdict_of
     from .report.verdict import limiting_unit
 
-    head = (f"{'trace':<26} {'config':<11} {'latency us':>12} {'cycles':>12} {'bound':>8} "
-            f"{'limiting':>9} {'busy':>5} {'energy uJ':>11} {'area mm2':>9}")
+    head = (f"{'trace':<26} {'config':<11} {'latency us':>12} {'cycles':>12} {'limited by':<26} "
+            f"{'busy %':>6} {'energy uJ':>11} {'area mm^2':>9}")
     lines = [head, "-" * len(head)]
     prev = None
     for r in sorted(runs, key=lambda r: (r.trace_label, r.doc["seconds"])):
@@ -118,14 +120,15 @@ def terminal_table(runs):
         if prev is not None and r.trace_label != prev:
             lines.append("")
         prev = r.trace_label
-        lines.append(f"{r.trace_label:<26} {r.config_label:<11} {d['seconds'] * 1e6:>12,.2f} {d['cycles']:>12,} "
-                     f"{d['bounds']['bound']:>8} {lim:>9} {d['units'][lim]['busy']:>5.0%} "
-                     f"{d['energy']['total_pj'] / 1e6:>11,.2f} {d['area']['total_mm2']:>9.3f}")
+        lines.append(f"{r.trace_label:<26} {r.config_label:<11} {value(d['seconds'], 'latency'):>12} "
+                     f"{value(d['cycles'], 'cycles'):>12} {verdict_of(d)['label']:<26} "
+                     f"{value(d['units'][lim]['busy'], 'share'):>6} {value(d['energy']['total_pj'], 'energy'):>11} "
+                     f"{value(d['area']['total_mm2'], 'area'):>9}")
     return "\n".join(lines)
 
 
 def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=False, progress=False):
-    """Run the demo; return ``(runs, failed, out_dir, seconds)``."""
+    """Run the demo; return ``(runs, failed, out_dir, seconds)``: seconds of simulation, as the report states."""
     from .report.build import build_report
     from .report.inputs import ReportError, Run
 
@@ -159,7 +162,7 @@ def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=Fals
                  notes=[f"Traces: {kind} ({', '.join(n for n, _ in traces)}); datapaths: "
                         f"{', '.join(configs)}. Simulation took {sim_s:.1f} s of wall time."],
                  inputs=[p or n for n, p in traces] + cfgs)
-    return runs, failed, out_dir, time.perf_counter() - t0
+    return runs, failed, out_dir, sim_s
 
 
 def _check_own_folder(out_dir, error, force=False):
@@ -203,14 +206,16 @@ def main_demo(out_dir=None, force=False, quiet=False):
         if not quiet:
             print(text, file=sys.stderr)
 
+    t0 = time.perf_counter()
     runs, failed, out_dir, secs = run_demo(out_dir=out_dir, echo=notice, force=force,
                                            progress=not quiet and sys.stderr.isatty())
+    total = time.perf_counter() - t0
     if not quiet:
         print(terminal_table(runs))
     for f in failed:
         print(f"attnsim: demo run failed: {f['origin']}: {f['error']}", file=sys.stderr)
     rel = os.path.relpath(out_dir)
     if not quiet:
-        print(f"\n{len(runs)} runs in {secs:.1f} s. Report: {os.path.join(rel, 'report.html')} "
-              f"(also report.md, figures/, data/*.csv)")
+        print(f"\n{len(runs)} runs simulated in {secs:.1f} s of wall time ({total:.1f} s with the report). "
+              f"Report: {os.path.join(rel, 'report.html')} (also report.md, figures/, data/*.csv)")
     return 1 if failed else 0

@@ -18,8 +18,12 @@ from operator import itemgetter
 import numpy as np
 
 from . import __version__
+from . import formats as fm
+from .build import build_id
+from .limits import classify, cause_text, verdict_of
 from .model.area import area_section
 from .model.bounds import bounds_from_counts
+from .model.dense import dense_macs
 from .model.energy import energy_section
 
 UNIT_ORDER = ("dram", "fetch", "dot", "dot_pv", "softmax", "topk")
@@ -197,11 +201,14 @@ def build_result(stats):
     })
     decode_steps = sum(1 for s in trace.steps if s.stage == "decode")
     layers = len({s.layer for s in trace.steps})
+    dense = dense_macs(trace)
+    planes = dram["bytes_by_plane"]
+    p = arch.precision
     doc = {
-        "simulator": {"name": "attnsim", "version": __version__},
+        "simulator": {"name": "attnsim", "version": __version__, "build": build_id()},
         "arch": {"name": arch.name, "source": str(arch.source), "config": arch.to_dict()},
         "trace": {"name": trace.name, "source": str(trace.source), "digest": trace.digest(),
-                  "steps": len(trace.steps)},
+                  "steps": len(trace.steps), "head_dims": sorted({s.head_dim for s in trace.steps})},
         "engine": dict(engine),
         "cycles": cycles,
         "seconds": seconds,
@@ -213,6 +220,9 @@ def build_result(stats):
             "multiplier_utilization": macs / end / arch.dot.multipliers if end else 0.0,
             "decode_tokens_per_s": (decode_steps / layers) / per_stage["decode"] * clock
             if per_stage.get("decode") else None,
+            # 1 MAC = 2 operations (common practice)
+            "ops_per_s": 2 * macs / seconds if seconds else 0.0,
+            "dense_equivalent_ops_per_s": 2 * dense / seconds if seconds else 0.0,
         },
         "units": units,
         "dram": dram,
@@ -223,10 +233,16 @@ def build_result(stats):
             "macs_pv": c["macs_pv"], "softmax_elements": c["softmax_elements"],
             "topk_comparisons": c["topk_comparisons"], "topk_layer_selections": c["topk_selections"],
             "value_selections": c["value_selections"],
+            "macs_by_head_dim": {str(d): int(m) for d, m in sorted(prog.macs_by_dim.items())},
+            "dense_macs": dense,
+            "executed_over_dense": macs / dense if dense else None,
         },
         "bounds": bounds,
-        "verdict": _verdict(units, bounds, cycles),
     }
+    # bits fetched per key element: the MSB plane always, the LSB plane where it was refetched
+    dram["effective_key_bits"] = (p.k_msb_bits * (planes["K"] + planes.get("KL", 0)) / planes["K"]
+                                  if planes.get("K") else None)
+    doc["verdict"] = classify(doc)
     doc["energy"] = energy_section(arch, doc, trace)
     doc["area"] = area_section(arch)
     intervals = {name: st.intervals for name, st in states.items()}
@@ -234,55 +250,72 @@ def build_result(stats):
     return Result(_round(doc), intervals)
 
 
-def _verdict(units, bounds, cycles):
-    """Which unit limits the run and what held it back most, from the measurements.
+def engine_text(doc):
+    """The settings a run was simulated with, in one phrase (build, grain, issue window, seed)."""
+    sim_ = doc["simulator"]
+    eng = doc.get("engine", {})
+    window = doc["arch"]["config"].get("fetch", {}).get("issue_window", 0)
+    return (f"attnsim {sim_.get('build') or sim_['version']}, grain {eng.get('grain_rows', '?')} rows, "
+            f"issue window {window}, seed {eng.get('seed', '?')}")
 
-    ``largest_stall`` is the busiest unit's own largest stall (what to fix to
-    speed it up); ``worst_stall`` the largest stall of any unit.
-    """
-    busiest = max(units, key=lambda k: units[k]["busy"])
-    own = units[busiest]["stalls"]
-    cause = max(own, key=own.get) if own else None
-    worst_unit, worst_cause, worst = None, None, 0.0
-    for name, u in units.items():
-        for c, f in u["stalls"].items():
-            if f > worst:
-                worst_unit, worst_cause, worst = name, c, f
-    return {
-        "busiest_unit": busiest,
-        "busiest_utilization": units[busiest]["busy"],
-        "bound": bounds["bound"],
-        "roofline_fraction": bounds["roofline_cycles"] / cycles if cycles else 0.0,
-        "largest_stall": {"unit": busiest, "cause": cause, "fraction": own.get(cause, 0.0) if cause else 0.0},
-        "worst_stall": {"unit": worst_unit, "cause": worst_cause, "fraction": worst},
-    }
+
+def limit_sentence(doc):
+    """What limits the run, in one line, from the classification."""
+    v = verdict_of(doc)
+    u = doc["units"]
+    crit = v["critical_unit"]
+    text = f"{v['label']}: {fm.pct(v['share'])} of {crit}'s time"
+    if v["limit"] in ("compute", "unit"):
+        text = f"{v['label']}: {v['resource']} busy {fm.pct(u[v['resource']]['busy'])} of the run"
+    elif v["limit"] in ("memory_bandwidth", "memory_latency"):
+        text += f", DRAM at {fm.pct(v['dram_share_of_peak'])} of its peak"
+    lanes = v.get("lanes")
+    if lanes and v["limit"] == "compute":
+        useful = lanes["utilization"].get(v["resource"], 0.0)
+        text += f"; useful MACs {fm.pct(useful)} of its multipliers x cycles"
+        if lanes["mismatch"]:
+            text += (f" (head width {', '.join(map(str, lanes['head_dims']))} on {lanes['lanes']} lanes: "
+                     f"{fm.pct(lanes['fill'])} of the lanes busy in a pass)")
+    return text
 
 
 def format_summary(result):
-    """A readable multi-line summary for the terminal."""
+    """A readable multi-line summary for the terminal (every number through :mod:`sim.formats`)."""
     d = result.to_dict() if isinstance(result, Result) else result
-    lines = []
-    lines.append(f"arch {d['arch']['name']}  x  trace {d['trace']['name']}  "
-                 f"(attnsim {d['simulator']['version']}, grain {d['engine']['grain_rows']} rows)")
-    lines.append(f"  cycles {d['cycles']:,}   time {d['seconds'] * 1e6:,.2f} us   "
-                 + "   ".join(f"{k} {v:,.0f}" for k, v in d["per_stage_cycles"].items()))
+    v = verdict_of(d)
+    show = fm.show
+    lines = [f"arch {d['arch']['name']}  x  trace {d['trace']['name']}  ({engine_text(d)})"]
+    stages = ", ".join(f"{k} {show(c, 'cycles')}" for k, c in d["per_stage_cycles"].items())
+    lines.append(f"  time      {show(d['seconds'], 'latency')} = {show(d['cycles'], 'cycles')}"
+                 + (f"  ({stages})" if stages else ""))
+    lines.append(f"  limit     {limit_sentence(d)}")
     b = d["bounds"]
-    lines.append(f"  bounds: compute {b['compute_cycles']:,.0f}  memory {b['memory_cycles']:,.0f}  "
-                 f"-> {b['bound']}-bound; run is at {d['verdict']['roofline_fraction']:.0%} of the roofline")
+    lines.append(f"  roofline  closed-form bound: {b['bound']} ({show(b['compute_cycles'], 'cycles')} compute, "
+                 f"{show(b['memory_cycles'], 'cycles')} memory); the run reaches "
+                 f"{show(v['roofline_fraction'], 'share')} of it")
     dr = d["dram"]
-    lines.append(f"  memory: {dr['bytes'] / 1e6:,.3f} MB fetched ({dr['fetched_over_compulsory']:.2f}x compulsory), "
-                 f"{dr['achieved_gbps']:,.1f} of {dr['peak_gbps']:,.1f} GB/s")
-    lines.append(f"  compute: {d['compute']['macs']:,} MACs, "
-                 f"{d['throughput']['multiplier_utilization']:.0%} of multiplier peak")
+    lines.append(f"  memory    {show(dr['bytes'], 'bytes')} fetched ({show(dr['fetched_over_compulsory'], 'speedup')} "
+                 f"compulsory), {fm.value(dr['achieved_gbps'], 'bandwidth')} of {show(dr['peak_gbps'], 'bandwidth')}"
+                 + (f"; {show(dr['effective_key_bits'], 'bits')} per key element"
+                    if dr.get("effective_key_bits") else ""))
+    t, c = d["throughput"], d["compute"]
+    lines.append(f"  compute   {show(c['macs'], 'macs')}: {show(t.get('ops_per_s'), 'ops_rate')} executed, "
+                 f"{show(t.get('dense_equivalent_ops_per_s'), 'ops_rate')} dense-equivalent"
+                 + (f" ({show(c['executed_over_dense'], 'share')} of the dense work executed)"
+                    if c.get("executed_over_dense") is not None else ""))
+    e = d.get("energy")
+    if e:
+        per_token = f", {show(e['pj_per_token'], 'energy_per_token')}" if e.get("pj_per_token") else ""
+        lines.append(f"  energy    {show(e['total_pj'], 'energy')} (dynamic {show(e.get('dynamic_pj'), 'energy')}, "
+                     f"static {show(e.get('static_pj'), 'energy')}), {show(e['average_power_w'], 'power')} "
+                     f"average{per_token}; area proxy {show(d['area']['total_mm2'], 'area')}")
     lines.append("  unit        busy  starved  blocked   idle   top stalls")
     for name, u in d["units"].items():
-        top = ", ".join(f"{c} {f:.0%}" for c, f in list(u["stalls"].items())[:3] if f >= 0.005)
-        lines.append(f"  {name:<9} {u['busy']:6.1%} {u['starved']:8.1%} {u['blocked']:8.1%} "
-                     f"{u['idle']:6.1%}   {top}")
-    v = d["verdict"]
-    ls = v["largest_stall"]
-    lines.append(f"  verdict: busiest unit {v['busiest_unit']} ({v['busiest_utilization']:.0%} busy); "
-                 + (f"its largest stall: {ls['cause']} ({ls['fraction']:.0%} of the run)"
-                    if ls["cause"] else "it never stalls"))
+        top = ", ".join(f"{c} {fm.pct(f)}" for c, f in list(u["stalls"].items())[:3] if f >= 0.005)
+        lines.append(f"  {name:<9} {fm.value(u['busy'], 'share'):>5}% {fm.value(u['starved'], 'share'):>7}% "
+                     f"{fm.value(u['blocked'], 'share'):>7}% {fm.value(u['idle'], 'share'):>5}%   {top}")
+    own = [s for s in v["shares"] if s["kind"] not in ("compute", "unit")][:1]
+    if own:
+        lines.append(f"  largest wait of {v['critical_unit']}: {cause_text(own[0]['resource'])} "
+                     f"({fm.pct(own[0]['share'])} of its time)")
     return "\n".join(lines)
-

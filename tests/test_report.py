@@ -45,23 +45,34 @@ def report(results, tmp_path_factory):
 
 
 # the test's own map from comparison columns to the result document (scale to the shown unit)
+def _crit_busy(d):
+    v = d["verdict"]
+    return d["units"][v["resource"] if v["limit"] in ("compute", "unit") else v["critical_unit"]]["busy"] * 100
+
+
 EXPECT = {
     "cycles": lambda d: d["cycles"],
     "latency_us": lambda d: d["seconds"] * 1e6,
-    "roofline_pct": lambda d: d["verdict"]["roofline_fraction"] * 100,
+    "roofline_pct": lambda d: d["bounds"]["roofline_cycles"] / d["cycles"] * 100,
     "dram_mb": lambda d: d["dram"]["bytes"] / 1e6,
     "dram_gbps": lambda d: d["dram"]["achieved_gbps"],
+    "dram_peak_pct": lambda d: d["dram"]["achieved_gbps"] / d["dram"]["peak_gbps"] * 100,
     "macs": lambda d: d["compute"]["macs"],
     "energy_uj": lambda d: d["energy"]["total_pj"] / 1e6,
+    "static_energy_pct": lambda d: d["energy"]["static_pj"] / d["energy"]["total_pj"] * 100,
     "power_w": lambda d: d["energy"]["average_power_w"],
     "nj_per_token": lambda d: d["energy"]["pj_per_token"] / 1e3,
     "area_mm2": lambda d: d["area"]["total_mm2"],
-    "limiting_busy_pct": lambda d: max(u["busy"] for u in d["units"].values()) * 100,
+    "critical_busy_pct": _crit_busy,
+    # useful MACs / (multipliers x cycles) of the shared array (both configs here share one array)
+    "useful_macs_pct": lambda d: d["compute"]["macs"] / (d["arch"]["config"]["dot"]["multipliers"]
+                                                       * d["cycles"]) * 100,
 }
 HEADERS = {"cycles": "cycles", "latency (us)": "latency_us", "of roofline (%)": "roofline_pct",
-           "DRAM (MB)": "dram_mb", "DRAM (GB/s)": "dram_gbps", "MACs": "macs", "energy (uJ)": "energy_uj",
-           "avg power (W)": "power_w", "nJ / token": "nj_per_token", "area proxy (mm^2)": "area_mm2",
-           "its busy (%)": "limiting_busy_pct"}
+           "DRAM (MB)": "dram_mb", "DRAM (GB/s)": "dram_gbps", "of DRAM peak (%)": "dram_peak_pct", "MACs": "macs",
+           "energy (uJ)": "energy_uj", "static energy (%)": "static_energy_pct", "avg power (W)": "power_w",
+           "energy / token (nJ/token)": "nj_per_token", "area proxy (mm^2)": "area_mm2",
+           "its busy (%)": "critical_busy_pct", "useful MACs (%)": "useful_macs_pct"}
 
 
 def read_csv(path):
@@ -76,11 +87,13 @@ def test_comparison_csv_equals_documents(report):
     for row in rows:
         d = docs[(row["config"], row["trace"])]
         for key, f in EXPECT.items():
-            assert float(row[key]) == pytest.approx(f(d), rel=1e-12), key
+            assert float(row[key]) == pytest.approx(f(d), rel=1e-9), key
         assert row["bound"] == d["bounds"]["bound"]
-        busiest = max(d["units"], key=lambda k: d["units"][k]["busy"])
-        assert row["limiting_unit"] == busiest
+        assert row["limit"] == d["verdict"]["label"]
         assert row["trace_digest"] == d["trace"]["digest"]
+        assert row["simulator_build"] == d["simulator"]["build"]
+        assert (int(row["grain_rows"]), int(row["issue_window"]), int(row["seed"])) == (
+            d["engine"]["grain_rows"], d["arch"]["config"]["fetch"]["issue_window"], d["engine"]["seed"])
 
 
 def parse_markdown_table(text, first_header):
@@ -106,7 +119,8 @@ def test_markdown_numbers_equal_documents(report):
             shown = row[header].replace(",", "")
             digits = len(shown.split(".")[1]) if "." in shown else 0
             assert abs(float(shown) - EXPECT[key](d)) <= 0.5 * 10 ** -digits + 1e-12, (header, shown)
-        assert row["bound"] == d["bounds"]["bound"]
+        assert row["roofline bound"] == d["bounds"]["bound"]
+        assert row["limited by"] == d["verdict"]["label"]
 
 
 def test_figure_data_equals_documents(report):
@@ -126,6 +140,9 @@ def test_figure_data_equals_documents(report):
         # Williams et al., CACM 2009: attainable = min(peak compute, bandwidth x intensity)
         assert float(row["attainable_gmac_per_s"]) == pytest.approx(min(peak, d["dram"]["peak_gbps"] * oi))
         assert float(row["achieved_gmac_per_s"]) <= float(row["attainable_gmac_per_s"]) * (1 + 1e-9)
+        # the point sits at the table's "of roofline" below its own ceiling, labelled with the table's limit
+        assert float(row["of_roofline"]) == pytest.approx(d["bounds"]["roofline_cycles"] / d["cycles"], rel=1e-6)
+        assert row["limit"] == d["verdict"]["label"]
     pareto = read_csv(os.path.join(out, "data", "pareto.csv"))
     for row in pareto:
         d = by_label[row["run"]]
@@ -147,6 +164,7 @@ def test_figure_data_equals_documents(report):
 
 
 def test_verdicts_name_the_measured_limit(report):
+    """Each verdict states the numbers of the classification the table shows, grouped by trace."""
     out, docs = report
     text = open(os.path.join(out, "report.md")).read()
     verdicts = dict(re.findall(r"^- \*\*(.+?)\*\*: (.+)$", text, re.M))
@@ -154,11 +172,20 @@ def test_verdicts_name_the_measured_limit(report):
     texts = set()
     for (a, t), d in docs.items():
         v = verdicts[f"{a} / {t}"]
-        busiest = max(d["units"], key=lambda k: d["units"][k]["busy"])
-        assert busiest in v
-        assert f"{d['units'][busiest]['busy']:.0%}" in v
+        cl = d["verdict"]
+        if cl["limit"] in ("compute", "unit"):
+            assert f"{cl['resource']} is busy {d['units'][cl['resource']]['busy']:.0%}" in v
+        else:
+            assert f"{cl['critical_unit']} waits" in v and f"{cl['share']:.0%}" in v
         texts.add(re.sub(r"[\d.,]+", "#", v))
     assert len(texts) > 1  # written from the data: not one sentence with numbers swapped
+    # grouped per trace, each group sorted by latency
+    sections = re.split(r"^### ", text.split("## Verdicts")[1].split("\n## ")[0], flags=re.M)[1:]
+    assert len(sections) == len({t for _a, t in docs})
+    for sec in sections:
+        labels = re.findall(r"^- \*\*(.+?)\*\*", sec, re.M)
+        secs = [docs[tuple(lbl.split(" / "))]["seconds"] for lbl in labels]
+        assert secs == sorted(secs)
 
 
 def test_limits_and_sources_stated(report):

@@ -29,8 +29,8 @@ matplotlib.use("Agg")  # noqa: E402  (no display; before anything touches pyplot
 from .. import __version__  # noqa: E402
 from . import figures as F  # noqa: E402
 from .inputs import ReportError, group_key, label_runs  # noqa: E402
-from .tables import display_rows, markdown_table, table_rows  # noqa: E402
-from .verdict import write_verdict  # noqa: E402
+from .tables import COLUMNS, display_rows, markdown_table, table_rows  # noqa: E402
+from .verdict import grouped_verdicts, short_line  # noqa: E402
 
 MAX_FIGURE_RUNS = 24   # per-run bar charts stay readable up to about this many bars
 MAX_BANDWIDTH_RUNS = 6
@@ -179,7 +179,7 @@ def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_ru
     groups = {}
     for r in runs:
         groups.setdefault(group_key(r), []).append(r)
-    verdicts = [(r, write_verdict(r, groups[group_key(r)])) for r in runs]
+    verdicts = grouped_verdicts(groups, front=_front)
     ctx = {
         "title": title or "attnsim comparison report",
         "made": datetime.datetime.now().strftime("%Y-%m-%d %H:%M"),
@@ -196,12 +196,27 @@ def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_ru
     manifest = {"format": "attnsim-report", "version": 1, "simulator_version": __version__,
                 "files": files + ["manifest.json"], "figures": [f.name for f in figs],
                 "runs": [{"label": r.label, "origin": r.origin, "trace_digest": r.digest,
-                          "simulator_version": r.version} for r in runs],
+                          "simulator_version": r.version, "simulator_build": r.build,
+                          "engine": dict(zip(("grain_rows", "issue_window", "seed"), r.engine_settings))}
+                         for r in runs],
                 "warnings": warnings, "failed": list(failed), "inputs": list(inputs)}
     with open(os.path.join(out_dir, "manifest.json"), "w", encoding="utf-8") as fh:
         json.dump(manifest, fh, indent=2)
         fh.write("\n")
     return manifest
+
+
+def _front(runs):
+    """The latency/energy Pareto points of a group (all of them when energy is missing)."""
+    pts = [(r.doc["seconds"], r.doc.get("energy", {}).get("total_pj", 0.0)) for r in runs]
+    return [runs[i] for i in F.pareto_front(pts)]
+
+
+def _run_line(r):
+    """A run's provenance: where it came from, trace digest, build and engine settings."""
+    grain, window, seed = r.engine_settings
+    return (f"{r.label}: {r.origin} (trace digest {r.digest[:12]}, attnsim {r.build}, grain {grain} rows, "
+            f"issue window {window}, seed {seed})")
 
 
 def _skip_reasons(skipped, runs):
@@ -232,9 +247,13 @@ def _markdown(c):
     out += ["## Comparison", "", markdown_table(header, rows), "",
             "Exact values: `comparison.csv`. Latency is simulated time; energy and area are proxies.", ""]
     out += ["## Verdicts", ""]
-    for r, v in c["verdicts"]:
-        out += [f"- **{r.label}**: {v}"]
-    out += [""]
+    for title, summary, verdicts, rest in c["verdicts"]:
+        out += [f"### {title}", ""] + ([summary, ""] if summary else [])
+        out += [f"- **{r.label}**: {v}" for r, v in verdicts]
+        if rest:
+            out += ["", f"The other {len(rest)} runs, by latency:", ""]
+            out += [f"- {r.label}: {short_line(r)}" for r in rest]
+        out += [""]
     if c["failed"]:
         out += ["## Failed points", ""] + [f"- {f['origin']}: {f.get('trace')} {f.get('point')}: {f.get('error')}"
                                            for f in c["failed"]] + [""]
@@ -246,8 +265,7 @@ def _markdown(c):
         out += ["## Notes", ""] + [f"- {n}" for n in c["notes"]] + [""]
     out += ["## Sources of the cost figures", ""]
     out += [f"- {sec} preset `{name}`: {src}" for sec, name, src in _provenance(c["runs"])] + [""]
-    out += ["## Runs", ""] + [f"- {r.label}: {r.origin} (trace digest {r.digest[:12]}, attnsim {r.version})"
-                              for r in c["runs"]] + [""]
+    out += ["## Runs", ""] + [f"- {_run_line(r)}" for r in c["runs"]] + [""]
     return "\n".join(out)
 
 
@@ -285,15 +303,20 @@ def _html(c):
                      + "</ul></div>")
     parts.append(f"<h2>Limits of this model</h2><p class='limits'>{e(LIMITS)}</p>")
     header, rows = display_rows(c["runs"])
+    numeric = [False, False] + [col.quantity is not None for col in COLUMNS]
     parts.append("<h2>Comparison</h2><table id='comparison'><tr>" + "".join(f"<th>{e(h)}</th>" for h in header)
                  + "</tr>")
     for row in rows:
-        parts.append("<tr>" + "".join(f"<td{'' if i < 2 else ' class=num'}>{e(str(v))}</td>"
+        parts.append("<tr>" + "".join(f"<td{' class=num' if numeric[i] else ''}>{e(str(v))}</td>"
                                       for i, v in enumerate(row)) + "</tr>")
     parts.append("</table><p class='meta'>Exact values in comparison.csv. Energy and area are proxies.</p>")
     parts.append("<h2>Verdicts</h2>")
-    for r, v in c["verdicts"]:
-        parts.append(f"<p class='verdict'><b>{e(r.label)}</b>: {e(v)}</p>")
+    for title, summary, verdicts, rest in c["verdicts"]:
+        parts.append(f"<h3>{e(title)}</h3>" + (f"<p>{e(summary)}</p>" if summary else ""))
+        parts += [f"<p class='verdict'><b>{e(r.label)}</b>: {e(v)}</p>" for r, v in verdicts]
+        if rest:
+            parts.append(f"<p>The other {len(rest)} runs, by latency:</p><ul>"
+                         + "".join(f"<li>{e(r.label)}: {e(short_line(r))}</li>" for r in rest) + "</ul>")
     if c["failed"]:
         parts.append("<h2>Failed points</h2><ul>" + "".join(
             f"<li>{e(f['origin'])}: {e(str(f.get('trace')))} {e(str(f.get('point')))}: {e(str(f.get('error')))}</li>"
@@ -309,9 +332,7 @@ def _html(c):
     parts.append("<h2>Sources of the cost figures</h2><ul>" + "".join(
         f"<li>{e(sec)} preset <code>{e(name)}</code>: {e(src)}</li>" for sec, name, src in _provenance(c["runs"]))
         + "</ul>")
-    parts.append("<h2>Runs</h2><ul>" + "".join(
-        f"<li>{e(r.label)}: {e(str(r.origin))} (trace digest {e(r.digest[:12])}, attnsim {e(r.version)})</li>"
-        for r in c["runs"]) + "</ul>")
+    parts.append("<h2>Runs</h2><ul>" + "".join(f"<li>{e(_run_line(r))}</li>" for r in c["runs"]) + "</ul>")
     parts.append(f"<script>{SCRIPT}</script></body></html>\n")
     return "\n".join(parts)
 

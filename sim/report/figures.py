@@ -12,6 +12,8 @@ import math
 import numpy as np
 from matplotlib.figure import Figure as MplFigure
 
+from .. import formats as fmt
+from ..limits import verdict_of
 from .inputs import group_key
 from .verdict import limiting_unit
 
@@ -139,9 +141,33 @@ def _peaks(doc):
     return cfg["dot"]["multipliers"] * cfg["clock_ghz"], doc["dram"]["peak_gbps"]
 
 
+def compute_ceiling(doc):
+    """GMAC/s the closed-form compute bound allows this run: its MACs over ``bounds.compute_cycles``.
+
+    Below the multiplier peak when head widths leave lanes idle or another
+    unit (softmax, top-k) bounds the compute side -- the ceiling the table's
+    "of roofline" is measured against.
+    """
+    b = doc["bounds"]
+    clock = doc["arch"]["config"]["clock_ghz"]
+    return doc["compute"]["macs"] * clock / b["compute_cycles"] if b["compute_cycles"] else _peaks(doc)[0]
+
+
+def _legend_outside(ax, **kw):
+    """A legend right of the axes, never over the data."""
+    return ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0, **kw)
+
+
 def roofline(runs):
-    """Roofline (Williams, Waterman, Patterson, CACM 2009) per config with each run's achieved point."""
-    fig = _fig(8.5, 5.6)
+    """Roofline (Williams, Waterman, Patterson, CACM 2009) per config with each run's achieved point.
+
+    Solid: the config's roof from its multiplier and bandwidth peaks. Dashed:
+    a run's own compute ceiling where it sits below the multiplier peak (lane
+    quantization, softmax or top-k throughput). Each point is labelled with
+    the run's limit from :func:`sim.limits.verdict_of`, the classification the
+    table and the verdicts show.
+    """
+    fig = _fig(10.5, 5.8)
     ax = fig.subplots()
     configs = []
     for r in runs:
@@ -160,7 +186,11 @@ def roofline(runs):
         oi = r.doc["bounds"]["operational_intensity_mac_per_byte"]
         ach = r.doc["compute"]["macs"] / r.doc["seconds"] / 1e9 if r.doc["seconds"] else 0.0
         att = min(peak, bw * oi) if oi is not None else peak
-        rows.append([r.label, r.config_label, r.trace_label, peak, bw, oi, ach, att])
+        ceil = compute_ceiling(r.doc)
+        att_run = min(ceil, bw * oi) if oi is not None else ceil
+        v = verdict_of(r.doc)
+        rows.append([r.label, r.config_label, r.trace_label, peak, bw, oi, ach, att, ceil, att_run,
+                     ach / att_run if att_run else None, v["label"]])
         if oi:
             xs.append(oi)
         xs.append(peak / bw)
@@ -173,25 +203,39 @@ def roofline(runs):
         drawn.add(r.config_label)
         peak, bw = _peaks(r.doc)
         ax.plot(grid, np.minimum(peak, bw * grid), color=ccol[r.config_label], lw=1.6,
-                label=f"{r.config_label}: {peak:,.0f} GMAC/s, {bw:,.0f} GB/s")
+                label=f"{r.config_label}: {fmt.number(peak)} GMAC/s, {fmt.number(bw)} GB/s")
+    annotate = len(runs) <= 12
     for row, r in zip(rows, runs):
-        if row[5]:
-            ax.scatter([row[5]], [row[6]], color=ccol[r.config_label], marker=tmark[r.trace_label], s=55,
+        peak, bw, oi, ach, ceil = row[3], row[4], row[5], row[6], row[8]
+        if ceil < peak * (1 - 1e-9):
+            x0 = ceil / bw
+            ax.plot([x0, hi], [ceil, ceil], color=ccol[r.config_label], lw=0.9, ls="--", alpha=0.8)
+        if oi:
+            ax.scatter([oi], [ach], color=ccol[r.config_label], marker=tmark[r.trace_label], s=55,
                        edgecolor="black", linewidth=0.6, zorder=3)
+            if annotate:
+                ax.annotate(row[11], (oi, ach), xytext=(5, -9), textcoords="offset points", fontsize=6.5,
+                            color="#333")
+    ax.plot([], [], color="#555", lw=0.9, ls="--", label="a run's compute ceiling (lanes, softmax, top-k)")
     for t in traces:
         ax.scatter([], [], marker=tmark[t], color="white", edgecolor="black", label=f"trace {t}")
     ax.set_xscale("log")
     ax.set_yscale("log")
+    ax.set_xlim(lo, hi)
     ax.set_xlabel("operational intensity (MAC per DRAM byte)")
     ax.set_ylabel("throughput (GMAC/s)")
     ax.grid(True, which="both", alpha=0.25)
-    ax.legend(fontsize=7, loc="lower right")
+    _legend_outside(ax, fontsize=7)
     return Figure("roofline", "Roofline with achieved points",
-                  "Lines: attainable = min(peak compute, peak bandwidth x intensity) per config (Williams, "
-                  "Waterman and Patterson, CACM 2009). Markers: each run's achieved MACs per second at its "
-                  "measured intensity (MACs / bytes fetched); colour = config, shape = trace.",
+                  "Solid lines: attainable = min(peak compute, peak bandwidth x intensity) per config (Williams, "
+                  "Waterman and Patterson, CACM 2009). Dashed: a run's own compute ceiling where head widths "
+                  "that leave lanes idle, or the softmax or top-k throughput, keep it below the multiplier "
+                  "peak; the table's 'of roofline' is measured against it. Markers: each run's achieved MACs "
+                  "per second at its measured intensity (MACs / bytes fetched), labelled with what limits it; "
+                  "colour = config, shape = trace.",
                   fig, ["run", "config", "trace", "peak_gmac_per_s", "peak_gbps", "intensity_mac_per_byte",
-                        "achieved_gmac_per_s", "attainable_gmac_per_s"], rows)
+                        "achieved_gmac_per_s", "attainable_gmac_per_s", "compute_ceiling_gmac_per_s",
+                        "attainable_at_ceiling_gmac_per_s", "of_roofline", "limit"], rows)
 
 
 def _numeric_axes(runs):

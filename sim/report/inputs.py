@@ -49,6 +49,20 @@ class Run:
     def digest(self):
         return self.doc["trace"]["digest"]
 
+    @property
+    def build(self):
+        """The simulator build that made the document (its version for a document that predates builds)."""
+        return self.doc["simulator"].get("build") or self.version
+
+    @property
+    def engine_settings(self):
+        """``(grain_rows, issue_window, seed)``: the engine settings the run was simulated with."""
+        eng = self.doc.get("engine") or {}
+        cfg = self.doc["arch"]["config"]
+        window = eng.get("issue_window", cfg.get("fetch", {}).get("issue_window", 0))
+        return (eng.get("grain_rows", cfg.get("engine", {}).get("grain_rows")), window,
+                eng.get("seed", cfg.get("engine", {}).get("seed")))
+
     def __repr__(self):
         return f"Run({self.label!r} from {self.origin})"
 
@@ -167,13 +181,27 @@ def _point_text(point):
     return ", ".join(f"{k}={v:g}" if isinstance(v, float) else f"{k}={v}" for k, v in sorted(point.items()))
 
 
+ENGINE_NAMES = ("grain", "issue window", "seed")
+ENGINE_AXES = ("engine.grain_rows", "fetch.issue_window", "engine.seed")
+
+
+def engine_tag(run, which=(0, 1, 2)):
+    """``grain 256, seed 1``: the run's engine settings named by index (sweep axes left out)."""
+    vals = run.engine_settings
+    return ", ".join(f"{ENGINE_NAMES[i]} {vals[i]}" for i in which if ENGINE_AXES[i] not in run.point)
+
+
 def label_runs(runs):
     """Give every run distinct config and trace labels; return the warnings.
 
     * a trace name seen with several digests: each digest is labelled
       ``name#<first 8 hex>`` and counts as a different trace;
-    * several simulator versions: every config label gets ``[vX]``;
+    * several simulator versions: every config label gets ``[vX]``; several
+      builds of one version: ``[build HASH]``;
     * sweep points: the config label names the point's axis values;
+    * runs of one config and trace made with different engine settings
+      (grain, issue window, seed) are never merged under one name: each gets
+      ``[grain 256, ...]`` naming the settings that differ;
     * any remaining duplicates get ``(2)``, ``(3)``... and a warning.
     """
     warnings = []
@@ -188,6 +216,13 @@ def label_runs(runs):
     if len(versions) > 1:
         warnings.append(f"results from {len(versions)} simulator versions ({', '.join(versions)}): "
                         "labelled [vX] and never compared as one group")
+    builds = {}
+    for r in runs:
+        builds.setdefault(r.version, set()).add(r.build)
+    for v, bs in sorted(builds.items()):
+        if len(bs) > 1:
+            warnings.append(f"results from {len(bs)} builds of attnsim {v} ({', '.join(sorted(bs))}): "
+                            "labelled [build ...] and never compared as one group")
     for r in runs:
         name = r.doc["trace"]["name"]
         r.trace_label = f"{name}#{r.digest[:8]}" if len(digests[name]) > 1 else name
@@ -196,7 +231,21 @@ def label_runs(runs):
             cfg = f"{cfg} ({_point_text(r.point)})"
         if len(versions) > 1:
             cfg = f"{cfg} [v{r.version}]"
+        if len(builds[r.version]) > 1:
+            cfg = f"{cfg} [build {r.build.partition('+')[2] or r.build}]"
         r.config_label = cfg
+    same = {}
+    for r in runs:
+        same.setdefault(r.label, []).append(r)
+    for label, rr in same.items():
+        settings = {r.engine_settings for r in rr}
+        if len(settings) < 2:
+            continue
+        differ = [i for i in range(3) if len({s[i] for s in settings}) > 1]
+        for r in rr:
+            r.config_label = f"{r.config_label} [{engine_tag(r, differ)}]"
+        warnings.append(f"{label}: {len(rr)} runs made with different engine settings "
+                        f"({', '.join(ENGINE_NAMES[i] for i in differ)}): labelled apart, not merged")
     seen = {}
     for r in runs:
         n = seen.get(r.label, 0) + 1
@@ -211,5 +260,9 @@ def label_runs(runs):
 
 
 def group_key(run):
-    """Runs comparable with each other: same trace content and simulator version."""
-    return (run.trace_label, run.version)
+    """Runs comparable with each other: same trace content, simulator build and engine settings.
+
+    Engine settings a sweep varies as an axis do not split a group (the axis
+    is what the sweep compares).
+    """
+    return (run.trace_label, run.build, engine_tag(run))

@@ -1,9 +1,15 @@
 """The comparison table: one row per run, the numbers a reviewer reads first.
 
-Each column says where its number comes from in the result document, so the
-CSV (exact values) and the Markdown / HTML tables (rounded for reading) show
-the same quantities.
+Each column says where its number comes from in the result document and
+which quantity of :mod:`sim.formats` it is, so the CSV (exact values, the
+unit in the column name) and the Markdown / HTML tables (rounded for reading,
+the unit in the header) show the same quantities, as the terminal does.
+What limits a run comes from :func:`sim.limits.verdict_of`, the one
+classification the verdicts and figures read too.
 """
+
+from .. import formats as fm
+from ..limits import verdict_of
 
 
 def _get(doc, path):
@@ -15,62 +21,85 @@ def _get(doc, path):
     return node
 
 
-def _scaled(path, scale):
-    def f(doc):
-        v = _get(doc, path)
-        return None if v is None else v * scale
-    return f
+def limit_label(doc):
+    return verdict_of(doc)["label"]
 
 
-def _busiest(doc):
-    u = doc["units"]
-    return max(u, key=lambda k: u[k]["busy"])
+def critical_busy(doc):
+    v = verdict_of(doc)
+    unit = v["resource"] if v["limit"] in ("compute", "unit") else v["critical_unit"]
+    return doc["units"][unit]["busy"]
+
+
+def useful_macs(doc):
+    """Useful MACs / (multipliers x cycles) of the array the classification names (else q.K's)."""
+    v = verdict_of(doc)
+    lanes = v.get("lanes")
+    if not lanes:
+        return None
+    array = v["resource"] if v["limit"] == "compute" else "dot"
+    return lanes["utilization"].get(array, lanes["utilization"]["dot"])
+
+
+def static_share(doc):
+    e = doc.get("energy") or {}
+    return e["static_pj"] / e["total_pj"] if e.get("total_pj") and "static_pj" in e else None
 
 
 class Column:
-    """One column: CSV name, Markdown header, value getter, display format."""
+    """One column: CSV key, header title, value getter (document units), quantity (or None: text)."""
 
-    def __init__(self, key, header, get, fmt, doc_path=None, scale=1.0):
+    def __init__(self, key, title, get, quantity=None, doc_path=None):
         self.key = key
-        self.header = header
         self.get = get
-        self.fmt = fmt
+        self.quantity = quantity
         self.doc_path = doc_path
-        self.scale = scale
+        self.header = fm.header(title, quantity) if quantity else title
+
+    def exact(self, doc):
+        """The CSV value: the document's number in the shown unit, unrounded."""
+        v = self.get(doc)
+        if v is None or self.quantity is None:
+            return v
+        return v * fm.QUANTITIES[self.quantity].scale
 
     def show(self, doc):
         v = self.get(doc)
         if v is None:
             return "-"
-        return self.fmt.format(v) if self.fmt else str(v)
+        return fm.value(v, self.quantity) if self.quantity else str(v)
 
 
-def _col(key, header, path, scale, fmt):
-    return Column(key, header, _scaled(path, scale), fmt, path, scale)
+def _col(key, title, path, quantity):
+    return Column(key, title, lambda d: _get(d, path), quantity, path)
 
 
 COLUMNS = [
-    _col("cycles", "cycles", "cycles", 1, "{:,}"),
-    _col("latency_us", "latency (us)", "seconds", 1e6, "{:,.3f}"),
-    Column("bound", "bound", lambda d: d["bounds"]["bound"], None, "bounds.bound"),
-    _col("roofline_pct", "of roofline (%)", "verdict.roofline_fraction", 100, "{:.1f}"),
-    Column("limiting_unit", "limiting unit", _busiest, None),
-    Column("limiting_busy_pct", "its busy (%)", lambda d: d["units"][_busiest(d)]["busy"] * 100, "{:.1f}"),
-    _col("dram_mb", "DRAM (MB)", "dram.bytes", 1e-6, "{:,.4f}"),
-    _col("dram_gbps", "DRAM (GB/s)", "dram.achieved_gbps", 1, "{:,.2f}"),
-    _col("macs", "MACs", "compute.macs", 1, "{:,}"),
-    _col("energy_uj", "energy (uJ)", "energy.total_pj", 1e-6, "{:,.4f}"),
-    _col("power_w", "avg power (W)", "energy.average_power_w", 1, "{:,.4f}"),
-    _col("nj_per_token", "nJ / token", "energy.pj_per_token", 1e-3, "{:,.3f}"),
-    _col("area_mm2", "area proxy (mm^2)", "area.total_mm2", 1, "{:,.4f}"),
+    _col("cycles", "cycles", "cycles", "cycles"),
+    _col("latency_us", "latency", "seconds", "latency"),
+    Column("limit", "limited by", limit_label),
+    Column("critical_busy_pct", "its busy", critical_busy, "share"),
+    Column("useful_macs_pct", "useful MACs", useful_macs, "share"),
+    _col("bound", "roofline bound", "bounds.bound", None),
+    Column("roofline_pct", "of roofline", lambda d: verdict_of(d)["roofline_fraction"], "share"),
+    _col("dram_mb", "DRAM", "dram.bytes", "bytes"),
+    _col("dram_gbps", "DRAM", "dram.achieved_gbps", "bandwidth"),
+    Column("dram_peak_pct", "of DRAM peak", lambda d: verdict_of(d)["dram_share_of_peak"], "share"),
+    _col("macs", "MACs", "compute.macs", "macs"),
+    _col("energy_uj", "energy", "energy.total_pj", "energy"),
+    Column("static_energy_pct", "static energy", static_share, "share"),
+    _col("power_w", "avg power", "energy.average_power_w", "power"),
+    _col("nj_per_token", "energy / token", "energy.pj_per_token", "energy_per_token"),
+    _col("area_mm2", "area proxy", "area.total_mm2", "area"),
 ]
 
 
 def table_rows(runs):
     """``(header, rows)`` of exact values for the CSV."""
-    header = ["run", "config", "trace", "simulator_version", "trace_digest"] + [c.key for c in COLUMNS]
-    rows = [[r.label, r.config_label, r.trace_label, r.version, r.digest] + [c.get(r.doc) for c in COLUMNS]
-            for r in runs]
+    header = ["run", "config", "trace", "simulator_build", "grain_rows", "issue_window", "seed",
+              "trace_digest"] + [c.key for c in COLUMNS]
+    rows = [[r.label, r.config_label, r.trace_label, r.build, *r.engine_settings, r.digest]
+            + [c.exact(r.doc) for c in COLUMNS] for r in runs]
     return header, rows
 
 
@@ -81,10 +110,10 @@ def display_rows(runs):
     return header, rows
 
 
-def markdown_table(header, rows):
+def markdown_table(header, rows, text_columns=2):
     def esc(s):
         return str(s).replace("|", "\\|")
     out = ["| " + " | ".join(esc(h) for h in header) + " |",
-           "|" + "|".join("---" if i < 2 else "---:" for i in range(len(header))) + "|"]
+           "|" + "|".join("---" if i < text_columns else "---:" for i in range(len(header))) + "|"]
     out += ["| " + " | ".join(esc(c) for c in row) + " |" for row in rows]
     return "\n".join(out)

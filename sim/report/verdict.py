@@ -1,137 +1,213 @@
-"""The written verdict: what limits a config on a workload, in a few sentences.
+"""The written verdicts: what limits each run, what to change, how the runs compare.
 
-Read from the stall data, not filled into a fixed sentence: which unit does
-the most work and whether it is saturated, what the unit that limits the run
-waited on most, how the run sits against its roofline bound, how it compares
-with the other configs on the same trace, and where its energy goes. Each
-sentence is written only when the data supports it.
+Every sentence reads a measurement: the classification of
+:func:`sim.limits.verdict_of` (the same the table, the terminal summary and
+the roofline figure read), the roofline fraction, the measured sensitivity
+reruns when the report made them, and the energy section. Comparisons follow
+one rule: a run is "fastest" (or "least energy") only when it beats every
+other comparable run by more than :data:`TIE`; otherwise the runs within
+:data:`TIE` of the best are named as tied.
 """
 
-CAUSE_TEXT = {
-    "memory_latency": "DRAM access latency",
-    "memory_queue": "queueing at the DRAM channels",
-    "memory_transfer": "DRAM data transfer (bandwidth)",
-    "memory_bandwidth": "DRAM bandwidth",
-    "reorder": "the reorder stage handing data over in order",
-    "layer_dependency": "the previous layer's output",
-    "topk": "the top-k selector",
-    "softmax": "the softmax unit",
-    "dot": "the dot-product array",
-    "dot_pv": "the p.V array",
-    "fetch": "the fetch unit issuing requests",
-    "fetch_issue": "the fetch unit issuing requests",
-    "key_buffer_full": "room in the key buffer",
-    "value_buffer_full": "room in the value buffer",
-    "query_buffer_full": "room in the query buffer",
-    "inflight_limit": "the fetch unit's in-flight limit",
-    "start": "the start of the run",
-}
+from .. import formats as fm
+from ..limits import UNIT_TEXT, cause_text, verdict_of
+
+TIE = 0.01   # relative difference under which two runs are tied
+FULL_VERDICTS = 10   # a group larger than this gets full verdicts for its best runs only
 
 LEVER = {
     "dot": "more multipliers (dot.multipliers)",
     "dot_pv": "more multipliers (dot.multipliers)",
-    "dram": "more memory bandwidth (dram.channels, dram.channel_gbps)",
     "softmax": "more softmax lanes (softmax.lanes)",
     "topk": "more comparators (topk.comparators)",
-    "fetch": "more requests in flight (fetch.inflight)",
 }
-
-MEMORY = {"memory_latency", "memory_queue", "memory_transfer", "memory_bandwidth", "reorder"}
-BACKPRESSURE_SUFFIX = ("_full", "_limit")
-
-
-def cause_text(cause):
-    return CAUSE_TEXT.get(cause, (cause or "an unattributed cause").replace("_", " "))
-
-
-def _pct(x):
-    return f"{x:.0%}"
-
-
-def largest_stall(unit):
-    if not unit["stalls"]:
-        return None, 0.0
-    cause = max(unit["stalls"], key=unit["stalls"].get)
-    return cause, unit["stalls"][cause]
 
 
 def limiting_unit(doc):
-    """The unit with the highest busy fraction (the one doing the most work)."""
-    units = doc["units"]
-    return max(units, key=lambda k: units[k]["busy"])
+    """The unit the classification names (the critical unit when the limit is a wait)."""
+    v = verdict_of(doc)
+    return v["resource"] if v["limit"] in ("compute", "unit") else v["critical_unit"]
 
 
-def write_verdict(run, peers=()):
-    """A short paragraph for ``run``; ``peers`` are comparable runs (same trace, version)."""
-    d = run.doc
-    units = d["units"]
-    lim = limiting_unit(d)
-    busy = units[lim]["busy"]
-    out = []
-    if busy >= 0.85:
-        out.append(f"{lim} is the bottleneck: busy {_pct(busy)} of the run, so {LEVER.get(lim, 'a faster ' + lim)} "
-                   "is what would shorten it.")
-    elif busy >= 0.5:
-        out.append(f"{lim} carries the run ({_pct(busy)} busy) without being saturated.")
-    else:
-        out.append(f"No unit is saturated: the busiest, {lim}, is busy only {_pct(busy)} of the run, "
-                   "so waiting, not throughput, sets the latency.")
-    cause, frac = largest_stall(units[lim])
-    if cause and frac >= 0.01:
-        state = "blocked" if units[lim].get("blocked", 0.0) >= frac - 1e-9 and frac > 0 \
-            and units[lim].get("starved", 0.0) < frac - 1e-9 else "starved"
-        why = f"{lim} is {state} {_pct(frac)} of the run, most of it waiting on {cause_text(cause)}"
-        if cause in MEMORY:
-            why += "; the memory system, not the arithmetic, holds it back"
-        elif cause.endswith(BACKPRESSURE_SUFFIX):
-            why += "; a larger buffer or limit would let the memory run further ahead"
-        elif cause == "layer_dependency":
-            why += "; layers follow each other, so this is latency that more hardware alone does not remove"
-        out.append(why + ".")
-    # the largest stall anywhere, when another unit waits far more
-    worst = max(((n, *largest_stall(u)) for n, u in units.items()), key=lambda t: t[2])
-    # waiting on an upstream unit is structural; memory waits and back-pressure are worth naming
-    if worst[0] != lim and worst[1] and worst[2] >= max(0.25, frac + 0.15) \
-            and (worst[1] in MEMORY or worst[1].endswith(BACKPRESSURE_SUFFIX)):
-        out.append(f"The largest stall of any unit is {worst[0]} waiting on {cause_text(worst[1])} "
-                   f"({_pct(worst[2])} of the run).")
-    b = d["bounds"]
-    rf = b["roofline_cycles"] / d["cycles"] if d["cycles"] else 0.0
+def limit_text(doc):
+    """One or two sentences on what limits the run, from the classification."""
+    v = verdict_of(doc)
+    u = doc["units"]
+    kind, res, crit = v["limit"], v["resource"], v["critical_unit"]
+    pct = fm.pct
+    if kind in ("compute", "unit"):
+        busy = u[res]["busy"]
+        lanes = v.get("lanes") if kind == "compute" else None
+        out = (f"{UNIT_TEXT.get(res, res).capitalize()} limits it: {res} is busy {pct(busy)} of the run"
+               + (", saturated" if busy >= 0.85 else ""))
+        if lanes and v.get("lane_underuse"):
+            dims = ", ".join(map(str, lanes["head_dims"]))
+            return out + (f", but its multipliers do useful work only {pct(lanes['utilization'].get(res, 0.0))} "
+                          f"of the run: head width {dims} fills {pct(lanes['fill'])} of its {lanes['lanes']} "
+                          "lanes in a pass (lane under-use). Lanes matched to the head width (dot.lanes) would do "
+                          f"the same work in fewer cycles, as would {LEVER[res]}.")
+        out += f"; {LEVER.get(res, 'a faster ' + res)} would shorten it."
+        if lanes:
+            out += f" Its multipliers do useful work {pct(lanes['utilization'].get(res, 0.0))} of the run."
+        return out
+    share = pct(v["share"])
+    if kind == "memory_bandwidth":
+        return (f"DRAM bandwidth limits it: {crit} waits on memory {share} of its time while the pool delivers "
+                f"{pct(v['dram_share_of_peak'])} of its peak; more bandwidth (dram.channels, "
+                "dram.channel_gbps) or less traffic would shorten it.")
+    if kind == "memory_latency":
+        return (f"Memory latency limits it: {crit} waits on memory {share} of its time (mostly "
+                f"{cause_text(res)}) while DRAM delivers only {pct(v['dram_share_of_peak'])} of its peak, so "
+                "the pool's throughput is not the problem; more requests in flight or issuing ahead "
+                "(fetch.inflight, fetch.issue_window) would hide more of it.")
+    if kind == "buffer":
+        return (f"Buffer room limits it: {crit} waits {share} of its time on {cause_text(res)}; a larger "
+                "buffer or limit would let the memory run further ahead.")
+    return (f"A dependency limits it: {crit} waits {share} of its time on {cause_text(res)}, results that "
+            "must be ready before the next work can start; more of a resource alone does not remove it"
+            + (" (an issue window lets the fetch unit work past such waits)." if res in ("softmax", "topk")
+               else "."))
+
+
+def roofline_text(doc):
+    v = verdict_of(doc)
+    rf, bound = v["roofline_fraction"], v["bound"]
     if rf >= 0.8:
-        out.append(f"It runs at {_pct(rf)} of its {b['bound']}-bound roofline: little is left to win "
-                   f"without raising the {b['bound']} peak.")
-    elif rf >= 0.4:
-        out.append(f"It reaches {_pct(rf)} of its {b['bound']}-bound roofline.")
-    else:
-        out.append(f"It is far from its {b['bound']}-bound roofline ({_pct(rf)}): dependencies, latency "
-                   "and pipeline fill cost more than raw "
-                   + ("bandwidth." if b["bound"] == "memory" else "compute."))
-    if b["bound"] == "compute" and lim == "dram" or b["bound"] == "memory" and lim in ("dot", "dot_pv"):
-        out.append(f"Note that the closed-form bound says {b['bound']}-bound while {lim} is the busiest "
-                   "unit in the simulation.")
+        return (f"It runs at {fm.pct(rf)} of its closed-form {bound}-bound roofline: little is left to win "
+                f"without raising the {bound} peak.")
+    return f"It reaches {fm.pct(rf)} of its closed-form {bound}-bound roofline."
+
+
+def sensitivity_text(sens):
+    """The measured best change for one run, from its sensitivity rows (see :mod:`.sensitivity`)."""
+    if not sens:
+        return ""
+    ok = [s for s in sens if s.get("speedup") is not None]
+    if not ok:
+        return "No sensitivity rerun succeeded."
+    best = max(ok, key=lambda s: s["speedup"])
+    if best["speedup"] <= 1 + TIE:
+        return (f"No single change of the {len(ok)} measured buys more than {TIE:.0%}: the best, "
+                f"{best['change']}, gives {fm.show(best['speedup'], 'speedup')}.")
+    text = (f"Measured best change: {best['change']} ({best['setting']}) makes it "
+            f"{fm.show(best['speedup'], 'speedup')} faster")
+    if best.get("energy_ratio") is not None:
+        text += f" at {fm.show(best['energy_ratio'], 'speedup')} the energy"
+    return text + "."
+
+
+def energy_text(doc):
+    e = doc.get("energy")
+    if not e or not e.get("total_pj"):
+        return ""
+    top = max(e["units_pj"], key=e["units_pj"].get)
+    share = e["units_pj"][top] / e["total_pj"]
+    what = "DRAM traffic" if top == "dram" else UNIT_TEXT.get(top, "the " + top.replace("_", " "))
+    out = f"Energy {fm.show(e['total_pj'], 'energy')}"
+    if "static_pj" in e:
+        out += f" ({fm.pct(e['static_pj'] / e['total_pj'])} static leakage)"
+    out += f"; {what} takes {fm.pct(share)} of it."
+    return out
+
+
+def write_verdict(run, peers=(), sensitivity=None):
+    """A short paragraph for ``run``; ``peers``: comparable runs; ``sensitivity``: its measured reruns."""
+    d = run.doc
+    parts = [limit_text(d), roofline_text(d), sensitivity_text(sensitivity), rank_text(run, peers),
+             energy_text(d)]
+    return " ".join(p for p in parts if p)
+
+
+def _ranked(runs, key):
+    """``(best, tied, ranked)``: runs sorted by ``key``; ``tied`` those within TIE of the best."""
+    ranked = sorted(runs, key=key)
+    lo = key(ranked[0])
+    tied = [r for r in ranked if key(r) <= lo * (1 + TIE)]
+    return ranked[0], tied, ranked
+
+
+def _seconds(r):
+    return r.doc["seconds"]
+
+
+def _energy(r):
+    return r.doc["energy"]["total_pj"]
+
+
+def rank_text(run, peers):
+    """Where ``run`` stands among ``peers`` on latency (ties are ties)."""
     peers = [p for p in peers if p is not run]
-    if peers:
-        allr = [run] + peers
-        best = min(allr, key=lambda r: r.doc["seconds"])
-        if best is run:
-            second = min(peers, key=lambda r: r.doc["seconds"])
-            out.append(f"Fastest of the {len(allr)} configs on {run.trace_label}, "
-                       f"{second.doc['seconds'] / d['seconds']:.2f}x ahead of {second.config_label}.")
+    if not peers:
+        return ""
+    allr = [run] + peers
+    best, tied, ranked = _ranked(allr, _seconds)
+    if run in tied and len(tied) > 1:
+        others = [r.config_label for r in tied if r is not run]
+        return f"Tied within {TIE:.0%} for fastest with {', '.join(others)}."
+    if run is best:
+        second = ranked[1]
+        return (f"Fastest of the {len(allr)} configs on {run.trace_label}, "
+                f"{fm.show(_seconds(second) / _seconds(run), 'speedup')} ahead of {second.config_label}.")
+    lead = ", ".join(r.config_label for r in tied)
+    return (f"{fm.show(_seconds(run) / _seconds(best), 'speedup')} the latency of the fastest "
+            f"({lead}).")
+
+
+def group_summary(group):
+    """The heading sentence of a group of comparable runs: fastest and least energy, ties as ties."""
+    if len(group) < 2:
+        return ""
+    out = []
+    best, tied, ranked = _ranked(group, _seconds)
+    if len(tied) > 1:
+        out.append(f"tied within {TIE:.0%} for fastest: {', '.join(r.config_label for r in tied)} "
+                   f"({fm.show(_seconds(best), 'latency')})")
+    else:
+        out.append(f"fastest {best.config_label} ({fm.show(_seconds(best), 'latency')}, "
+                   f"{fm.show(_seconds(ranked[1]) / _seconds(best), 'speedup')} ahead of {ranked[1].config_label})")
+    if all(r.doc.get("energy", {}).get("total_pj") for r in group):
+        low, tied_e, ranked_e = _ranked(group, _energy)
+        if len(tied_e) > 1:
+            out.append(f"tied within {TIE:.0%} for least energy: {', '.join(r.config_label for r in tied_e)}")
         else:
-            out.append(f"{d['seconds'] / best.doc['seconds']:.2f}x the latency of the fastest config on "
-                       f"{run.trace_label} ({best.config_label}).")
-        if all("energy" in r.doc for r in allr):
-            low = min(allr, key=lambda r: r.doc["energy"]["total_pj"])
-            if low is not run and low.doc["energy"]["total_pj"] > 0:
-                out.append(f"It spends {d['energy']['total_pj'] / low.doc['energy']['total_pj']:.2f}x the energy "
-                           f"of the most frugal ({low.config_label}).")
-            elif low is run:
-                out.append("It uses the least energy of them.")
-    e = d.get("energy")
-    if e and e["total_pj"] > 0:
-        top = max(e["units_pj"], key=e["units_pj"].get)
-        share = e["units_pj"][top] / e["total_pj"]
-        if share >= 0.5:
-            what = "DRAM traffic" if top == "dram" else top.replace("_", " ")
-            out.append(f"{what[0].upper() + what[1:]} is {_pct(share)} of its energy.")
-    return " ".join(out)
+            out.append(f"least energy {low.config_label} ({fm.show(_energy(low), 'energy')}, "
+                       f"{fm.show(_energy(ranked_e[1]) / _energy(low), 'speedup')} less than "
+                       f"{ranked_e[1].config_label})")
+    return "; ".join(out) + "."
+
+
+def grouped_verdicts(groups, sensitivity=None, front=None):
+    """``[(title, summary, [(run, verdict)], [others])]`` per group, runs sorted by latency.
+
+    A group of more than :data:`FULL_VERDICTS` runs gets full verdicts for the
+    runs in ``front(group)`` (its Pareto points) and the fastest ones up to
+    that number; the rest are listed in ``others`` (a short line each).
+    """
+    sensitivity = sensitivity or {}
+    out = []
+    for key, group in groups.items():
+        ranked = sorted(group, key=_seconds)
+        if len(ranked) > FULL_VERDICTS:
+            keep = list(front(ranked)) if front else []
+            for r in ranked:
+                if len(keep) >= FULL_VERDICTS:
+                    break
+                if r not in keep:
+                    keep.append(r)
+            full = [r for r in ranked if r in keep]
+            rest = [r for r in ranked if r not in keep]
+        else:
+            full, rest = ranked, []
+        title = f"{ranked[0].trace_label} ({len(ranked)} run{'s' if len(ranked) > 1 else ''}, sorted by latency)"
+        verdicts = [(r, write_verdict(r, group, sensitivity.get(id(r)))) for r in full]
+        out.append((title, group_summary(ranked), verdicts, rest))
+    return out
+
+
+def short_line(run):
+    """One line for a run outside the full verdicts: latency, limit, energy."""
+    d = run.doc
+    text = f"{fm.show(d['seconds'], 'latency')}, {verdict_of(d)['label']}"
+    if d.get("energy"):
+        text += f", {fm.show(d['energy']['total_pj'], 'energy')}"
+    return text

@@ -297,15 +297,25 @@ def format_run(run):
     for trace, per in s["best"].items():
         lines.append(f"  trace {trace}:")
         for name, b in per.items():
-            lines.append(f"    best {name:<12} {b['value']:>16,.6g}   {_point(b['point'], axes)}   [{b['key'][:12]}]")
+            lines.append(f"    best {name:<12} {_objective_text(name, b['value']):>18}   {_point(b['point'], axes)}   "
+                         f"[{b['key'][:12]}]")
         pts = s["pareto_points"][trace]
         lines.append(f"    Pareto front: {len(pts)} point(s)")
         for d in pts[:20]:
-            vals = "  ".join(f"{k} {v:,.6g}" for k, v in d["objectives"].items())
+            vals = "  ".join(f"{k} {_objective_text(k, v)}" for k, v in d["objectives"].items())
             lines.append(f"      {vals}   {_point(d['point'], axes)}")
         if len(pts) > 20:
             lines.append(f"      ... {len(pts) - 20} more in summary.json")
     return "\n".join(lines)
+
+
+# objective -> the quantity every output shows it as (sim.formats)
+_SHOWN = {"cycles": "cycles", "energy": "energy", "area": "area", "dram_bytes": "bytes"}
+
+
+def _objective_text(name, v):
+    from ..formats import number, show
+    return show(v, _SHOWN[name]) if name in _SHOWN else number(v)
 
 
 def _point(point, axes):

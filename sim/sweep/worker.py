@@ -10,41 +10,12 @@ fingerprints the simulator's own source, so results from a different build
 never pass for this one's (in the cache key, and checked on remote workers).
 """
 
-import hashlib
-import os
 from collections import OrderedDict
 
-from .. import __version__
+from ..build import build_id
 
 TRACE_CACHE_SIZE = 8
 _traces = OrderedDict()
-_build = None
-
-# The code a result depends on (the sweep, report and CLI code do not change results).
-_BUILD_PARTS = ("__init__.py", "arch.py", "result.py", "errors.py", "engine", "model",
-                os.path.join("trace", "format.py"))
-
-
-def build_id():
-    """``VERSION+HASH``: the package version and a hash of the simulating source files."""
-    global _build
-    if _build is None:
-        root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-        h = hashlib.sha256()
-        files = []
-        for part in _BUILD_PARTS:
-            p = os.path.join(root, part)
-            if os.path.isdir(p):
-                for d, _subdirs, names in os.walk(p):
-                    files += [os.path.join(d, n) for n in names if n.endswith(".py")]
-            elif os.path.exists(p):
-                files.append(p)
-        for f in sorted(files, key=lambda f: os.path.relpath(f, root).replace(os.sep, "/")):
-            h.update(os.path.relpath(f, root).replace(os.sep, "/").encode())
-            with open(f, "rb") as fh:
-                h.update(hashlib.sha256(fh.read()).digest())
-        _build = f"{__version__}+{h.hexdigest()[:12]}"
-    return _build
 
 
 def _trace(path, digest):
