@@ -752,6 +752,18 @@ def _add_report(sub):
                    help="draw the timeline from this attnsim run --timeline file instead of replaying")
     p.add_argument("--no-replay", action="store_true", help="do not simulate again (no timeline figure)")
     p.add_argument("--title", type=_NAME, help="report title")
+    p.add_argument("--sensitivity", default="auto", choices=("auto", "all", "front", "fastest", "off"),
+                   help="rerun runs with each main resource doubled and halved: all, each trace's Pareto "
+                        "(front) or fastest run, off; auto (default): all when within --sensitivity-limit")
+    p.add_argument("--sensitivity-limit", type=_int_in(0, 10 ** 7), metavar="N",
+                   help="most extra simulations sensitivity may start (default 240)")
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--jobs", type=_int_in(1, 1024), metavar="N",
+                       help="local processes for the sensitivity reruns (default: every core)")
+    where.add_argument("--cluster", metavar="tcp://HOST:PORT", type=_text("a scheduler address"),
+                       help="run the sensitivity reruns on a Dask scheduler")
+    where.add_argument("--workers", type=_int_in(1, 1024), metavar="N",
+                       help="run them on a local Dask cluster of N workers")
     _common(p)
     p.set_defaults(handler=_cmd_report)
 
@@ -768,9 +780,15 @@ def _cmd_report(args):
             raise OptionError("--out", "--out", args.out, f"is or holds the input {r}; choose another folder")
     with _Ticker(args, "building the report"):
         runs, manifest = report_from_paths(args.results, args.out, force=args.force, timeline_path=args.timeline,
-                                           replay=not args.no_replay, title=args.title)
+                                           replay=not args.no_replay, title=args.title,
+                                           sensitivity=args.sensitivity, sensitivity_limit=args.sensitivity_limit,
+                                           jobs=args.jobs, cluster=args.cluster, workers=args.workers,
+                                           echo=lambda m: _say(args, f"attnsim: {m}", file=sys.stderr))
     for w in manifest["warnings"]:
         _warn(args, w)
+    for n in manifest["notes"]:
+        if n.startswith("Sensitivity not measured"):
+            _say(args, f"attnsim: note: {n}", file=sys.stderr)
     _say(args, f"{len(runs)} runs, {len(manifest['figures'])} figures -> {os.path.join(args.out, 'report.html')}")
     return 0
 

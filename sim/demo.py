@@ -20,6 +20,7 @@ from . import bundled
 
 CONFIGS = ("edge", "mid", "server", "hbm2_stack")
 TIMELINE_CONFIG = "mid"
+SENSITIVITY = "fastest"   # which runs the demo measures sensitivity for (see sim.report.sensitivity)
 REPORT_TITLE = "attnsim demo: bundled traces on bundled datapaths"
 
 
@@ -157,11 +158,20 @@ def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=Fals
     sim_s = time.perf_counter() - t0
     if not runs:
         raise RuntimeError("every demo run failed: " + "; ".join(f["error"] for f in failed))
+    # what to change, measured on the fastest datapath of each trace
+    from .report import sensitivity as S
+    from .report.inputs import label_runs
+
+    label_runs(runs)
+    t1 = time.perf_counter()
+    table, sens_notes = S.measure(S.select(runs, SENSITIVITY), jobs=workers)
+    sens_s = time.perf_counter() - t1
     timeline = next((r for r in runs if r.doc["arch"]["name"] == TIMELINE_CONFIG), runs[0])
     build_report(runs, out_dir, failed=failed, force=True, timeline_run=timeline, title=REPORT_TITLE,
                  notes=[f"Traces: {kind} ({', '.join(n for n, _ in traces)}); datapaths: "
-                        f"{', '.join(configs)}. Simulation took {sim_s:.1f} s of wall time."],
-                 inputs=[p or n for n, p in traces] + cfgs)
+                        f"{', '.join(configs)}. Simulation took {sim_s:.1f} s of wall time; the sensitivity "
+                        f"reruns ({SENSITIVITY} run of each trace) {sens_s:.1f} s."] + sens_notes,
+                 inputs=[p or n for n, p in traces] + cfgs, sensitivity=table)
     return runs, failed, out_dir, sim_s
 
 

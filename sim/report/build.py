@@ -27,6 +27,7 @@ import numpy as np
 matplotlib.use("Agg")  # noqa: E402  (no display; before anything touches pyplot)
 
 from .. import __version__  # noqa: E402
+from .. import formats as fm  # noqa: E402
 from . import figures as F  # noqa: E402
 from .inputs import ReportError, group_key, label_runs  # noqa: E402
 from .tables import COLUMNS, display_rows, markdown_table, table_rows  # noqa: E402
@@ -143,13 +144,19 @@ def figure_runs(runs):
 
 
 def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_run=None, title=None,
-                 notes=(), inputs=()):
-    """Write the report for ``runs`` into ``out_dir``; return the manifest (a dict)."""
+                 notes=(), inputs=(), sensitivity=None):
+    """Write the report for ``runs`` into ``out_dir``; return the manifest (a dict).
+
+    ``sensitivity``: ``{id(run): rows}`` measured by :func:`.sensitivity.measure`, or None.
+    """
     _prepare_out(out_dir, force)
     warnings = list(warnings) + label_runs(runs)
+    sensitivity = sensitivity or {}
     fruns, fnote = figure_runs(runs)
     figs = [F.stall_breakdown(fruns), F.utilization(fruns), F.roofline(fruns), F.latency(runs),
             F.pareto(runs), F.energy_area(fruns)]
+    if sensitivity:
+        figs.append(F.sensitivity(runs, sensitivity))
     skipped = []
     with_iv = [r for r in runs if r.intervals]
     if timeline_run is None and with_iv:
@@ -179,7 +186,7 @@ def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_ru
     groups = {}
     for r in runs:
         groups.setdefault(group_key(r), []).append(r)
-    verdicts = grouped_verdicts(groups, front=_front)
+    verdicts = grouped_verdicts(groups, sensitivity=sensitivity, front=_front)
     ctx = {
         "title": title or "attnsim comparison report",
         "made": datetime.datetime.now().strftime("%Y-%m-%d %H:%M"),
@@ -187,6 +194,7 @@ def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_ru
         "runs": runs, "failed": list(failed), "warnings": warnings, "notes": list(notes)
         + ([fnote] if fnote else []) + [f"No {s} figure: {why}" for s, why in _skip_reasons(skipped, runs)],
         "figs": figs, "verdicts": verdicts, "inputs": list(inputs),
+        "sensitivity": [(r, sensitivity[id(r)]) for r in runs if sensitivity.get(id(r))],
         "timeline_run": timeline_run,
     }
     for name, text in (("report.md", _markdown(ctx)), ("report.html", _html(ctx))):
@@ -199,11 +207,29 @@ def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_ru
                           "simulator_version": r.version, "simulator_build": r.build,
                           "engine": dict(zip(("grain_rows", "issue_window", "seed"), r.engine_settings))}
                          for r in runs],
-                "warnings": warnings, "failed": list(failed), "inputs": list(inputs)}
+                "warnings": warnings, "notes": ctx["notes"], "failed": list(failed), "inputs": list(inputs)}
     with open(os.path.join(out_dir, "manifest.json"), "w", encoding="utf-8") as fh:
         json.dump(manifest, fh, indent=2)
         fh.write("\n")
     return manifest
+
+
+SENS_INTRO = ("Each row is one rerun of the run's trace with one resource changed; speedup = the baseline's "
+              "cycles (the recorded config simulated again by this build) / the rerun's cycles, energy = the "
+              "rerun's energy / the baseline's. Measured, not estimated.")
+
+
+def sensitivity_rows(items):
+    """``(header, rows)`` of the sensitivity table for Markdown and HTML."""
+    header = ["run", "change", "setting", "status", fm.header("speedup", "speedup"),
+              fm.header("energy", "speedup")]
+    rows = []
+    for r, sens in items:
+        for row in sens:
+            rows.append([r.label, row["change"], row["setting"], row["status"] if not row["error"] else
+                         f"n/a: {row['error']}", fm.value(row["speedup"], "speedup") if row["speedup"] else "-",
+                         fm.value(row["energy_ratio"], "speedup") if row["energy_ratio"] else "-"])
+    return header, rows
 
 
 def _front(runs):
@@ -254,6 +280,10 @@ def _markdown(c):
             out += ["", f"The other {len(rest)} runs, by latency:", ""]
             out += [f"- {r.label}: {short_line(r)}" for r in rest]
         out += [""]
+    if c["sensitivity"]:
+        out += ["## What to change (measured)", "", SENS_INTRO, "",
+                markdown_table(*sensitivity_rows(c["sensitivity"]), text_columns=4), "",
+                "Exact values: `data/sensitivity.csv`.", ""]
     if c["failed"]:
         out += ["## Failed points", ""] + [f"- {f['origin']}: {f.get('trace')} {f.get('point')}: {f.get('error')}"
                                            for f in c["failed"]] + [""]
@@ -317,6 +347,14 @@ def _html(c):
         if rest:
             parts.append(f"<p>The other {len(rest)} runs, by latency:</p><ul>"
                          + "".join(f"<li>{e(r.label)}: {e(short_line(r))}</li>" for r in rest) + "</ul>")
+    if c["sensitivity"]:
+        header, rows = sensitivity_rows(c["sensitivity"])
+        parts.append(f"<h2>What to change (measured)</h2><p>{e(SENS_INTRO)}</p><table id='sensitivity'><tr>"
+                     + "".join(f"<th>{e(h)}</th>" for h in header) + "</tr>")
+        for row in rows:
+            parts.append("<tr>" + "".join(f"<td{' class=num' if i >= 4 else ''}>{e(str(v))}</td>"
+                                          for i, v in enumerate(row)) + "</tr>")
+        parts.append("</table><p class='meta'>Exact values in data/sensitivity.csv.</p>")
     if c["failed"]:
         parts.append("<h2>Failed points</h2><ul>" + "".join(
             f"<li>{e(f['origin'])}: {e(str(f.get('trace')))} {e(str(f.get('point')))}: {e(str(f.get('error')))}</li>"
@@ -384,14 +422,28 @@ def attach_timeline(runs, path):
                       "simulator version and cycles)")
 
 
-def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=True, title=None):
-    """``attnsim report``: load inputs, get one run's intervals, write the report."""
+def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=True, title=None,
+                      sensitivity="auto", sensitivity_limit=None, jobs=None, cluster=None, workers=None,
+                      echo=None):
+    """``attnsim report``: load inputs, measure sensitivity, get one run's intervals, write the report.
+
+    Everything that can refuse (the output folder, a sensitivity request over
+    its limit) is checked before any simulation starts.
+    """
+    from . import sensitivity as S
     from .inputs import load_inputs
 
     runs, failed = load_inputs(paths)
     if os.path.exists(out_dir) and os.listdir(out_dir) and not force:
         raise ReportError("--out", "out", out_dir, "folder exists; pass --force to overwrite it")
-    notes = []
+    label_runs(runs)   # groups (per trace) decide which runs sensitivity picks
+    picked, sens_note = S.choose(runs, sensitivity, S.DEFAULT_LIMIT if sensitivity_limit is None
+                                 else sensitivity_limit)
+    notes = [sens_note] if sens_note else []
+    table = {}
+    if picked:
+        table, more = S.measure(picked, jobs=jobs, cluster=cluster, workers=workers, echo=echo)
+        notes += more
     timeline_run = None
     if timeline_path:
         timeline_run = attach_timeline(runs, timeline_path)
@@ -402,5 +454,5 @@ def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=Tr
         if runs[0].intervals:
             timeline_run = runs[0]
     manifest = build_report(runs, out_dir, failed=failed, force=force, timeline_run=timeline_run, title=title,
-                            notes=notes, inputs=list(paths))
+                            notes=notes, inputs=list(paths), sensitivity=table)
     return runs, manifest

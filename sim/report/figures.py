@@ -11,6 +11,7 @@ import math
 
 import numpy as np
 from matplotlib.figure import Figure as MplFigure
+from matplotlib.ticker import FixedFormatter, FixedLocator, NullLocator
 
 from .. import formats as fmt
 from ..limits import verdict_of
@@ -531,3 +532,77 @@ def timeline(run, max_channels=16):
                   "between layers or on the selector, an upstream unit) and the busy time of each DRAM "
                   "channel's data bus." + (f" {more} more channels not drawn." if more > 0 else ""),
                   fig, ["lane", "t0_us", "t1_us", "state", "cause"], rows)
+
+
+SENS_COLORS = {"x2": "#2a9d8f", "/2": "#e76f51", "match": "#457b9d"}
+SENS_TEXT = {"x2": "doubled", "/2": "halved", "match": "lanes matched to the head width"}
+MAX_SENSITIVITY_PANELS = 12
+SPEEDUP_TICKS = (0.1, 0.25, 0.5, 0.67, 0.8, 1, 1.25, 1.5, 2, 4, 10)
+
+
+def sensitivity(runs, table):
+    """Tornado chart per run: the measured speedup of each resource doubled and halved.
+
+    ``table``: ``{id(run): rows}`` from :func:`sim.report.sensitivity.measure`.
+    Bars start at 1 (no change) on a log axis: right of it faster, left slower.
+    Resources are sorted by their largest effect; a change that is not a valid
+    datapath (or failed) is marked "n/a".
+    """
+    rr = [r for r in runs if table.get(id(r))][:MAX_SENSITIVITY_PANELS]
+    cols = min(len(rr), 2)
+    nrows = math.ceil(len(rr) / cols)
+    fig = _fig(7.0 * cols + 1.5, 3.3 * nrows + 0.6)
+    axs = fig.subplots(nrows, cols, squeeze=False).ravel()
+    rows = []
+    span = 1.05
+    for r in runs:
+        for row in table.get(id(r), []):
+            rows.append([r.label, row["resource"], row["direction"], row["setting"], row["status"], row["cycles"],
+                         row["seconds"], row["energy_pj"], row["speedup"], row["energy_ratio"], row["error"] or ""])
+            if row["speedup"]:
+                span = max(span, row["speedup"], 1 / row["speedup"])
+    span *= 1.25
+    for ax, r in zip(axs, rr):
+        by_res = {}
+        for row in table[id(r)]:
+            by_res.setdefault(row["resource"], {})[row["direction"]] = row
+        order = sorted(by_res, key=lambda k: -max((abs(math.log(x["speedup"])) for x in by_res[k].values()
+                                                   if x["speedup"]), default=0.0))
+        for y, res in enumerate(order):
+            for direction, row in by_res[res].items():
+                s = row["speedup"]
+                if s is None:
+                    ax.text(1.0, y + (0.2 if direction == "/2" else -0.2), f"{SENS_TEXT[direction]}: n/a",
+                            ha="center", va="center", fontsize=6.5, color="#777")
+                    continue
+                yy = y + {"x2": -0.19, "/2": 0.19}.get(direction, 0.0)
+                ax.barh(yy, s - 1.0, left=1.0, height=0.36 if direction != "match" else 0.6,
+                        color=SENS_COLORS[direction], align="center")
+                ax.text(s * (1.03 if s >= 1 else 1 / 1.03), yy, fmt.show(s, "speedup"), va="center",
+                        ha="left" if s >= 1 else "right", fontsize=7)
+        ax.axvline(1.0, color="black", lw=0.8)
+        ax.set_xscale("log")
+        ax.set_xlim(1 / span, span)
+        ticks = [t for t in SPEEDUP_TICKS if 1 / span <= t <= span]
+        ax.xaxis.set_major_locator(FixedLocator(ticks))
+        ax.xaxis.set_major_formatter(FixedFormatter([f"{t:g}x" for t in ticks]))
+        ax.xaxis.set_minor_locator(NullLocator())
+        ax.set_yticks(range(len(order)))
+        ax.set_yticklabels(order, fontsize=8)
+        ax.set_ylim(len(order) - 0.5, -0.5)
+        ax.set_title(r.label, fontsize=9)
+        ax.set_xlabel("speedup (baseline cycles / cycles), log scale", fontsize=8)
+        ax.grid(axis="x", which="both", alpha=0.25)
+    for ax in axs[len(rr):]:
+        ax.set_visible(False)
+    from matplotlib.patches import Patch
+    fig.legend(handles=[Patch(color=c, label=SENS_TEXT[k]) for k, c in SENS_COLORS.items()],
+               loc="outside lower center", ncol=3, fontsize=8, frameon=False)
+    more = len([r for r in runs if table.get(id(r))]) - len(rr)
+    return Figure("sensitivity", "What to change: measured sensitivity",
+                  "For each run, the same trace simulated again with one resource doubled (right of 1: faster) "
+                  "or halved; the bar is the measured speedup, baseline cycles over cycles, the baseline "
+                  "rerun by the same build. n/a: the change is not a valid datapath (the data file says why)."
+                  + (f" {more} more runs in the data file." if more > 0 else ""),
+                  fig, ["run", "resource", "direction", "setting", "status", "cycles", "seconds", "energy_pj",
+                        "speedup", "energy_ratio", "error"], rows)

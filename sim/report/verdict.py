@@ -89,6 +89,12 @@ def sensitivity_text(sens):
     if best["speedup"] <= 1 + TIE:
         return (f"No single change of the {len(ok)} measured buys more than {TIE:.0%}: the best, "
                 f"{best['change']}, gives {fm.show(best['speedup'], 'speedup')}.")
+    tied = sorted((s for s in ok if s["speedup"] >= best["speedup"] / (1 + TIE)), key=lambda s: -s["speedup"])
+    if len(tied) > 1:
+        return (f"Measured best changes, tied within {TIE:.0%}: "
+                + "; ".join(f"{s['change']} ({s['setting']}) {fm.show(s['speedup'], 'speedup')} faster"
+                            + (f" at {fm.show(s['energy_ratio'], 'speedup')} the energy"
+                               if s.get("energy_ratio") is not None else "") for s in tied) + ".")
     text = (f"Measured best change: {best['change']} ({best['setting']}) makes it "
             f"{fm.show(best['speedup'], 'speedup')} faster")
     if best.get("energy_ratio") is not None:

@@ -39,7 +39,8 @@ def _simulate(config, trace):
     from ..arch import load_arch
     from .. import simulate
 
-    return simulate(load_arch(config, source="sweep point"), trace).to_dict()
+    # no per-unit intervals: the document is the same without them, and a point needs only the document
+    return simulate(load_arch(config, source="sweep point"), trace, keep_intervals=False).to_dict()
 
 
 def run_point(config, trace_path, trace_digest):

@@ -1,0 +1,287 @@
+"""Sensitivity: what to change, measured by simulating the change.
+
+For a run of the report, the same trace is simulated again with each main
+resource doubled and halved -- multipliers, memory bandwidth, key buffer,
+value buffer, softmax lanes, top-k comparators, the fetch unit's issue
+window -- and, when its head widths leave lanes idle, with ``dot.lanes``
+matched to the head width. The speedup of each (baseline cycles / variant
+cycles, the baseline simulated again by the same build) and its energy ratio
+are what the table, the tornado chart and the verdict's "measured best
+change" show. Nothing here is estimated.
+
+The reruns go through the sweep machinery: :func:`sim.sweep.worker.run_point`
+on the serial, local-pool or Dask backends of :mod:`sim.sweep.backends`, so a
+report's sensitivity runs wherever sweeps run, on the same plain inputs.
+
+Which runs get it (``mode``): ``all``; ``front`` (each trace's latency/energy
+Pareto runs); ``fastest`` (each trace's fastest run); ``off``; ``auto`` -- all
+runs when that takes at most ``limit`` extra simulations, none otherwise (the
+report says how many it would take). An explicit mode over the limit is
+refused with the count and the ways to cut it.
+"""
+
+import copy
+import os
+import time
+
+from ..limits import lane_figures
+from .inputs import ReportError, group_key
+
+MODES = ("auto", "all", "front", "fastest", "off")
+DEFAULT_LIMIT = 240          # extra simulations a report may start without being asked for more
+ISSUE_WINDOW_FROM_ZERO = 4   # "doubling" an issue window of 0 opens it to this many transactions
+
+
+class Resource:
+    """A main resource: its name, its knob, whether it is a whole number."""
+
+    def __init__(self, name, path, whole):
+        self.name = name
+        self.path = path
+        self.whole = whole
+
+
+RESOURCES = (
+    Resource("multipliers", "dot.multipliers", True),
+    Resource("memory bandwidth", "dram.channel_gbps", False),
+    Resource("key buffer", "buffers.key_kib", False),
+    Resource("value buffer", "buffers.value_kib", False),
+    Resource("softmax lanes", "softmax.lanes", True),
+    Resource("top-k comparators", "topk.comparators", True),
+    Resource("issue window", "fetch.issue_window", True),
+)
+LANES = "lanes = head width"
+
+
+class Variant:
+    """One rerun of one run: ``overrides`` on its recorded config, or why it cannot be made."""
+
+    def __init__(self, run, resource, direction, path=None, old=None, new=None, error=None):
+        self.run = run
+        self.resource = resource      # a Resource name, LANES, or "baseline"
+        self.direction = direction    # "x2", "/2", "match" or "as recorded"
+        self.path = path
+        self.old = old
+        self.new = new
+        self.error = error            # a reason when the variant is not a valid datapath
+        self.config = None
+        self.outcome = None           # (cycles, seconds, energy_pj) once measured
+
+    @property
+    def setting(self):
+        if not self.path:
+            return "as recorded"
+        return f"{self.path} {_num(self.old)} -> {_num(self.new)}" if self.new is not None else \
+            f"{self.path} {_num(self.old)}"
+
+    @property
+    def change(self):
+        if self.direction == "match":
+            return "lanes matched to the head width"
+        verb = "doubling" if self.direction == "x2" else "halving"
+        return f"{verb} the {self.resource}"
+
+
+def _num(v):
+    return f"{v:g}" if isinstance(v, float) else str(v)
+
+
+def _config_of(run):
+    """The run's recorded config with the engine settings it was simulated with."""
+    cfg = copy.deepcopy(run.doc["arch"]["config"])
+    grain, _window, seed = run.engine_settings
+    cfg.setdefault("engine", {})
+    if grain is not None:
+        cfg["engine"]["grain_rows"] = grain
+    if seed is not None:
+        cfg["engine"]["seed"] = seed
+    return cfg
+
+
+def _get(cfg, path):
+    node = cfg
+    for part in path.split("."):
+        node = node[part]
+    return node
+
+
+def plan_variants(run):
+    """The variants of ``run`` (baseline first); invalid ones carry their reason."""
+    from ..arch import load_arch
+    from ..errors import InputError
+
+    base = _config_of(run)
+    out = [Variant(run, "baseline", "as recorded")]
+    out[0].config = base
+    for res in RESOURCES:
+        old = _get(base, res.path)
+        for direction in ("x2", "/2"):
+            if direction == "x2":
+                new = old * 2 if old else (ISSUE_WINDOW_FROM_ZERO if res.path == "fetch.issue_window" else None)
+            else:
+                new = old // 2 if res.whole else old / 2
+                if new == old:
+                    new = None
+            out.append(Variant(run, res.name, direction, res.path, old, new,
+                               error=None if new is not None else f"{res.path} is {_num(old)}: nothing to halve"))
+    lanes = lane_figures(run.doc)
+    if lanes and lanes["mismatch"]:
+        by_dim = run.doc["compute"]["macs_by_head_dim"]
+        width = int(max(by_dim, key=by_dim.get))
+        out.append(Variant(run, LANES, "match", "dot.lanes", lanes["lanes"], width))
+    for v in out[1:]:
+        if v.error:
+            continue
+        cfg = copy.deepcopy(base)
+        section, _, key = v.path.rpartition(".")
+        cfg[section][key] = v.new
+        try:
+            load_arch(cfg, source="sensitivity")
+        except InputError as exc:
+            v.error = f"not a valid datapath: {exc.field} = {exc.value!r}: {exc.expected}"
+            continue
+        v.config = cfg
+    return out
+
+
+def replayable(run):
+    """None, or why ``run`` cannot be simulated again (its trace is not at hand)."""
+    path = run.trace_path
+    if not path or not os.path.exists(path):
+        return f"its trace ({path}) is not at hand"
+    return None
+
+
+def select(runs, mode):
+    """The runs ``mode`` asks sensitivity for."""
+    if mode in ("all", "auto"):
+        return list(runs)
+    if mode == "off":
+        return []
+    groups = {}
+    for r in runs:
+        groups.setdefault(group_key(r), []).append(r)
+    out = []
+    for rr in groups.values():
+        if mode == "fastest":
+            out.append(min(rr, key=lambda r: r.doc["seconds"]))
+        else:
+            from .figures import pareto_front
+            pts = [(r.doc["seconds"], r.doc.get("energy", {}).get("total_pj", 0.0)) for r in rr]
+            out += [rr[i] for i in pareto_front(pts)]
+    return [r for r in runs if r in out]
+
+
+def extra_runs(runs):
+    """Simulations sensitivity would start for ``runs`` (valid variants and baselines)."""
+    return sum(sum(1 for v in plan_variants(r) if v.config is not None) for r in runs if not replayable(r))
+
+
+def choose(runs, mode, limit):
+    """``(selected runs, note or None)``; refuses an explicit mode over ``limit``."""
+    if mode not in MODES:
+        raise ReportError("--sensitivity", "sensitivity", mode, "expected one of " + ", ".join(MODES))
+    if limit < 0:
+        raise ReportError("--sensitivity-limit", "sensitivity_limit", limit, "expected a whole number >= 0")
+    picked = select(runs, mode)
+    n = extra_runs(picked)
+    if n <= limit:
+        return picked, None
+    ways = []
+    for alt in ("front", "fastest"):
+        if alt != mode:
+            rr = select(runs, alt)
+            if len(rr) < len(picked):
+                ways.append(f"--sensitivity {alt} ({len(rr)} runs, {extra_runs(rr)} extra simulations)")
+    ways.append(f"--sensitivity-limit {n}")
+    text = (f"sensitivity for {len(picked)} runs takes {n} extra simulations, more than the limit of {limit}; "
+            f"limit it with {' or '.join(ways)}")
+    if mode == "auto":
+        return [], f"Sensitivity not measured: {text} (or --sensitivity off to silence this)."
+    raise ReportError("--sensitivity", "sensitivity", mode, text)
+
+
+class _Task:
+    """A variant on its way through a sweep backend (``key`` and ``args`` are what backends read)."""
+
+    __slots__ = ("key", "args", "variant")
+
+    def __init__(self, key, variant):
+        self.key = key
+        self.variant = variant
+        run = variant.run
+        self.args = (variant.config, run.trace_path, run.digest)
+
+
+def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None):
+    """Simulate every valid variant of ``runs``; return ``{id(run): [row, ...]}`` and notes.
+
+    A row: ``resource, direction, change, setting, path, old, new, status,
+    cycles, seconds, energy_pj, speedup, energy_ratio, error``.
+    """
+    from ..build import build_id
+    from ..sweep.backends import make_backend
+
+    notes = []
+    plans = {}
+    for r in runs:
+        why = replayable(r)
+        if why:
+            notes.append(f"No sensitivity for {r.label}: {why}.")
+            continue
+        plans[id(r)] = plan_variants(r)
+    todo = [v for vs in plans.values() for v in vs if v.config is not None]
+    if not todo:
+        return {}, notes
+    own = backend is None
+    if own:
+        backend = make_backend(jobs=jobs if jobs is not None else (1 if len(todo) < 4 else None),
+                               cluster=cluster, workers=workers)
+    if echo:
+        echo(f"sensitivity: {len(todo)} simulations for {len(plans)} runs on {backend.name}")
+    t0 = time.perf_counter()
+    mine = build_id()
+    queue = list(enumerate(todo))
+    try:
+        while queue or backend.pending():
+            while queue and backend.pending() < backend.slots:
+                i, v = queue.pop(0)
+                backend.submit(_Task(f"sens-{i}", v))
+            for task, (status, payload, build) in backend.wait():
+                v = task.variant
+                if status != "ok":
+                    v.error = payload
+                elif build != mine:
+                    v.error = f"simulated by build {build}, not {mine}"
+                else:
+                    v.outcome = (payload["cycles"], payload["seconds"],
+                                 payload.get("energy", {}).get("total_pj"))
+    finally:
+        if own:
+            backend.close()
+    if echo:
+        echo(f"sensitivity: done in {time.perf_counter() - t0:.1f} s")
+    out = {}
+    for key, vs in plans.items():
+        base = vs[0]
+        run = base.run
+        if base.outcome is None:
+            notes.append(f"No sensitivity for {run.label}: its baseline rerun failed ({base.error}).")
+            continue
+        if base.outcome[0] != run.doc["cycles"]:
+            notes.append(f"Sensitivity of {run.label} is measured against a rerun of {base.outcome[0]:,} cycles "
+                         f"(the document says {run.doc['cycles']:,}: another build made it).")
+        out[key] = [_row(v, base) for v in vs[1:]]
+    return out, notes
+
+
+def _row(v, base):
+    row = {"resource": v.resource, "direction": v.direction, "change": v.change, "setting": v.setting,
+           "path": v.path, "old": v.old, "new": v.new, "status": "ok" if v.outcome else "not run",
+           "cycles": None, "seconds": None, "energy_pj": None, "speedup": None, "energy_ratio": None,
+           "error": v.error}
+    if v.outcome:
+        cycles, seconds, energy = v.outcome
+        row.update(cycles=cycles, seconds=seconds, energy_pj=energy, speedup=base.outcome[0] / cycles,
+                   energy_ratio=energy / base.outcome[2] if energy and base.outcome[2] else None, error=None)
+    return row
