@@ -11,12 +11,12 @@ import math
 
 import numpy as np
 from matplotlib.figure import Figure as MplFigure
+from matplotlib.lines import Line2D
 from matplotlib.ticker import FixedFormatter, FixedLocator, NullLocator
 
 from .. import formats as fmt
 from ..limits import verdict_of
 from .inputs import group_key
-from .verdict import limiting_unit
 
 BUSY, IDLE = "#2a9d8f", "#d9d9d9"
 CAUSE_COLORS = ["#e76f51", "#f4a261", "#e9c46a", "#8d6cab", "#457b9d", "#c05780", "#7fb069", "#b0a18f"]
@@ -114,27 +114,34 @@ def utilization(runs):
     """Heat map: busy fraction of every unit in every run."""
     units = _units(runs)
     m = np.array([[r.doc["units"][u]["busy"] if u in r.doc["units"] else np.nan for u in units] for r in runs])
-    fig = _fig(1.3 * len(units) + 4.5, 0.34 * len(runs) + 1.6)
+    fig = _fig(1.3 * len(units) + 4.5, 0.42 * len(runs) + 1.6)
     ax = fig.subplots()
     im = ax.imshow(m, vmin=0, vmax=1, cmap="viridis", aspect="auto")
     ax.set_xticks(range(len(units)))
     ax.set_xticklabels(units)
     ax.set_yticks(range(len(runs)))
     ax.set_yticklabels([r.label for r in runs], fontsize=8)
-    for i in range(len(runs)):
-        for j in range(len(units)):
+    for i, r in enumerate(runs):
+        lanes = verdict_of(r.doc).get("lanes") or {}
+        useful = lanes.get("utilization", {})
+        for j, u in enumerate(units):
             if not math.isnan(m[i, j]):
-                ax.text(j, i, f"{m[i, j]:.0%}", ha="center", va="center", fontsize=8,
+                text = fmt.pct(m[i, j]) + (f"\n{fmt.pct(useful[u])} useful" if u in useful else "")
+                ax.text(j, i, text, ha="center", va="center", fontsize=7 if u in useful else 8,
                         color="white" if m[i, j] < 0.6 else "black")
             else:
                 ax.text(j, i, "no such unit", ha="center", va="center", fontsize=7, color="#888")
     cb = fig.colorbar(im, ax=ax, fraction=0.04)
     cb.set_label("busy share of the run")
     ax.set_xlabel("unit")
-    rows = [[r.label, u, r.doc["units"][u]["busy"]] for r in runs for u in units if u in r.doc["units"]]
+    rows = [[r.label, u, r.doc["units"][u]["busy"],
+             (verdict_of(r.doc).get("lanes") or {}).get("utilization", {}).get(u)]
+            for r in runs for u in units if u in r.doc["units"]]
     return Figure("utilization", "Per-unit utilization",
-                  "Busy share of each unit's time per run (1 = busy every cycle of the run).",
-                  fig, ["run", "unit", "busy"], rows)
+                  "Busy share of each unit's time per run (1 = busy every cycle of the run); for the dot arrays "
+                  "also the useful share: useful MACs / (multipliers x cycles), lower when head widths leave "
+                  "lanes idle.",
+                  fig, ["run", "unit", "busy", "useful_macs"], rows)
 
 
 def _peaks(doc):
@@ -245,65 +252,139 @@ def _numeric_axes(runs):
         for k, v in r.point.items():
             if isinstance(v, (int, float)) and not isinstance(v, bool):
                 axes.setdefault(k, set()).add(v)
-    return [k for k, vs in sorted(axes.items()) if len(vs) > 1]
+    return [k for k, vs in axes.items() if len(vs) > 1]   # in the order the points name them
+
+
+def linked_axes(runs, axes):
+    """``axes`` grouped so that axes whose values move together (one-to-one over the runs) share a group."""
+    groups = []
+    for a in axes:
+        for g in groups:
+            b = g[0]
+            pairs = {(r.point.get(a), r.point.get(b)) for r in runs if a in r.point and b in r.point}
+            if len({x for x, _ in pairs}) == len(pairs) == len({y for _, y in pairs}):
+                g.append(a)
+                break
+        else:
+            groups.append([a])
+    return groups
+
+
+def _value_text(v):
+    return f"{v:g}" if isinstance(v, float) else str(v)
+
+
+def _log_if_spread(ax, values, axis="y", factor=10.0):
+    """A log scale when the values span more than ``factor`` (decades read better on it)."""
+    vals = [v for v in values if v and v > 0 and math.isfinite(v)]
+    if vals and max(vals) / min(vals) > factor:
+        (ax.set_yscale if axis == "y" else ax.set_xscale)("log")
+        return True
+    return False
+
+
+def _power_of_two(v):
+    return float(v).is_integer() and v > 0 and (int(v) & (int(v) - 1)) == 0
+
+
+def group_names(groups):
+    """A legend name per comparable group: the trace, plus build / engine settings where traces repeat."""
+    traces = [g[0] for g in groups]
+    out = {}
+    for g in groups:
+        name = g[0]
+        if traces.count(name) > 1:
+            extra = ", ".join(x for x in (g[1], g[2]) if x)
+            name = f"{name} [{extra}]"
+        out[g] = name
+    return out
 
 
 def latency(runs):
-    """Latency against each numeric sweep axis (or against the config), one line per trace."""
-    axes = _numeric_axes(runs)
+    """Latency against each sweep axis (linked axes as one), or per config as points (no sweep axis).
+
+    Configs without a sweep axis are categories: drawn as points, never joined
+    by lines. A sweep axis is ordered: the best point at each value is joined.
+    Latency is on a log scale when it spans more than a decade.
+    """
+    axes = linked_axes(runs, _numeric_axes(runs))
     groups = []
     for r in runs:
         if group_key(r) not in groups:
             groups.append(group_key(r))
     gcol = _color_map(groups, SERIES)
+    gname = group_names(groups)
     rows = []
+    lat = [r.doc["seconds"] * 1e6 for r in runs]
     if axes:
-        fig = _fig(5.2 * min(len(axes), 3), 4.4 * math.ceil(len(axes) / 3))
-        axs = fig.subplots(math.ceil(len(axes) / 3), min(len(axes), 3), squeeze=False).ravel()
-        for ax, axis in zip(axs, axes):
+        n = len(axes)
+        fig = _fig(5.0 * min(n, 3) + 2.6, 4.2 * math.ceil(n / 3))
+        axs = fig.subplots(math.ceil(n / 3), min(n, 3), squeeze=False).ravel()
+        for ax, keys in zip(axs, axes):
+            name = " / ".join(keys)
             for g in groups:
                 best = {}
                 for r in runs:
-                    if group_key(r) == g and axis in r.point:
-                        v = r.point[axis]
+                    if group_key(r) == g and all(k in r.point for k in keys):
+                        v = tuple(r.point[k] for k in keys)
                         if v not in best or r.doc["seconds"] < best[v].doc["seconds"]:
                             best[v] = r
                 xv = sorted(best)
-                ax.plot(xv, [best[v].doc["seconds"] * 1e6 for v in xv], marker="o", color=gcol[g], label=g[0])
-                rows += [[axis, v, g[0], best[v].doc["seconds"] * 1e6, best[v].label] for v in xv]
-            ax.set_xscale("log", base=2)
-            ax.set_xlabel(axis)
+                ys = [best[v].doc["seconds"] * 1e6 for v in xv]
+                if len(keys) == 1:
+                    xs = [v[0] for v in xv]
+                else:
+                    xs = list(range(len(xv)))
+                ax.plot(xs, ys, marker="o", color=gcol[g], label=gname[g])
+                rows += [[name, " / ".join(_value_text(x) for x in v), gname[g], y, best[v].label]
+                         for v, y in zip(xv, ys)]
+            if len(keys) == 1:
+                vals = [r.point[keys[0]] for r in runs if keys[0] in r.point]
+                if min(vals) > 0 and max(vals) / min(vals) >= 4:
+                    ax.set_xscale("log", base=2 if all(_power_of_two(v) for v in vals) else 10)
+            else:
+                vals = sorted({tuple(r.point[k] for k in keys) for r in runs if all(k in r.point for k in keys)})
+                ax.set_xticks(range(len(vals)))
+                ax.set_xticklabels([" / ".join(_value_text(x) for x in v) for v in vals], rotation=20,
+                                   ha="right", fontsize=8)
+            _log_if_spread(ax, lat)
+            ax.set_xlabel(name + (" (linked: they move together)" if len(keys) > 1 else ""))
             ax.set_ylabel("latency (us)")
-            ax.grid(alpha=0.3)
-        for ax in axs[len(axes):]:
+            ax.grid(alpha=0.3, which="both")
+        for ax in axs[n:]:
             ax.set_visible(False)
-        axs[0].legend(fontsize=8, title="trace", title_fontsize=8)
-        caption = ("Latency of the best point at each value of a sweep axis (best over the other axes), "
-                   "one line per trace.")
+        _legend_outside(axs[min(n, 3) - 1], fontsize=8, title="trace", title_fontsize=8)
+        caption = ("Latency of the best point at each value of a sweep axis (best over the other axes), one "
+                   "line per trace; axes a sweep moves together (linked) share one panel, labelled with both "
+                   "values.")
     else:
         configs = []
         for r in runs:
             if r.config_label not in configs:
                 configs.append(r.config_label)
-        fig = _fig(max(6.5, 1.2 * len(configs) + 3), 4.6)
+        fig = _fig(max(6.5, 0.9 * len(configs) + 4.5), 4.6)
         ax = fig.subplots()
         x = np.arange(len(configs))
-        for g in groups:
-            ys = []
-            for c in configs:
+        width = 0.7 / max(len(groups), 1)
+        for i, g in enumerate(groups):
+            xs, ys = [], []
+            for j, c in enumerate(configs):
                 rr = [r for r in runs if group_key(r) == g and r.config_label == c]
-                ys.append(rr[0].doc["seconds"] * 1e6 if rr else np.nan)
                 if rr:
-                    rows.append(["config", c, g[0], rr[0].doc["seconds"] * 1e6, rr[0].label])
-            ax.plot(x, ys, marker="o", color=gcol[g], label=g[0])
+                    xs.append(j + (i - (len(groups) - 1) / 2) * width)
+                    ys.append(rr[0].doc["seconds"] * 1e6)
+                    rows.append(["config", c, gname[g], ys[-1], rr[0].label])
+            ax.scatter(xs, ys, marker=MARKERS[i % len(MARKERS)], color=gcol[g], s=45, zorder=3,
+                       edgecolor="black", linewidth=0.5, label=gname[g])
         ax.set_xticks(x)
         ax.set_xticklabels(configs, rotation=20, ha="right")
-        ax.set_yscale("log")
-        ax.set_ylabel("latency (us, log scale)")
+        log = _log_if_spread(ax, lat)
+        ax.set_ylabel("latency (us" + (", log scale)" if log else ")"))
         ax.set_xlabel("config")
-        ax.grid(alpha=0.3, which="both")
-        ax.legend(fontsize=8, title="trace", title_fontsize=8)
-        caption = "Latency of each config, one line per trace (no sweep axis among the inputs)."
+        ax.grid(alpha=0.3, which="both", axis="y")
+        _legend_outside(ax, fontsize=8, title="trace", title_fontsize=8)
+        caption = ("Latency of each config (no sweep axis among the inputs): one point per trace, configs are "
+                   "categories, so points are not joined.")
     return Figure("latency", "Latency across the design space", caption, fig,
                   ["axis", "value", "trace", "latency_us", "run"], rows)
 
@@ -339,13 +420,13 @@ def pareto(runs):
         fa = set(pareto_front(list(zip(lat, ar))))
         for ax, ys, front in ((ax_e, en, fe), (ax_a, ar, fa)):
             f = sorted(front, key=lambda i: lat[i])
-            ax.plot([lat[i] for i in f], [ys[i] for i in f], color=gcol[g], lw=1.6, label=g[0] if ax is ax_e else None, zorder=2)
+            ax.plot([lat[i] for i in f], [ys[i] for i in f], color=gcol[g], lw=1.6, zorder=2)
             for i, r in enumerate(rr):
                 ax.scatter([lat[i]], [ys[i]], color=gcol[g], marker=cmark[r.config_label], zorder=3,
                            s=60 if i in front else 35, alpha=1.0 if i in front else 0.45,
                            edgecolor="black" if i in front else "none", linewidth=0.6)
         for i, r in enumerate(rr):
-            rows.append([g[0], r.label, lat[i], en[i], ar[i], i in fe, i in fa])
+            rows.append([group_names(groups)[g], r.label, lat[i], en[i], ar[i], i in fe, i in fa])
     for ax, yl in ((ax_e, "energy per run (uJ)"), (ax_a, "area proxy (mm^2)")):
         ax.set_xscale("log")
         ax.set_yscale("log")
@@ -354,11 +435,13 @@ def pareto(runs):
         ax.grid(alpha=0.3, which="both")
     ax_e.set_title("latency vs energy", fontsize=10)
     ax_a.set_title("latency vs area proxy", fontsize=10)
-    ax_e.legend(fontsize=8, title="trace (line: Pareto front)", title_fontsize=8)
+    gname = group_names(groups)
+    handles = [Line2D([], [], color=gcol[g], lw=1.6, label=f"{gname[g]} (line: Pareto front)") for g in groups]
     if len(configs) <= len(MARKERS):
-        for c in configs:
-            ax_a.scatter([], [], marker=cmark[c], color="#888", edgecolor="black", label=c)
-        ax_a.legend(fontsize=8, title="config", title_fontsize=8)
+        handles += [Line2D([], [], ls="", marker=cmark[c], color="#888", markeredgecolor="black", label=c)
+                    for c in configs]
+    fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 4), fontsize=8,
+               frameon=False)
     return Figure("pareto", "Pareto fronts: latency against energy and against area",
                   "Every run is a point (colour = trace, shape = config); per trace the line joins the "
                   "Pareto front, the runs no other run on that trace beats on both axes (drawn solid). "
@@ -391,7 +474,7 @@ def energy_area(runs):
         left += v
         rows += [["energy_uj", r.label, u, r.doc["energy"]["units_pj"].get(u, 0.0) / 1e6] for r in rr]
     for i, t in enumerate(totals):
-        ax_e.text(1.01, i, f"{t / 1e6:,.3g} uJ", va="center", fontsize=8)
+        ax_e.text(1.01, i, fmt.show(t, "energy"), va="center", fontsize=8)
     ax_e.set_yticks(range(len(rr)))
     ax_e.set_yticklabels([r.label for r in rr], fontsize=8)
     ax_e.invert_yaxis()
@@ -402,15 +485,22 @@ def energy_area(runs):
     ax_e.grid(axis="x", alpha=0.3)
     cl = list(configs)
     left = np.zeros(len(cl))
+    atot = np.array([configs[c].doc["area"]["total_mm2"] for c in cl], dtype=float)
     for u in aunits:
-        v = np.array([configs[c].doc["area"]["units_mm2"].get(u, 0.0) for c in cl])
+        mm2 = np.array([configs[c].doc["area"]["units_mm2"].get(u, 0.0) for c in cl])
+        v = np.divide(mm2, atot, out=np.zeros_like(mm2), where=atot > 0)
         ax_a.barh(range(len(cl)), v, left=left, color=col[u], label=u, height=0.75)
         left += v
         rows += [["area_mm2", c, u, configs[c].doc["area"]["units_mm2"].get(u, 0.0)] for c in cl]
+    for i, t in enumerate(atot):
+        ax_a.text(1.01, i, fmt.show(t, "area"), va="center", fontsize=8)
     ax_a.set_yticks(range(len(cl)))
     ax_a.set_yticklabels(cl, fontsize=8)
     ax_a.invert_yaxis()
-    ax_a.set_xlabel("area proxy (mm^2)")
+    ax_a.set_xlim(0, 1.3)
+    ax_a.set_xticks([0, 0.25, 0.5, 0.75, 1])
+    ax_a.set_xticklabels(["0", "25%", "50%", "75%", "100%"])
+    ax_a.set_xlabel("share of the config's area proxy (total at the right)")
     ax_a.grid(axis="x", alpha=0.3)
     ax_e.set_title("energy by unit", fontsize=10)
     ax_a.set_title("area proxy by unit", fontsize=10)
@@ -423,7 +513,8 @@ def energy_area(runs):
     return Figure("energy_area", "Energy and area by unit",
                   "Left: each run's energy split over the units that spend it (operations, clock and "
                   "leakage of each unit), its total at the bar's end. Right: each config's area proxy split over "
-                  "its units.", fig, ["quantity", "run_or_config", "unit", "value"], rows)
+                  "its units, its total at the bar's end (totals span decades, so shares are drawn).",
+                  fig, ["quantity", "run_or_config", "unit", "value"], rows)
 
 
 def bandwidth_series(run, bins=40):
@@ -446,92 +537,129 @@ def bandwidth_series(run, bins=40):
 
 
 def bandwidth(runs):
-    """Delivered DRAM bandwidth over time, one line per run that carries intervals."""
+    """Delivered DRAM bandwidth over time, one panel per run on its own time axis, its peak always shown."""
     rr = [r for r in runs if r.intervals and r.intervals.get("dram")]
-    fig = _fig(9, 4.4)
-    ax = fig.subplots()
+    n = max(len(rr), 1)
+    cols = 2 if n > 1 else 1
+    fig = _fig(6.0 * cols, 2.7 * math.ceil(n / cols) + 0.4)
+    axs = fig.subplots(math.ceil(n / cols), cols, squeeze=False).ravel()
     rows = []
-    col = _color_map([r.label for r in rr], SERIES)
-    top = 0.0
-    series = []
-    for r in rr:
+    for ax, r in zip(axs, rr):
         t, g = bandwidth_series(r)
-        series.append((r, t, g))
-        top = max(top, float(g.max()) if len(g) else 0.0)
-    for r, t, g in series:
         peak = r.doc["dram"]["peak_gbps"]
-        ax.step(t, g, where="post", color=col[r.label], lw=1.4, label=f"{r.label} (peak {peak:,.0f} GB/s)")
-        if peak <= 2.5 * top:
-            ax.axhline(peak, color=col[r.label], lw=0.8, ls="--", alpha=0.7)
+        ax.step(t, g, where="post", color=SERIES[0], lw=1.4)
+        ax.axhline(peak, color="#d62728", lw=1.0, ls="--")
+        ax.text(0.995, peak, f"peak {fmt.show(peak, 'bandwidth')}", transform=ax.get_yaxis_transform(),
+                ha="right", va="bottom", fontsize=7, color="#d62728")
+        ax.set_ylim(0, max(peak, float(g.max()) if len(g) else 0.0) * 1.15)
+        ax.set_xlim(0, r.doc["seconds"] * 1e6)
+        ax.set_title(f"{r.label}: mean {fmt.show(r.doc['dram']['achieved_gbps'], 'bandwidth')}", fontsize=9)
+        ax.set_xlabel("time (us)", fontsize=8)
+        ax.set_ylabel("GB/s", fontsize=8)
+        ax.grid(alpha=0.3)
         rows += [[r.label, float(a), float(b)] for a, b in zip(t, g)]
-    ax.set_xlabel("time (us)")
-    ax.set_ylabel("delivered bandwidth (GB/s)")
-    ax.set_ylim(bottom=0)
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=8)
+    for ax in axs[len(rr):]:
+        ax.set_visible(False)
     return Figure("bandwidth", "Memory bandwidth over time",
-                  "Delivered DRAM bandwidth per time bin (channel data-bus busy time x channel rate), "
-                  "dashed: the pool's peak where it fits the scale (every peak is in the legend). Only runs "
-                  "simulated with intervals appear.",
+                  "Delivered DRAM bandwidth per time bin (channel data-bus busy time x channel rate), one panel "
+                  "per run on its own time axis (runs differ in length by decades); dashed: the pool's peak, "
+                  "always inside the axis. Only runs simulated with intervals appear.",
                   fig, ["run", "t_us", "gbps"], rows)
 
 
-STATE_COLORS = {"busy": BUSY, "idle": IDLE, "blocked": "#d62728"}
-STARVED_COLORS = {"memory": "#457b9d", "dependency": "#8d6cab", "upstream": "#f4a261", "other": "#e9c46a"}
+# what a unit's interval was, in words, and its colour (fixed, so every timeline reads alike)
+TIMELINE_KEYS = {
+    "busy": BUSY,
+    "waits on memory": "#457b9d",
+    "waits for the previous layer": "#8d6cab",
+    "waits for a softmax result": "#f4a261",
+    "waits for a top-k result": "#e9c46a",
+    "waits for the array": "#7fb069",
+    "blocked: buffer full": "#d62728",
+    "blocked: in-flight or reorder limit": "#c05780",
+    "blocked: next unit's input full": "#b0a18f",
+    "waits: other": OTHER,
+    "idle (done)": IDLE,
+}
+_MEMORY = {"memory_latency", "memory_queue", "memory_transfer", "memory_bandwidth", "reorder", "fetch",
+           "fetch_issue"}
 
 
-def _starved_family(cause):
-    if cause in ("memory_latency", "memory_queue", "memory_transfer", "memory_bandwidth", "reorder"):
-        return "memory"
-    if cause in ("layer_dependency", "topk", "start"):
-        return "dependency"
-    if cause in ("dot", "dot_pv", "softmax", "fetch", "fetch_issue"):
-        return "upstream"
-    return "other"
+def timeline_key(state, cause):
+    """The legend entry of one interval: what the unit was doing or waiting for."""
+    if state in ("busy", "idle"):
+        return "busy" if state == "busy" else "idle (done)"
+    c = cause or ""
+    if c.endswith("_buffer_full"):
+        return "blocked: buffer full"
+    if c in ("inflight_limit", "reorder_full"):
+        return "blocked: in-flight or reorder limit"
+    if c.endswith("_input_full"):
+        return "blocked: next unit's input full"
+    if c in _MEMORY:
+        return "waits on memory"
+    return {"layer_dependency": "waits for the previous layer", "softmax": "waits for a softmax result",
+            "topk": "waits for a top-k result", "dot": "waits for the array",
+            "dot_pv": "waits for the array"}.get(c, "waits: other")
+
+
+def _min_width(spans, width):
+    """Spans at least ``width`` wide, so an interval narrower than a pixel still shows."""
+    return [(a, max(w, width)) for a, w in spans]
 
 
 def timeline(run, max_channels=16):
-    """Per-unit busy and stalled intervals of one run, plus the DRAM channels' busy time."""
+    """Per-unit intervals of one run coloured by what the unit waited for, plus each DRAM channel's busy time.
+
+    A blocked interval names what was full (a buffer, the in-flight limit, the
+    next unit's input), a starved one what the unit waited for (memory, the
+    previous layer, a softmax or top-k result, the array) -- for the fetch unit
+    as for any other. Intervals narrower than a pixel are drawn one pixel wide.
+    """
     iv = run.intervals
     d = run.doc
     us = 1.0 / (d["arch"]["config"]["clock_ghz"] * 1e3)
     units = [u for u in UNIT_ORDER if u in iv and u != "dram"]
     chans = list(iv.get("dram", []))[:max_channels]
     lanes = units + [f"dram ch{c}" for c in range(len(chans))]
-    fig = _fig(12, 0.36 * len(lanes) + 2.0)
+    width_in, dpi = 12.0, 110
+    fig = _fig(width_in, 0.36 * len(lanes) + 2.2)
     ax = fig.subplots()
+    span_us = d["cycles"] * us
+    pixel = span_us / (width_in * dpi * 0.8)   # the axes take at most 80 % of the figure's width
     rows = []
+    seen = set()
     for i, u in enumerate(units):
         groups = {}
         for t0, t1, state, cause in iv[u]:
-            key = f"starved: {_starved_family(cause)}" if state == "starved" else state
+            key = timeline_key(state, cause)
             groups.setdefault(key, []).append((t0 * us, (t1 - t0) * us))
-            rows.append([u, t0 * us, t1 * us, state, cause or ""])
+            rows.append([u, t0 * us, t1 * us, state, cause or "", key])
         for key, spans in groups.items():
-            color = STARVED_COLORS[key.split(": ")[1]] if key.startswith("starved") else STATE_COLORS.get(key, OTHER)
-            ax.broken_barh(spans, (i - 0.4, 0.8), facecolors=color, linewidth=0)
+            seen.add(key)
+            ax.broken_barh(_min_width(spans, pixel), (i - 0.4, 0.8), facecolors=TIMELINE_KEYS[key], linewidth=0)
     for j, chan in enumerate(chans):
         spans = [(a * us, (b - a) * us) for a, b in chan]
-        ax.broken_barh(spans, (len(units) + j - 0.35, 0.7), facecolors=BUSY, linewidth=0)
-        rows += [[f"dram ch{j}", a * us, b * us, "busy", ""] for a, b in chan]
+        ax.broken_barh(_min_width(spans, pixel), (len(units) + j - 0.35, 0.7), facecolors=BUSY, linewidth=0)
+        rows += [[f"dram ch{j}", a * us, b * us, "busy", "", "busy"] for a, b in chan]
+        seen.add("busy")
     ax.set_yticks(range(len(lanes)))
     ax.set_yticklabels(lanes, fontsize=8)
     ax.invert_yaxis()
-    ax.set_xlim(0, d["cycles"] * us)
+    ax.set_xlim(0, span_us)
     ax.set_xlabel("time (us)")
     ax.grid(axis="x", alpha=0.3)
     from matplotlib.patches import Patch
-    handles = [Patch(color=BUSY, label="busy")] + [Patch(color=c, label=f"starved: {k}")
-                                                  for k, c in STARVED_COLORS.items()]
-    handles += [Patch(color=STATE_COLORS["blocked"], label="blocked"), Patch(color=IDLE, label="idle")]
-    fig.legend(handles=handles, loc="outside lower center", ncol=len(handles), fontsize=8, frameon=False)
-    ax.set_title(f"{run.label}: limiting unit {limiting_unit(d)}", fontsize=10)
+    handles = [Patch(color=c, label=k) for k, c in TIMELINE_KEYS.items() if k in seen]
+    fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 5), fontsize=8, frameon=False)
+    ax.set_title(f"{run.label}: limited by {verdict_of(d)['label']}", fontsize=10)
     more = len(iv.get("dram", [])) - len(chans)
     return Figure("timeline", f"Timeline of one run: {run.label}",
-                  "Each unit's state over the run (starved split by what it waited on: memory, a dependency "
-                  "between layers or on the selector, an upstream unit) and the busy time of each DRAM "
-                  "channel's data bus." + (f" {more} more channels not drawn." if more > 0 else ""),
-                  fig, ["lane", "t0_us", "t1_us", "state", "cause"], rows)
+                  "Each unit's state over the run, coloured by what it did or waited for (blocked: what was "
+                  "full; waiting: memory, the previous layer, a softmax or top-k result, the array), and the "
+                  "busy time of each DRAM channel's data bus. Intervals narrower than a pixel are drawn one "
+                  "pixel wide." + (f" {more} more channels not drawn." if more > 0 else ""),
+                  fig, ["lane", "t0_us", "t1_us", "state", "cause", "shown_as"], rows)
 
 
 SENS_COLORS = {"x2": "#2a9d8f", "/2": "#e76f51", "match": "#457b9d"}

@@ -57,9 +57,10 @@ def limit_text(doc):
                 "dram.channel_gbps) or less traffic would shorten it.")
     if kind == "memory_latency":
         return (f"Memory latency limits it: {crit} waits on memory {share} of its time (mostly "
-                f"{cause_text(res)}) while DRAM delivers only {pct(v['dram_share_of_peak'])} of its peak, so "
-                "the pool's throughput is not the problem; more requests in flight or issuing ahead "
-                "(fetch.inflight, fetch.issue_window) would hide more of it.")
+                f"{cause_text(res)}) while DRAM delivers only {pct(v['dram_share_of_peak'])} of its peak on "
+                "average: the waits are access latency, queueing and the transfer time of single transactions, "
+                "not a saturated pool; more requests in flight or issuing ahead (fetch.inflight, "
+                "fetch.issue_window) would hide more of it.")
     if kind == "buffer":
         return (f"Buffer room limits it: {crit} waits {share} of its time on {cause_text(res)}; a larger "
                 "buffer or limit would let the memory run further ahead.")
