@@ -15,7 +15,8 @@ _build = None
 
 # The code a result depends on (the sweep, report and CLI code do not change results).
 _BUILD_PARTS = ("__init__.py", "arch.py", "result.py", "limits.py", "errors.py", "engine", "model",
-                os.path.join("trace", "format.py"))
+                os.path.join("trace", "format.py"), os.path.join("trace", "step.py"),
+                os.path.join("trace", "npz.py"))
 
 
 def build_id():

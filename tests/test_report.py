@@ -131,7 +131,11 @@ def test_figure_data_equals_documents(report):
         want = u["stalls"][row["state"][6:]] if row["state"].startswith("stall:") else u[row["state"]]
         assert float(row["fraction"]) == want
     for row in read_csv(os.path.join(out, "data", "utilization.csv")):
-        assert float(row["busy"]) == by_label[row["run"]]["units"][row["unit"]]["busy"]
+        d = by_label[row["run"]]
+        assert float(row["busy"]) == d["units"][row["unit"]]["busy"]
+        if row["unit"] == "dot":   # both configs here share one array: useful MACs / (multipliers x cycles)
+            want = d["compute"]["macs"] / (d["arch"]["config"]["dot"]["multipliers"] * d["cycles"])
+            assert float(row["useful_macs"]) == pytest.approx(want, rel=1e-9)
     for row in read_csv(os.path.join(out, "data", "roofline.csv")):
         d = by_label[row["run"]]
         peak = d["arch"]["config"]["dot"]["multipliers"] * d["arch"]["config"]["clock_ghz"]
@@ -157,10 +161,20 @@ def test_figure_data_equals_documents(report):
                         (float(r["latency_us"]), float(r["energy_uj"])) !=
                         (float(row["latency_us"]), float(row["energy_uj"])) for r in same)
         assert (row["front_energy"] == "True") == (not dominated)
+    by_config = {a: d for (a, _t), d in docs.items()}
     for row in read_csv(os.path.join(out, "data", "energy_area.csv")):
         if row["quantity"] == "energy_uj":
             want = by_label[row["run_or_config"]]["energy"]["units_pj"][row["unit"]] / 1e6
             assert float(row["value"]) == pytest.approx(want, rel=1e-12)
+        else:
+            assert float(row["value"]) == by_config[row["run_or_config"]]["area"]["units_mm2"][row["unit"]]
+    # the sensitivity table: each speedup is the baseline rerun's cycles over the variant's
+    sens = read_csv(os.path.join(out, "data", "sensitivity.csv"))
+    assert sens
+    for row in sens:
+        if row["status"] == "ok":
+            d = by_label[row["run"]]
+            assert float(row["speedup"]) == pytest.approx(d["cycles"] / int(row["cycles"]), rel=1e-12)
 
 
 def test_verdicts_name_the_measured_limit(report):
@@ -365,3 +379,59 @@ def test_html_renders_in_headless_chromium(report, tmp_path):
     assert expected == len(man["figures"]) and loaded == expected
     for name in man["figures"]:
         assert f'id="fig-{name}"' in dom
+
+
+def test_ties_are_ties():
+    """Key buffers of 64, 128 and 256 KiB give the same cycles on this decode trace: no "fastest" among them."""
+    from sim.report.inputs import Run, group_key, label_runs
+    from sim.report.verdict import group_summary, write_verdict
+
+    base = sim.load_arch("arch_configs/mid.yaml")
+    runs = []
+    for point in ({"buffers.key_kib": 64}, {"buffers.key_kib": 128}, {"buffers.key_kib": 256},
+                  {"dot.multipliers": 256}):
+        doc = sim.simulate(base.with_overrides(point), TRACES[1], keep_intervals=False).to_dict()
+        runs.append(Run(doc, "t", point=point))
+    label_runs(runs)
+    assert len({group_key(r) for r in runs}) == 1
+    lat = sorted(r.doc["seconds"] for r in runs)
+    tied = [r for r in runs if r.doc["seconds"] <= lat[0] * 1.01]
+    assert len(tied) >= 2   # the premise: measured ties
+    summary = group_summary(runs)
+    assert summary.startswith("tied within 1% for fastest: ")
+    for r in tied:
+        assert r.config_label in summary.split(";")[0]
+        v = write_verdict(r, runs)
+        assert "Fastest" not in v and "Tied within 1% for fastest with" in v
+    # energy: a strict winner only beyond 1 %
+    e = sorted(r.doc["energy"]["total_pj"] for r in runs)
+    if e[1] > e[0] * 1.01:
+        assert "least energy " in summary and "tied within 1% for least energy" not in summary
+    else:
+        assert "tied within 1% for least energy" in summary
+
+
+def test_engine_settings_are_labelled_not_merged(tmp_path, capsys):
+    """One config and trace simulated at two grains and two seeds: four labels, a warning, the settings listed."""
+    paths = []
+    for grain, seed in ((1024, 0), (256, 0), (1024, 1), (1024, 0)):
+        p = tmp_path / f"g{grain}s{seed}_{len(paths)}.json"
+        assert main(["run", "--arch", "arch_configs/mid.yaml", "--trace", TRACES[1], "--grain-rows", str(grain),
+                     "--seed", str(seed), "--json", str(p)]) == 0
+        paths.append(str(p))
+    capsys.readouterr()
+    out = str(tmp_path / "rep")
+    assert main(["report", *paths, "--out", out, "--no-replay", "--sensitivity", "off"]) == 0
+    err = capsys.readouterr().err
+    assert "different engine settings" in err
+    rows = read_csv(os.path.join(out, "comparison.csv"))
+    labels = [r["config"] for r in rows]
+    assert len(set(labels)) == 4            # the exact duplicate is numbered, the others named by setting
+    assert any("grain 256" in lb for lb in labels) and any("seed 1" in lb for lb in labels)
+    md = open(os.path.join(out, "report.md")).read()
+    runs_section = md.split("## Runs")[1]
+    for p, r in zip(paths, rows):
+        d = json.load(open(p))
+        line = next(ln for ln in runs_section.splitlines() if ln.startswith(f"- {r['run']}: "))
+        assert (f"attnsim {d['simulator']['build']}, grain {d['engine']['grain_rows']} rows, "
+                f"issue window {d['arch']['config']['fetch']['issue_window']}, seed {d['engine']['seed']}") in line
