@@ -74,12 +74,24 @@ def _png(fig):
     return buf.getvalue()
 
 
-def _prepare_out(out_dir, force):
+def check_out(out_dir, force):
+    """Refuse an output folder the report may not write into; nothing is changed (run before any work)."""
     if os.path.exists(out_dir):
         if not os.path.isdir(out_dir):
             raise ReportError("--out", "out", out_dir, "expected a folder; a file of that name exists")
         if os.listdir(out_dir) and not force:
             raise ReportError("--out", "out", out_dir, "folder exists; pass --force to overwrite it")
+    root = os.path.realpath(out_dir)
+    for sub in ("figures", "data"):
+        p = os.path.join(out_dir, sub)
+        if os.path.lexists(p) and not _inside(root, os.path.realpath(p)):
+            raise ReportError("--out", sub, p,
+                              "is a symbolic link out of the output folder; remove it or choose another --out")
+
+
+def _prepare_out(out_dir, force):
+    check_out(out_dir, force)
+    if os.path.exists(out_dir):
         man = os.path.join(out_dir, "manifest.json")
         if os.path.exists(man):
             try:
@@ -92,12 +104,6 @@ def _prepare_out(out_dir, force):
                 p = _listed_file(root, rel)
                 if p is not None:
                     os.remove(p)
-    root = os.path.realpath(out_dir)
-    for sub in ("figures", "data"):
-        p = os.path.join(out_dir, sub)
-        if os.path.lexists(p) and not _inside(root, os.path.realpath(p)):
-            raise ReportError("--out", sub, p,
-                              "is a symbolic link out of the output folder; remove it or choose another --out")
     os.makedirs(os.path.join(out_dir, "figures"), exist_ok=True)
     os.makedirs(os.path.join(out_dir, "data"), exist_ok=True)
 
@@ -434,8 +440,7 @@ def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=Tr
     from .inputs import load_inputs
 
     runs, failed = load_inputs(paths)
-    if os.path.exists(out_dir) and os.listdir(out_dir) and not force:
-        raise ReportError("--out", "out", out_dir, "folder exists; pass --force to overwrite it")
+    check_out(out_dir, force)
     label_runs(runs)   # groups (per trace) decide which runs sensitivity picks
     picked, sens_note = S.choose(runs, sensitivity, S.DEFAULT_LIMIT if sensitivity_limit is None
                                  else sensitivity_limit)

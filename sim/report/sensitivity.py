@@ -238,7 +238,8 @@ def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None
         backend = make_backend(jobs=jobs if jobs is not None else (1 if len(todo) < 4 else None),
                                cluster=cluster, workers=workers)
     if echo:
-        echo(f"sensitivity: {len(todo)} simulations for {len(plans)} runs on {backend.name}")
+        echo(f"sensitivity: {len(todo)} simulations for {len(plans)} run{'s' if len(plans) > 1 else ''} "
+             f"on {backend.name}")
     t0 = time.perf_counter()
     mine = build_id()
     queue = list(enumerate(todo))
