@@ -176,6 +176,10 @@ def classify(doc):
     lanes = lane_figures(doc)
     busiest = max(units, key=lambda k: units[k]["busy"])
     ranked = sorted(((w, k) for k, w in shares.items()), reverse=True)
+    own = units[busiest]["stalls"]
+    own_cause = max(own, key=own.get) if own else None
+    worst = max(((n, c, f) for n, u in units.items() for c, f in u["stalls"].items()), key=lambda t: t[2],
+                default=(None, None, 0.0))
     return {
         "limit": kind,
         "resource": resource,
@@ -190,8 +194,13 @@ def classify(doc):
         "roofline_fraction": b["roofline_cycles"] / cycles if cycles else 0.0,
         "lanes": lanes,
         "lane_underuse": bool(lanes and lanes["mismatch"] and kind == "compute"),
+        # the raw figures earlier documents held (the busiest unit and its own largest stall; the
+        # largest stall of any unit); the limit above is what every output reads
         "busiest_unit": busiest,
         "busiest_utilization": units[busiest]["busy"],
+        "largest_stall": {"unit": busiest, "cause": own_cause, "fraction": own.get(own_cause, 0.0) if own_cause
+                          else 0.0},
+        "worst_stall": {"unit": worst[0], "cause": worst[1], "fraction": worst[2]},
     }
 
 
