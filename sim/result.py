@@ -264,7 +264,7 @@ def limit_sentence(doc):
     v = verdict_of(doc)
     u = doc["units"]
     crit = v["critical_unit"]
-    text = f"{v['label']}: {fm.pct(v['share'])} of {crit}'s time"
+    text = f"{v['label']}: {fm.pct(v['share'])} of the time of {crit}, the busiest compute unit"
     if v["limit"] in ("compute", "unit"):
         text = f"{v['label']}: {v['resource']} busy {fm.pct(u[v['resource']]['busy'])} of the run"
     elif v["limit"] in ("memory_bandwidth", "memory_latency"):

@@ -190,7 +190,7 @@ def test_verdicts_name_the_measured_limit(report):
         if cl["limit"] in ("compute", "unit"):
             assert f"{cl['resource']} is busy {d['units'][cl['resource']]['busy']:.0%}" in v
         else:
-            assert f"{cl['critical_unit']} waits" in v and f"{cl['share']:.0%}" in v
+            assert f"{cl['critical_unit']}, the busiest compute unit, waits" in v and f"{cl['share']:.0%}" in v
         texts.add(re.sub(r"[\d.,]+", "#", v))
     assert len(texts) > 1  # written from the data: not one sentence with numbers swapped
     # grouped per trace, each group sorted by latency
@@ -435,3 +435,32 @@ def test_engine_settings_are_labelled_not_merged(tmp_path, capsys):
         line = next(ln for ln in runs_section.splitlines() if ln.startswith(f"- {r['run']}: "))
         assert (f"attnsim {d['simulator']['build']}, grain {d['engine']['grain_rows']} rows, "
                 f"issue window {d['arch']['config']['fetch']['issue_window']}, seed {d['engine']['seed']}") in line
+
+
+def test_large_group_full_verdicts_for_the_best_and_a_sorted_list_for_the_rest(tmp_path):
+    """16 configs on one trace: at most FULL_VERDICTS full verdicts (its Pareto runs and the fastest), the
+    others one line each, every list sorted by latency."""
+    from sim.report.build import build_report
+    from sim.report.inputs import Run
+    from sim.report.verdict import FULL_VERDICTS
+
+    base = sim.load_arch("arch_configs/mid.yaml")
+    runs = []
+    for m in (128, 256, 512, 1024):
+        for k in (16, 32, 64, 128):
+            point = {"dot.multipliers": m, "buffers.key_kib": k}
+            doc = sim.simulate(base.with_overrides(point), TRACES[1], keep_intervals=False).to_dict()
+            runs.append(Run(doc, "sweep", point=point))
+    out = str(tmp_path / "big")
+    build_report(runs, out)
+    md = open(os.path.join(out, "report.md")).read()
+    section = md.split("## Verdicts")[1].split("\n## ")[0]
+    full = re.findall(r"^- \*\*(.+?)\*\*: ", section, re.M)
+    rest = re.findall(r"^- (.+?) / demo_decode: ([\d.,]+) us", section, re.M)
+    assert len(full) <= FULL_VERDICTS and len(full) + len(rest) == len(runs)
+    by_label = {r.label: r.doc["seconds"] for r in runs}
+    full_secs = [by_label[lbl] for lbl in full]
+    rest_secs = [by_label[f"{cfg} / demo_decode"] for cfg, _us in rest]
+    assert full_secs == sorted(full_secs) and rest_secs == sorted(rest_secs)
+    fastest = min(by_label.values())
+    assert any(s == fastest for s in full_secs)

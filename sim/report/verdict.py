@@ -51,6 +51,7 @@ def limit_text(doc):
             out += f" Its multipliers do useful work {pct(lanes['utilization'].get(res, 0.0))} of the run."
         return out
     share = pct(v["share"])
+    crit = f"{crit}, the busiest compute unit,"
     if kind == "memory_bandwidth":
         return (f"DRAM bandwidth limits it: {crit} waits on memory {share} of its time while the pool delivers "
                 f"{pct(v['dram_share_of_peak'])} of its peak; more bandwidth (dram.channels, "
