@@ -16,7 +16,10 @@ def test_quick_start_has_exactly_two_commands():
     cmds = _quick_start_commands()
     assert len(cmds) == 2
     assert all("\n" not in c for c in cmds)
-    assert cmds[0].startswith("pip install") and "attnsim" in cmds[0]
+    # the first command makes and uses a virtual environment, installs, and runs the demo
+    assert cmds[0].startswith("python3 -m venv ") and ". .venv/bin/activate" in cmds[0]
+    assert "pip install -e ." in cmds[0] and cmds[0].endswith("attnsim demo")
+    assert cmds[1].startswith(cmds[0].split(" && pip install")[0])   # the tests run in the same environment
 
 
 def test_ci_runs_the_readme_test_command_verbatim():
