@@ -70,20 +70,19 @@ class Sweep:
         import pandas as pd
 
         names = self.columns if columns is None else list(columns)
-        n = self.store.count(filters)
         kinds = [self.store.kinds.get(c, "text") for c in names]
-        arrays = [_column_array(k, n) for k in kinds]
-        at = 0
-        for block in self.store.rows(names, filters, chunk=CHUNK):
-            m = len(block)
-            for j, (kind, col) in enumerate(zip(kinds, zip(*block))):
-                if kind in ("int", "float"):
-                    arrays[j][at:at + m] = np.array(col, dtype=np.float64)   # None -> NaN
-                else:
-                    arrays[j][at:at + m] = col
-            at += m
-        if at != n:   # a run appended while we read: keep what was read
-            arrays = [a[:at] for a in arrays]
+        with self.store.snapshot():      # the count and the rows agree while a run appends
+            n = self.store.count(filters)
+            arrays = [_column_array(k, n) for k in kinds]
+            at = 0
+            for block in self.store.rows(names, filters, chunk=CHUNK):
+                m = len(block)
+                for j, (kind, col) in enumerate(zip(kinds, zip(*block))):
+                    if kind in ("int", "float"):
+                        arrays[j][at:at + m] = np.array(col, dtype=np.float64)   # None -> NaN
+                    else:
+                        arrays[j][at:at + m] = col
+                at += m
         data = {c: _finish(k, a) for c, k, a in zip(names, kinds, arrays)}
         return pd.DataFrame(data, columns=names, copy=False)
 

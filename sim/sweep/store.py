@@ -26,6 +26,7 @@ reading a front or a filtered table takes memory for the answer, not for the
 whole store. A version-1 folder (``points.jsonl``) is converted on open.
 """
 
+import contextlib
 import csv
 import fcntl
 import functools
@@ -277,6 +278,18 @@ class StoreReader:
     @property
     def axis_paths(self):
         return list(self.meta.get("axis_paths") or [])
+
+    @contextlib.contextmanager
+    def snapshot(self):
+        """Reads inside see one state of the store, even while a run appends to it."""
+        if self.conn.in_transaction:
+            yield
+            return
+        self.conn.execute("BEGIN")
+        try:
+            yield
+        finally:
+            self.conn.execute("COMMIT")
 
     def count(self, filters=None):
         where, params = _filter_sql(filters, self.names)
