@@ -712,6 +712,9 @@ def _cmd_sweep(args):
                          "expected --cluster tls://HOST:PORT with it")
     check_sweep_folder(args.out, args.force)
     spec = load_spec(args.spec)
+    if spec.grid_size * len(spec.traces) > 20_000 and not args.quiet:
+        print(f"attnsim: checking the configs of {spec.grid_size:,} grid points before the first run "
+              f"(about {spec.grid_size * 3e-3 / 60:.0f} min)", file=sys.stderr)
     plan = make_plan(spec)  # every point's config is checked here, before anything runs
     for p in plan.points:
         if p.config is None:
