@@ -85,6 +85,7 @@ def worker(timeout):
             shutil.rmtree(folder, ignore_errors=True)
         sys.stdout.write(json.dumps(msg) + "\n")
         sys.stdout.flush()
+    shutil.rmtree(scratch, ignore_errors=True)
 
 
 def _warm_up(fz):
@@ -160,8 +161,11 @@ def run_all(cases, jobs, timeout, log):
     finally:
         for w in workers:
             if w.proc.poll() is None:
-                w.proc.stdin.close()
-                w.kill()
+                w.proc.stdin.close()   # the worker's loop ends and it removes its temporary files
+                try:
+                    w.proc.wait(timeout=30)
+                except subprocess.TimeoutExpired:
+                    w.kill()
     return results
 
 
