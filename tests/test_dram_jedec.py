@@ -57,22 +57,51 @@ def test_sequential_row_hits_reach_90_percent_of_jedec_peak(name):
     assert rep["achieved_gbps"] <= JEDEC_PEAK[name] * (1 + 1e-9)
 
 
-@pytest.mark.parametrize("name", ["hbm2", "ddr4_3200"])
+def random_read_bound(d, clock_ghz=1.0):
+    """Closed-form ceiling on fully random 64-byte reads of one channel, GB/s (= bytes/ns), from
+    the preset's values. Every read opens a row (common practice: a random address almost
+    never finds its row open), so (JEDEC rules, as JESD79-4 and the HBM, LPDDR and GDDR
+    standards define them):
+      a bank opens a row at most once per tRC          -> banks x 64 B / tRC
+      activates of one channel are tRRD_S apart       -> 64 B / tRRD_S
+      at most four activates in any tFAW window        -> 4 x 64 B / tFAW
+      the data bus                                     -> the channel rate
+      Little's law (Little 1961) on the read queue: at most queue_depth reads in flight,
+      each at least tRCD + tCL + its bursts on the bus -> depth x 64 B / that time
+    The tightest of these."""
+    limits = {"tRC": d.banks * 64 / d.t_rc_ns, "bus": d.channel_gbps,
+              "queue": d.queue_depth * 64 / (d.t_rcd_ns + d.t_cl_ns + 64 / d.channel_gbps)}
+    if d.t_rrd_s_ns:
+        limits["tRRD_S"] = 64 / d.t_rrd_s_ns
+    if d.t_faw_ns:
+        limits["tFAW"] = 4 * 64 / d.t_faw_ns
+    name = min(limits, key=limits.get)
+    return limits[name], name
+
+
+RANDOM_PRESETS = ["hbm2", "ddr4_3200", "hbm3", "hbm3e", "lpddr5x", "gddr6"]
+
+
+@pytest.mark.parametrize("name", RANDOM_PRESETS)
 @pytest.mark.parametrize("policy", ["open", "close"])
-def test_random_row_misses_stay_under_the_trc_bank_bound(name, policy):
-    """Random single-burst reads over 2 GiB: every access opens a row, and one bank opens
-    at most one row per tRC = tRAS + tRP (common practice), so the channel delivers at most
-    banks x burst / tRC. The bound is computed here from the preset's timings."""
-    arch = one_channel(name, **{"dram.page_policy": policy})
+def test_random_64_byte_reads_reach_60_percent_of_the_activation_bound(name, policy):
+    """Fully random 64-byte reads over 2 GiB on one channel (each read a request of its own,
+    the preset's queue depth, all submitted at once): delivered bandwidth lies between 60 %
+    of :func:`random_read_bound` and the bound. The pool of the first release served a
+    channel's bursts strictly in order and reached only 20-25 % of peak here (below the band):
+    a controller opens rows in other banks while one bank waits."""
+    arch = one_channel(name, **{"dram.page_policy": policy, "fetch.request_bytes": 64,
+                                # a 64-byte read stays in one row: the column bits lowest
+                                "dram.address_bits": "row,bank,group,column"})
     d = arch.dram
     rng = np.random.default_rng(11)
-    addr = rng.integers(0, 1 << 31, 6000) // d.burst_bytes * d.burst_bytes
-    rep = stream(arch, [np.array([a], dtype=np.int64) for a in addr.tolist()])
-    t_rc = d.t_ras_ns + d.t_rp_ns
-    bound = d.banks * d.burst_bytes / t_rc          # bytes per ns = GB/s
-    assert rep["row_hit_rate"] < 0.01
-    assert rep["achieved_gbps"] <= bound
-    assert rep["achieved_gbps"] > 0.1 * bound       # and the stream did run
+    addr = rng.integers(0, 1 << 31, 6000) // 64 * 64
+    within = np.arange(64 // d.burst_bytes, dtype=np.int64) * d.burst_bytes
+    rep = stream(arch, [a + within for a in addr.tolist()])
+    bound, limit = random_read_bound(d)
+    assert rep["row_hit_rate"] < 0.51     # the second burst of a 32-byte-burst read is a hit
+    assert rep["achieved_gbps"] <= bound * (1 + 1e-9), (rep["achieved_gbps"], bound, limit)
+    assert rep["achieved_gbps"] >= 0.6 * bound, (rep["achieved_gbps"], bound, limit)
 
 
 def test_row_hits_first_raises_hit_rate_on_interleaved_streams():

@@ -181,3 +181,43 @@ def test_littles_law_in_flight():
     assert pool.in_flight == 0
     # the binned series integrates to the same mean
     assert np.mean(occ["bins"]) == pytest.approx(occ["mean"], rel=1e-9)
+
+
+def test_erlang_c_through_the_default_address_steering():
+    """The same queue through ``dram.steering: address`` (every bundled config's): each
+    transaction's address names one of 4 channels at random, so each channel sees a
+    Poisson stream of a quarter of the rate (thinning of a Poisson process) and is an
+    M/M/1 queue. Mean queueing delay within 5 % of Erlang C with one server at each
+    channel's load (Erlang 1917; Kleinrock 1975). A channel's whole transaction stays in
+    one 1 MiB row: the channel interleave is the row."""
+    c, rho, n = 4, 0.5, 80_000
+    arch = queue_arch(c, steering="address", interleave_bytes=1 << 20)
+    rng = np.random.default_rng(17)
+    sizes = np.ceil(rng.exponential(MEAN_BURSTS, n)).astype(np.int64)
+    sizes[sizes < 1] = 1
+    mu = 1 - math.exp(-1 / MEAN_BURSTS)
+    lam = rho * c * mu                            # rho per channel after the random split
+    arrivals = 1000.0 + np.cumsum(rng.exponential(1 / lam, n))
+    chans = rng.integers(0, c, n)
+    env = simpy.Environment()
+    pool = ChannelPool(env, arch)
+
+    def source():
+        for ch in range(c):                       # open each channel's row first
+            txn = Txn("K", 0, 0, 0, 1, BURST, 0.0, "probe")
+            txn.bursts = np.array([ch << 20], dtype=np.int64)
+            pool.submit(txn)
+        for t, k, ch in zip(arrivals.tolist(), sizes.tolist(), chans.tolist()):
+            yield env.timeout(t - env.now)
+            txn = Txn("K", 0, 0, 0, k, k * BURST, env.now, "probe")
+            txn.bursts = (ch << 20) + np.arange(k, dtype=np.int64) * BURST
+            pool.submit(txn)
+
+    env.process(source())
+    env.run()
+    rec = pool.share_records()
+    assert np.array_equal(np.bincount(rec["channel"][c:], minlength=c), np.bincount(chans, minlength=c))
+    wait = (rec["start"] - rec["arrival"])[c:]
+    measured = wait[n // 20:].mean()
+    expected = erlang_c_wait(1, lam / c, mu)
+    assert measured == pytest.approx(expected, rel=0.05), (measured, expected)

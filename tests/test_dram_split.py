@@ -83,21 +83,40 @@ def test_row_hits_first_counts_do_not_depend_on_the_cut(config):
         assert got == pytest.approx(runs[1], rel=1e-9), (k, runs)
 
 
-def test_request_slots_wait_by_position_not_by_share():
+def test_request_slots_count_completions_not_shares():
     """A queue of depth 4 holding one 8-request share streaming out over [10, 90]: the next
     request may enter once 5 of them are done (8 + 1 - 4), at 10 + 5/8 * 80 = 60, however
-    the 8 requests were grouped into shares."""
-    whole = RequestSlots()
-    whole.add(10.0, 90.0, 8.0)
-    halves = RequestSlots()
-    halves.add(10.0, 50.0, 4.0)
-    halves.add(50.0, 90.0, 4.0)
-    for q in (whole, halves):
-        assert q.room_at(0.0, 1.0, 4) == pytest.approx(60.0)
-        assert q.room_at(0.0, 0.5, 4) == pytest.approx(55.0)   # half a request: 4.5 done
-        assert q.room_at(70.0, 1.0, 4) == 70.0                  # already room
-        assert q.room_at(0.0, 3.0, 4) == pytest.approx(60.0)    # a big share needs its first
-    assert RequestSlots().room_at(5.0, 100.0, 4) == 5.0         # empty queue: now
+    the 8 requests were grouped into shares. (Queries go forward in time, as the pool's do,
+    so each is asked of a fresh queue.)"""
+    def whole():
+        q = RequestSlots()
+        q.add(10.0, 90.0, 8.0)
+        return q
+
+    def halves():
+        q = RequestSlots()
+        q.add(10.0, 50.0, 4.0)
+        q.add(50.0, 90.0, 4.0)
+        return q
+
+    for make in (whole, halves):
+        assert make().room_at(0.0, 1.0, 4) == pytest.approx(60.0)
+        assert make().room_at(0.0, 0.5, 4) == pytest.approx(55.0)   # half a request: 4.5 done
+        assert make().room_at(70.0, 1.0, 4) == 70.0                  # already room
+        assert make().room_at(0.0, 3.0, 4) == pytest.approx(60.0)    # a big share needs its first
+    assert RequestSlots().room_at(5.0, 100.0, 4) == 5.0             # empty queue: now
+
+
+def test_request_slots_free_a_place_when_any_request_completes():
+    """Banks finish out of order: a queue of depth 2 holding a slow request (done at 100) and
+    a fast one entered after it (done at 30) has room again at 30, not at 100."""
+    q = RequestSlots()
+    q.add(90.0, 100.0, 1.0)
+    q.add(20.0, 30.0, 1.0)
+    assert q.room_at(0.0, 1.0, 2) == pytest.approx(30.0)
+    assert q.room_at(0.0, 1.0, 2) == pytest.approx(30.0)     # asking again changes nothing
+    q.add(40.0, 50.0, 1.0)
+    assert q.room_at(0.0, 1.0, 2) == pytest.approx(50.0)
 
 
 def test_row_hits_first_and_close_page_run_in_the_engine():

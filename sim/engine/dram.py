@@ -2,63 +2,68 @@
 
 Two models, chosen by ``dram.model``:
 
-``banked`` (default) models what a DRAM channel does with a stream of reads.
-Each channel has ``dram.banks`` banks in ``dram.bank_groups`` groups, each
-bank with at most one open row. A read to the open row is a *row hit* (one
-column command); a read to a closed bank is a *miss* (activate, then tRCD to
-the column); a read to a bank with another row open is a *conflict*
+``banked`` (default) models what a DRAM channel's controller does with a
+stream of reads. Each channel has ``dram.banks`` banks in ``dram.bank_groups``
+groups, each bank with at most one open row. A read to the open row is a *row
+hit* (one column command); a read to a closed bank is a *miss* (activate, then
+tRCD to the column); a read to a bank with another row open is a *conflict*
 (precharge, no earlier than tRAS after that row's activate and tRTP after its
-last column, then tRP, then activate). Column commands on one channel are
-spaced by one burst time on the data bus, or by tCCD_L when back to back in
-the same bank group; data arrives tCL after the column command. All-bank
-refresh blocks a channel for tRFC every tREFI and closes its rows (channels
-are staggered so the pool never refreshes all at once). The page policy keeps
-rows open, or closes a row once the reads queued for it are served (a read
-queued before the precharge issues still finds the row open). A channel's
-queue holds ``dram.queue_depth`` requests, entered in order (see
-:class:`RequestSlots`), and is served first come first served, or row hits
-first.
+last column, then tRP, then activate). The controller keeps each bank's
+requests in order and opens rows in other banks while one bank waits
+(bank-level parallelism), within the activation limits: activates tRRD_S apart
+(tRRD_L in one bank group), at most four in any tFAW window, tRC between two
+of one bank. Column commands share the data bus: one burst time apart, tCCD_L
+within a bank group; data arrives tCL after the column. A burst whose bank is
+ready may use a bus slot an earlier burst left free while its row opened, but
+never takes one from it: each burst's commands are fixed, in arrival order, at
+the earliest times that keep every rule with those fixed before (see
+:mod:`sim.engine.dram_timing`). All-bank refresh closes a channel's rows for
+tRFC every tREFI (channels staggered so the pool never refreshes all at once).
+The page policy keeps rows open, or closes a row once the reads queued for it
+are served (a read queued before the precharge issues still finds the row
+open). A channel's queue holds ``dram.queue_depth`` requests (see
+:class:`RequestSlots`); the channel serves them first come first served (per
+bank, in order), or lets row hits go first.
 
 Transaction grain: cutting a stream into more transactions must not change
 the answer, so nothing here depends on how bursts are grouped, only on their
-order: queue room is counted by request position, spacing across share
-boundaries is the same as inside a share, and under row hits first a held
-share keeps the time it arrived (the controller could open its row from then;
-only the order is decided later). Row hits first itself reorders whole
-shares, so a finer grain gives it more to reorder.
+order: queue room is counted in requests, spacing across share boundaries is
+the same as inside a share, and under row hits first a held share keeps the
+time it arrived (the controller could open its row from then; only the order
+is decided later). Row hits first itself reorders whole shares, so a finer
+grain gives it more to reorder.
 
 ``fixed-latency`` is the first, simple model: one pipelined bus per channel,
 a fixed ``dram.latency_ns`` per access, no banks.
 
 How time is computed: a transaction's bursts are decoded to channel, bank and
-row once (numpy) and sorted by channel, one *share* per channel. The column
-command times follow ``c[i] = max(c[i-1] + spacing[i], row_ready[i])``, walked
-burst by burst in service order by :func:`sim.engine.dram_timing.serve` (a
-compiled loop), which also takes refreshes on the way and updates the bank
-state. :func:`column_times` is the same recurrence solved for a whole batch at
-once with a segmented running maximum, in numpy; the tests hold the loop to
-it. Events: one per transaction (its completion), plus one per scheduling
-decision of a channel under ``row_hits_first`` -- never one per burst or per
-cycle.
+row and sorted by channel, one *share* per channel; a compiled loop
+(:func:`sim.engine.dram_timing.serve_and_book`) enters each share into its
+channel's queue and fixes its bursts' commands against the channel's command
+timelines. Events: one per transaction (its completion), plus one per
+scheduling decision of a channel under ``row_hits_first`` -- never one per
+burst or per cycle.
 
 Interface used by the fetch unit (stable): ``submit(txn) -> simpy event``
 fired when the last byte has arrived, with the transaction's log marked
 ``memory_queue``, ``memory_latency``, ``memory_transfer`` (non-decreasing);
 ``report(total_cycles)`` for the result's ``dram`` section; ``busy_intervals``
-per channel (merged data-bus busy intervals).
+per channel (merged data-bus busy intervals); ``share_records()``.
 
-Simplifications, on purpose: reads only; no tRRD / tFAW activate-rate limit;
-no command-bus contention; refresh is taken on schedule (never postponed) and
-does not wait for tRAS of open rows; every ``dram.refresh`` mode is served as
-all-bank refresh (``t_rfc_ns`` every ``t_refi_ns``).
+Simplifications, on purpose: reads only; no command-bus contention (commands
+of different banks may issue in the same cycle); refresh is taken on schedule
+(never postponed) and does not wait for tRAS of open rows; every
+``dram.refresh`` mode is served as all-bank refresh (``t_rfc_ns`` every
+``t_refi_ns``).
 """
 
 import numpy as np
 
 from ..errors import SimulationStalled
+from . import dram_timing as T
 from .addrmap import BurstDecoder
-from .dram_timing import (CONFLICT, HIT, MISS, decode_sorted, serve_addresses, serve_and_book,
-                          serve_fixed, slots_add, slots_room_at, timing_vector)
+from .dram_timing import (B_ACT, B_CLOSE, B_COL, B_PRE_MIN, B_PRE_READY, B_REF_OFF, decode_sorted,
+                          serve_addresses, serve_and_book, serve_fixed)
 
 OCCUPANCY_BINS = 32
 
@@ -85,52 +90,70 @@ def _room_or_stall(tries, where):
                                 "progress (timings out of range?)", unit="dram", cause="table_room")
 
 
+def _grown(a, need, axis):
+    """``a`` with its ``axis`` doubled until it holds ``need`` entries (contents kept)."""
+    cap = a.shape[axis]
+    new = cap
+    while new < need:
+        new *= 2
+    shape = list(a.shape)
+    shape[axis] = new
+    out = np.zeros(shape, dtype=a.dtype)
+    out[tuple(slice(0, n) for n in a.shape)] = a
+    return out
+
+
+def _merged(iv):
+    """Intervals ``[[begin, end], ...]`` sorted and merged where they overlap or touch."""
+    iv = iv[np.argsort(iv[:, 0], kind="stable")]
+    ends = np.maximum.accumulate(iv[:, 1])
+    new = np.empty(len(iv), dtype=bool)
+    new[0] = True
+    new[1:] = iv[1:, 0] > ends[:-1] + 1e-9
+    starts = np.flatnonzero(new)
+    stops = np.append(starts[1:], len(iv)) - 1
+    return np.column_stack((iv[starts, 0], ends[stops]))
+
+
 class RequestSlots:
-    """The requests of each channel's queue, in the order they entered it.
+    """The requests of each channel's queue: a request enters once the queue has room.
 
     Amounts are in requests of ``fetch.request_bytes`` and may be fractional:
-    a share smaller than a request holds part of one. Requests enter in order,
-    each once the request ``depth`` places ahead of it has completed, so a
-    share may start as soon as its first request fits; the rest of it follows
-    as the requests ahead complete. A share's requests complete one after
-    another while its data streams out, linearly from ``first`` (first data)
-    to ``done`` (last data). Counting by position, not by share, is what makes
-    the wait independent of how a stream is cut into shares.
+    a share smaller than a request holds part of one. A share's requests
+    complete one after another while its data streams out, linearly from
+    ``first`` (first data) to ``done`` (last data); a channel holds at most
+    ``depth`` requests that have entered and not completed, whichever they are
+    (banks finish out of order). A share may start as soon as its first request
+    fits; the rest of it follows as requests ahead complete. Counting completed
+    requests, not shares, is what makes the wait independent of how a stream is
+    cut into shares.
 
-    The rows live in numpy arrays (see :mod:`sim.engine.dram_timing`) so the
-    compiled loops read and extend them directly.
+    The state lives in numpy arrays the compiled loops read and extend (see
+    :mod:`sim.engine.dram_timing`): the completion heap ``H`` and, shared with
+    the rest of the channel pool, the per-channel counts ``TN`` and times ``CF``.
     """
 
-    def __init__(self, channels=1, capacity=1024):
+    def __init__(self, channels=1, capacity=256):
         if channels < 1:
             raise ValueError(f"RequestSlots: channels must be >= 1, got {channels!r}")
-        self.S = np.zeros((channels, capacity, 4))     # entered before, up to, first, done
-        self.SI = np.zeros((channels, 2), dtype=np.int64)  # head, rows
-        self.ST = np.zeros(channels)                   # requests entered so far
+        self.H = np.zeros((channels, capacity, 3))      # completion ramps (done, start, amount)
+        self.TN = np.zeros((channels, T.N_COUNTS), dtype=np.int64)
+        self.CF = np.zeros((channels, T.N_CHANNEL))
+        self.CF[:, T.F_LAST:T.F_TAKEN + 1] = -np.inf
 
     def room_at(self, now, need, depth, channel=0):
         """Earliest time from ``now`` at which ``need`` more requests (one at most) fit."""
-        return slots_room_at(self.S, self.SI, self.ST, channel, float(now), float(need), depth)
+        return T.slots_room_at(self.H, self.TN, self.CF, channel, float(now), float(need), depth)
 
     def add(self, first, done, amount, channel=0):
-        if self.SI[channel, 1] + 1 > self.S.shape[1]:
-            self.make_room(1)
-        slots_add(self.S, self.SI, self.ST, channel, float(first), float(done), float(amount))
+        self.make_room(1)
+        T.slots_add(self.H, self.TN, self.CF, channel, float(first), float(done), float(amount))
 
-    def make_room(self, rows):
-        """Room for ``rows`` more rows per channel: drop what no query reaches, or grow."""
-        head, count = self.SI[:, 0], self.SI[:, 1]
-        keep = count - head
-        cap = self.S.shape[1]
-        new_cap = cap
-        while keep.max() + rows > new_cap // 2:
-            new_cap *= 2
-        S = np.zeros((self.S.shape[0], new_cap, 4)) if new_cap != cap else self.S
-        for c in range(len(head)):
-            S[c, :keep[c]] = self.S[c, head[c]:count[c]]
-        self.S = S
-        self.SI[:, 0] = 0
-        self.SI[:, 1] = keep
+    def make_room(self, shares=1):
+        """Room for ``shares`` more shares per channel."""
+        need = self.TN[:, T.N_HEAP].max() + (shares + 1) * (T.PIECES + 1)
+        if need > self.H.shape[1]:
+            self.H = _grown(self.H, need, axis=1)
 
 
 class Timing:
@@ -143,8 +166,18 @@ class Timing:
         self.rcd = d.t_rcd_ns * ghz
         self.rp = d.t_rp_ns * ghz
         self.ras = d.t_ras_ns * ghz
+        self.rc = max(d.t_rc_ns * ghz, self.ras + self.rp)
         self.rtp = d.t_rtp_ns * ghz
         self.ccd_l = max(d.t_ccd_l_ns * ghz, self.burst)
+        self.cwl = d.t_cwl_ns * ghz
+        self.wr = d.t_wr_ns * ghz
+        self.wtr_s = d.t_wtr_s_ns * ghz
+        self.wtr_l = d.t_wtr_l_ns * ghz
+        # a write's data may not start before the read data ahead of it has left the bus
+        self.rtw = max(d.t_rtw_ns * ghz, self.cl - self.cwl + self.burst, self.burst)
+        self.rrd_s = d.t_rrd_s_ns * ghz
+        self.rrd_l = d.t_rrd_l_ns * ghz
+        self.faw = d.t_faw_ns * ghz
         self.refi = d.t_refi_ns * ghz
         self.rfc = d.t_rfc_ns * ghz
         self.ctrl = d.controller_ns * ghz
@@ -152,137 +185,35 @@ class Timing:
         # enough to hide a precharge and an activate behind the previous share's data
         self.lookahead = self.rp + self.rcd
 
+    def vector(self):
+        """The parameter vector the compiled loops read (see ``dram_timing.P_*``)."""
+        P = np.zeros(T.N_PARAMS)
+        P[T.P_BURST], P[T.P_CCD_L], P[T.P_RCD], P[T.P_RP] = self.burst, self.ccd_l, self.rcd, self.rp
+        P[T.P_RAS], P[T.P_RC], P[T.P_RTP], P[T.P_CL] = self.ras, self.rc, self.rtp, self.cl
+        P[T.P_CWL], P[T.P_WR], P[T.P_WTR_S], P[T.P_WTR_L] = self.cwl, self.wr, self.wtr_s, self.wtr_l
+        P[T.P_RTW], P[T.P_RRD_S], P[T.P_RRD_L], P[T.P_FAW] = self.rtw, self.rrd_s, self.rrd_l, self.faw
+        P[T.P_CTRL] = self.ctrl
+        P[T.P_REF_PERIOD] = self.refi
+        P[T.P_REF_DUR] = self.rfc
+        # the longest spacing rule between two column commands, and between activates
+        P[T.P_COL_REACH] = max(self.ccd_l, self.rtw, self.cwl + self.burst + self.wtr_l)
+        P[T.P_ACT_REACH] = max(self.faw, self.rrd_l)
+        return P
 
-class BankState:
-    """Open rows and command history of every bank of every channel."""
-
-    def __init__(self, channels, banks):
-        n = channels * banks
-        self.open_row = np.full(n, -1, dtype=np.int64)   # -1: bank precharged
-        self.act = np.full(n, -np.inf)                   # last activate
-        self.last_col = np.full(n, -np.inf)              # last column command
-        self.pre_ready = np.zeros(n)                     # closed bank may activate from here
-        # close page: when the open row's precharge issues; a read queued before then is
-        # still served from the open row (the controller saw it waiting). Open page: never.
-        self.close_at = np.full(n, np.inf)
-
-
-def run_structure(gb, row, order):
-    """Runs of bursts to one bank and row, with the bursts taken in ``order`` (bank-sorted).
-
-    Returns ``(sb, rs, newbank, hpos, runid, slot)``: bank and row of each
-    sorted burst, whether it starts its bank, the sorted positions of run heads,
-    the run of each sorted position and the run of each burst in service order.
-    """
-    sb = gb[order]
-    rs = row[order]
-    n = len(sb)
-    newbank = np.empty(n, dtype=bool)
-    newbank[0] = True
-    np.not_equal(sb[1:], sb[:-1], out=newbank[1:])
-    newrun = newbank.copy()
-    newrun[1:] |= rs[1:] != rs[:-1]
-    hpos = np.flatnonzero(newrun)                  # run heads, in bank-sorted positions
-    runid = np.cumsum(newrun) - 1
-    slot = np.empty(n, dtype=np.int64)
-    slot[order] = runid
-    return sb, rs, newbank, hpos, runid, slot
-
-
-def column_times(gb, row, group, seg_len, t0, base_col, base_group, st, tm):
-    """Column-command times of a batch of bursts, one segment per channel.
-
-    ``gb`` global bank, ``row`` DRAM row and ``group`` bank group of each burst
-    in service order, the bursts of one channel together (``seg_len`` of them
-    per channel, in order); ``t0`` the earliest command time (a number, or
-    one per burst); ``base_col`` / ``base_group`` the last column time and its
-    group of each segment's channel; ``st`` the :class:`BankState` before the
-    batch; ``tm`` the :class:`Timing`.
-
-    Returns ``(c, sol)``: the column time of each burst, and a dict with the
-    run structure (bank-sorted ``order``, ``runid`` per sorted position,
-    ``slot`` = run of each burst, ``act`` / ``kind`` per run, ``newbank``) for
-    the state update. Plain numpy, no simpy, so the closed-form side and the
-    tests can call it.
-    """
-    n = len(gb)
-    order = np.argsort(gb, kind="stable")
-    sb, rs, newbank, hpos, runid, slot = run_structure(gb, row, order)
-    hb = sb[hpos]
-    ht0 = t0 if np.isscalar(t0) else t0[order[hpos]]
-    fob = newbank[hpos]                            # first run of its bank in the batch
-    orow = st.open_row[hb]
-    closed = (orow < 0) | (st.close_at[hb] <= ht0)
-    hit = fob & ~closed & (orow == rs[hpos])
-    s_act = st.act[hb]
-    # from the bank state (exact for first runs, a lower bound for later runs of a bank)
-    act = np.where(closed, np.maximum(st.pre_ready[hb], ht0),
-                   np.maximum(np.maximum(st.last_col[hb] + tm.rtp, s_act + tm.ras), ht0) + tm.rp)
-    act = np.where(hit, s_act, act)
-    ready = act + tm.rcd
-    np.maximum(ready, ht0, out=ready)
-    kind = np.where(hit, HIT, np.where(fob & closed, MISS, CONFLICT))
-    inside = np.flatnonzero(~fob)                  # a bank changing rows inside the batch
-    # spacing of column commands: one burst time, or tCCD_L back to back in one group;
-    # D is each burst's offset from its segment's first column command
-    single = len(seg_len) == 1
-    if not single:
-        starts = np.cumsum(seg_len) - seg_len
-    if tm.ccd_l > tm.burst:
-        prev_group = np.empty(n, dtype=np.int64)
-        prev_group[1:] = group[:-1]
-        if single:
-            prev_group[0] = base_group[0]
-        else:
-            prev_group[starts] = base_group
-        d = np.where(group == prev_group, tm.ccd_l, tm.burst)
-        D = np.cumsum(d)
-        if single:
-            D -= d[0]
-            base = base_col[0] + d[0]
-        else:
-            D -= np.repeat(D[starts], seg_len)
-            base = np.repeat(base_col + d[starts], seg_len)
-    elif single:
-        D = np.arange(n) * tm.burst
-        base = base_col[0] + tm.burst
-    else:
-        D = (np.arange(n) - np.repeat(starts, seg_len)) * tm.burst
-        base = np.repeat(base_col + tm.burst, seg_len)
-    segid = None if single else np.repeat(np.arange(len(seg_len)), seg_len)
-    if len(inside):
-        prev_last = order[hpos[inside] - 1]
-        prev_run = inside - 1
-        in_t0 = ht0 if np.isscalar(ht0) else ht0[inside]
-    for _ in range(n + 2):  # converges in (row changes of one bank in the batch) + 1 passes
-        v = ready[slot] - D
-        if segid is None:
-            np.maximum.accumulate(v, out=v)
-        else:
-            span = float(v.max() - v.min()) + 1.0
-            off = segid * span
-            v += off
-            np.maximum.accumulate(v, out=v)
-            v -= off
-        c = D + np.maximum(base, v)
-        if not len(inside):
-            break
-        pre = np.maximum(c[prev_last] + tm.rtp, act[prev_run] + tm.ras)
-        a_new = np.maximum(pre, in_t0) + tm.rp
-        if np.array_equal(a_new, act[inside]):
-            break
-        act[inside] = a_new
-        ready[inside] = a_new + tm.rcd
-    else:
-        raise AssertionError("column-time passes did not converge")
-    return c, {"order": order, "sb": sb, "rs": rs, "newbank": newbank, "runid": runid,
-               "slot": slot, "act": act, "kind": kind}
+    def refresh_offsets(self, channels, banks):
+        """Start of each bank's first refresh window: channels staggered over one interval."""
+        chan = (np.arange(channels) + 1) * (self.refi / channels)
+        return np.repeat(chan, banks)
 
 
 class ChannelPool:
-    """A pool of memory channels: banks, rows, refresh, queues and scheduling."""
+    """A pool of memory channels: banks, rows, activation limits, refresh, queues and scheduling.
 
-    def __init__(self, env, arch):
+    ``log_commands=True`` keeps every command of the banked model (see
+    :meth:`command_log`), for protocol checks; runs leave it off.
+    """
+
+    def __init__(self, env, arch, log_commands=False):
         self.env = env
         self.arch = arch
         d = arch.dram
@@ -296,12 +227,15 @@ class ChannelPool:
         self.free_at = np.zeros(self.n)
         self.outstanding = RequestSlots(self.n)
         self.IV = np.zeros((self.n, 1024, 2))            # data-bus busy intervals per channel
-        self.IVN = np.zeros(self.n, dtype=np.int64)
         self.busy_cycles = np.zeros(self.n)
-        self.acc = np.zeros(2)                           # requests, refresh delay
+        self.acc = np.zeros(T.N_ACC)                     # counters, see dram_timing.A_*
         self._counts = np.zeros(self.n, dtype=np.int64)
         self.R = np.zeros((1024, 6))                     # share records (banked)
-        self.RN = np.zeros(1, dtype=np.int64)
+        # per-channel counts and times, shared with the read queue (see dram_timing.N_*, F_*)
+        self.TN = self.outstanding.TN
+        self.CF = self.outstanding.CF
+        # share records, command-log rows, logging on
+        self.NI = np.array([0, 0, 1 if log_commands else 0], dtype=np.int64)
         self.bytes = 0
         self.bursts = 0
         self.txns = 0
@@ -319,19 +253,26 @@ class ChannelPool:
         self.banks = d.banks
         self.groups = d.bank_groups
         self.tm = Timing(arch)
+        self.P = self.tm.vector()
         self.close_page = d.page_policy == "close"
         self.rows_first = d.scheduler == "row_hits_first"
         self.first_free = d.steering == "first_free"
         self.decoder = BurstDecoder(arch)
-        self.st = BankState(self.n, self.banks)
-        self.ch_col = np.full(self.n, -np.inf)
-        self.ch_group = np.full(self.n, -1, dtype=np.int64)
-        offsets = (np.arange(self.n) + 1) * (self.tm.refi / self.n)
-        self.ref_first = offsets.copy()
-        self.ref_next = offsets if self.tm.rfc > 0 else np.full(self.n, np.inf)
-        self.kinds = np.zeros(3, dtype=np.int64)
-        self.tvec = timing_vector(self.tm)
-        self.t0 = np.zeros(self.n)                  # earliest start per channel of a batch
+        nb = self.n * self.banks
+        self.open_row = np.full(nb, -1, dtype=np.int64)      # -1: bank precharged
+        self.BF = np.empty((nb, T.N_BANK))                    # per bank, see dram_timing.B_*
+        self.BF[:, B_ACT] = -np.inf
+        self.BF[:, B_COL] = -np.inf
+        self.BF[:, B_PRE_MIN] = -np.inf
+        self.BF[:, B_CLOSE] = np.inf
+        self.BF[:, B_PRE_READY] = 0.0
+        self.BF[:, B_REF_OFF] = self.tm.refresh_offsets(self.n, self.banks)
+        self.BF[:, T.B_ROW_END] = np.inf
+        # per channel: column and activate timelines and the gaps in them a command may use
+        self.TL = np.zeros((self.n, 2, 256))
+        self.TK = np.zeros((self.n, 2, 256), dtype=np.int64)
+        self.TG = np.zeros((self.n, 2, 256, 2))
+        self.LOG = np.zeros((4096 if log_commands else 0, 5))
         # per-share records (channel, arrival, start, first data, done, bursts)
         self._times = np.zeros(3)
         lut = self.decoder.lut
@@ -359,36 +300,57 @@ class ChannelPool:
         return self._finish(txn, now, t_start, t_first, t_done, None)
 
     def _make_room(self, rows):
-        """Grow the queue, interval and share tables so ``rows`` more fit per channel."""
-        self.outstanding.make_room(rows)
-        if self.IVN.max() + rows > self.IV.shape[1]:
-            cap = self.IV.shape[1]
-            while self.IVN.max() + rows > cap:
-                cap *= 2
-            IV = np.zeros((self.n, cap, 2))
-            IV[:, :self.IV.shape[1]] = self.IV
-            self.IV = IV
-        if self.RN[0] + rows > len(self.R):
-            cap = len(self.R)
-            while self.RN[0] + rows > cap:
-                cap *= 2
-            R = np.zeros((cap, 6))
-            R[:len(self.R)] = self.R
-            self.R = R
+        """Grow the tables that lack room for ``rows`` more bursts (one share) per channel."""
+        self.outstanding.make_room(1)
+        self.H = self.outstanding.H
+        iv = self.TN[:, T.N_IV].max() + rows
+        if iv > self.IV.shape[1]:
+            self.IV = _grown(self.IV, iv, axis=1)
+        if self.NI[T.I_RECORDS] + rows > len(self.R):
+            self.R = _grown(self.R, self.NI[T.I_RECORDS] + rows, axis=0)
+        if self.model == "banked":
+            T.compact(self.TL, self.TK, self.TG, self.TN, self.CF, self.P)
+            need = 2 * (self.TN[:, T.N_COL:T.N_ACT_GAPS + 1].max() + rows)
+            if need > self.TL.shape[2]:
+                self.TL = _grown(self.TL, need, axis=2)
+                self.TK = _grown(self.TK, need, axis=2)
+                self.TG = _grown(self.TG, need, axis=2)
+            if self.NI[T.I_LOGGING] and self.NI[T.I_LOG] + 3 * rows > len(self.LOG):
+                self.LOG = _grown(self.LOG, self.NI[T.I_LOG] + 3 * rows, axis=0)
         self._bind()
 
     @property
     def busy_intervals(self):
-        """Per channel, the merged data-bus busy intervals ``[[begin, end], ...]``."""
-        return [self.IV[c, :self.IVN[c]].tolist() for c in range(self.n)]
+        """Per channel, the merged data-bus busy intervals ``[[begin, end], ...]``, in time order."""
+        out = []
+        for c in range(self.n):
+            iv = self.IV[c, :self.TN[c, T.N_IV]]
+            if len(iv) > 1 and np.any(iv[1:, 0] < iv[:-1, 1]):
+                iv = _merged(iv)
+            out.append(iv.tolist())
+        return out
 
     @property
     def requests(self):
-        return float(self.acc[0])
+        return float(self.acc[T.A_REQUESTS])
 
     @property
     def refresh_delay(self):
-        return float(self.acc[1])
+        return float(self.acc[T.A_REF_DELAY])
+
+    def command_log(self):
+        """Commands issued, burst by burst: rows ``time, channel, bank, kind, row`` (kind:
+        ``dram_timing.CMD_ACT``, ``CMD_PRE``, ``CMD_RD``, ``CMD_WR``; bank within the
+        channel). A row closed by a refresh has no precharge of its own. Needs
+        ``log_commands=True``."""
+        if not self.NI[T.I_LOGGING]:
+            raise ValueError("the pool was made without log_commands=True")
+        return self.LOG[:self.NI[T.I_LOG]].copy()
+
+    @property
+    def kinds(self):
+        """Bursts served as row hits, misses and conflicts."""
+        return self.acc[T.A_KIND:T.A_KIND + 3].astype(np.int64)
 
     # ----------------------------------------------------------------- banked
     def _submit_banked(self, txn):
@@ -420,7 +382,7 @@ class ChannelPool:
         cnt = np.bincount(ch, minlength=self.n)
         chans = np.flatnonzero(cnt).tolist()
         rec[1] = len(chans)
-        hold = [c for c in chans if self.held[c] or self.ch_col[c] - self.tm.lookahead > now]
+        hold = [c for c in chans if self.held[c] or self.CF[c, T.F_LAST] - self.tm.lookahead > now]
         if hold:
             ends = np.cumsum(cnt)
             for c in hold:
@@ -439,14 +401,14 @@ class ChannelPool:
         return ev
 
     def _first_free_channel(self, now):
-        ready = np.maximum(self.ch_col + self.tm.burst, now)
+        ready = np.maximum(self.CF[:, T.F_LAST] + self.tm.burst, now)
         return int(np.argmin(ready))
 
     def _arm(self, c):
         """Schedule channel ``c``'s next decision (row_hits_first)."""
         if self.timer_at[c] is not None:
             return
-        t = max(self.env.now, self.ch_col[c] - self.tm.lookahead)
+        t = max(self.env.now, self.CF[c, T.F_LAST] - self.tm.lookahead)
         self.timer_at[c] = t
         ev = self.env.timeout(t - self.env.now)
         ev.callbacks.append(lambda _ev, c=c: self._decide(c))
@@ -465,14 +427,14 @@ class ChannelPool:
             n_window += 1
             room -= len(share[1]) / self.req_bursts
         window, rest = held[:n_window], held[n_window:]
-        st = self.st
+        open_row, close_at = self.open_row, self.BF[:, B_CLOSE]
         now = self.env.now
         # one at a time, so each share sees the rows the one before it left open
         while window:
             pick = 0
             for k, sh in enumerate(window):
                 g0 = sh[2][0]
-                if st.open_row[g0] == sh[3][0] and st.close_at[g0] > now:
+                if open_row[g0] == sh[3][0] and close_at[g0] > now:
                     pick = k
                     break
             rec, ch, gb, row = window.pop(pick)
@@ -501,17 +463,14 @@ class ChannelPool:
 
     def _bind(self):
         """The kernels' argument tuples: the state arrays, bound again when a table grows."""
-        q = self.outstanding
-        self._fixed_args = (self.t_burst, self.t_lat, self.depth, self.req_bursts, q.S, q.SI,
-                            q.ST, self.IV, self.IVN, self.busy_cycles, self.acc, self._counts)
+        self.H = self.outstanding.H
+        self._fixed_args = (self.t_burst, self.t_lat, self.depth, self.req_bursts, self.H, self.TN,
+                            self.CF, self.IV, self.busy_cycles, self.acc, self._counts)
         if self.model == "fixed-latency":
             return
-        st = self.st
-        self._state_args = (self.depth, self.req_bursts, self.groups, self.banks,
-                            self.close_page, self.tvec, st.open_row, st.act, st.last_col,
-                            st.pre_ready, st.close_at, self.ch_col, self.ch_group,
-                            self.ref_next, self.kinds, q.S, q.SI, q.ST, self.R, self.RN,
-                            self.IV, self.IVN, self.busy_cycles, self.acc, self.t0)
+        self._state_args = (self.depth, self.req_bursts, self.groups, self.banks, self.close_page,
+                            self.P, self.open_row, self.BF, self.TL, self.TK, self.TG, self.TN, self.CF,
+                            self.H, self.R, self.IV, self.busy_cycles, self.acc, self.LOG, self.NI)
         if self._lut is not None:
             self._lut_args = (self.burst,) + self._lut
 
@@ -550,6 +509,7 @@ class ChannelPool:
         self.wait_total += t_start - t_submit
         self.latency_total += t_done - t_submit
         self.latencies.append(t_done - t_submit)
+        txn.mem_times = (t_start, t_first, t_done)
         txn.log += (("memory_queue", t_start), ("memory_latency", t_first),
                     ("memory_transfer", t_done))
         if ev is None:
@@ -591,7 +551,7 @@ class ChannelPool:
         """Per channel share: channel, arrival, start, first data, done, bursts (numpy)."""
         if self.model != "banked":
             raise ValueError("share records exist only for dram.model: banked")
-        R = self.R[:self.RN[0]]
+        R = self.R[:self.NI[T.I_RECORDS]]
         out = {k: R[:, i] for i, k in enumerate(("channel", "arrival", "start", "first", "done", "bursts"))}
         out["channel"] = out["channel"].astype(np.int64)
         out["bursts"] = out["bursts"].astype(np.int64)
@@ -622,17 +582,17 @@ class ChannelPool:
             return out
         hits, misses, conflicts = (int(x) for x in self.kinds)
         total = hits + misses + conflicts
-        tm = self.tm
-        if tm.rfc > 0 and total_cycles > 0:
-            # windows scheduled inside the run, clipped to its end
-            k = np.floor(np.maximum(total_cycles - self.ref_first, -1) / tm.refi) + 1
-            k = np.maximum(k, 0)
-            last_start = self.ref_first + (k - 1) * tm.refi
-            stolen = np.where(k > 0, (k - 1) * tm.rfc
-                              + np.minimum(tm.rfc, total_cycles - last_start), 0.0)
+        period, dur = self.P[T.P_REF_PERIOD], self.P[T.P_REF_DUR]
+        if dur > 0 and total_cycles > 0:
+            # each bank's windows inside the run, clipped to its end; the mean over banks
+            first = self.BF[:, B_REF_OFF]
+            k = np.maximum(np.floor(np.maximum(total_cycles - first, -1) / period) + 1, 0)
+            last_start = first + (k - 1) * period
+            stolen = np.where(k > 0, (k - 1) * dur + np.minimum(dur, total_cycles - last_start), 0.0)
             refresh_share = float(stolen.mean() / total_cycles)
         else:
             refresh_share = 0.0
+        acts = int(self.acc[T.A_ACTS])
         out.update({
             "row_hit_rate": hits / total if total else 0.0,
             "row_hits": hits,
@@ -640,6 +600,10 @@ class ChannelPool:
             "bank_conflicts": conflicts,
             "refresh_share": refresh_share,
             "refresh_delay_cycles": float(self.refresh_delay),
+            "refresh_mode": self.arch.dram.refresh,
+            "activates": acts,
+            "faw_limited_activates": int(self.acc[T.A_FAW_ACTS]),
+            "activation_wait_cycles": float(self.acc[T.A_ACT_DELAY]),
             "scheduler": self.arch.dram.scheduler,
             "page_policy": self.arch.dram.page_policy,
         })

@@ -1,33 +1,54 @@
-"""Banked DRAM timing, burst by burst: the inner loop of the banked channel model.
+"""Banked DRAM timing, burst by burst: the compiled inner loops of the banked channel model.
 
-:func:`serve` takes one batch of bursts (a transaction's, or a held share
-under row hits first), already cut into channel, global bank and DRAM row and
-sorted by channel, and walks each channel's bursts in service order against
-the bank state, the way the controller issues them:
+A channel's controller keeps one queue per bank, served in order, and issues
+commands to other banks while one bank waits (bank-level parallelism). The
+loops here fix each burst's commands the moment the pool commits it, in
+commit order, against what earlier bursts already hold:
 
-* a burst to the row its bank opened earlier in the batch is a row hit and
-  follows the previous column command (one burst time, or tCCD_L in the same
-  bank group);
-* the first burst of a bank in the batch reads the bank state: a hit on the
-  open row, a miss on a closed bank (activate from ``pre_ready`` or from the
-  time the batch may start), or a conflict (precharge no earlier than tRTP
-  after the last column and tRAS after the activate, then tRP);
-* a bank that changes rows inside the batch precharges after its own last
-  column of the batch (a conflict);
-* the column command waits for the row (activate + tRCD) and for the bus.
+* **bank**: a burst to the row its bank has open is a row hit (a column
+  command, no earlier than tRCD after the activate); a burst to a closed bank
+  is a miss (activate, no earlier than tRC after the bank's last activate and
+  tRP after its precharge); a burst to a bank with another row open is a
+  conflict (precharge no earlier than tRAS after the activate, tRTP after its
+  last read column or tWR after its last write data, then tRP, then activate).
+  A bank's bursts keep their order.
+* **activates** of one channel are spaced tRRD_S (other bank group) or tRRD_L
+  (same group), and no window of tFAW holds more than four. An activate takes
+  the earliest time that keeps every rule with the activates already fixed,
+  before or after them.
+* **column commands** share the channel's data bus: tCCD_L apart in one bank
+  group, one burst time (tCCD_S) otherwise; a read to a write waits tRTW, a
+  write to a read waits the write data plus tWTR_S / tWTR_L. A column takes the
+  earliest time that keeps every rule with the columns already fixed: a later
+  burst whose bank is ready fills a gap an earlier one left while its bank
+  opened, but never moves it (older bursts keep their slots).
+* **refresh** closes a bank's row at each of its refresh windows (``off +
+  k * period``, lasting ``dur``; all banks of a channel share the windows in
+  all-bank mode); nothing opens or reads the bank inside a window, and a row
+  opened before a window is not read after its start: such a burst opens the
+  row again once the window ends.
 
-When a column command would fall at or after the channel's next refresh, the
-channel refreshes first: its banks close, nothing may start before the refresh
-ends, and the rest of the channel's bursts are served as a new piece of the
-same share (so a transaction's share may come back in several pieces).
-Under the close-page policy each bank a piece touched closes its row once
-that piece's reads are served.
+Data leaves the bus tCL after a read column (tCWL after a write column) for
+one burst time. Each channel keeps two sorted timelines, its column commands
+(``TL[c, COL]`` times, ``TK[c, COL]`` codes) and its activates (``TL[c, ACT]``,
+``TK[c, ACT]`` bank groups), each with the list of gaps between neighbours wide
+enough to hold another command (``TG``): a search jumps from gap to gap over
+stretches where nothing fits. A channel takes bursts in in time order: none is
+seen before the time the last batch was taken in (``CF[c, F_TAKEN]``), so
+entries older than that minus the longest spacing rule are dropped to make room.
+
+State layout (the pool owns the arrays; see :class:`sim.engine.dram.ChannelPool`):
+``BF[bank, B_*]`` and ``open_row[bank]`` per global bank; ``TL``, ``TK``
+``(channels, 2, cap)`` and ``TG`` ``(channels, 2, cap, 2)`` timelines;
+``TN[channel, N_*]`` counts; ``CF[channel, F_*]`` per-channel times and the read
+queue's counting state; ``H`` the read queue's completion heap; ``acc[A_*]``
+counters; ``R`` share records and ``IV`` data-bus intervals; ``NI`` = rows of
+``R``, rows of the command log ``LOG``, and whether to log.
 
 Everything here is plain loops over numpy arrays, compiled with numba when it
 is installed (``ATTNSIM_NO_JIT=1`` runs the same code as Python, slowly); the
-state arrays are updated in place. :func:`sim.engine.dram.column_times` is the
-same arithmetic written as one vectorized solve, kept as the reference the
-tests compare this loop with.
+state arrays are updated in place. ``tests/test_dram_timing.py`` holds these
+loops to a brute-force reference and to a protocol check of their command log.
 """
 
 import os
@@ -42,239 +63,753 @@ except ImportError:  # pragma: no cover
 JIT = _njit is not None and os.environ.get("ATTNSIM_NO_JIT", "") in ("", "0")
 
 HIT, MISS, CONFLICT = 0, 1, 2
+CMD_ACT, CMD_PRE, CMD_RD, CMD_WR = 0, 1, 2, 3
 
-# indices into the timing parameter vector
-P_BURST, P_CCD_L, P_RCD, P_RP, P_RAS, P_RTP, P_CL, P_CTRL, P_RFC, P_REFI = range(10)
+# indices into the timing parameter vector (see sim.engine.dram.Timing)
+(P_BURST, P_CCD_L, P_RCD, P_RP, P_RAS, P_RC, P_RTP, P_CL, P_CWL, P_WR, P_WTR_S, P_WTR_L, P_RTW,
+ P_RRD_S, P_RRD_L, P_FAW, P_CTRL, P_REF_PERIOD, P_REF_DUR, P_COL_REACH, P_ACT_REACH) = range(21)
+N_PARAMS = 21
+
+# columns of the per-bank float state: last activate, last column, earliest precharge after
+# the last column, close-page precharge time, earliest activate of a closed bank, first
+# refresh start, start of the first refresh after the open row's activate
+B_ACT, B_COL, B_PRE_MIN, B_CLOSE, B_PRE_READY, B_REF_OFF, B_ROW_END = range(7)
+N_BANK = 7
+
+# accumulators; A_KIND + HIT / MISS / CONFLICT count the bursts of each kind
+(A_REQUESTS, A_REF_DELAY, A_ACTS, A_FAW_ACTS, A_ACT_DELAY, A_RW, A_WR, A_READ_BURSTS,
+ A_WRITE_BURSTS, A_KIND) = range(10)
+N_ACC = 13
+
+# the two timelines of a channel
+COL, ACT = 0, 1
+# per-channel counts: entries and gaps of each timeline, heap entries, data-bus intervals
+N_COL, N_ACT, N_COL_GAPS, N_ACT_GAPS, N_HEAP, N_IV = range(6)
+N_COUNTS = 6
+# per-channel times: last column, last write column, time bursts were last taken in; the
+# read queue's completions counted so far, the ramp being counted (start, done, amount),
+# and the requests entered so far
+F_LAST, F_LAST_WRITE, F_TAKEN, F_REL, F_RAMP_START, F_RAMP_DONE, F_RAMP_AMOUNT, F_ENTERED = range(8)
+N_CHANNEL = 8
+# NI: share records, command-log rows, logging on
+I_RECORDS, I_LOG, I_LOGGING = range(3)
 
 
 def _compile(fn):
     return _njit(cache=True, nogil=True)(fn) if JIT else fn
 
 
-def timing_vector(tm):
-    """The parameter vector :func:`serve` reads, from a :class:`sim.engine.dram.Timing`."""
-    return np.array([tm.burst, tm.ccd_l, tm.rcd, tm.rp, tm.ras, tm.rtp, tm.cl, tm.ctrl, tm.rfc,
-                     tm.refi], dtype=np.float64)
+def _inline(fn):
+    """A small helper taking arrays, called inside search loops: compiled into its callers
+    (a compiled call passing arrays costs reference counting each time)."""
+    return _njit(cache=True, nogil=True, inline="always")(fn) if JIT else fn
+
+
+# ---------------------------------------------------------------- refresh windows
+
+@_compile
+def ref_after(off, period, dur, x):
+    """Start of the first refresh window of a bank after time ``x`` (inf: no refresh)."""
+    if dur <= 0.0:
+        return np.inf
+    if x < off:
+        return off
+    return off + (np.floor((x - off) / period) + 1.0) * period
 
 
 @_compile
-def _reopen(last_col, act, t, rtp, ras, rp):
-    """Activate time of a bank switching rows: precharge no earlier than tRTP after its
-    last column, tRAS after its activate and the time the batch may start, then tRP."""
-    a = last_col + rtp
-    if act + ras > a:
-        a = act + ras
-    if t > a:
-        a = t
-    return a + rp
+def ref_clear(off, period, dur, x):
+    """``x``, or the end of the bank's refresh window ``x`` falls in."""
+    if dur <= 0.0 or x < off:
+        return x
+    s = off + np.floor((x - off) / period) * period
+    if x < s + dur:
+        return s + dur
+    return x
+
+
+# ---------------------------------------------------------------- timelines
+
+@_inline
+def _lower(a, n, x):
+    """First index in ``a[:n]`` (sorted) holding a value >= ``x``."""
+    lo = 0
+    hi = n
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if a[mid] < x:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
+@_inline
+def _upper(a, n, x):
+    """First index in ``a[:n]`` (sorted) holding a value > ``x``."""
+    lo = 0
+    hi = n
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if a[mid] <= x:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
 
 
 @_compile
-def _refresh(c, banks, end, open_row, pre_ready):
-    """Channel ``c`` refreshes until ``end``: its rows close and none opens before then."""
-    for b in range(c * banks, (c + 1) * banks):
-        open_row[b] = -1
-        if end > pre_ready[b]:
-            pre_ready[b] = end
+def col_spacing(k1, k2, burst, ccd_l, rtw, w2r_s, w2r_l):
+    """Least time from a column command of code ``k1`` to a later one of code ``k2``.
 
-
-@_compile
-def serve(ch, gb, row, t0, groups, banks, close_page, P,
-          open_row, act, last_col, pre_ready, close_at, ch_col, ch_group, ref_next, kinds):
-    """Serve bursts ``ch``/``gb``/``row`` (sorted by channel) starting no earlier than ``t0[ch]``.
-
-    Updates the bank state (``open_row`` ... ``close_at``, one entry per
-    global bank), the channel state (``ch_col`` last column time, ``ch_group``
-    its bank group, ``ref_next`` next refresh) and ``kinds`` (hit, miss and
-    conflict counts) in place.
-
-    Returns ``(pieces, intervals, refresh_delay)``. ``pieces`` has one row per
-    piece of a channel's share, in service order: channel, earliest start,
-    first data, last data, bursts, and 1 if it continues the piece before it
-    (cut by a refresh). ``intervals`` has the data-bus busy intervals
-    ``[piece, begin, end]``, merged where bursts are back to back.
-    ``refresh_delay`` is the cycles bursts waited for refreshes that cut them.
+    A code is ``group * 2 + is_write``; ``w2r_s`` / ``w2r_l`` are a write's data
+    plus tWTR_S / tWTR_L. Scalars only: this runs for every command a search meets.
     """
-    n = len(gb)
+    w1 = k1 & 1
+    same = (k1 >> 1) == (k2 >> 1)
+    if w1 == (k2 & 1):
+        return ccd_l if same else burst
+    if w1 == 0:
+        return rtw
+    return w2r_l if same else w2r_s
+
+
+@_inline
+def _gap_after(G, gn, x):
+    """First gap of ``G[:gn]`` (sorted, disjoint ``[start, end]`` rows) ending after ``x``."""
+    lo = 0
+    hi = gn
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if G[mid, 1] <= x:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
+@_inline
+def _gap_remove(TG, TN, c, w, i):
+    G = TG[c, w]
+    for j in range(i, TN[c, N_COL_GAPS + w] - 1):
+        G[j, 0] = G[j + 1, 0]
+        G[j, 1] = G[j + 1, 1]
+    TN[c, N_COL_GAPS + w] -= 1
+
+
+@_inline
+def _gap_add(TG, TN, c, w, s, e):
+    G = TG[c, w]
+    k = TN[c, N_COL_GAPS + w]
+    p = _gap_after(G, k, s)
+    j = k
+    while j > p:
+        G[j, 0] = G[j - 1, 0]
+        G[j, 1] = G[j - 1, 1]
+        j -= 1
+    G[p, 0] = s
+    G[p, 1] = e
+    TN[c, N_COL_GAPS + w] = k + 1
+
+
+@_compile
+def _insert(TL, TK, TG, TN, c, w, x, k, width):
+    """Insert ``(x, k)`` into channel ``c``'s timeline ``w`` and keep its list of gaps at
+    least ``width`` wide (no narrower gap can hold a command). Returns the entry's index."""
+    T = TL[c, w]
+    K = TK[c, w]
+    n = TN[c, w]
+    p = n if n == 0 or x >= T[n - 1] else _upper(T, n, x)
+    prev = T[p - 1] if p > 0 else -np.inf
+    nxt = T[p] if p < n else np.inf
+    j = n
+    while j > p:
+        T[j] = T[j - 1]
+        K[j] = K[j - 1]
+        j -= 1
+    T[p] = x
+    K[p] = k
+    TN[c, w] = n + 1
+    if p > 0 and p < n:
+        G = TG[c, w]
+        i = _gap_after(G, TN[c, N_COL_GAPS + w], prev)
+        if i < TN[c, N_COL_GAPS + w] and G[i, 0] == prev:
+            _gap_remove(TG, TN, c, w, i)
+    if p > 0 and x - prev >= width:
+        _gap_add(TG, TN, c, w, prev, x)
+    if p < n and nxt - x >= width:
+        _gap_add(TG, TN, c, w, x, nxt)
+    return p
+
+
+@_inline
+def _stretch(T, n, G, gn, x):
+    """``(x, limit)``: ``x`` moved to where a command may fit (the start of the first listed
+    gap ending after it, or the last entry), and the end of that stretch."""
+    if x < T[0]:
+        return x, T[0]
+    gi = _gap_after(G, gn, x)
+    if gi < gn:
+        if x < G[gi, 0]:
+            x = G[gi, 0]
+        return x, G[gi, 1]
+    if x < T[n - 1]:
+        x = T[n - 1]
+    return x, np.inf
+
+
+@_inline
+def _col_fit(T, K, n, code, x, limit, reach, P):
+    """Earliest time >= ``x`` keeping the spacing rules with every column command within
+    ``reach`` of it; stops early (returning a time >= ``limit``) once it passes ``limit``."""
+    bu, cl, rtw = P[P_BURST], P[P_CCD_L], P[P_RTW]
+    ws, wl = P[P_CWL] + bu + P[P_WTR_S], P[P_CWL] + bu + P[P_WTR_L]
+    i = _lower(T, n, x - reach)
+    while i < n:
+        e = T[i]
+        if e >= x + reach:
+            break
+        k = K[i]
+        if e <= x:
+            need = e + col_spacing(k, code, bu, cl, rtw, ws, wl)
+            if need > x:
+                x = need
+        elif x + col_spacing(code, k, bu, cl, rtw, ws, wl) > e:
+            # no room before this command: go after it, then keep the rules with the ones before
+            x = e + col_spacing(k, code, bu, cl, rtw, ws, wl)
+            j = i - 1
+            while j >= 0 and T[j] > x - reach:
+                need = T[j] + col_spacing(K[j], code, bu, cl, rtw, ws, wl)
+                if need > x:
+                    x = need
+                j -= 1
+        if x >= limit:
+            return x
+        i += 1
+    return x
+
+
+@_compile
+def col_place(TL, TK, TG, TN, CF, c, code, x, P):
+    """Earliest time >= ``x`` for a column command of ``code`` on channel ``c``'s bus, found
+    gap by gap (:func:`place_bursts` handles the common case, after every command, itself).
+    With no write on the channel within reach, a read only keeps tCCD from the reads."""
+    n = TN[c, COL]
+    if n == 0:
+        return x
+    T = TL[c, COL]
+    reach = P[P_COL_REACH]
+    if code & 1 == 0 and CF[c, F_LAST_WRITE] <= x - reach:
+        reach = P[P_CCD_L]
+    while True:
+        x, limit = _stretch(T, n, TG[c, COL], TN[c, N_COL_GAPS], x)
+        y = _col_fit(T, TK[c, COL], n, code, x, limit, reach, P)
+        if y < limit:
+            return y
+        x = y
+
+
+@_compile
+def act_place(TL, TK, TG, TN, c, g, x, P):
+    """Earliest activate time >= ``x`` for bank group ``g`` on channel ``c``.
+
+    Returns ``(time, faw)``: ``faw`` is True when the four-activate window moved it.
+    """
+    faw = False
+    rs = P[P_RRD_S]
+    rl = P[P_RRD_L]
+    F = P[P_FAW]
+    n = TN[c, ACT]
+    if n == 0 or (rl <= 0.0 and F <= 0.0):
+        return x, faw
+    T = TL[c, ACT]
+    G = TK[c, ACT]
+    gaps = TG[c, ACT]
+    while True:
+        x, limit = _stretch(T, n, gaps, TN[c, N_ACT_GAPS], x)
+        p = _upper(T, n, x)                 # activates [0, p) are at or before x
+        need = x
+        j = p - 1
+        while j >= 0 and T[j] + rl > x:
+            r = rl if G[j] == g else rs
+            if T[j] + r > need:
+                need = T[j] + r
+            j -= 1
+        if F > 0.0 and p >= 4 and T[p - 4] + F > need:
+            need = T[p - 4] + F
+            faw = True
+        if need > x:
+            x = need
+            continue
+        if p == n:
+            return x, faw
+        ok = True
+        q = p
+        while q < n and T[q] < x + rl:
+            r = rl if G[q] == g else rs
+            if T[q] < x + r:
+                ok = False
+                break
+            q += 1
+        if ok and F > 0.0:
+            # the windows of five activates that would hold x
+            if (p >= 3 and T[p] - T[p - 3] < F) or (p >= 2 and p + 1 < n and T[p + 1] - T[p - 2] < F) \
+                    or (p >= 1 and p + 2 < n and T[p + 2] - T[p - 1] < F):
+                ok = False
+                faw = True
+                # no activate can ever go between T[p - 1] and T[p]: forget the gap
+                if p >= 1:
+                    gi = _gap_after(gaps, TN[c, N_ACT_GAPS], T[p - 1])
+                    if gi < TN[c, N_ACT_GAPS] and gaps[gi, 0] == T[p - 1]:
+                        _gap_remove(TG, TN, c, ACT, gi)
+            elif p + 3 < n and T[p + 3] - x < F:
+                ok = False
+                faw = True
+        if ok:
+            return x, faw
+        x = T[p]                            # no room before the next activate: try after it
+
+
+@_compile
+def act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, P):
+    """Earliest activate time >= ``a`` for bank group ``g`` of channel ``c`` that keeps the
+    activation limits and falls outside the bank's refresh windows. Returns ``(time, faw)``."""
+    a = ref_clear(off, period, dur, a)
+    faw = False
+    while True:
+        a2, f = act_place(TL, TK, TG, TN, c, g, a, P)
+        faw = faw or f
+        a3 = ref_clear(off, period, dur, a2)
+        if a3 == a:
+            return a, faw
+        a = a3
+
+
+@_compile
+def _room(TL, TK, TG, TN, c, w, m, keep_from):
+    """Room for ``m`` more entries in channel ``c``'s timeline ``w``, dropping those before
+    ``keep_from``. False when even then it would be more than half full (the caller grows it)."""
+    cap = TL.shape[2]
+    n = TN[c, w]
+    if n + m <= cap and TN[c, N_COL_GAPS + w] + m <= cap:
+        return True
+    T = TL[c, w]
+    K = TK[c, w]
+    d = _lower(T, n, keep_from)
+    for j in range(n - d):
+        T[j] = T[d + j]
+        K[j] = K[d + j]
+    TN[c, w] = n - d
+    G = TG[c, w]
+    gn = TN[c, N_COL_GAPS + w]
+    gi = 0
+    if n - d > 0:
+        while gi < gn and G[gi, 0] < T[0]:
+            gi += 1
+    else:
+        gi = gn
+    for j in range(gi, gn):
+        G[j - gi, 0] = G[j, 0]
+        G[j - gi, 1] = G[j, 1]
+    TN[c, N_COL_GAPS + w] = gn - gi
+    return TN[c, w] + m <= cap // 2 and TN[c, N_COL_GAPS + w] + m <= cap // 2
+
+
+@_compile
+def compact(TL, TK, TG, TN, CF, P):
+    """Drop from every timeline what no later burst can reach (kept: from the time bursts were
+    last taken in, minus the longest spacing rule)."""
+    for c in range(TL.shape[0]):
+        _room(TL, TK, TG, TN, c, COL, TL.shape[2] + 1, CF[c, F_TAKEN] - P[P_COL_REACH])
+        _room(TL, TK, TG, TN, c, ACT, TL.shape[2] + 1, CF[c, F_TAKEN] - P[P_ACT_REACH])
+
+
+@_compile
+def _log(LOG, NI, t, c, bank, kind, row):
+    k = NI[I_LOG]
+    LOG[k, 0] = t
+    LOG[k, 1] = c
+    LOG[k, 2] = bank
+    LOG[k, 3] = kind
+    LOG[k, 4] = row
+    NI[I_LOG] = k + 1
+
+
+# ---------------------------------------------------------------- bursts
+
+@_compile
+def _after_all(CT, CK, n, x, code, w, last_write, reach, burst, ccd_l, rtw, w2r_s, w2r_l):
+    """Column time >= ``x`` after all ``n`` columns of a timeline with no usable gap after
+    ``x``: only the rules with the commands just before count, and x only grows, so one
+    pass back over them is enough. With no write within reach, a read keeps tCCD only."""
+    if x < CT[n - 1]:
+        x = CT[n - 1]
+    rr = reach if (w or last_write > x - reach) else ccd_l
+    j = n - 1
+    while j >= 0 and CT[j] > x - rr:
+        need = CT[j] + col_spacing(CK[j], code, burst, ccd_l, rtw, w2r_s, w2r_l)
+        if need > x:
+            x = need
+        j -= 1
+    return x
+
+
+@_compile
+def place_bursts(gb, row, i0, i1, c, w, t, out, P, groups, banks, close_page, open_row, BF, TL, TK,
+                 TG, TN, CF, acc, LOG, NI, IV, busy):
+    """Fix the commands of bursts ``i0 .. i1-1`` (global bank ``gb``, row ``row``), all on
+    channel ``c``, writes if ``w``, which the controller sees from time ``t``, in order;
+    update all state, the data-bus intervals ``IV`` and busy time. ``out[k]`` is burst
+    ``k``'s column time. Returns ``(begin, first, last)``: when the bursts' first command
+    issued, their first data and their last data (on the bus, before the controller)."""
     burst = P[P_BURST]
     ccd_l = P[P_CCD_L]
     rcd = P[P_RCD]
     rp = P[P_RP]
     ras = P[P_RAS]
-    rtp = P[P_RTP]
-    cl = P[P_CL]
-    tail = P[P_CL] + P[P_CTRL]
-    rfc = P[P_RFC]
-    refi = P[P_REFI]
-    lim = burst * (1 + 1e-9)
-    pieces = np.empty((n, 6))
-    intervals = np.empty((n, 3))
-    npc = 0
-    niv = 0
-    delay = 0.0
-    # per bank, for the piece being served: touched, row, activate and last column times
-    seen = np.zeros(len(open_row), dtype=np.bool_)
-    b_row = np.empty(len(open_row), dtype=np.int64)
-    b_act = np.empty(len(open_row))
-    b_col = np.empty(len(open_row))
-    touched = np.empty(n, dtype=np.int64)
-    i = 0
-    while i < n:
-        c = ch[i]
-        hi = i
-        while hi < n and ch[hi] == c:
-            hi += 1
-        t = t0[c]
-        if ref_next[c] <= t:  # refreshes due before the share starts: rows closed
-            k = int((t - ref_next[c]) // refi) + 1
-            _refresh(c, banks, ref_next[c] + (k - 1) * refi + rfc, open_row, pre_ready)
-            ref_next[c] += k * refi
-        cont = 0.0
-        while i < hi:  # one piece: until the bursts end or a refresh cuts them
-            nt = 0
-            prev_c = ch_col[c]
-            prev_g = ch_group[c]
-            first_c = 0.0
-            first_kind = HIT
-            cut = False
-            j = i
-            while j < hi:
-                b = gb[j]
-                r = row[j]
-                g = b % groups
-                d = ccd_l if g == prev_g else burst
-                ready = -np.inf
-                kind = -1
-                if seen[b] and b_row[b] == r:
-                    pass                                  # same row: a hit behind its run's head
-                elif not seen[b]:
-                    o_r = open_row[b]
-                    closed = o_r < 0 or close_at[b] <= t
-                    if not closed and o_r == r:
-                        kind = HIT
-                        a = act[b]
-                    elif closed:
+    rc = P[P_RC]
+    rtw = P[P_RTW]
+    w2r_s = P[P_CWL] + burst + P[P_WTR_S]
+    w2r_l = P[P_CWL] + burst + P[P_WTR_L]
+    reach = P[P_COL_REACH]
+    rrd_s = P[P_RRD_S]
+    rrd_l = P[P_RRD_L]
+    faw_t = P[P_FAW]
+    period = P[P_REF_PERIOD]
+    dur = P[P_REF_DUR]
+    after_col = P[P_CWL] + burst + P[P_WR] if w else P[P_RTP]   # earliest precharge after a column
+    logging = NI[I_LOGGING] > 0
+    CT = TL[c, COL]
+    CK = TK[c, COL]
+    CG = TG[c, COL]
+    AT = TL[c, ACT]
+    AG = TK[c, ACT]
+    # the channel takes bursts in in time order: none is seen before the last one taken in
+    if t < CF[c, F_TAKEN]:
+        t = CF[c, F_TAKEN]
+    else:
+        CF[c, F_TAKEN] = t
+    gmask = groups - 1                          # bank groups come in powers of two
+    lat = P[P_CWL] if w else P[P_CL]
+    begin = np.inf
+    first = np.inf
+    last = -np.inf
+    for k in range(i0, i1):
+        b = gb[k]
+        r = row[k]
+        g = b & gmask
+        code = g * 2 + w
+        # a row hit placed after every column (the common case) skips the general search
+        fast = False
+        if open_row[b] == r and BF[b, B_CLOSE] > t and BF[b, B_ROW_END] > t:
+            cc = BF[b, B_ACT] + rcd
+            if t > cc:
+                cc = t
+            if BF[b, B_COL] + ccd_l > cc:
+                cc = BF[b, B_COL] + ccd_l
+            n = TN[c, N_COL]
+            gn = TN[c, N_COL_GAPS]
+            if n > 0 and cc >= CT[0] and (gn == 0 or CG[gn - 1, 1] <= cc):
+                cc = _after_all(CT, CK, n, cc, code, w, CF[c, F_LAST_WRITE], reach, burst, ccd_l, rtw,
+                                w2r_s, w2r_l)
+                fast = cc < BF[b, B_ROW_END]
+        off = BF[b, B_REF_OFF]
+        act = BF[b, B_ACT]
+        pre_ready = BF[b, B_PRE_READY]
+        shut = -1.0                              # a close-page precharge to log
+        first_cc = -1.0
+        kind = HIT
+        a = act
+        p = -np.inf
+        a_lo = 0.0
+        faw = False
+        s = BF[b, B_ROW_END]
+        if not fast:
+            o = open_row[b]
+            if o >= 0:
+                s = BF[b, B_ROW_END]
+                if BF[b, B_CLOSE] <= t and BF[b, B_CLOSE] < s:
+                    shut = BF[b, B_CLOSE]        # closed by its close-page precharge
+                    o = -1
+                elif s <= t:                     # a refresh closed the row
+                    o = -1
+                    if s + dur > pre_ready:
+                        pre_ready = s + dur
+            for _ in range(64):
+                if o == r:
+                    kind = HIT
+                    a = act
+                    lo = act + rcd
+                    if t > lo:
+                        lo = t
+                    s = BF[b, B_ROW_END]
+                else:
+                    if o < 0:
                         kind = MISS
-                        a = pre_ready[b] if pre_ready[b] > t else t
+                        a0 = pre_ready if pre_ready > t else t
                     else:
                         kind = CONFLICT
-                        a = _reopen(last_col[b], act[b], t, rtp, ras, rp)
-                    ready = a + rcd
-                    if t > ready:
-                        ready = t
-                else:                                     # the bank changes rows in the batch
-                    kind = CONFLICT
-                    a = _reopen(b_col[b], b_act[b], t, rtp, ras, rp)
-                    ready = a + rcd
-                cc = prev_c + d
-                if ready > cc:
-                    cc = ready
-                if cc >= ref_next[c]:
-                    cut = True
-                    delay += max(0.0, ref_next[c] + rfc - cc)
-                    break
-                if kind >= 0:
-                    kinds[kind] += 1
-                    if not seen[b]:
-                        seen[b] = True
-                        touched[nt] = b
-                        nt += 1
-                    b_row[b] = r
-                    b_act[b] = a
+                        p = BF[b, B_PRE_MIN]
+                        if act + ras > p:
+                            p = act + ras
+                        if t > p:
+                            p = t
+                        if BF[b, B_ROW_END] <= p:  # the refresh closes the row first
+                            o = -1
+                            if BF[b, B_ROW_END] + dur > pre_ready:
+                                pre_ready = BF[b, B_ROW_END] + dur
+                            continue
+                        a0 = p + rp
+                    if act + rc > a0:
+                        a0 = act + rc
+                    a_lo = ref_clear(off, period, dur, a0)
+                    a = a_lo
+                    faw = False
+                    na = TN[c, N_ACT]
+                    gna = TN[c, N_ACT_GAPS]
+                    if na > 0 and a >= AT[0] and (gna == 0 or TG[c, ACT, gna - 1, 1] <= a):
+                        # no gap ahead: after every activate (the common case); keep tRRD with
+                        # those just before and tFAW with the fourth before
+                        if a < AT[na - 1]:
+                            a = AT[na - 1]
+                        x = a
+                        j = na - 1
+                        while j >= 0 and AT[j] + rrd_l > a:
+                            need = AT[j] + (rrd_l if AG[j] == g else rrd_s)
+                            if need > x:
+                                x = need
+                            j -= 1
+                        if faw_t > 0.0 and na >= 4 and AT[na - 4] + faw_t > x:
+                            x = AT[na - 4] + faw_t
+                            faw = True
+                        if ref_clear(off, period, dur, x) != x:
+                            a, f = act_slot(TL, TK, TG, TN, c, g, x, off, period, dur, P)
+                            faw = faw or f
+                        else:
+                            a = x
+                    elif na > 0:
+                        a, faw = act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, P)
+                    lo = a + rcd
+                    s = ref_after(off, period, dur, a)
+                if BF[b, B_COL] + ccd_l > lo:    # a bank's bursts keep their order
+                    lo = BF[b, B_COL] + ccd_l
+                n = TN[c, N_COL]
+                gn = TN[c, N_COL_GAPS]
+                if n == 0:
+                    cc = lo
+                elif lo >= CT[0] and (gn == 0 or CG[gn - 1, 1] <= lo):
+                    cc = _after_all(CT, CK, n, lo, code, w, CF[c, F_LAST_WRITE], reach, burst, ccd_l,
+                                    rtw, w2r_s, w2r_l)
                 else:
-                    kinds[HIT] += 1
-                b_col[b] = cc
-                if j == i:
-                    first_c = cc
-                    first_kind = kind
-                    intervals[niv, 0] = npc
-                    intervals[niv, 1] = cc + cl
-                    niv += 1
-                elif cc - prev_c > lim:
-                    intervals[niv - 1, 2] = prev_c + (cl + burst)
-                    intervals[niv, 0] = npc
-                    intervals[niv, 1] = cc + cl
-                    niv += 1
-                prev_c = cc
-                prev_g = g
-                j += 1
-            if j > i:  # commit the piece: bank and channel state, its record
-                intervals[niv - 1, 2] = prev_c + (cl + burst)
-                for q in range(nt):
-                    b = touched[q]
-                    act[b] = b_act[b]
-                    last_col[b] = b_col[b]
-                    open_row[b] = b_row[b]
-                    if close_page:
-                        shut = b_col[b] + rtp
-                        if b_act[b] + ras > shut:
-                            shut = b_act[b] + ras
-                        close_at[b] = shut
-                        pre_ready[b] = shut + rp
-                    seen[b] = False
-                ch_col[c] = prev_c
-                ch_group[c] = prev_g
-                prep = 0.0 if first_kind == HIT else (rcd if first_kind == MISS else rp + rcd)
-                start = first_c - prep
-                pieces[npc, 0] = c
-                pieces[npc, 1] = start if start > t else t
-                pieces[npc, 2] = first_c + tail
-                pieces[npc, 3] = prev_c + (burst + tail)
-                pieces[npc, 4] = j - i
-                pieces[npc, 5] = cont
-                npc += 1
-                cont = 1.0
-            if cut:  # the refresh: rows close, the rest waits for it to end
-                w = ref_next[c]
-                _refresh(c, banks, w + rfc, open_row, pre_ready)
-                ref_next[c] += refi
-                if w + rfc > t:
-                    t = w + rfc
-            i = j
-    return pieces[:npc], intervals[:niv], delay
+                    cc = col_place(TL, TK, TG, TN, CF, c, code, lo, P)
+                if cc < s:
+                    break
+                # a refresh window starts before the column: the row closes, open it again after
+                if first_cc < 0.0:
+                    first_cc = cc
+                o = -1
+                if s + dur > pre_ready:
+                    pre_ready = s + dur
+        bank = b - c * banks
+        if kind != HIT:
+            if logging:
+                if kind == CONFLICT:
+                    _log(LOG, NI, p, c, bank, CMD_PRE, open_row[b])
+                elif shut >= 0.0:
+                    _log(LOG, NI, shut, c, bank, CMD_PRE, open_row[b])
+                _log(LOG, NI, a, c, bank, CMD_ACT, r)
+            na = TN[c, N_ACT]
+            if na == 0 or a >= AT[na - 1]:       # appended (the common case)
+                # a gap another activate could use later: wide enough for tRRD on both sides,
+                # and not inside a full four-activate window
+                if na > 0 and a - AT[na - 1] >= 2.0 * rrd_s and \
+                        (faw_t <= 0.0 or na < 3 or a >= AT[na - 3] + faw_t):
+                    _gap_add(TG, TN, c, ACT, AT[na - 1], a)
+                AT[na] = a
+                AG[na] = g
+                TN[c, N_ACT] = na + 1
+            else:
+                _insert(TL, TK, TG, TN, c, ACT, a, g, 2.0 * rrd_s)
+            BF[b, B_ACT] = a
+            BF[b, B_ROW_END] = s
+            BF[b, B_PRE_MIN] = -np.inf
+            open_row[b] = r
+            acc[A_ACTS] += 1.0
+            if faw:
+                acc[A_FAW_ACTS] += 1.0
+            acc[A_ACT_DELAY] += a - a_lo
+        if logging:
+            _log(LOG, NI, cc, c, bank, CMD_WR if w else CMD_RD, r)
+        n = TN[c, N_COL]
+        if n == 0 or cc >= CT[n - 1]:             # appended (the common case)
+            if n > 0:
+                if cc - CT[n - 1] >= 2.0 * burst:
+                    _gap_add(TG, TN, c, COL, CT[n - 1], cc)
+                pw = CK[n - 1] & 1
+                if pw != w:
+                    acc[A_RW if pw == 0 else A_WR] += 1.0
+            CT[n] = cc
+            CK[n] = code
+            TN[c, N_COL] = n + 1
+        else:
+            q = _insert(TL, TK, TG, TN, c, COL, cc, code, 2.0 * burst)
+            # read/write direction changes between neighbours on the bus
+            nw = CK[q + 1] & 1
+            if nw != w:
+                acc[A_RW if w == 0 else A_WR] += 1.0
+            if q > 0:
+                pw = CK[q - 1] & 1
+                if pw != w:
+                    acc[A_RW if pw == 0 else A_WR] += 1.0
+                if pw != nw:
+                    acc[A_RW if pw == 0 else A_WR] -= 1.0
+        if cc > CF[c, F_LAST]:
+            CF[c, F_LAST] = cc
+        if w and cc > CF[c, F_LAST_WRITE]:
+            CF[c, F_LAST_WRITE] = cc
+        BF[b, B_COL] = cc
+        if cc + after_col > BF[b, B_PRE_MIN]:
+            BF[b, B_PRE_MIN] = cc + after_col
+        if close_page:
+            sh = BF[b, B_PRE_MIN]
+            if BF[b, B_ACT] + ras > sh:
+                sh = BF[b, B_ACT] + ras
+            BF[b, B_CLOSE] = sh
+            pre_ready = sh + rp
+        BF[b, B_PRE_READY] = pre_ready
+        acc[A_KIND + kind] += 1.0
+        if first_cc >= 0.0:
+            acc[A_REF_DELAY] += cc - first_cc
+        out[k] = cc
+        b0 = p if kind == CONFLICT else (a if kind == MISS else cc)
+        if b0 < begin:
+            begin = b0
+        d0 = cc + lat
+        if d0 < first:
+            first = d0
+        if d0 + burst > last:
+            last = d0 + burst
+        # the data bus is busy [d0, d0 + burst]: join the channel's last interval if they touch
+        m = TN[c, N_IV]
+        if m > 0 and IV[c, m - 1, 0] <= d0 <= IV[c, m - 1, 1] + 1e-9:
+            if d0 + burst > IV[c, m - 1, 1]:
+                IV[c, m - 1, 1] = d0 + burst
+        else:
+            IV[c, m, 0] = d0
+            IV[c, m, 1] = d0 + burst
+            TN[c, N_IV] = m + 1
+    busy[c] += (i1 - i0) * burst
+    acc[A_WRITE_BURSTS if w else A_READ_BURSTS] += i1 - i0
+    return begin, first, last
 
 
 # ---------------------------------------------------------------- queue slots
-# A channel's queue as rows ``[entered before, entered up to, first data, last data]``
-# of ``S[channel]``; ``SI[channel] = (head, count)``; ``ST[channel]`` requests entered.
+# A channel's read queue: requests entered so far ``CF[c, F_ENTERED]``; the completions not
+# yet counted as a min-heap ``H[c, :TN[c, N_HEAP]]`` of ramps ``(done, start, amount)``
+# (``amount`` requests completing linearly from ``start`` to ``done``); the ramp being counted
+# ``CF[c, F_RAMP_*]`` and the completions counted before it ``CF[c, F_REL]``.
 # :class:`sim.engine.dram.RequestSlots` owns the arrays and says what they model.
 
+PIECES = 64          # a share's completion ramp is cut into at most this many heap entries
+
+
 @_compile
-def slots_room_at(S, SI, ST, c, now, need, depth):
-    """Earliest time from ``now`` at which ``need`` more requests (one at most) fit in ``c``'s queue."""
-    level = ST[c] + min(need, 1.0) - depth       # completions needed first
-    if level <= 1e-9:
-        return now
-    x = level - 1e-9
-    lo = SI[c, 0]
-    hi = SI[c, 1]
-    while lo < hi:                               # first share whose end reaches the level
-        mid = (lo + hi) // 2
-        if S[c, mid, 1] < x:
-            lo = mid + 1
-        else:
-            hi = mid
-    if lo >= SI[c, 1]:
-        return now
-    SI[c, 0] = lo                                # levels only grow: nothing before is needed again
-    b = S[c, lo, 0]
-    e = S[c, lo, 1]
-    f = S[c, lo, 2]
-    d = S[c, lo, 3]
-    t = f + (level - b) / (e - b) * (d - f) if e > b else d
+def _heap_push(H, TN, c, d, s, a):
+    k = TN[c, N_HEAP]
+    H[c, k, 0] = d
+    H[c, k, 1] = s
+    H[c, k, 2] = a
+    TN[c, N_HEAP] = k + 1
+    while k > 0:
+        up = (k - 1) >> 1
+        if H[c, up, 0] <= H[c, k, 0]:
+            break
+        for f in range(3):
+            H[c, up, f], H[c, k, f] = H[c, k, f], H[c, up, f]
+        k = up
+
+
+@_compile
+def _heap_pop(H, TN, c):
+    d = H[c, 0, 0]
+    s = H[c, 0, 1]
+    a = H[c, 0, 2]
+    n = TN[c, N_HEAP] - 1
+    TN[c, N_HEAP] = n
+    if n > 0:
+        for f in range(3):
+            H[c, 0, f] = H[c, n, f]
+        k = 0
+        while True:
+            lo = 2 * k + 1
+            if lo >= n:
+                break
+            if lo + 1 < n and H[c, lo + 1, 0] < H[c, lo, 0]:
+                lo += 1
+            if H[c, k, 0] <= H[c, lo, 0]:
+                break
+            for f in range(3):
+                H[c, lo, f], H[c, k, f] = H[c, k, f], H[c, lo, f]
+            k = lo
+    return d, s, a
+
+
+@_compile
+def slots_room_at(H, TN, CF, c, now, need, depth):
+    """Earliest time from ``now`` at which ``need`` more requests (one at most) fit in ``c``'s queue.
+
+    Completions are counted in the order they happen, wherever their request
+    sits in the queue; ramps that finished by ``now`` are counted on the way.
+    """
+    rel = CF[c, F_REL]
+    s = CF[c, F_RAMP_START]
+    d = CF[c, F_RAMP_DONE]
+    a = CF[c, F_RAMP_AMOUNT]
+    if a > 0.0 and d <= now:                      # done: counted, no ramp left to read
+        rel += a
+        a = 0.0
+        d = -np.inf
+    while TN[c, N_HEAP] > 0 and H[c, 0, 0] <= now:
+        rel += _heap_pop(H, TN, c)[2]
+    level = CF[c, F_ENTERED] + min(need, 1.0) - depth       # completions needed first
+    t = now
+    if level > 1e-9:
+        x = level - 1e-9
+        while rel + a < x and TN[c, N_HEAP] > 0:
+            rel += a
+            d, s, a = _heap_pop(H, TN, c)
+        if rel + a >= x:
+            t = s + (level - rel) / a * (d - s) if a > 0 else d
+    CF[c, F_REL] = rel
+    CF[c, F_RAMP_START] = s
+    CF[c, F_RAMP_DONE] = d
+    CF[c, F_RAMP_AMOUNT] = a
     return t if t > now else now
 
 
 @_compile
-def slots_add(S, SI, ST, c, first, done, amount):
-    """``amount`` requests enter ``c``'s queue, completing linearly from ``first`` to ``done``."""
-    k = SI[c, 1]
-    S[c, k, 0] = ST[c]
-    ST[c] += amount
-    S[c, k, 1] = ST[c]
-    S[c, k, 2] = first
-    S[c, k, 3] = done
-    SI[c, 1] = k + 1
+def slots_add(H, TN, CF, c, first, done, amount):
+    """``amount`` requests enter ``c``'s queue, completing linearly from ``first`` to ``done``.
+
+    The ramp is cut at whole requests (at most :data:`PIECES` pieces), so it
+    interleaves with other ramps in completion order.
+    """
+    p0 = CF[c, F_ENTERED]
+    p1 = p0 + amount
+    CF[c, F_ENTERED] = p1
+    if amount <= 0.0:
+        return
+    step = amount / PIECES
+    x = p0
+    while x < p1 - 1e-12:
+        y = np.floor(x) + 1.0
+        if y - x < step:
+            y = x + step
+        if y > p1 - 1e-12:
+            y = p1
+        _heap_push(H, TN, c, first + (y - p0) / amount * (done - first),
+                   first + (x - p0) / amount * (done - first), y - x)
+        x = y
 
 
 # ---------------------------------------------------------------- whole batches
@@ -305,29 +840,53 @@ def decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels):
 
 
 @_compile
-def serve_and_book(ch, gb, row, now, arrival, times, depth, rq, groups, banks, close_page, P,
-                   open_row, act, last_col, pre_ready, close_at, ch_col, ch_group, ref_next,
-                   kinds, S, SI, ST, R, RN, IV, IVN, busy, acc, t0):
-    """Queue, serve and book one batch (sorted by channel) arriving at ``now``.
-
-    Each channel's share starts once its first request fits in the channel's
-    queue; :func:`serve` times it; then its pieces enter the queue slots
-    (``S``...), the share records (``R``, ``RN`` rows: channel, arrival, start,
-    first data, last data, bursts), the data-bus intervals (``IV``, ``IVN``)
-    and the busy cycles. ``times`` holds the batch's start, first data and last
-    data, raised here. ``acc`` = (requests, refresh delay). Returns the number
-    of channels served, or -1 without touching anything if a table is full.
-    """
+def _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
+    """Whether every table has room for the batch (making room in the timelines)."""
     n = len(ch)
-    if RN[0] + n > R.shape[0]:
-        return -1
+    if NI[I_RECORDS] + n > R.shape[0]:
+        return False
+    if NI[I_LOGGING] > 0 and NI[I_LOG] + 3 * n > LOG.shape[0]:
+        return False
     i = 0
     while i < n:
         c = ch[i]
-        if SI[c, 1] + n > S.shape[1] or IVN[c] + n > IV.shape[1]:
-            return -1
-        while i < n and ch[i] == c:
-            i += 1
+        j = i
+        while j < n and ch[j] == c:
+            j += 1
+        m = j - i
+        if TN[c, N_HEAP] + PIECES + 1 > H.shape[1] or TN[c, N_IV] + m > IV.shape[1]:
+            return False
+        cap = TL.shape[2]
+        for w in range(2):
+            if TN[c, w] + m > cap or TN[c, N_COL_GAPS + w] + m > cap:
+                keep = CF[c, F_TAKEN] - (P[P_COL_REACH] if w == COL else P[P_ACT_REACH])
+                if not _room(TL, TK, TG, TN, c, w, m, keep):
+                    return False
+        i = j
+    return True
+
+
+@_compile
+def serve_and_book(ch, gb, row, now, arrival, times, depth, rq, groups, banks, close_page, P, open_row,
+                   BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI):
+    """Queue, serve and book one batch of reads (sorted by channel) arriving at ``now``.
+
+    Each channel's share enters the channel's read queue once its first request
+    fits, and its bursts are placed from then (:func:`place_bursts`); the share then
+    enters the queue slots (``H``...), the share records (``R`` rows: channel,
+    arrival, start, first data, last data, bursts), the data-bus intervals
+    (``IV``) and the busy cycles. ``times`` holds the batch's start, first data
+    and last data, raised here. Returns the number of channels served, or -1
+    without changing any timing state if a table is full.
+    """
+    if not _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
+        return -1
+    n = len(ch)
+    ctrl = P[P_CTRL]
+    t_start = times[0]
+    t_first = times[1]
+    t_done = times[2]
+    out = np.empty(n)
     nch = 0
     i = 0
     while i < n:
@@ -335,59 +894,32 @@ def serve_and_book(ch, gb, row, now, arrival, times, depth, rq, groups, banks, c
         j = i
         while j < n and ch[j] == c:
             j += 1
+        m = j - i
         # the channel's queue is full: wait for requests to complete
-        t0[c] = slots_room_at(S, SI, ST, c, now, (j - i) / rq, depth)
+        t = slots_room_at(H, TN, CF, c, now, m / rq, depth)
+        begin, first, last = place_bursts(gb, row, i, j, c, 0, t, out, P, groups, banks, close_page,
+                                          open_row, BF, TL, TK, TG, TN, CF, acc, LOG, NI, IV, busy)
+        first += ctrl
+        last += ctrl
+        nreq = m / rq
+        acc[A_REQUESTS] += nreq
+        slots_add(H, TN, CF, c, first, last, nreq)
+        r = NI[I_RECORDS]
+        R[r, 0] = c
+        R[r, 1] = arrival
+        R[r, 2] = begin
+        R[r, 3] = first
+        R[r, 4] = last
+        R[r, 5] = m
+        NI[I_RECORDS] = r + 1
+        if begin > t_start:
+            t_start = begin
+        if first > t_first:
+            t_first = first
+        if last > t_done:
+            t_done = last
         nch += 1
         i = j
-    pieces, ivs, delay = serve(ch, gb, row, t0, groups, banks, close_page, P, open_row, act,
-                               last_col, pre_ready, close_at, ch_col, ch_group, ref_next, kinds)
-    burst = P[P_BURST]
-    t_start = times[0]
-    t_first = times[1]
-    t_done = times[2]
-    slot = np.empty(len(ch_col), dtype=np.int64)
-    for k in range(len(pieces)):
-        c = int(pieces[k, 0])
-        m = pieces[k, 4]
-        first = pieces[k, 2]
-        done = pieces[k, 3]
-        nreq = m / rq
-        acc[0] += nreq
-        slots_add(S, SI, ST, c, first, done, nreq)
-        busy[c] += m * burst
-        if pieces[k, 5] != 0.0:          # the rest of a share cut by a refresh
-            R[slot[c], 4] = done
-            R[slot[c], 5] += m
-        else:
-            r = RN[0]
-            slot[c] = r
-            R[r, 0] = c
-            R[r, 1] = arrival
-            R[r, 2] = pieces[k, 1]
-            R[r, 3] = first
-            R[r, 4] = done
-            R[r, 5] = m
-            RN[0] = r + 1
-            if pieces[k, 1] > t_start:
-                t_start = pieces[k, 1]
-            if first > t_first:
-                t_first = first
-        if done > t_done:
-            t_done = done
-    last = -1.0
-    for q in range(len(ivs)):
-        k = ivs[q, 0]
-        c = int(pieces[int(k), 0])
-        m = IVN[c]
-        if k != last and m > 0 and IV[c, m - 1, 1] >= ivs[q, 1] - 1e-9:   # joins the last one
-            if ivs[q, 2] > IV[c, m - 1, 1]:
-                IV[c, m - 1, 1] = ivs[q, 2]
-        else:
-            IV[c, m, 0] = ivs[q, 1]
-            IV[c, m, 1] = ivs[q, 2]
-            IVN[c] = m + 1
-        last = k
-    acc[1] += delay
     times[0] = t_start
     times[1] = t_first
     times[2] = t_done
@@ -395,8 +927,8 @@ def serve_and_book(ch, gb, row, now, arrival, times, depth, rq, groups, banks, c
 
 
 @_compile
-def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, S, SI, ST, IV, IVN,
-                busy, acc, counts):
+def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, H, TN, CF, IV, busy, acc,
+                counts):
     """The fixed-latency model: each channel's bursts on one pipelined bus after the ones before.
 
     Returns ``(status, start, end)``: -1 without touching anything if a table
@@ -408,7 +940,7 @@ def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, S, SI, S
     for i in range(len(b)):
         counts[(b[i] // interleave) % nch] += 1
     for c in range(nch):
-        if counts[c] and (SI[c, 1] + 1 > S.shape[1] or IVN[c] + 1 > IV.shape[1]):
+        if counts[c] and (TN[c, N_HEAP] + PIECES + 1 > H.shape[1] or TN[c, N_IV] + 1 > IV.shape[1]):
             return -1, 0.0, 0.0
     t_start = now
     t_end = now
@@ -418,22 +950,22 @@ def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, S, SI, S
             continue
         nreq = nb / rq
         start = free_at[c] if free_at[c] > now else now
-        room = slots_room_at(S, SI, ST, c, now, nreq, depth)
+        room = slots_room_at(H, TN, CF, c, now, nreq, depth)
         if room > start:  # wait until enough queued requests have completed
             start = room
         end = start + nb * t_burst
         free_at[c] = end
-        m = IVN[c]
+        m = TN[c, N_IV]
         if m > 0 and IV[c, m - 1, 1] >= start:
             if end > IV[c, m - 1, 1]:
                 IV[c, m - 1, 1] = end
         else:
             IV[c, m, 0] = start
             IV[c, m, 1] = end
-            IVN[c] = m + 1
+            TN[c, N_IV] = m + 1
         busy[c] += end - start
-        slots_add(S, SI, ST, c, start + t_lat, end + t_lat, nreq)
-        acc[0] += nreq
+        slots_add(H, TN, CF, c, start + t_lat, end + t_lat, nreq)
+        acc[A_REQUESTS] += nreq
         if start > t_start:
             t_start = start
         if end > t_end:
@@ -442,11 +974,9 @@ def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, S, SI, S
 
 
 @_compile
-def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, depth, rq, groups,
-                    banks, close_page, P, open_row, act, last_col, pre_ready, close_at, ch_col,
-                    ch_group, ref_next, kinds, S, SI, ST, R, RN, IV, IVN, busy, acc, t0):
-    """:func:`decode_sorted` then :func:`serve_and_book` for a transaction arriving now."""
-    ch, gb, row = decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, len(ch_col))
+def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, depth, rq, groups, banks,
+                    close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI):
+    """:func:`decode_sorted` then :func:`serve_and_book` for reads arriving now."""
+    ch, gb, row = decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, len(busy))
     return serve_and_book(ch, gb, row, now, now, times, depth, rq, groups, banks, close_page, P,
-                          open_row, act, last_col, pre_ready, close_at, ch_col, ch_group,
-                          ref_next, kinds, S, SI, ST, R, RN, IV, IVN, busy, acc, t0)
+                          open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI)
