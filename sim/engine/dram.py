@@ -25,6 +25,17 @@ open). A channel's queue holds ``dram.queue_depth`` requests (see
 :class:`RequestSlots`); the channel serves them first come first served (per
 bank, in order), or lets row hits go first.
 
+Writes (``txn.is_write``) are posted: each channel's share enters the
+channel's write queue of ``dram.write_queue`` bursts once there is room (the
+burst that many places ahead has left), and the transaction's event fires
+when every share is in -- the write is then accepted, not yet in the array.
+A channel drains its oldest writes when ``dram.write_high`` of the queue is
+full, down to ``dram.write_low``, and all of them once it has no read left to
+serve (a watermark drain; common practice, no single source). Drained writes
+are timed like reads with the write rules: data tCWL after the column, the
+row's precharge tWR after the write data, a read tWTR_S / tWTR_L after it, a
+write tRTW after a read.
+
 Transaction grain: cutting a stream into more transactions must not change
 the answer, so nothing here depends on how bursts are grouped, only on their
 order: queue room is counted in requests, spacing across share boundaries is
@@ -45,16 +56,21 @@ scheduling decision of a channel under ``row_hits_first`` -- never one per
 burst or per cycle.
 
 Interface used by the fetch unit (stable): ``submit(txn) -> simpy event``
-fired when the last byte has arrived, with the transaction's log marked
-``memory_queue``, ``memory_latency``, ``memory_transfer`` (non-decreasing);
+fired when the last byte has arrived (a write: when the write queue took it
+in), with the transaction's log marked ``memory_queue``, ``memory_latency``,
+``memory_transfer`` (non-decreasing) and ``txn.mem_times`` set to the same
+three times before the event fires;
 ``report(total_cycles)`` for the result's ``dram`` section; ``busy_intervals``
 per channel (merged data-bus busy intervals); ``share_records()``.
 
-Simplifications, on purpose: reads only; no command-bus contention (commands
+Simplifications, on purpose: no command-bus contention (commands
 of different banks may issue in the same cycle); refresh is taken on schedule
 (never postponed) and does not wait for tRAS of open rows; every
 ``dram.refresh`` mode is served as all-bank refresh (``t_rfc_ns`` every
-``t_refi_ns``).
+``t_refi_ns``); a read never takes its data from a write still queued; a
+drain cannot move a read fixed before it (reads keep their slots, the writes
+go where the bus is free); the fixed-latency model moves writes on its bus
+like reads and takes them in when their bus slot starts.
 """
 
 import numpy as np
@@ -236,9 +252,12 @@ class ChannelPool:
         self.CF = self.outstanding.CF
         # share records, command-log rows, logging on
         self.NI = np.array([0, 0, 1 if log_commands else 0], dtype=np.int64)
-        self.bytes = 0
+        self.bytes = 0                                   # read and written
         self.bursts = 0
         self.txns = 0
+        self.write_txns = 0
+        self.write_bytes = 0
+        self.write_wait = 0.0                            # cycles writes waited for queue room
         self.wait_total = 0.0
         self.latency_total = 0.0
         self.latencies = []
@@ -277,6 +296,18 @@ class ChannelPool:
         self._times = np.zeros(3)
         lut = self.decoder.lut
         self._lut = (lut[0], lut[2], self.decoder.low_bits, self.decoder.low_mask) if lut else None
+        # write queues: bursts entered and drained so far, those waiting (oldest first), the
+        # time each drained burst left (by queue position, from w_base), the idle-drain timer
+        self.wq_cap = d.write_queue
+        self.wq_high = max(1, int(np.ceil(d.write_high * d.write_queue - 1e-9)))
+        self.wq_low = min(self.wq_high - 1, int(np.floor(d.write_low * d.write_queue + 1e-9)))
+        self.w_entered = [0] * self.n
+        self.w_drained = [0] * self.n
+        self.w_pending = [[] for _ in range(self.n)]
+        self.w_leave = [np.zeros(0) for _ in range(self.n)]
+        self.w_base = [0] * self.n
+        self.w_timer = [None] * self.n
+        self.acc_w = [0, 0]                           # drains at the high mark, idle drains
         # row_hits_first: shares held per channel until its decision time
         self.held = [[] for _ in range(self.n)]
         self.timer_at = [None] * self.n
@@ -295,6 +326,8 @@ class ChannelPool:
                 break
             _room_or_stall(tries, "fixed-latency serve")
             self._make_room(1)
+        if txn.is_write:                    # posted: taken in when its bus slot starts
+            return self._finish(txn, now, t_start, t_start, t_start, None, write=True)
         t_first = t_start + self.t_lat
         t_done = max(t_end, t_start) + self.t_lat
         return self._finish(txn, now, t_start, t_first, t_done, None)
@@ -354,26 +387,18 @@ class ChannelPool:
 
     # ----------------------------------------------------------------- banked
     def _submit_banked(self, txn):
-        """Serve ``txn.bursts`` on the banked model; the event fires at the last byte."""
+        """Serve ``txn.bursts`` on the banked model; the event fires at the last byte (a read)
+        or once the write queue took the bursts in (a write)."""
         now = self.env.now
         self._arrive(now)
         b = txn.bursts
         if len(b) == 0:
             return self._finish(txn, now, now, now, now, None)
+        if txn.is_write:
+            return self._submit_write(txn, b, now)
         if self._lut is not None and not (self.first_free or self.rows_first):
             return self._serve_now(txn, b, now)
-        if self.first_free:
-            c = self._first_free_channel(now)
-            _, bank, row = self.decoder.decode(b)
-            gb = bank + c * self.banks
-            ch = np.full(len(b), c, dtype=np.int64)
-        elif self._lut is not None:
-            ch, gb, row = decode_sorted(b, self.burst, *self._lut, self.n)
-        else:
-            ch, gb, row = self.decoder.decode_global(b)
-            if self.n > 1:
-                order = np.argsort(ch, kind="stable")
-                ch, gb, row = ch[order], gb[order], row[order]
+        ch, gb, row = self._decode(b, now)
         rec = [now, 0, now, now, now, None]   # arrival, shares left, start, first data, done, event
         if not self.rows_first:
             rec[1] = -1                        # committed in one go
@@ -399,6 +424,99 @@ class ChannelPool:
         ev = self.env.event()
         rec[5] = (txn, ev, len(b))
         return ev
+
+    def _decode(self, b, now):
+        """Channel, global bank and row of burst addresses ``b``, sorted by channel."""
+        if self.first_free:
+            c = self._first_free_channel(now)
+            _, bank, row = self.decoder.decode(b)
+            return np.full(len(b), c, dtype=np.int64), bank + c * self.banks, row
+        if self._lut is not None:
+            return decode_sorted(b, self.burst, *self._lut, self.n)
+        ch, gb, row = self.decoder.decode_global(b)
+        if self.n > 1:
+            order = np.argsort(ch, kind="stable")
+            ch, gb, row = ch[order], gb[order], row[order]
+        return ch, gb, row
+
+    # ----------------------------------------------------------------- writes
+    def _submit_write(self, txn, b, now):
+        """Posted writes: each channel's share enters its write queue once there is room (the
+        burst ``write_queue`` places ahead of it has left); the event fires when every share
+        is in. A channel drains its oldest writes when the queue reaches the high mark, down
+        to the low mark, and all of them once it has no read left to serve."""
+        ch, gb, row = self._decode(b, now)
+        cnt = np.bincount(ch, minlength=self.n)
+        ends = np.cumsum(cnt)
+        t_in = now
+        for c in np.flatnonzero(cnt).tolist():
+            lo, hi = ends[c] - cnt[c], ends[c]
+            ahead = self.w_entered[c] - self.wq_cap        # the burst that must have left first
+            t = now
+            if ahead >= 0:
+                if ahead >= self.w_drained[c]:             # full of writes not yet drained
+                    self._drain(c, ahead + 1 - self.w_drained[c], now)
+                t = max(now, self.w_leave[c][ahead - self.w_base[c]])
+            self.w_pending[c].append((gb[lo:hi], row[lo:hi]))
+            self.w_entered[c] += hi - lo
+            waiting = self.w_entered[c] - self.w_drained[c]
+            if waiting >= self.wq_high:
+                self.acc_w[0] += 1                           # drains at the high mark
+                self._drain(c, waiting - self.wq_low, t)
+            t_in = max(t_in, t)
+            self._arm_idle(c)
+        return self._finish(txn, now, t_in, t_in, t_in, None, write=True)
+
+    def _drain(self, c, count, t):
+        """Fix the commands of channel ``c``'s ``count`` oldest queued writes, seen from ``t``."""
+        parts, got = [], 0
+        pend = self.w_pending[c]
+        while got < count:
+            g, r = pend[0]
+            take = min(len(g), count - got)
+            parts.append((g[:take], r[:take]))
+            if take == len(g):
+                pend.pop(0)
+            else:
+                pend[0] = (g[take:], r[take:])
+            got += take
+        gb = np.concatenate([p[0] for p in parts])
+        row = np.concatenate([p[1] for p in parts])
+        out = np.empty(count)
+        for tries in range(MAX_ROOM_TRIES + 1):
+            if T.serve_writes(gb, row, c, float(t), out, *self._write_args) > 0:
+                break
+            _room_or_stall(tries, "write drain")
+            self._make_room(count)
+        # leave times of the drained bursts, by queue position (older positions are no longer read)
+        keep = self.w_drained[c] - self.wq_cap - self.w_base[c]
+        if keep > 0:
+            self.w_leave[c] = self.w_leave[c][keep:]
+            self.w_base[c] += keep
+        self.w_leave[c] = np.concatenate((self.w_leave[c], out))
+        self.w_drained[c] += count
+
+    def _arm_idle(self, c):
+        """When channel ``c`` runs out of committed work, drain its write queue."""
+        if self.w_timer[c] is not None or self.w_entered[c] == self.w_drained[c]:
+            return
+        now = self.env.now
+        t = max(now, self.CF[c, T.F_LAST])
+        if self.rows_first and self.held[c]:
+            t = max(t, now + self.tm.burst)          # reads still to be decided go first
+        self.w_timer[c] = t
+        self.env.timeout(t - now).callbacks.append(lambda _e, c=c: self._idle(c))
+
+    def _idle(self, c):
+        self.w_timer[c] = None
+        waiting = self.w_entered[c] - self.w_drained[c]
+        if not waiting:
+            return
+        if self.CF[c, T.F_LAST] > self.env.now or (self.rows_first and self.held[c]):
+            self._arm_idle(c)                        # reads came in meanwhile: wait for them
+            return
+        self.acc_w[1] += 1                           # drains of an idle channel
+        self._drain(c, waiting, self.env.now)
 
     def _first_free_channel(self, now):
         ready = np.maximum(self.CF[:, T.F_LAST] + self.tm.burst, now)
@@ -471,6 +589,9 @@ class ChannelPool:
         self._state_args = (self.depth, self.req_bursts, self.groups, self.banks, self.close_page,
                             self.P, self.open_row, self.BF, self.TL, self.TK, self.TG, self.TN, self.CF,
                             self.H, self.R, self.IV, self.busy_cycles, self.acc, self.LOG, self.NI)
+        self._write_args = (self.groups, self.banks, self.close_page, self.P, self.open_row, self.BF,
+                            self.TL, self.TK, self.TG, self.TN, self.CF, self.H, self.R, self.IV,
+                            self.busy_cycles, self.acc, self.LOG, self.NI)
         if self._lut is not None:
             self._lut_args = (self.burst,) + self._lut
 
@@ -491,7 +612,7 @@ class ChannelPool:
         rec[2], rec[3], rec[4] = times.tolist()
 
     # ----------------------------------------------------------------- common
-    def _finish(self, txn, t_submit, t_start, t_first, t_done, ev, nbursts=None):
+    def _finish(self, txn, t_submit, t_start, t_first, t_done, ev, nbursts=None, write=False):
         """Mark the transaction's log, count it, and fire (or return) its completion event."""
         env = self.env
         now = env.now
@@ -506,9 +627,14 @@ class ChannelPool:
         self.bursts += nbursts
         self.bytes += nbursts * self.burst
         self.txns += 1
-        self.wait_total += t_start - t_submit
-        self.latency_total += t_done - t_submit
-        self.latencies.append(t_done - t_submit)
+        if write:
+            self.write_txns += 1
+            self.write_bytes += nbursts * self.burst
+            self.write_wait += t_start - t_submit
+        else:
+            self.wait_total += t_start - t_submit
+            self.latency_total += t_done - t_submit
+            self.latencies.append(t_done - t_submit)
         txn.mem_times = (t_start, t_first, t_done)
         txn.log += (("memory_queue", t_start), ("memory_latency", t_first),
                     ("memory_transfer", t_done))
@@ -562,6 +688,7 @@ class ChannelPool:
         seconds = total_cycles / (self.arch.clock_ghz * 1e9) if total_cycles else 0.0
         util = (self.busy_cycles / total_cycles).tolist() if total_cycles else [0.0] * self.n
         lat = np.asarray(self.latencies) if self.latencies else np.zeros(1)
+        reads = self.txns - self.write_txns
         achieved = (self.bytes / seconds / 1e9) if seconds else 0.0
         out = {
             "model": self.model,
@@ -573,10 +700,14 @@ class ChannelPool:
             "peak_gbps": self.arch.peak_gbps,
             "effective_to_peak": achieved / self.arch.peak_gbps if self.arch.peak_gbps else 0.0,
             "channel_utilization": util,
-            "mean_queue_cycles": self.wait_total / self.txns if self.txns else 0.0,
-            "mean_access_cycles": self.latency_total / self.txns if self.txns else 0.0,
+            "mean_queue_cycles": self.wait_total / reads if reads else 0.0,
+            "mean_access_cycles": self.latency_total / reads if reads else 0.0,
             "p95_access_cycles": float(np.percentile(lat, 95)),
             "queue_occupancy": self.occupancy(total_cycles),
+            "read_bytes": int(self.bytes - self.write_bytes),
+            "write_bytes": int(self.write_bytes),
+            "write_transactions": int(self.write_txns),
+            "mean_write_wait_cycles": self.write_wait / self.write_txns if self.write_txns else 0.0,
         }
         if self.model != "banked":
             return out
@@ -593,6 +724,7 @@ class ChannelPool:
         else:
             refresh_share = 0.0
         acts = int(self.acc[T.A_ACTS])
+        rw, wr, tm = int(self.acc[T.A_RW]), int(self.acc[T.A_WR]), self.tm
         out.update({
             "row_hit_rate": hits / total if total else 0.0,
             "row_hits": hits,
@@ -604,6 +736,14 @@ class ChannelPool:
             "activates": acts,
             "faw_limited_activates": int(self.acc[T.A_FAW_ACTS]),
             "activation_wait_cycles": float(self.acc[T.A_ACT_DELAY]),
+            "write_bursts_drained": int(sum(self.w_drained)),
+            "write_bursts_waiting": int(sum(self.w_entered) - sum(self.w_drained)),
+            "write_drains": int(self.acc_w[0]),
+            "write_idle_drains": int(self.acc_w[1]),
+            "read_to_write_turns": rw,
+            "write_to_read_turns": wr,
+            # bus time the turns cost at least, beyond the bursts themselves (JEDEC tRTW, tWTR_S)
+            "turnaround_cycles": float(rw * (tm.rtw - tm.burst) + wr * (tm.cwl + tm.wtr_s)),
             "scheduler": self.arch.dram.scheduler,
             "page_policy": self.arch.dram.page_policy,
         })

@@ -927,6 +927,25 @@ def serve_and_book(ch, gb, row, now, arrival, times, depth, rq, groups, banks, c
 
 
 @_compile
+def serve_writes(gb, row, c, t, out, groups, banks, close_page, P, open_row, BF, TL, TK, TG, TN, CF, H,
+                 R, IV, busy, acc, LOG, NI):
+    """Drain write bursts ``gb``/``row`` (oldest first) of channel ``c``'s write queue from
+    time ``t``: their commands are fixed like reads' (:func:`place_bursts`), with write
+    timing (tCWL, tWR, tWTR, tRTW). ``out[k]`` is burst ``k``'s column command: when it
+    leaves the write queue. Returns 1, or -1 without changing anything if a table is full."""
+    m = len(gb)
+    if NI[I_LOGGING] > 0 and NI[I_LOG] + 3 * m > LOG.shape[0]:
+        return -1
+    if TN[c, N_IV] + m > IV.shape[1]:
+        return -1
+    if not _fits(np.full(m, c, dtype=np.int64), CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
+        return -1
+    place_bursts(gb, row, 0, m, c, 1, t, out, P, groups, banks, close_page, open_row, BF, TL, TK, TG, TN,
+                 CF, acc, LOG, NI, IV, busy)
+    return 1
+
+
+@_compile
 def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, H, TN, CF, IV, busy, acc,
                 counts):
     """The fixed-latency model: each channel's bursts on one pipelined bus after the ones before.

@@ -13,7 +13,7 @@ class Txn:
     """One transaction: what it is, how big, and where it has been."""
 
     __slots__ = ("kind", "step", "head", "block", "rows", "nbytes", "bursts", "log", "done",
-                 "buffer", "hold", "layer", "positions", "waits", "completed", "mem_times")
+                 "buffer", "hold", "layer", "positions", "waits", "completed", "mem_times", "is_write")
 
     def __init__(self, kind, step, head, block, rows, nbytes, t_created, creator):
         self.kind = kind          # 'Q', 'K', 'KL', 'V' (fetched) or 'S', 'P' (computed)
@@ -32,6 +32,7 @@ class Txn:
         self.waits = ()           # (event, cause) to see fired before issue
         self.completed = False    # data arrived (possibly before earlier ones)
         self.mem_times = None     # (start, first data, last data), set by the memory pool
+        self.is_write = False     # bursts written to memory (else read)
 
     def mark(self, stage, t_end):
         """Record that the transaction spent time until ``t_end`` in ``stage``."""
