@@ -43,12 +43,20 @@ def cycles(arch):
 
 
 def refresh_windows(arch):
-    """Each bank's refresh windows ``(first start, period, length)``: all-bank refresh,
-    channels staggered evenly over one interval (the pool's documented choice)."""
+    """Each bank's refresh windows ``(first starts, period, length)`` as the pool documents
+    them: all-bank refresh, channels staggered evenly over one interval; per-bank refresh,
+    a command every tREFIpb with bank b in turn b mod (tREFI / tREFIpb); same-bank, turn
+    b div bank_groups; channels staggered within one command interval."""
     d, ghz = arch.dram, arch.clock_ghz
-    refi, rfc = d.t_refi_ns * ghz, d.t_rfc_ns * ghz
-    first = np.repeat((np.arange(d.channels) + 1) * refi / d.channels, d.banks)
-    return first, refi, rfc
+    refi = d.t_refi_ns * ghz
+    ch = np.arange(d.channels) + 1
+    if d.refresh == "all_bank":
+        return np.repeat(ch * refi / d.channels, d.banks), refi, d.t_rfc_ns * ghz
+    pb = d.t_refi_pb_ns * ghz
+    local = np.arange(d.banks)
+    turn = local % round(d.t_refi_ns / d.t_refi_pb_ns) if d.refresh == "per_bank" else local // d.bank_groups
+    first = (ch * pb / d.channels)[:, None] + turn[None, :] * pb
+    return first.reshape(-1), refi, d.t_rfc_pb_ns * ghz
 
 
 def in_window(first, period, length, x):
@@ -212,20 +220,33 @@ def burst_stream(arch, rng, n, rows=4, writes=0.3, gap=20.0):
         yield c, b, int(rng.integers(rows)), int(rng.random() < writes), t
 
 
-CASES = [("hbm2", "open", 1), ("hbm2", "close", 2), ("ddr4_3200", "open", 1),
-         ("ddr4_3200", "close", 1), ("hbm3", "open", 2), ("lpddr5x", "open", 1),
-         ("gddr6", "close", 2)]
+CASES = [("hbm2", "open", 1, "all_bank"), ("hbm2", "close", 2, "all_bank"),
+         ("ddr4_3200", "open", 1, "all_bank"), ("ddr4_3200", "close", 1, "all_bank"),
+         ("hbm3", "open", 2, "all_bank"), ("hbm3", "open", 2, "per_bank"),
+         ("lpddr5x", "open", 1, "per_bank"), ("gddr6", "close", 2, "per_bank"),
+         ("gddr6", "open", 1, "all_bank")]
+
+
+def short_refresh(arch, mode):
+    """Refresh every 900 ns so a short stream meets many windows (per-bank: one command
+    every 900 ns / turns, 30 ns each)."""
+    d = arch.dram
+    if mode == "all_bank":
+        return {"dram.refresh": mode, "dram.t_refi_ns": 900.0, "dram.t_rfc_ns": 120.0}
+    turns = round(d.t_refi_ns / d.t_refi_pb_ns)
+    return {"dram.refresh": mode, "dram.t_refi_ns": 900.0, "dram.t_refi_pb_ns": 900.0 / turns,
+            "dram.t_rfc_pb_ns": 30.0}
 
 
 def preset(name, **over):
     return sim.load_arch(os.path.join(PRESETS, f"{name}.yaml")).with_overrides(over)
 
 
-@pytest.mark.parametrize("name,page,channels", CASES)
-def test_placement_equals_the_brute_force_reference(name, page, channels):
-    arch = preset(name, **{"dram.page_policy": page, "dram.channels": channels, "dram.refresh": "all_bank",
-                           "dram.t_refi_ns": 900.0, "dram.t_rfc_ns": 120.0})
-    rng = np.random.default_rng(sum(map(ord, name + page)))
+@pytest.mark.parametrize("name,page,channels,mode", CASES)
+def test_placement_equals_the_brute_force_reference(name, page, channels, mode):
+    arch = preset(name, **{"dram.page_policy": page, "dram.channels": channels})
+    arch = arch.with_overrides(short_refresh(arch, mode))
+    rng = np.random.default_rng(sum(map(ord, name + page + mode)))
     ref, ker = Reference(arch), Kernel(arch)
     latest = np.full(channels, -np.inf)
     backfilled = 0
@@ -348,9 +369,11 @@ def hammer(arch, n=3000, seed=1, span=1 << 26):
 @pytest.mark.parametrize("page", ["open", "close"])
 def test_hammering_keeps_every_timing_rule(name, page):
     """tFAW included: no window of tFAW holds more than four activates of one channel
-    (pseudo-channel for HBM3), and the window did hold activates back."""
-    arch = preset(name, **{"dram.page_policy": page, "dram.channels": 2, "dram.refresh": "all_bank",
+    (pseudo-channel for HBM3), and the window did hold activates back. Each preset in its
+    own refresh mode (per-bank for HBM3, LPDDR5X, GDDR6), refreshing often."""
+    arch = preset(name, **{"dram.page_policy": page, "dram.channels": 2,
                            "fetch.request_bytes": arch_burst(name)})
+    arch = arch.with_overrides(short_refresh(arch, arch.dram.refresh))
     pool, log = hammer(arch)
     assert check_protocol(log, arch) == []
     rep = pool.report(pool.env.now)
@@ -431,3 +454,22 @@ def test_compiled_loops_equal_plain_python(tmp_path):
     for name in STATE + ("times",):
         assert np.array_equal(got[name], want[name]), name
     assert got["acc"][T.A_REF_DELAY] > 0 and got["acc"][T.A_ACTS] > 0   # refresh and activates taken
+
+
+def test_same_bank_refresh_closes_one_bank_of_every_group_at_once():
+    """Same-bank refresh (DDR5's kind, JEDEC JESD79-5; here on a custom memory): the banks
+    of one index in every bank group are refreshed together, the others go on. The log of
+    hammering traffic keeps every rule, and activates happen inside another bank index's
+    window (the channel did not stop)."""
+    arch = sim.load_arch({"dram": {"channels": 1, "refresh": "same_bank", "t_refi_ns": 800.0,
+                                   "t_refi_pb_ns": 200.0, "t_rfc_pb_ns": 60.0},
+                          "fetch": {"request_bytes": 64}})
+    first, period, length = refresh_windows(arch)
+    groups = arch.dram.bank_groups
+    assert np.all(first.reshape(-1, groups) == first[::groups][:, None])    # one index, all groups
+    pool, log = hammer(arch, n=3000)
+    assert check_protocol(log, arch) == []
+    acts = log[log[:, 3] == T.CMD_ACT]
+    busy_elsewhere = [in_window(first[(int(b) + groups) % len(first)], period, length, t)
+                      for t, _c, b, _k, _r in acts.tolist()]
+    assert any(busy_elsewhere)

@@ -17,8 +17,11 @@ within a bank group; data arrives tCL after the column. A burst whose bank is
 ready may use a bus slot an earlier burst left free while its row opened, but
 never takes one from it: each burst's commands are fixed, in arrival order, at
 the earliest times that keep every rule with those fixed before (see
-:mod:`sim.engine.dram_timing`). All-bank refresh closes a channel's rows for
-tRFC every tREFI (channels staggered so the pool never refreshes all at once).
+:mod:`sim.engine.dram_timing`). Refresh (``dram.refresh``): all-bank refresh
+closes a channel's rows for tRFC every tREFI (channels staggered so the pool
+never refreshes all at once); per-bank refresh closes one bank (or bank set)
+at a time for tRFCpb, a command every tREFIpb in turn, so the other banks go
+on; same-bank refresh does that for one bank index of every group at once.
 The page policy keeps rows open, or closes a row once the reads queued for it
 are served (a read queued before the precharge issues still finds the row
 open). A channel's queue holds ``dram.queue_depth`` requests (see
@@ -63,14 +66,14 @@ three times before the event fires;
 ``report(total_cycles)`` for the result's ``dram`` section; ``busy_intervals``
 per channel (merged data-bus busy intervals); ``share_records()``.
 
-Simplifications, on purpose: no command-bus contention (commands
-of different banks may issue in the same cycle); refresh is taken on schedule
-(never postponed) and does not wait for tRAS of open rows; every
-``dram.refresh`` mode is served as all-bank refresh (``t_rfc_ns`` every
-``t_refi_ns``); a read never takes its data from a write still queued; a
-drain cannot move a read fixed before it (reads keep their slots, the writes
-go where the bus is free); the fixed-latency model moves writes on its bus
-like reads and takes them in when their bus slot starts.
+Simplifications, on purpose: no command-bus contention (commands of different
+banks may issue in the same cycle); refresh is taken on schedule (never
+postponed) and does not wait for tRAS of open rows; a per-bank refresh blocks
+only its banks (no spacing rule between it and other banks' activates); a read
+never takes its data from a write still queued; a drain cannot move a read
+fixed before it (reads keep their slots, the writes go where the bus is free);
+the fixed-latency model moves writes on its bus like reads and takes them in
+when their bus slot starts.
 """
 
 import numpy as np
@@ -196,6 +199,14 @@ class Timing:
         self.faw = d.t_faw_ns * ghz
         self.refi = d.t_refi_ns * ghz
         self.rfc = d.t_rfc_ns * ghz
+        self.refresh = d.refresh
+        self.refi_pb = d.t_refi_pb_ns * ghz
+        self.rfc_pb = d.t_rfc_pb_ns * ghz
+        # banks per channel refreshed at different times: all at once, one command per
+        # bank (or bank set) in turn, or one per bank index of a group (every group at once)
+        self.turns = {"all_bank": 1, "per_bank": int(round(d.t_refi_ns / d.t_refi_pb_ns)),
+                      "same_bank": d.banks // d.bank_groups}[d.refresh]
+        self.banks, self.groups = d.banks, d.bank_groups
         self.ctrl = d.controller_ns * ghz
         # how far ahead of its bus slot a queued share is committed under row_hits_first:
         # enough to hide a precharge and an activate behind the previous share's data
@@ -209,17 +220,30 @@ class Timing:
         P[T.P_CWL], P[T.P_WR], P[T.P_WTR_S], P[T.P_WTR_L] = self.cwl, self.wr, self.wtr_s, self.wtr_l
         P[T.P_RTW], P[T.P_RRD_S], P[T.P_RRD_L], P[T.P_FAW] = self.rtw, self.rrd_s, self.rrd_l, self.faw
         P[T.P_CTRL] = self.ctrl
-        P[T.P_REF_PERIOD] = self.refi
-        P[T.P_REF_DUR] = self.rfc
+        P[T.P_REF_PERIOD] = self.refi                 # every bank is refreshed once per tREFI
+        P[T.P_REF_DUR] = self.rfc if self.refresh == "all_bank" else self.rfc_pb
         # the longest spacing rule between two column commands, and between activates
         P[T.P_COL_REACH] = max(self.ccd_l, self.rtw, self.cwl + self.burst + self.wtr_l)
         P[T.P_ACT_REACH] = max(self.faw, self.rrd_l)
         return P
 
     def refresh_offsets(self, channels, banks):
-        """Start of each bank's first refresh window: channels staggered over one interval."""
-        chan = (np.arange(channels) + 1) * (self.refi / channels)
-        return np.repeat(chan, banks)
+        """Start of each bank's first refresh window.
+
+        All-bank: channel ``c`` at ``(c + 1) / channels`` of tREFI (staggered, so the
+        pool never refreshes all at once). Per-bank: a command every tREFIpb, bank
+        ``b`` of a channel in turn ``b mod turns`` (with fewer turns than banks, the
+        banks of one turn refresh together); same-bank: turn ``b div bank_groups``,
+        the same bank of every group at once. Channels are staggered within one
+        command interval.
+        """
+        if self.refresh == "all_bank":
+            chan = (np.arange(channels) + 1) * (self.refi / channels)
+            return np.repeat(chan, banks)
+        local = np.arange(banks)
+        turn = local % self.turns if self.refresh == "per_bank" else local // self.groups
+        chan = (np.arange(channels) + 1) * (self.refi_pb / channels)
+        return (chan[:, None] + turn[None, :] * self.refi_pb).reshape(-1)
 
 
 class ChannelPool:
