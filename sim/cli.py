@@ -826,14 +826,20 @@ def _add_dram(sub):
     c = s.add_parser("probe", help="open-loop load sweep: latency against delivered bandwidth")
     c.add_argument("config", type=_PATH,
                    help="architecture or memory config (YAML), e.g. arch_configs/memory/hbm2.yaml")
-    c.add_argument("--patterns", default="sequential,strided,random", type=_text("patterns"),
-                   help="comma-separated: sequential, strided, random")
+    c.add_argument("--patterns", default="sequential,strided,random,scattered,mixed", type=_text("patterns"),
+                   help="comma-separated: sequential, strided, random (request-size blocks at random), "
+                        "scattered (64-byte reads at random), mixed (random requests, --write-share of them "
+                        "writes)")
     c.add_argument("--loads", type=_text("loads"),
                    help="comma-separated offered loads as fractions of the pool peak, in (0, 1]")
     c.add_argument("--requests", type=_int_in(1, MAX_PROBE_REQUESTS), default=2000, help="requests per point")
-    c.add_argument("--stride", type=_int_in(1, 1 << 40), help="bytes between strided requests")
+    c.add_argument("--stride", type=_int_in(1, 1 << 40), help="bytes between strided requests (default: one "
+                   "DRAM row x banks x channels, printed)")
+    c.add_argument("--write-share", type=_float_in(0, 1), default=0.5,
+                   help="share of the mixed pattern's requests that are writes, in [0, 1]")
     c.add_argument("--seed", type=_int_in(0, 2 ** 63 - 1), default=0)
-    c.add_argument("--csv", metavar="OUT", type=_PATH, help="write the curve here as CSV ('-': standard output)")
+    c.add_argument("--csv", metavar="OUT", type=_PATH, help="write the curve here as CSV ('-': standard output); "
+                   "attnsim report draws it when given the file")
     c.add_argument("--json", metavar="OUT", type=_PATH, help="write the curve here as JSON ('-': standard output)")
     c.add_argument("--set", action="append", default=[], metavar="PATH=VALUE",
                    help="override a config knob by dotted path (repeatable)")
@@ -875,13 +881,16 @@ def _cmd_dram_probe(args):
         raise InputError("--stride", "stride", args.stride,
                          f"{args.requests:,} requests {args.stride:,} bytes apart reach past 2**48 bytes")
     with _Ticker(args, "probing"):
-        rows = probe.probe(arch, patterns, loads, args.requests, args.seed, args.stride)
+        rows = probe.probe(arch, patterns, loads, args.requests, args.seed, args.stride, args.write_share)
     d = arch.dram
     to = sys.stderr if "-" in (csv_out, json_out) else sys.stdout
     _say(args, f"{args.config}: {_plural(d.channels, 'channel')} x {d.channel_gbps:g} GB/s = {arch.peak_gbps:g} "
-               f"GB/s peak, model {d.model}, {d.scheduler}, {d.page_policy} page, {arch.fetch.request_bytes} B "
-               f"requests", file=to)
+               f"GB/s peak, model {d.model}, {d.scheduler}, {d.page_policy} page, {d.refresh} refresh, "
+               f"{arch.fetch.request_bytes} B requests", file=to)
+    for line in probe.describe(arch, patterns, args.stride, args.write_share):
+        _say(args, "  " + line, file=to)
     _say(args, probe.format_rows(rows), file=to)
+    _say(args, probe.summary(rows), file=to)
     if csv_out:
         def put_csv(fh):
             w = csv.DictWriter(fh, fieldnames=probe.COLUMNS, lineterminator="\n")
@@ -893,7 +902,8 @@ def _cmd_dram_probe(args):
             _say(args, f"curve: {csv_out}", file=to)
     if json_out:
         doc = {"config": args.config, "peak_gbps": arch.peak_gbps, "requests": args.requests,
-               "seed": args.seed, "rows": rows}
+               "seed": args.seed, "stride": args.stride or probe.default_stride(arch),
+               "write_share": args.write_share, "rows": rows}
         write_atomic(json_out, lambda fh: (json.dump(doc, fh, indent=2, allow_nan=True), fh.write("\n")),
                      option="--json")
         if json_out != "-":

@@ -79,11 +79,11 @@ def test_probe_writes_a_curve(tmp_path, capsys):
     assert rc == 0
     lines = out.read_text().splitlines()
     assert lines[0].startswith("pattern,offered_fraction")
-    assert len(lines) == 1 + 3 * 2
+    assert len(lines) == 1 + 5 * 2
     # latency grows with load on every pattern (common practice, no source)
     import csv
     rows = list(csv.DictReader(out.open()))
-    for p in ("sequential", "strided", "random"):
+    for p in ("sequential", "strided", "random", "scattered", "mixed"):
         lo, hi = [float(r["mean_latency_ns"]) for r in rows if r["pattern"] == p]
         assert hi > lo
 

@@ -1,15 +1,28 @@
 """Open-loop load generator for a memory config: latency against delivered bandwidth.
 
-Requests of ``fetch.request_bytes`` arrive as a Poisson stream at an offered
-load given as a fraction of the pool's peak; each request reads one of three
-patterns: ``sequential`` (consecutive requests, consecutive addresses),
-``strided`` (each request ``stride`` bytes after the last, by default one
-DRAM row times the banks of a channel times the channels, so every request
-lands on the same bank of the same channel and a new row) and ``random``
-(request-aligned addresses spread over ``footprint`` bytes). For each load
-the pool's delivered bandwidth, mean and 95th-percentile latency and row hit
-rate are measured; a point is marked saturated when it delivers under 90 % of the
-load its arrivals offered. The run ends after a fixed number of requests, so it
+Requests arrive as a Poisson stream at an offered load given as a fraction of
+the pool's peak; each follows one of these patterns:
+
+``sequential``
+    consecutive requests of ``fetch.request_bytes`` at consecutive addresses;
+``strided``
+    each request ``stride`` bytes after the last, by default one DRAM row
+    times the banks of a channel times the channels, so every request lands on
+    the same bank of the same channel and opens a new row;
+``random``
+    requests of ``fetch.request_bytes`` at request-aligned addresses spread
+    over ``footprint`` bytes;
+``scattered``
+    fully random 64-byte reads (one burst where bursts are larger): the access
+    pruning leaves, bounded by the activation rules (tRC, tRRD, tFAW);
+``mixed``
+    ``random`` requests, a ``write_share`` of them (drawn at random) writes: the
+    cost of bus turnarounds and write recovery.
+
+For each load the pool's delivered bandwidth (read and written) and its share
+of the peak, the mean and 95th-percentile read latency and the row hit rate are
+measured; a point is marked saturated when it delivers under 90 % of the load
+its arrivals offered. The run ends after a fixed number of requests, so it
 stops even where the pattern saturates the pool below the offered load.
 """
 
@@ -20,10 +33,11 @@ from ..errors import InputError
 from .dram import ChannelPool
 from .txn import Txn
 
-PATTERNS = ("sequential", "strided", "random")
+PATTERNS = ("sequential", "strided", "random", "scattered", "mixed")
 DEFAULT_LOADS = (0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95)
-COLUMNS = ("pattern", "offered_fraction", "offered_gbps", "delivered_gbps", "mean_latency_ns",
-           "p95_latency_ns", "row_hit_rate", "saturated")
+COLUMNS = ("pattern", "offered_fraction", "offered_gbps", "delivered_gbps", "efficiency",
+           "mean_latency_ns", "p95_latency_ns", "row_hit_rate", "write_share", "saturated")
+SCATTER_BYTES = 64
 
 
 def check_loads(arch, loads, source="--loads"):
@@ -38,38 +52,52 @@ def check_loads(arch, loads, source="--loads"):
     return out
 
 
+def default_stride(arch):
+    """Bytes between strided requests: one DRAM row x banks x channels (a new row of one bank)."""
+    d = arch.dram
+    return d.row_bytes * d.banks * d.channels
+
+
+def access_bytes(arch, pattern):
+    """Bytes one request of ``pattern`` moves."""
+    if pattern == "scattered":
+        return max(SCATTER_BYTES, arch.dram.burst_bytes)
+    return arch.fetch.request_bytes
+
+
 def pattern_addresses(arch, pattern, n, rng, stride=None, footprint=1 << 32):
     """Start byte-address of each of ``n`` requests."""
-    req = arch.fetch.request_bytes
-    d = arch.dram
+    size = access_bytes(arch, pattern)
     if pattern == "sequential":
-        return np.arange(n, dtype=np.int64) * req
+        return np.arange(n, dtype=np.int64) * size
     if pattern == "strided":
-        step = stride or d.row_bytes * d.banks * d.channels
-        return np.arange(n, dtype=np.int64) * step
-    if pattern == "random":
-        return rng.integers(0, footprint // req, n).astype(np.int64) * req
+        return np.arange(n, dtype=np.int64) * (stride or default_stride(arch))
+    if pattern in ("random", "scattered", "mixed"):
+        return rng.integers(0, footprint // size, n).astype(np.int64) * size
     raise InputError("--patterns", "pattern", pattern, f"expected one of {', '.join(PATTERNS)}")
 
 
-def probe_point(arch, pattern, load, requests=2000, seed=0, stride=None):
+def probe_point(arch, pattern, load, requests=2000, seed=0, stride=None, write_share=0.5):
     """One point of the curve: a dict keyed by :data:`COLUMNS`."""
     rng = np.random.default_rng(seed)
-    req = arch.fetch.request_bytes
+    size = access_bytes(arch, pattern)
     burst = arch.dram.burst_bytes
     offered_bpc = load * arch.bytes_per_cycle            # bytes per cycle
-    lam = offered_bpc / req                              # requests per cycle
+    lam = offered_bpc / size                             # requests per cycle
     gaps = rng.exponential(1 / lam, requests)
     starts = pattern_addresses(arch, pattern, requests, rng, stride)
-    within = np.arange(req // burst, dtype=np.int64) * burst
+    share = write_share if pattern == "mixed" else 0.0
+    writes = rng.random(requests) < share
+    within = np.arange(size // burst, dtype=np.int64) * burst
     env = simpy.Environment()
     pool = ChannelPool(env, arch)
 
     def source():
-        for gap, a in zip(gaps.tolist(), starts.tolist()):
+        for gap, a, w in zip(gaps.tolist(), starts.tolist(), writes.tolist()):
             yield env.timeout(gap)
-            txn = Txn("probe", 0, -1, 0, 1, req, env.now, "probe")
+            txn = Txn("probe", 0, -1, 0, 1, size, env.now, "probe")
             txn.bursts = a + within
+            txn.is_write = w
             pool.submit(txn)
 
     env.process(source())
@@ -82,39 +110,64 @@ def probe_point(arch, pattern, load, requests=2000, seed=0, stride=None):
     offered = load * arch.peak_gbps
     arrival_span = float(gaps[1:].sum())
     # the arrivals actually drawn, so a light load is not called saturated by sampling noise
-    realized = (requests - 1) * req / arrival_span * arch.clock_ghz if arrival_span > 0 else offered
+    realized = (requests - 1) * size / arrival_span * arch.clock_ghz if arrival_span > 0 else offered
     return {"pattern": pattern, "offered_fraction": load, "offered_gbps": offered,
-            "delivered_gbps": delivered, "mean_latency_ns": float(lat.mean()),
-            "p95_latency_ns": float(np.percentile(lat, 95)),
-            "row_hit_rate": rep.get("row_hit_rate", float("nan")),
+            "delivered_gbps": delivered, "efficiency": delivered / arch.peak_gbps,
+            "mean_latency_ns": float(lat.mean()) if len(lat) else float("nan"),
+            "p95_latency_ns": float(np.percentile(lat, 95)) if len(lat) else float("nan"),
+            "row_hit_rate": rep.get("row_hit_rate", float("nan")), "write_share": share,
             "saturated": bool(delivered < 0.9 * realized)}
 
 
-def probe(arch, patterns=PATTERNS, loads=DEFAULT_LOADS, requests=2000, seed=0, stride=None):
+def probe(arch, patterns=PATTERNS, loads=DEFAULT_LOADS, requests=2000, seed=0, stride=None,
+          write_share=0.5):
     """The whole sweep: one row per (pattern, load)."""
     loads = check_loads(arch, loads)
     for p in patterns:
         if p not in PATTERNS:
             raise InputError("--patterns", "pattern", p, f"expected one of {', '.join(PATTERNS)}")
-    return [probe_point(arch, p, x, requests, seed, stride) for p in patterns for x in loads]
+    if not 0 <= write_share <= 1:
+        raise InputError("--write-share", "write_share", write_share, "expected a fraction in [0, 1]")
+    return [probe_point(arch, p, x, requests, seed, stride, write_share) for p in patterns for x in loads]
+
+
+def describe(arch, patterns, stride=None, write_share=0.5):
+    """Lines saying what each pattern of the run does, with the sizes it uses."""
+    d = arch.dram
+    out = []
+    for p in patterns:
+        if p == "strided":
+            if stride:
+                out.append(f"strided: each request {stride:,} B after the last (--stride)")
+            else:
+                out.append(f"strided: each request {default_stride(arch):,} B after the last "
+                           f"({d.row_bytes:,} B row x {d.banks} banks x {d.channels} channels: a new row "
+                           "of one bank each time)")
+        elif p == "scattered":
+            out.append(f"scattered: {access_bytes(arch, p)} B reads at random addresses")
+        elif p == "mixed":
+            out.append(f"mixed: {arch.fetch.request_bytes} B requests at random addresses, "
+                       f"{write_share:.0%} of them writes")
+    return out
 
 
 def format_rows(rows):
     """Plain-text table of the curve."""
-    head = f"{'pattern':<11}{'offered':>9}{'GB/s in':>10}{'GB/s out':>10}{'mean ns':>10}{'p95 ns':>10}{'row hits':>10}"
+    head = (f"{'pattern':<11}{'offered':>9}{'GB/s in':>10}{'GB/s out':>10}{'of peak':>9}{'mean ns':>10}"
+            f"{'p95 ns':>10}{'row hits':>10}")
     out = [head]
     for r in rows:
         out.append(f"{r['pattern']:<11}{r['offered_fraction']:>9.2f}{r['offered_gbps']:>10.1f}"
-                   f"{r['delivered_gbps']:>10.1f}{r['mean_latency_ns']:>10.1f}{r['p95_latency_ns']:>10.1f}"
-                   f"{r['row_hit_rate']:>10.3f}" + ("  saturated" if r["saturated"] else ""))
+                   f"{r['delivered_gbps']:>10.1f}{r['efficiency']:>9.1%}{r['mean_latency_ns']:>10.1f}"
+                   f"{r['p95_latency_ns']:>10.1f}{r['row_hit_rate']:>10.3f}"
+                   + ("  saturated" if r["saturated"] else ""))
     return "\n".join(out)
 
 
-def write_csv(rows, path):
-    import csv
+def summary(rows):
+    """One line: the most each pattern delivered, as a share of the peak."""
+    best = {}
+    for r in rows:
+        best[r["pattern"]] = max(best.get(r["pattern"], 0.0), r["efficiency"])
+    return "at most, of the peak: " + ", ".join(f"{p} {e:.0%}" for p, e in best.items())
 
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.DictWriter(fh, fieldnames=COLUMNS)
-        w.writeheader()
-        for r in rows:
-            w.writerow(r)

@@ -150,7 +150,7 @@ def figure_runs(runs):
 
 
 def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_run=None, title=None,
-                 notes=(), inputs=(), sensitivity=None):
+                 notes=(), inputs=(), sensitivity=None, probes=()):
     """Write the report for ``runs`` into ``out_dir``; return the manifest (a dict).
 
     ``sensitivity``: ``{id(run): rows}`` measured by :func:`.sensitivity.measure`, or None.
@@ -163,6 +163,8 @@ def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_ru
             F.pareto(runs), F.energy_area(fruns)]
     if sensitivity:
         figs.append(F.sensitivity(runs, sensitivity))
+    if probes:                                   # attnsim dram probe --csv curves
+        figs.append(F.memory_probe(probes))
     skipped = []
     with_iv = [r for r in runs if r.intervals]
     if timeline_run is None and with_iv:
@@ -439,7 +441,8 @@ def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=Tr
     from . import sensitivity as S
     from .inputs import load_inputs
 
-    runs, failed = load_inputs(paths)
+    probes = [p for p in paths if str(p).endswith(".csv")]
+    runs, failed = load_inputs([p for p in paths if p not in probes])
     check_out(out_dir, force)
     label_runs(runs)   # groups (per trace) decide which runs sensitivity picks
     picked, sens_note = S.choose(runs, sensitivity, S.DEFAULT_LIMIT if sensitivity_limit is None
@@ -459,5 +462,5 @@ def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=Tr
         if runs[0].intervals:
             timeline_run = runs[0]
     manifest = build_report(runs, out_dir, failed=failed, force=force, timeline_run=timeline_run, title=title,
-                            notes=notes, inputs=list(paths), sensitivity=table)
+                            notes=notes, inputs=list(paths), sensitivity=table, probes=probes)
     return runs, manifest

@@ -734,3 +734,66 @@ def sensitivity(runs, table):
                   + (f" {more} more runs in the data file." if more > 0 else ""),
                   fig, ["run", "resource", "direction", "setting", "status", "cycles", "seconds", "energy_pj",
                         "speedup", "energy_ratio", "error"], rows)
+
+
+PROBE_COLUMNS = ("pattern", "offered_fraction", "delivered_gbps", "efficiency", "mean_latency_ns")
+
+
+def memory_probe(paths):
+    """Latency against delivered bandwidth per access pattern, from ``attnsim dram probe --csv`` files."""
+    import csv
+    import os
+
+    from .inputs import ReportError
+
+    curves = {}
+    for path in paths:
+        label = os.path.splitext(os.path.basename(path))[0]
+        try:
+            with open(path, newline="", encoding="utf-8") as fh:
+                reader = csv.DictReader(fh)
+                missing = [c for c in PROBE_COLUMNS if c not in (reader.fieldnames or ())]
+                if missing:
+                    raise ReportError(path, "header", ",".join(reader.fieldnames or ()),
+                                      "expected a curve written by attnsim dram probe --csv (columns "
+                                      + ", ".join(PROBE_COLUMNS) + ")")
+                for line, r in enumerate(reader, 2):
+                    try:
+                        vals = [float(r[c]) for c in PROBE_COLUMNS[1:]]
+                    except (TypeError, ValueError):
+                        raise ReportError(path, f"line {line}", r, "expected numbers in "
+                                          + ", ".join(PROBE_COLUMNS[1:])) from None
+                    curves.setdefault((label, r["pattern"]), []).append(vals)
+        except (OSError, UnicodeDecodeError) as exc:
+            raise ReportError(path, "<file>", path, f"expected a readable probe CSV ({exc})") from None
+    fig = _fig(11, 4.4)
+    ax, bx = fig.subplots(1, 2, width_ratios=[3, 2])
+    col = _color_map(sorted({p for _, p in curves}), SERIES)
+    marks = _color_map(sorted({f for f, _ in curves}), MARKERS)
+    rows, best = [], {}
+    for (label, pattern), pts in curves.items():
+        pts = sorted(pts)
+        gbps = [p[1] for p in pts]
+        lat = [p[3] for p in pts]
+        ax.plot(gbps, lat, marker=marks[label], color=col[pattern], lw=1.3, ms=4,
+                label=f"{pattern}" + (f" ({label})" if len(marks) > 1 else ""))
+        best[(label, pattern)] = max(p[2] for p in pts)
+        rows += [[label, pattern] + p for p in pts]
+    ax.set_xlabel("delivered bandwidth (GB/s)")
+    ax.set_ylabel("mean read latency (ns), log scale")
+    ax.set_yscale("log")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    keys = list(best)
+    bx.barh(range(len(keys)), [best[k] * 100 for k in keys], color=[col[p] for _, p in keys])
+    bx.set_yticks(range(len(keys)))
+    bx.set_yticklabels([p if len(marks) == 1 else f"{p} ({f})" for f, p in keys], fontsize=8)
+    bx.invert_yaxis()
+    bx.set_xlim(0, 100)
+    bx.set_xlabel("most delivered, % of the pool's peak")
+    bx.grid(axis="x", alpha=0.3)
+    return Figure("memory_probe", "Memory probe: latency against delivered bandwidth",
+                  "Open-loop probe of a memory config (attnsim dram probe): each point one offered load; left, "
+                  "the mean read latency against the bandwidth delivered (reads and writes); right, the most "
+                  "each access pattern delivered as a share of the peak.",
+                  fig, ["probe", "pattern"] + list(PROBE_COLUMNS[1:]), rows)
