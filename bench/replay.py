@@ -4,7 +4,8 @@ Replays a synthetic 12-layer, 12-head, 512-token prefill plus decode steps on
 one config and prints wall seconds, transactions (tiles) per second, simulated
 cycles per wall second, and simpy's own bare event rate measured in the same
 run (a three-stage pipeline of 64-key tiles), then two scaling checks:
-doubling the decode steps, and a tenfold clock change.
+doubling the decode steps, and a tenfold clock change, and how far the
+default grain's cycles are from a 64-row grain's (the grain is a speed knob).
 
     python bench/replay.py [--arch arch_configs/mid.yaml] [--decode 128] [--repeat 3]
                            [--dram-model banked|fixed-latency]
@@ -127,6 +128,11 @@ def main():
     print(f"  clock x10: {docs['clock']['cycles']:,} cycles, wall {w10:.3f} s ({(w10 - wall) / wall:+.1%} vs base)")
     e1, e10 = count_events(arch, trace), count_events(fast, trace)
     print(f"  simpy events scheduled: {e1:,} at the base clock, {e10:,} at x10 ({(e10 - e1) / e1:+.2%})")
+    t0 = time.perf_counter()
+    fine = sim.simulate(arch, trace, keep_intervals=False, grain_rows=64).to_dict()
+    print(f"  grain: {doc['cycles']:,} cycles at {doc['engine']['grain_rows']} rows, {fine['cycles']:,} at 64 rows "
+          f"({(doc['cycles'] - fine['cycles']) / fine['cycles']:+.2%}); the 64-row run took "
+          f"{time.perf_counter() - t0:.1f} s")
 
 if __name__ == "__main__":
     main()

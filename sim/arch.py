@@ -226,9 +226,10 @@ SCHEMA = {
         "request_bytes": Field("int", 1024, "largest request the fetch unit sends to one channel"),
         "inflight": Field("int", 32, "transactions the fetch unit may have outstanding"),
         "reorder_entries": Field("int", 16, "completed transactions the reorder stage can hold"),
-        "issue_window": Field("int", 0, "transactions the fetch unit may issue past one that waits for "
-                              "a result (a top-k, a softmax decision, the previous layer); 0: strict "
-                              "program order", minimum=0),
+        "issue_window": Field("int", 16, "fetch descriptors (one plane of one head group for one query "
+                              "block) the fetch unit may issue past one that waits for a result (a "
+                              "top-k, a softmax decision, the previous layer); 0: strict program order",
+                              minimum=0),
     },
     "buffers": {
         "query_kib": Field("float", 16.0, "on-chip query buffer, KiB"),
@@ -242,6 +243,9 @@ SCHEMA = {
         "pipeline_cycles": Field("int", 8, "cycles from the last operand in to the result out", minimum=0),
         "arrays": Field("choice", "shared", "one array for q.K and p.V, or a separate array each",
                         choices=["shared", "separate"]),
+        "lookahead": Field("int", 4, "query blocks (in decode: head groups) whose q.K the array may "
+                           "compute before the p.V of the oldest waiting one; their probabilities "
+                           "wait in the score buffer"),
     },
     "softmax": {
         "lanes": Field("int", 16, "score elements processed per cycle"),
@@ -300,7 +304,7 @@ LIMITS = {
     "buffers.query_kib": float(1 << 24), "buffers.key_kib": float(1 << 24),
     "buffers.value_kib": float(1 << 24),
     "dot.multipliers": 1 << 24, "dot.lanes": 1 << 16, "dot.tile_rows": 1 << 16,
-    "dot.pipeline_cycles": 1 << 20,
+    "dot.pipeline_cycles": 1 << 20, "dot.lookahead": 1 << 16,
     "softmax.lanes": 1 << 16, "softmax.latency_cycles": 1 << 20,
     "topk.comparators": 1 << 16, "topk.latency_cycles": 1 << 20,
     "precision.q_bits": 64, "precision.k_msb_bits": 32, "precision.k_lsb_bits": 32,

@@ -144,11 +144,12 @@ def test_hand_computable_trace_equals_counts_times_horowitz(tiny_run):
 def test_total_is_sum_over_units_and_operations(tiny_run):
     _a, _t, doc = tiny_run
     e = doc["energy"]
-    assert e["total_pj"] == pytest.approx(sum(e["units_pj"].values()), rel=1e-12)
-    assert e["total_pj"] == pytest.approx(sum(op["pj"] for op in e["operations"].values()), rel=1e-12)
-    assert e["total_pj"] == pytest.approx(e["dynamic_pj"] + e["static_pj"], rel=1e-12)
+    # the document keeps 12 significant digits, so sums of its rounded parts agree to ~1e-11
+    assert e["total_pj"] == pytest.approx(sum(e["units_pj"].values()), rel=1e-10)
+    assert e["total_pj"] == pytest.approx(sum(op["pj"] for op in e["operations"].values()), rel=1e-10)
+    assert e["total_pj"] == pytest.approx(e["dynamic_pj"] + e["static_pj"], rel=1e-10)
     for op in e["operations"].values():
-        assert op["pj"] == pytest.approx(op["count"] * op["pj_each"], rel=1e-12)
+        assert op["pj"] == pytest.approx(op["count"] * op["pj_each"], rel=1e-10)
         assert op["kind"] in ("dynamic", "static")
 
 
@@ -166,8 +167,8 @@ def test_bundled_runs_sum_and_power(config, trace):
     if config == "server":  # separate arrays: p.V energy is charged to dot_pv
         o = e["operations"]
         assert e["dynamic_units_pj"]["dot_pv"] == pytest.approx(
-            o["pv_multiply"]["pj"] + o["pv_accumulate"]["pj"] + o["dot_pv_clock"]["pj"], rel=1e-12)
-        assert e["static_units_pj"]["dot_pv"] == pytest.approx(o["dot_pv_leakage"]["pj"], rel=1e-12)
+            o["pv_multiply"]["pj"] + o["pv_accumulate"]["pj"] + o["dot_pv_clock"]["pj"], rel=1e-10)
+        assert e["static_units_pj"]["dot_pv"] == pytest.approx(o["dot_pv_leakage"]["pj"], rel=1e-10)
 
 
 def test_default_precision_picks_nearest_entries(tiny_run):

@@ -14,7 +14,7 @@ import pytest
 import simpy
 
 import sim
-from sim.engine import datapath
+from sim.engine import program
 from sim.engine.addrmap import LAYOUTS, PLANES, AddressMap
 from sim.engine.buffers import Buffer
 from sim.trace.synth import synth_trace
@@ -42,14 +42,14 @@ def _program(monkeypatch, trace, share):
     arch = sim.load_arch(MID)
     if not share:  # a key of its own for every step: nothing shared
         keys = iter(range(10 ** 9))
-        monkeypatch.setattr(datapath, "_shape_key", lambda step, amap: next(keys))
+        monkeypatch.setattr(program, "_shape_key", lambda step, amap: next(keys))
     env = simpy.Environment()
     max_rows = max(s.kv_rows for s in trace.steps)
     amaps = {64: AddressMap(arch, 2, 4, max_rows, 64)}
     buffers = {n: Buffer(env, n, kib * 1024) for n, kib in (
         ("query", arch.buffers.query_kib), ("key", arch.buffers.key_kib), ("value", arch.buffers.value_kib))}
-    prog = datapath.build_program(env, arch, trace, amaps, buffers, arch.engine.grain_rows,
-                                  np.random.default_rng(0))
+    prog = program.ProgramBuilder(env, arch, trace, amaps, buffers, arch.engine.grain_rows,
+                                  np.random.default_rng(0)).build()
     monkeypatch.undo()
     return prog
 
@@ -70,7 +70,7 @@ def test_shared_plans_build_the_same_program(monkeypatch, pruning):
                         **pruning)
     if not pruning:  # every layer of a decode token plans alike: shared
         amap = AddressMap(sim.load_arch(MID), 2, 4, 99, 64)
-        keys = {datapath._shape_key(s, amap) for s in trace.steps}
+        keys = {program._shape_key(s, amap) for s in trace.steps}
         assert len(keys) < len(trace.steps)
     shared = _program(monkeypatch, trace, share=True)
     alone = _program(monkeypatch, trace, share=False)

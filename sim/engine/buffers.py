@@ -1,17 +1,56 @@
 """On-chip SRAM buffers modelled as capacity in bytes.
 
 The fetch unit reserves room before it issues a transaction (and is
-``blocked`` on the buffer while there is none); the consumer frees it after
-the last use. So buffer size becomes back-pressure on memory, and -- through
-the tiling rule in :mod:`sim.engine.tiling` -- it decides how often K and V
-are re-streamed.
+``blocked`` on the buffer while there is none); the consumer frees it as it
+reads the rows. So buffer size becomes back-pressure on memory, and --
+through the tiling rule in :mod:`sim.engine.tiling` -- it decides how often
+K and V are re-streamed.
 
-Like a simpy ``Container`` whose level is the bytes reserved, but a
-reservation that fits is granted on the spot without an event: buffers are
-touched by every transaction, and most reservations never wait.
+Like a simpy ``Container`` whose level is the bytes reserved, with two
+differences. A reservation that fits is granted on the spot without an event:
+buffers are touched by every transaction, and most reservations never wait.
+And room can be freed over an interval (:meth:`Buffer.release_over`): an
+operation that streams through a chunk frees its rows as it goes, not all at
+its end, so a coarse simulated chunk holds the room fine ones would. Waiting
+reservations are served in order, each as soon as the releases in progress
+make room for it (one timer, not one event per row).
 """
 
 from collections import deque
+
+
+def ramp_time(now, amount, ramps):
+    """Earliest time >= ``now`` at which ``ramps`` have released ``amount`` more.
+
+    ``ramps`` are ``(t0, t1, left)``: ``left`` released linearly from
+    ``max(now, t0)`` to ``t1`` (a ramp with ``t1 <= max(now, t0)`` releases it at
+    once). Returns None if they never release that much. A sweep over the
+    ramps' ends: O(n log n).
+    """
+    if amount <= 0:
+        return now
+    steps = []   # (time, change of rate, lump released at that time)
+    for t0, t1, left in ramps:
+        a = max(now, t0)
+        if left <= 0:
+            continue
+        if t1 <= a:
+            steps.append((a, 0.0, left))
+        else:
+            rate = left / (t1 - a)
+            steps.append((a, rate, 0.0))
+            steps.append((t1, -rate, 0.0))
+    steps.sort()
+    t0, rate, done = now, 0.0, 0.0
+    for t, d_rate, lump in steps:
+        gain = rate * (t - t0)
+        if rate > 0 and done + gain >= amount:
+            return t0 + (amount - done) / rate
+        done += gain + lump
+        if done >= amount:
+            return t
+        t0, rate = t, rate + d_rate
+    return None
 
 
 class Buffer:
@@ -23,36 +62,99 @@ class Buffer:
         self.env = env
         self.name = name
         self.capacity = capacity
-        self.level = 0.0
+        self.level = 0.0            # bytes reserved, ramps counted whole until they end
+        self.ramps = []             # [t0, t1, bytes] being released linearly
         self.waiting = deque()      # (nbytes, event), served in order
+        self.timer = None
         self.peak = 0.0
         self.bytes_written = 0.0
         self.bytes_read = 0.0
+        self._slack = capacity * 1e-9    # rounding of the ramps' sums (a fraction of a byte)
 
     def reserve(self, nbytes):
         """Reserve ``nbytes``; None if granted now, else an event fired when granted."""
         if nbytes > self.capacity:
             raise ValueError(f"buffer {self.name!r}: {nbytes} bytes can never fit in {self.capacity}")
         self.bytes_written += nbytes
-        if not self.waiting and self.level + nbytes <= self.capacity:
+        if not self.waiting and self.occupied() + nbytes <= self.capacity + self._slack:
             self._grant(nbytes)
             return None
         ev = self.env.event()
         self.waiting.append((nbytes, ev))
+        if len(self.waiting) == 1:
+            self._arm()
         return ev
+
+    def occupied(self):
+        """Bytes held now: reserved, less what the releases in progress have freed."""
+        now = self.env.now
+        if not self.ramps:
+            return self.level
+        held = self.level
+        keep = []
+        for r in self.ramps:
+            t0, t1, b = r
+            if now >= t1:
+                self.level -= b
+                held -= b
+            else:
+                if now > t0:
+                    held -= b * (now - t0) / (t1 - t0)
+                keep.append(r)
+        self.ramps = keep
+        return held
 
     def _grant(self, nbytes):
         self.level += nbytes
-        if self.level > self.peak:
-            self.peak = self.level
+        held = self.occupied()
+        if held > self.peak:
+            self.peak = held
 
     def release(self, nbytes):
+        """Free ``nbytes`` now."""
         self.level -= nbytes
+        self._serve()
+
+    def release_over(self, nbytes, t0, t1):
+        """Free ``nbytes`` linearly from ``t0`` (now) to ``t1``: rows read one after another."""
+        if t1 <= t0:
+            self.release(nbytes)
+            return
+        self.ramps.append((t0, t1, nbytes))
+        self._serve()
+
+    def _serve(self):
         w = self.waiting
-        while w and self.level + w[0][0] <= self.capacity:
+        while w and self.occupied() + w[0][0] <= self.capacity + self._slack:
             n, ev = w.popleft()
             self._grant(n)
             ev.succeed()
+        if w:
+            self._arm()
+
+    def _arm(self):
+        """Wake the first waiter when the releases in progress make room for it."""
+        now = self.env.now
+        need = self.occupied() + self.waiting[0][0] - self.capacity
+        t = ramp_time(now, need, [(t0, t1, b * (t1 - max(now, t0)) / (t1 - t0))
+                                  for t0, t1, b in self.ramps])
+        first = self.waiting[0][1]
+        if t is None or (self.timer is not None and self.timer[0] <= t and self.timer[2] is first):
+            return
+        ev = self.env.timeout(max(t - now, 0.0))
+        self.timer = (t, ev, first)
+        ev.callbacks.append(self._ring)
+
+    def _ring(self, ev):
+        if self.timer is not None and self.timer[1] is ev:
+            _t, _ev, armed = self.timer
+            self.timer = None
+            if self.waiting and self.waiting[0][1] is armed:
+                # the releases have made the room it needed, to rounding: grant it
+                n, first = self.waiting.popleft()
+                self._grant(n)
+                first.succeed()
+        self._serve()
 
     def note_read(self, nbytes):
         self.bytes_read += nbytes

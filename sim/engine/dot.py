@@ -29,7 +29,7 @@ class DotOp:
     """One operation on the array: q.K of a block, its LSB recompute, or p.V."""
 
     __slots__ = ("kind", "step", "head", "block", "macs", "head_dim", "inputs", "waits",
-                 "release", "out", "done", "score_rows", "score_cols")
+                 "release", "out", "done", "score_rows", "score_cols", "part")
 
     def __init__(self, kind, step, head, block, macs, head_dim):
         self.kind = kind        # 'qk', 'lsb' or 'pv'
@@ -45,6 +45,7 @@ class DotOp:
         self.done = None        # event fired when its result is out
         self.score_rows = 0
         self.score_cols = 0
+        self.part = None        # which part of a shared query transaction it reads (in order)
 
 
 def later(env, delay, event):
@@ -64,10 +65,15 @@ def later(env, delay, event):
 def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, producer=None):
     """Run ``ops`` in program order on one array; ``state`` is its UnitState.
 
-    For each op: wait for its operand transactions (starved, charged to the
-    stage that held them), hold for the throughput time (busy), free operand
-    buffer room, then hand the score block to the softmax unit (blocked while
-    its input queue is full).
+    For each op: wait for the first tile of each operand transaction (starved,
+    charged to the stage that held it), then work for the throughput time
+    (busy). Operands stream: an op ends no earlier than each operand's last
+    tile plus that tile's share of the work, and the array waits for tiles in
+    between (starved on the memory transfer, or on the reorder stage when the
+    data had to wait for an earlier transaction). A streamed operand's buffer
+    room is freed as its rows are read (over the op); a query block at the
+    end. Then it hands the score block to the softmax unit (blocked while its
+    input queue is full).
     """
     rates = {}   # head_dim -> MACs per cycle
     set_state = state.set
@@ -84,19 +90,39 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, produce
             if not ev.processed:
                 set_state("starved", cause)
                 yield ev
-        set_state("busy")
         for txn in inputs:
-            txn.buffer.note_read(txn.nbytes)
+            txn.buffer.note_read(txn.nbytes / txn.readers)
         macs = op.macs
+        work = 0.0
         if macs > 0:
             rate = rates.get(op.head_dim)
             if rate is None:
                 rate = rates[op.head_dim] = macs_per_cycle(multipliers, lanes, op.head_dim)
-            yield env.timeout(macs / rate)
+            work = macs / rate
+        now = env.now
+        end = now + work
+        late = None
+        for txn in inputs:
+            if txn.readers > 1:   # its own part of a shared transaction, needed whole
+                t = txn.hs + (txn.last - txn.hs) * (op.part + 1) / txn.readers + work
+            else:                 # streamed: the last rows, then their share of the work
+                t = txn.last + work / txn.pieces
+            if t > end:
+                end, late = t, txn
+        if late is None:
+            set_state("busy")
         else:
-            yield env.timeout(0)
-        for txn in op.release:
-            txn.buffer.release(txn.hold)
+            state.stream(work, end, "reorder" if late.last > late.mem_times[2] else "memory_transfer")
+        at_end = None
+        for txn in op.release:   # streamed rows free their room as they are read
+            if txn.pieces > 1 and txn.readers == 1:
+                txn.buffer.release_over(txn.hold, now, end)
+            else:
+                at_end = [txn] if at_end is None else at_end + [txn]
+        yield env.timeout(end - now)
+        if at_end is not None:
+            for txn in at_end:
+                txn.buffer.release(txn.hold)
         out = op.out
         if out is not None:
             out.log.append(("dot", env.now + pipeline))

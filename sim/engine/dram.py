@@ -662,6 +662,9 @@ class ChannelPool:
         txn.mem_times = (t_start, t_first, t_done)
         txn.log += (("memory_queue", t_start), ("memory_latency", t_first),
                     ("memory_transfer", t_done))
+        txn.mem_times = (t_start, t_first, t_done)
+        if txn.on_timed is not None:   # the fetch unit streams data from here
+            txn.on_timed(txn)
         if ev is None:
             out = env.timeout(t_done - now)
             out.callbacks.append(self._left)

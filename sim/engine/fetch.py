@@ -1,102 +1,350 @@
 """Fetch unit: turns planned chunks into memory requests and hands data over in order.
 
-It walks its transactions in program order. For each one it waits for the
-data dependency (the previous layer, the softmax that decides an LSB refetch,
-the top-k that decides which V rows are kept), reserves room in the target
-buffer, waits for a free in-flight slot, then issues the transaction's bursts
-to the channel pool (one issue cycle per request). Completions may come back
-out of order; the reorder stage hands transactions to consumers in issue
-order and holds at most ``fetch.reorder_entries`` requests' worth of data that
-finished early -- when it is full the unit stops issuing. ``fetch.inflight``
-bounds the requests issued and not yet handed over.
+It walks its transactions in program order. Each one first gets room in its
+target buffer (reservations are granted in program order, which is what
+keeps the datapath free of deadlock: nothing reserved can need room that only
+a later transaction frees), then waits for its data dependency (the previous
+layer, the softmax that decides an LSB refetch, the top-k that decides which
+V rows are kept) and for a free in-flight slot, and is issued to the channel
+pool (one issue cycle per request of ``fetch.request_bytes``).
+
+**Issue window.** A transaction whose dependency has not fired need not hold
+up the ones behind it: with ``fetch.issue_window`` > 0 the unit sets it aside
+(its room already reserved) and goes on issuing later transactions whose
+dependencies are met, up to ``issue_window`` requests past the oldest one set
+aside, and never past buffer room. A set-aside transaction issues as soon as
+its dependency fires, before any later one. With ``issue_window: 0`` the unit
+is strictly in order and waits for a dependency before it reserves room. When
+the window is full the unit is ``blocked`` on ``issue_window``.
+
+**Streaming.** A transaction's bursts arrive between the pool's first and
+last data; the unit hands data over in issue order (the reorder stage), so a
+transaction's data is handed over from ``max(its first tile on chip, the
+previous transaction fully handed over)`` to ``max(its last byte, the same)``.
+Its ``done`` event fires at the first of these and ``txn.last`` holds the
+second: a consumer starts on the first tile and finishes no earlier than the
+last tile's arrival plus that tile's service (see :mod:`sim.engine.dot`), so a
+coarse transaction keeps the overlap of fine ones. ``fetch.inflight`` bounds
+the requests issued and not yet handed over (a transaction may issue once its
+first request fits); ``fetch.reorder_entries`` bounds the requests that have
+arrived but wait for an earlier transaction -- when it is full the unit stops
+issuing.
 """
 
+from bisect import insort
 from collections import deque
+from heapq import heappop, heappush
+from operator import attrgetter
+
+from .buffers import ramp_time
+from .dot import later
+
+_ORDER = attrgetter("order")
+
+
+class _Stream:
+    """The transactions issued into one buffer, handed over in issue order."""
+
+    __slots__ = ("pending", "untimed", "inflight", "handed")
+
+    def __init__(self):
+        self.pending = deque()      # issued and not yet fully handed over
+        self.untimed = deque()      # issued, waiting for the pool to say when data arrives
+        self.inflight = 0.0         # requests of ``pending``
+        self.handed = 0.0           # when the last issued transaction is fully handed over
+
+
+class FetchUnit:
+    """The fetch unit's bookkeeping; :func:`fetch_process` is its simpy process."""
+
+    def __init__(self, env, txns, pool, router, arch, state, stats):
+        self.env = env
+        self.program = iter(txns)
+        self.pool = pool
+        self.bursts_for = router.bursts_for
+        self.state = state
+        self.stats = stats
+        f = arch.fetch
+        self.window = f.issue_window
+        self.inflight_cap = f.inflight
+        self.reorder_cap = f.reorder_entries
+        self.req_bytes = f.request_bytes
+        self.burst = arch.dram.burst_bytes
+        self.streams = {}           # buffer name -> _Stream
+        self.npending = 0           # transactions issued and not yet fully handed over
+        self.early = 0.0            # requests of pending transactions arrived whole, not handed over
+        self.arrivals = []          # heap of (last byte, order, txn) not yet counted in ``early``
+        self.aside = []             # room reserved, waiting for a dependency (program order)
+        self.ready = []             # room reserved, dependency met, not issued (program order)
+        self.taken = 0              # transactions taken from the program
+        self.walked = 0.0           # their requests
+        self.issue_free = 0.0       # the request port is busy issuing until then
+        self.wake = env.event()
+        self.timer = None           # the pending re-evaluation timer, and its time
+        self.timer_at = 0.0
+        self.plane_keys = {}
+
+    # ------------------------------------------------------------------ events
+    def poke(self, _ev=None):
+        """Something the unit may be waiting for happened: re-evaluate."""
+        if not self.wake.triggered:
+            self.wake.succeed()
+
+    def poke_at(self, t):
+        """Re-evaluate at ``t`` (one timer at a time, the earliest wanted)."""
+        if self.timer is not None and self.timer_at <= t:
+            return
+        ev = self.env.timeout(t - self.env.now)
+        ev.callbacks.append(self._timer)
+        self.timer, self.timer_at = ev, t
+
+    def _timer(self, ev):
+        if ev is self.timer:
+            self.timer = None
+        self.poke()
+
+    # ----------------------------------------------------------- the program
+    def take(self):
+        """The next transaction of the program, with its addresses and size; None at the end."""
+        txn = next(self.program, None)
+        if txn is None:
+            return None
+        bursts = self.bursts_for(txn)
+        txn.bursts = bursts
+        txn.nbytes = txn.hold = len(bursts) * self.burst
+        # limits count requests (fetch.request_bytes each), not simulated transactions,
+        # so the engine's grain does not change the hardware being modelled
+        txn.nreq = txn.nbytes / self.req_bytes
+        txn.order = self.taken
+        self.taken += 1
+        return txn
+
+    def window_open(self, txn):
+        """May the unit take ``txn``? At most ``issue_window`` fetch descriptors (one
+        plane of one head group for one query block, however many chunks the engine
+        grain cuts it into) past the oldest one set aside."""
+        return not self.aside or txn.desc - self.aside[0].desc <= self.window
+
+    def set_aside(self, txn, now):
+        cause = next(c for ev, c in txn.waits if not ev.processed)
+        txn.dep_cause = cause
+        txn.log.append(("fetch", now))
+        self.aside.append(txn)
+        for ev, _c in txn.waits:
+            if not ev.processed:
+                ev.callbacks.append(self.poke)
+
+    def release_aside(self, now):
+        """Set-aside transactions whose dependency fired become ready."""
+        keep = []
+        for t in self.aside:
+            if all(ev.processed for ev, _c in t.waits):
+                t.log.append((t.dep_cause, now))
+                insort(self.ready, t, key=_ORDER)
+            else:
+                keep.append(t)
+        self.aside = keep
+
+    # ------------------------------------------------------------ in flight
+    # A transaction is handed over from ``hs`` (its first byte leaves the reorder
+    # stage) to ``last``, linearly. Each buffer is written in issue order, so
+    # within one stream the handover intervals follow each other and only its
+    # oldest pending transaction is part way at any instant.
+    def retire(self):
+        """Drop transactions fully handed over by now from the in-flight count."""
+        now = self.env.now
+        for st in self.streams.values():
+            p = st.pending
+            while p and p[0].last is not None and p[0].last <= now:
+                t = p.popleft()
+                st.inflight -= t.nreq
+                self.npending -= 1
+                if t.early:
+                    self.early -= t.nreq
+
+    @staticmethod
+    def _handed(t, now):
+        """Requests of pending ``t`` handed over by ``now``."""
+        if t.last is None or now <= t.hs:
+            return 0.0
+        return t.nreq * (now - t.hs) / (t.last - t.hs)
+
+    def inflight_now(self):
+        """Requests issued and not yet handed over."""
+        now = self.env.now
+        return sum(st.inflight - (self._handed(st.pending[0], now) if st.pending else 0.0)
+                   for st in self.streams.values())
+
+    def count_early(self):
+        """Requests that have arrived whole but wait for an earlier transaction."""
+        now = self.env.now
+        h = self.arrivals
+        while h and h[0][0] <= now:
+            _, _, t = heappop(h)
+            if t.last > now:         # not handed over yet: it waits in the reorder stage
+                t.early = True
+                self.early += t.nreq
+        return self.early
+
+    def issue_block(self, txn):
+        """Why ``txn`` cannot issue now (a blocked cause), or None."""
+        if self.npending:
+            if self.inflight_now() + min(txn.nreq, 1.0) > self.inflight_cap + 1e-6:
+                return "inflight_limit"
+            if self.count_early() >= self.reorder_cap:
+                return "reorder_full"
+        return None
+
+    def when_room(self, txn):
+        """Earliest time the in-flight count lets ``txn`` issue, or None if a
+        transaction on the way has not been timed yet (the pool pokes then)."""
+        now = self.env.now
+        excess = self.inflight_now() + min(txn.nreq, 1.0) - self.inflight_cap
+        ramps = []
+        for st in self.streams.values():
+            for t in st.pending:
+                if t.last is None:
+                    return None
+                ramps.append((t.hs, t.last, t.nreq - self._handed(t, max(now, t.hs))))
+        t = ramp_time(now, excess, ramps)
+        return now if t is None else t
+
+    def next_handover(self):
+        """When the next pending transaction is fully handed over (None: one is untimed)."""
+        times = [st.pending[0].last for st in self.streams.values() if st.pending]
+        if not times or None in times:
+            return None
+        return min(times)
+
+    def stream(self, txn):
+        st = self.streams.get(txn.buffer.name)
+        if st is None:
+            st = self.streams[txn.buffer.name] = _Stream()
+        return st
+
+    def issue(self, txn, cause):
+        now = self.env.now
+        txn.log.append((cause, now))
+        st = self.stream(txn)
+        st.pending.append(txn)
+        st.untimed.append(txn)
+        st.inflight += txn.nreq
+        self.npending += 1
+        txn.last = None
+        txn.on_timed = self.timed
+        self.pool.submit(txn)   # times it now (first come first served) or when it commits
+        txn.bursts = None
+        stats = self.stats
+        key = self.plane_keys.get(txn.kind)
+        if key is None:
+            key = self.plane_keys[txn.kind] = f"bytes_{txn.kind}"
+        stats["bytes"] += txn.nbytes
+        stats[key] += txn.nbytes
+        stats["transactions"] += 1
+        stats["requests"] += txn.nreq
+        # one request issued per cycle; no event unless the next transaction is ready before
+        self.issue_free = now + txn.nreq
+        self.state.busy_until(self.issue_free)
+
+    def timed(self, txn):
+        """The pool has fixed ``txn``'s data times: hand data over, in order per buffer."""
+        txn.timed = True
+        st = self.stream(txn)
+        u = st.untimed
+        env = self.env
+        while u and u[0].timed:
+            t = u.popleft()
+            _, first, done = t.mem_times
+            a1 = first + (done - first) / t.pieces       # first piece on chip
+            h_first = max(a1, st.handed)
+            t.hs = max(first, st.handed)
+            st.handed = max(done, st.handed)
+            t.last = st.handed
+            t.early = False
+            heappush(self.arrivals, (done, t.order, t))
+            t.log.append(("reorder", t.last))
+            later(env, max(0.0, h_first - env.now), t.done)
+        self.poke()
+
+    def why(self, cur, more):
+        """(state, cause) while nothing can move."""
+        if self.ready:
+            return "blocked", self.ready[0].wait_cause
+        if cur is not None:
+            return "blocked", f"{cur.buffer.name}_buffer_full"
+        if more is not None and not self.window_open(more):
+            return "blocked", "issue_window"
+        if self.aside:
+            return "starved", self.aside[0].dep_cause
+        return "starved", None
 
 
 def fetch_process(env, txns, pool, router, arch, state, stats):
     """Issue ``txns`` (in program order) to ``pool``; ``router.bursts_for(txn)`` gives addresses."""
-    inflight_cap = arch.fetch.inflight
-    reorder_cap = arch.fetch.reorder_entries
-    req_bytes = arch.fetch.request_bytes
-    burst = arch.dram.burst_bytes
-    pending = deque()        # issued, not yet handed over, in issue order
-    inflight = 0.0           # requests issued and not yet handed over
-    early = 0.0              # requests completed but waiting for an earlier transaction
-    progress = env.event()
-    bursts_for = router.bursts_for
-    set_state = state.set
-    plane_bytes = {}         # txn kind -> its key in ``stats``
-
-    def on_complete(txn):
-        def fire(_ev):
-            nonlocal inflight, early
-            txn.completed = True
-            early += txn.nbytes / req_bytes
-            now = env.now
-            while pending and pending[0].completed:
-                t = pending.popleft()
-                r = t.nbytes / req_bytes
-                early -= r
-                inflight -= r
-                t.log.append(("reorder", now))
-                t.done.succeed()
-            if not progress.triggered:
-                progress.succeed()
-        return fire
-
-    issue_free = 0.0   # the request port is busy issuing the previous transaction until then
-    for txn in txns:
-        log = txn.log
-        for ev, cause in txn.waits:
-            if not ev.processed:
-                log.append(("fetch", env.now))
-                set_state("starved", cause)
-                yield ev
-                log.append((cause, env.now))
-        bursts = bursts_for(txn)
-        nbytes = len(bursts) * burst
-        txn.bursts = bursts
-        txn.nbytes = nbytes
-        txn.hold = nbytes
-        buf = txn.buffer
-        req = buf.reserve(nbytes)
-        if req is not None:
-            log.append(("fetch", env.now))
-            cause = f"{buf.name}_buffer_full"
-            set_state("blocked", cause)
-            yield req
-            log.append((cause, env.now))
-        # limits count requests (fetch.request_bytes each), not simulated transactions,
-        # so the engine's grain does not change the hardware being modelled
-        nreq = nbytes / req_bytes
-        while pending and (inflight + nreq > inflight_cap or early >= reorder_cap):
-            cause = "inflight_limit" if inflight + nreq > inflight_cap else "reorder_full"
-            log.append(("fetch", env.now))
-            set_state("blocked", cause)
-            if progress.triggered:
-                progress = env.event()
-            yield progress
-            log.append((cause, env.now))
+    u = FetchUnit(env, txns, pool, router, arch, state, stats)
+    strict = u.window == 0
+    cur = req = None     # taken from the program, waiting for buffer room
+    nxt = u.take()
+    while True:
         now = env.now
-        if now < issue_free:  # nothing else to wait for: the port is still issuing
-            yield env.timeout(issue_free - now)
-            now = env.now
-        log.append(("fetch", now))
-        pending.append(txn)
-        inflight += nreq
-        pool.submit(txn).callbacks.append(on_complete(txn))
-        txn.bursts = None
-        key = plane_bytes.get(txn.kind)
-        if key is None:
-            key = plane_bytes[txn.kind] = f"bytes_{txn.kind}"
-        stats["bytes"] += nbytes
-        stats[key] += nbytes
-        stats["transactions"] += 1
-        stats["requests"] += nreq
-        # one request issued per cycle; no event unless the next transaction is ready before
-        issue_free = now + nreq
-        state.busy_until(issue_free)
-    if env.now < issue_free:
-        yield env.timeout(issue_free - env.now)
+        if u.aside:
+            u.release_aside(now)
+        # 1. issue the oldest ready transaction when the port and the limits allow
+        if u.ready:
+            if now < u.issue_free:
+                # the port is still issuing: nothing else goes out before it is free
+                yield env.timeout(u.issue_free - now)
+                continue
+            u.retire()
+            txn = u.ready[0]
+            why = u.issue_block(txn)
+            if why is None:
+                del u.ready[0]
+                u.issue(txn, txn.wait_cause or "fetch")
+                continue
+            if txn.wait_cause is None:
+                txn.log.append(("fetch", now))
+            txn.wait_cause = why
+        # 2. take the next transaction while the window allows, and reserve its room
+        if cur is None and nxt is not None and u.window_open(nxt) and not (strict and u.ready):
+            cur, nxt = nxt, u.take()
+            cur.wait_cause = None
+            if strict and not all(ev.processed for ev, _c in cur.waits):
+                # strictly in order: wait for the dependency before reserving room
+                for ev, cause in cur.waits:
+                    if not ev.processed:
+                        cur.log.append(("fetch", env.now))
+                        state.set("starved", cause)
+                        yield ev
+                        cur.log.append((cause, env.now))
+                now = env.now
+            req = cur.buffer.reserve(cur.nbytes)
+            if req is not None:
+                cur.log.append(("fetch", now))
+                req.callbacks.append(u.poke)
+        # 3. room granted: ready to issue, or set aside until its dependency fires
+        if cur is not None and (req is None or req.processed):
+            if req is not None:
+                cur.log.append((f"{cur.buffer.name}_buffer_full", now))
+            txn, cur, req = cur, None, None
+            u.walked += txn.nreq
+            txn.end_pos = u.walked
+            if all(ev.processed for ev, _c in txn.waits):
+                insort(u.ready, txn, key=_ORDER)
+            else:
+                u.set_aside(txn, now)
+            continue
+        if cur is None and nxt is None and not u.aside and not u.ready:
+            break
+        # 4. nothing can move now: say why and wait for something to change
+        state.set(*u.why(cur, nxt))
+        if u.ready and u.npending:
+            t = u.when_room(u.ready[0]) if u.ready[0].wait_cause == "inflight_limit" else u.next_handover()
+            if t is not None:   # else the pool pokes when it times the transaction on the way
+                u.poke_at(max(t, now))
+        if not u.wake.triggered:
+            yield u.wake
+        u.wake = env.event()
+    if env.now < u.issue_free:
+        yield env.timeout(u.issue_free - env.now)
     state.set("idle")

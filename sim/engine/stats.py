@@ -94,6 +94,19 @@ class UnitState:
         self._close(t)
         self.state, self.cause = "starved", "program"
 
+    def stream(self, work, end, cause):
+        """Busy for ``work`` cycles from now, then starved by ``cause`` until ``end``: an
+        operation whose operands arrive slower than it consumes them (the busy and
+        waiting parts interleave tile by tile; the log keeps their totals)."""
+        now = self.env.now
+        if now > self.since:
+            self._close(now)
+        self.state, self.cause = "busy", None
+        self._close(now + work)
+        self.state, self.cause = "starved", cause
+        self._close(end)
+        self.state, self.cause = "starved", None
+
     def charge_wait(self, t0, txn, before="fetch", producer=None):
         """Charge a starved wait ``[t0, now)`` to the stages in ``txn``'s log.
 

@@ -4,23 +4,31 @@ Pure functions (no simpy), shared by the engine and the closed-form model.
 
 Per step:
 
-* heads are taken in **head groups**. When one query block covers all of a
-  head's queries (decode, short prefill), several heads whose kept rows
-  together fit in ``engine.grain_rows`` rows (and in half of each buffer) move
-  as one group: one transaction carries all their K rows. Otherwise a group is
-  one head;
+* heads are taken in **head groups**: the query heads that read the same K
+  and V (one head each in multi-head attention). The array runs q.K of one
+  group, then p.V of the group before it, so softmax and the selector work on
+  one group while the array computes the next. The buffers and the engine
+  grain play no part in forming groups;
 * queries are processed in **query blocks** of at most half the query buffer
   (double buffering), so a long prefill has several blocks per head;
 * K (most-significant plane) is **resident** when it is read more than once
-  (several query blocks, or an LSB recompute) and the head's kept rows fit in
+  (several query blocks, or an LSB recompute) and the group's kept rows fit in
   half the key buffer: fetched once, reused. Otherwise it is **re-streamed**
-  for each query block. V likewise with the value buffer. Half, so the next
-  head's rows can stream in while this head finishes;
-* fetches move in **chunks** of at most ``engine.grain_rows`` rows, capped so
-  one chunk takes at most half its buffer;
+  for each query block. V likewise with the value buffer. The LSB plane
+  follows the same rule when more than one query block recomputes rows: it
+  stays resident if it fits in what the resident K leaves of that half. Half,
+  so the next group's rows can stream in while this group finishes;
+* fetches move in **chunks** of at most ``engine.grain_rows`` rows (a chunk may
+  carry the rows of several heads of a group), capped so one chunk takes at
+  most half its buffer. The grain is a simulation setting: chunks stream (see
+  :mod:`sim.engine.fetch`), so cutting finer changes event counts, not the
+  modelled hardware. A burst that two neighbouring chunks of one head share
+  is fetched once, by the first (:attr:`Chunk.skip`);
 * a query block with rows flagged for the least-significant key plane
   (progressive quantization) fetches that plane's chunks (plus the MSB chunks
-  again when K was not resident) and recomputes those rows' scores;
+  again when K was not resident) and recomputes those rows' scores. A head's
+  flagged rows are spread over its query blocks in proportion to their size,
+  never more than a block holds, and every flagged row is recomputed once;
 * value pruning is a decode technique here: in a decode step the selector
   picks each head's kept V rows after softmax and only those are fetched
   (``kept_v_idx`` when the trace gives them, else ``kept_v`` positions spread
@@ -42,14 +50,20 @@ from .addrmap import row_bytes
 
 
 class Chunk:
-    """Rows of one plane fetched together (one transaction): ``[(head, positions)]``."""
+    """Rows of one plane fetched together (one transaction): ``[(head, positions)]``.
 
-    __slots__ = ("plane", "segments", "rows")
+    ``skip`` is 1 when the chunk's first burst was already fetched by the
+    chunk before it in the same stream (two neighbouring rows share a burst):
+    the fetch leaves it out, so a stream costs its bursts once however it is cut.
+    """
 
-    def __init__(self, plane, segments):
+    __slots__ = ("plane", "segments", "rows", "skip")
+
+    def __init__(self, plane, segments, skip=0):
         self.plane = plane
         self.segments = segments
         self.rows = len(segments[0][1]) if len(segments) == 1 else sum(len(p) for _h, p in segments)
+        self.skip = skip
 
 
 class BlockPlan:
@@ -77,7 +91,8 @@ class GroupPlan:
     """All query blocks of a group of heads, with its resident chunks."""
 
     __slots__ = ("heads", "n_kv", "v_positions", "v_work", "select", "k_resident", "v_resident", "k_chunks",
-                 "v_chunks", "blocks", "k_bytes", "v_bytes", "lsb_bytes")
+                 "v_chunks", "blocks", "k_bytes", "v_bytes", "lsb_bytes", "kl_resident", "kl_chunks",
+                 "kl_msb_chunks")
 
     def __init__(self, heads):
         self.heads = heads        # head ids
@@ -87,6 +102,9 @@ class GroupPlan:
         self.v_positions = {}     # head -> V positions fetched
         self.v_work = {}          # head -> V rows each query row multiplies (p.V work)
         self.select = False       # decode value pruning: a top-k picks the V rows
+        self.kl_resident = False  # LSB plane fetched once and shared by the group's blocks
+        self.kl_chunks = []       # resident LSB chunks
+        self.kl_msb_chunks = []   # the MSB chunks they pair with (fetched per block unless K is resident)
 
     def n_v(self, head):
         """V rows one query row of ``head`` multiplies."""
@@ -150,64 +168,76 @@ def value_positions(step, j):
     return k[pick]
 
 
-def group_size(arch, amap, step, grain_rows, nqb, v_positions):
-    """Heads per group: several only when one query block covers a head.
+def group_size(step):
+    """Query heads processed as one group: those that read the same K and V.
 
-    A group's K (and its LSB plane, and its V) moves as one transaction, so the
-    group is as many heads as fit ``grain_rows`` rows and half of each buffer,
-    counting whole bursts (scattered rows cost more than their bytes).
+    Each head has its own K and V (multi-head attention), so a group is one
+    head: the array runs q.K of one head while the softmax and the selector
+    work on the head before it. The buffers and the engine grain play no part.
     """
-    if nqb > 1:
-        return 1
-    d = step.head_dim
-    n = step.n_kept_k
-    layer, h0 = step.layer, int(step.heads[0])
-    half_k, half_v = _half(arch, "K"), _half(arch, "V")
-    per_k = _bytes(amap, layer, "K", h0, step.kept_k)
-    if arch.precision.k_lsb_bits:
-        per_k = max(per_k, _bytes(amap, layer, "KL", h0, step.kept_k))
-    per_v = max(_bytes(amap, layer, "V", h0, p) for p in v_positions)
-    q_room = int(arch.buffers.query_kib * 1024 / 2
-                 // (row_bytes(arch, "Q", d) * step.q_rows + 2 * arch.dram.burst_bytes))
-    return max(1, min(step.n_heads, grain_rows // n, int(half_k // per_k), int(half_v // per_v), q_room))
+    return 1
 
 
-def _split(amap, layer, planes, head, positions, max_rows, max_bytes):
-    """Cut ``positions`` into chunks of at most ``max_rows`` rows and ``max_bytes`` bytes.
+def split(amap, layer, planes, segments, max_rows, max_bytes):
+    """Cut a stream of ``segments`` ``[(head, positions)]`` into chunks.
 
-    Bytes are counted in whole bursts of the widest of ``planes`` (all planes
-    get the same cut, so an LSB chunk pairs with its MSB chunk). A chunk's
-    first row pays its full span; each next row only the bursts it adds.
+    Each chunk holds at most ``max_rows`` rows and ``max_bytes`` bytes and may
+    span heads. Bytes are counted in whole bursts of the widest of ``planes``
+    (all planes get the same cut, so an LSB chunk pairs with its MSB chunk); a
+    burst two neighbouring rows of one head share is counted, and fetched,
+    once. Returns one list of Chunks (one per plane) per cut.
     """
     plane = max(planes, key=lambda p: amap.row_bytes[p])
-    n = len(positions)
-    burst = amap.burst
-    if n <= max_rows and _bytes(amap, layer, plane, head, positions) <= max_bytes:
-        return [[Chunk(p, [(head, positions)]) for p in planes]]
-    if int(positions[-1]) - int(positions[0]) + 1 == n:
-        # contiguous rows: a run of r rows spans at most r * row_bytes + 2 bursts
-        rows = max(1, min(max_rows, int((max_bytes - 2 * burst) // amap.row_bytes[plane])))
-        return [[Chunk(p, [(head, positions[i:i + rows])]) for p in planes] for i in range(0, n, rows)]
-    row_bits = int(round(amap.row_bytes[plane] * 8))
-    bb = burst * 8
+    total = sum(len(p) for _h, p in segments)
+    if total <= max_rows and sum(_bytes(amap, layer, plane, h, p) for h, p in segments) <= max_bytes:
+        return [[Chunk(p, segments) for p in planes]]
+    new, shared = [], []
+    for h, p in segments:
+        n_new, n_shared = _row_bursts(amap, layer, plane, h, p)
+        new.append(n_new)
+        shared.append(n_shared)
+    new = np.concatenate(new)
+    shared = np.concatenate(shared)
+    owner = np.repeat(np.arange(len(segments)), [len(p) for _h, p in segments])
+    starts = np.cumsum([0] + [len(p) for _h, p in segments])
+    cum = np.cumsum(new)
+    limit = max(1, int(max_bytes // amap.burst))
+    out = []
+    i = 0
+    while i < total:
+        # largest j with bursts(i..j) <= limit and at most max_rows rows; bursts of
+        # rows i..j are new[i..j] (row i's shared burst came with the chunk before)
+        j = int(np.searchsorted(cum, limit + cum[i] - new[i], side="right")) - 1
+        j = max(i, min(j, i + max_rows - 1, total - 1))
+        segs = []
+        for k in range(owner[i], owner[j] + 1):
+            lo, hi = max(i, starts[k]) - starts[k], min(j + 1, starts[k + 1]) - starts[k]
+            h, p = segments[k]
+            segs.append((h, p if lo == 0 and hi == len(p) else p[lo:hi]))
+        skip = int(shared[i])
+        out.append([Chunk(pl, segs, skip) for pl in planes])
+        i = j + 1
+    return out
+
+
+def _row_bursts(amap, layer, plane, head, positions):
+    """Per row of a sorted run: bursts it adds to the rows before it, and whether it
+    shares its first burst with the row before (0 or 1)."""
+    row_bits = amap.row_bits[plane]
+    bb = amap.burst * 8
     start = amap.base(layer, plane, head) * 8 + np.asarray(positions, dtype=np.int64) * row_bits
+    if amap.layout == "heads_interleaved":
+        # a row's bits relative to its granule, then the granule's place among the heads
+        g = amap.granule[plane]
+        pos = np.asarray(positions, dtype=np.int64)
+        start = (amap.base(layer, plane, head) * 8 + ((pos // g) * amap.heads + head) * g * row_bits
+                 + (pos % g) * row_bits)
     first = start // bb
     last = (start + row_bits - 1) // bb
     full = last - first + 1
-    new = full.copy()
-    new[1:] = np.maximum(last[1:] - np.maximum(first[1:], last[:-1] + 1) + 1, 0)
-    cum = np.cumsum(new)
-    limit = max(1, int(max_bytes // burst))
-    out = []
-    i = 0
-    while i < n:
-        # largest j with full[i] + cum[j] - cum[i] <= limit, at most max_rows rows
-        j = int(np.searchsorted(cum, limit - full[i] + cum[i], side="right")) - 1
-        j = max(i, min(j, i + max_rows - 1, n - 1))
-        part = positions[i:j + 1]
-        out.append([Chunk(p, [(head, part)]) for p in planes])
-        i = j + 1
-    return out
+    shared = np.zeros(len(full), dtype=np.int64)
+    shared[1:] = first[1:] == last[:-1]
+    return full - shared, shared
 
 
 def _bytes(amap, layer, plane, head, positions):
@@ -228,68 +258,98 @@ def plan_step(arch, amap, step, grain_rows):
     lsb_plane = arch.precision.k_lsb_bits > 0
     # LSB recompute chunks pair one KL chunk with one MSB chunk: same rows, both must fit
     klc = min(kc, chunk_rows(arch, "KL", d, grain_rows)) if lsb_plane else kc
-    kcap = arch.buffers.key_kib * 1024
-    vcap = arch.buffers.value_kib * 1024
-    layer = step.layer
     heads = step.heads.tolist()
-    kept = step.kept_k
     select = step.stage == "decode"
-    v_all = [value_positions(step, j) if select else kept for j in range(len(heads))]
-    g = group_size(arch, amap, step, grain_rows, nqb, v_all)
-    half_k, half_v = _half(arch, "K"), _half(arch, "V")
+    v_all = [value_positions(step, j) if select else step.kept_k for j in range(len(heads))]
+    g = group_size(step)
+    block_rows = [len(q_pos[b * qb:(b + 1) * qb]) for b in range(nqb)]
     groups = []
     for start in range(0, len(heads), g):
-        idx = list(range(start, min(start + g, len(heads))))
-        gp = GroupPlan([heads[j] for j in idx])
-        gp.n_kv = step.n_kept_k
-        gp.select = select
-        for j in idx:
-            gp.v_positions[heads[j]] = v_all[j]
-            gp.v_work[heads[j]] = int(step.kept_v[j])
-        gp.k_bytes = sum(_bytes(amap, layer, "K", h, kept) for h in gp.heads)
-        gp.v_bytes = sum(_bytes(amap, layer, "V", h, gp.v_positions[h]) for h in gp.heads)
-        gp.lsb_bytes = {h: _bytes(amap, layer, "KL", h, kept) for h in gp.heads} if lsb_plane else {}
-        flagged = {heads[j]: int(step.lsb_rows[j]) for j in idx} if lsb_plane else {}
-        reread_k = nqb > 1 or any(flagged.values())
-        gp.k_resident = reread_k and gp.k_bytes <= kcap / 2
-        gp.v_resident = nqb > 1 and gp.v_bytes <= vcap / 2
-        if len(idx) > 1:
-            k_chunks = [Chunk("K", [(h, kept) for h in gp.heads])]
-            v_chunks = [Chunk("V", [(h, gp.v_positions[h]) for h in gp.heads])]
-        else:
-            h = gp.heads[0]
-            k_chunks = [c[0] for c in _split(amap, layer, ("K",), h, kept, kc, half_k)]
-            v_chunks = [c[0] for c in _split(amap, layer, ("V",), h, gp.v_positions[h], vc, half_v)]
-        if gp.k_resident:
-            gp.k_chunks = k_chunks
-        if gp.v_resident:
-            gp.v_chunks = v_chunks
-        edges = {h: np.floor(np.linspace(0, f, nqb + 1)).astype(np.int64)
-                 for h, f in flagged.items() if f}
+        idx = range(start, min(start + g, len(heads)))
+        flagged = {heads[j]: int(step.lsb_rows[j]) for j in idx if lsb_plane and step.lsb_rows[j]}
+        share = {h: spread(f, block_rows) for h, f in flagged.items()}
+        gp = _group_plan(arch, amap, step, [heads[j] for j in idx], [v_all[j] for j in idx],
+                         [int(step.kept_v[j]) for j in idx], share, nqb, (kc, vc, klc))
         for b in range(nqb):
             bp = BlockPlan(b, q_pos[b * qb:(b + 1) * qb])
             if not gp.k_resident:
-                bp.k_chunks = k_chunks
+                bp.k_chunks = gp.k_chunks
             if not gp.v_resident:
-                bp.v_chunks = v_chunks
-            for h, e in edges.items():
-                f = min(int(e[b + 1] - e[b]), bp.rows)
-                if f:
-                    bp.lsb[h] = f
+                bp.v_chunks = gp.v_chunks
+            bp.lsb = {h: rows[b] for h, rows in share.items() if rows[b]}
             if bp.lsb:
-                if len(idx) > 1:
-                    bp.lsb_chunks = [Chunk("KL", [(h, kept) for h in bp.lsb])]
-                    if not gp.k_resident:
-                        bp.lsb_msb_chunks = [Chunk("K", [(h, kept) for h in bp.lsb])]
-                else:
-                    h = gp.heads[0]
-                    pairs = _split(amap, layer, ("KL", "K"), h, kept, klc, half_k)
-                    bp.lsb_chunks = [c[0] for c in pairs]
-                    if not gp.k_resident:
-                        bp.lsb_msb_chunks = [c[1] for c in pairs]
+                _plan_lsb(arch, amap, step.layer, gp, bp, step.kept_k, klc)
             gp.blocks.append(bp)
+        if not gp.k_resident:
+            gp.k_chunks = []
+        if not gp.v_resident:
+            gp.v_chunks = []
         groups.append(gp)
     return groups
+
+
+def _group_plan(arch, amap, step, heads, v_positions, v_work, share, nqb, cuts):
+    """A head group's residency decisions and its K / V chunks (the same for every block).
+
+    ``share``: head -> flagged LSB rows per query block.
+    """
+    kc, vc, klc = cuts
+    layer, kept = step.layer, step.kept_k
+    half_k, half_v = _half(arch, "K"), _half(arch, "V")
+    gp = GroupPlan(heads)
+    gp.n_kv = step.n_kept_k
+    gp.select = step.stage == "decode"
+    for h, vp, w in zip(heads, v_positions, v_work):
+        gp.v_positions[h] = vp
+        gp.v_work[h] = w
+    gp.k_bytes = sum(_bytes(amap, layer, "K", h, kept) for h in heads)
+    gp.v_bytes = sum(_bytes(amap, layer, "V", h, gp.v_positions[h]) for h in heads)
+    gp.lsb_bytes = {h: _bytes(amap, layer, "KL", h, kept) for h in heads} if share else {}
+    gp.k_resident = (nqb > 1 or bool(share)) and gp.k_bytes <= half_k
+    gp.v_resident = nqb > 1 and gp.v_bytes <= half_v
+    # the LSB plane, like K: resident when several blocks recompute rows and it fits in
+    # what resident K leaves of half the key buffer (several blocks: a one-head group)
+    lsb_blocks = sum(1 for b in range(nqb) if any(rows[b] for rows in share.values()))
+    kl_bytes = sum(gp.lsb_bytes[h] for h in share)
+    gp.kl_resident = lsb_blocks > 1 and kl_bytes + (gp.k_bytes if gp.k_resident else 0) <= half_k
+    gp.k_chunks = [c[0] for c in split(amap, layer, ("K",), [(h, kept) for h in heads], kc, half_k)]
+    gp.v_chunks = [c[0] for c in split(amap, layer, ("V",), [(h, gp.v_positions[h]) for h in heads],
+                                       vc, half_v)]
+    if gp.kl_resident:
+        pairs = split(amap, layer, ("KL", "K"), [(h, kept) for h in share], klc, half_k / 2)
+        gp.kl_chunks = [c[0] for c in pairs]
+        gp.kl_msb_chunks = [c[1] for c in pairs]
+    return gp
+
+
+def _plan_lsb(arch, amap, layer, gp, bp, kept, klc):
+    """The LSB recompute fetches of one block: its KL chunks (unless resident) and the MSB
+    chunks again when K is not resident (cut alike, so each KL chunk pairs with one)."""
+    if gp.kl_resident:
+        if not gp.k_resident:
+            bp.lsb_msb_chunks = gp.kl_msb_chunks
+        return
+    pairs = split(amap, layer, ("KL", "K"), [(h, kept) for h in bp.lsb], klc, _half(arch, "K") / 2)
+    bp.lsb_chunks = [c[0] for c in pairs]
+    if not gp.k_resident:
+        bp.lsb_msb_chunks = [c[1] for c in pairs]
+
+
+def spread(flagged, block_rows):
+    """Split ``flagged`` rows over query blocks in proportion to their rows, never more
+    than a block holds, summing exactly to ``flagged`` (largest remainder)."""
+    total = sum(block_rows)
+    exact = [flagged * r / total for r in block_rows]
+    out = [min(int(x), r) for x, r in zip(exact, block_rows)]
+    left = flagged - sum(out)
+    order = sorted(range(len(block_rows)), key=lambda i: (-(exact[i] - out[i]), i))
+    for i in order:
+        if left <= 0:
+            break
+        if out[i] < block_rows[i]:
+            out[i] += 1
+            left -= 1
+    return out
 
 
 def pv_macs(gp, chunks, rows, head_dim):
@@ -317,7 +377,8 @@ def selects_next(step, nxt):
 
 
 def chunk_bytes(amap, layer, chunk):
-    return sum(_bytes(amap, layer, chunk.plane, h, p) for h, p in chunk.segments)
+    """Bytes a chunk fetches (less the burst the chunk before it brought)."""
+    return sum(_bytes(amap, layer, chunk.plane, h, p) for h, p in chunk.segments) - chunk.skip * amap.burst
 
 
 def step_traffic(arch, amap, step, groups):
@@ -333,7 +394,7 @@ def step_traffic(arch, amap, step, groups):
         compulsory += q_bytes + gp.k_bytes + gp.v_bytes
         lsb_heads = {h for bp in gp.blocks for h in bp.lsb}
         compulsory += sum(gp.lsb_bytes[h] for h in lsb_heads)   # the LSB plane, once
-        fetched += q_bytes + nbytes(gp.k_chunks) + nbytes(gp.v_chunks)
+        fetched += q_bytes + nbytes(gp.k_chunks) + nbytes(gp.v_chunks) + nbytes(gp.kl_chunks)
         for bp in gp.blocks:
             fetched += (nbytes(bp.k_chunks) + nbytes(bp.lsb_chunks) + nbytes(bp.lsb_msb_chunks)
                         + nbytes(bp.v_chunks))

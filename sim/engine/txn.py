@@ -13,7 +13,9 @@ class Txn:
     """One transaction: what it is, how big, and where it has been."""
 
     __slots__ = ("kind", "step", "head", "block", "rows", "nbytes", "bursts", "log", "done",
-                 "buffer", "hold", "layer", "positions", "waits", "completed", "mem_times", "is_write")
+                 "buffer", "hold", "layer", "positions", "waits", "skip", "pieces", "last",
+                 "mem_times", "on_timed", "timed", "nreq", "order", "end_pos", "wait_cause",
+                 "dep_cause", "hs", "early", "desc", "readers", "is_write")
 
     def __init__(self, kind, step, head, block, rows, nbytes, t_created, creator):
         self.kind = kind          # 'Q', 'K', 'KL', 'V' (fetched) or 'S', 'P' (computed)
@@ -24,14 +26,27 @@ class Txn:
         self.nbytes = nbytes      # bytes moved from memory (burst-rounded)
         self.bursts = None        # burst addresses, set by the fetch unit
         self.log = [(creator, t_created)]
-        self.done = None          # simpy event: data in place for the consumer
+        self.done = None          # simpy event: (first piece of) data in place for the consumer
         self.buffer = None        # name of the on-chip buffer holding it
         self.hold = 0             # bytes reserved in that buffer
         self.layer = 0            # layer whose DRAM region holds the rows
         self.positions = None     # row positions to fetch (numpy), fetched kinds only
         self.waits = ()           # (event, cause) to see fired before issue
-        self.completed = False    # data arrived (possibly before earlier ones)
-        self.mem_times = None     # (start, first data, last data), set by the memory pool
+        self.skip = 0             # leading bursts the previous chunk of its stream brought
+        self.pieces = 1           # tiles a consumer can start on one by one (streaming)
+        self.last = None          # when its last piece is available (``done``: the first)
+        self.mem_times = None     # (start, first data, last data) once the pool has timed it
+        self.on_timed = None      # called with the txn when ``mem_times`` is set
+        self.timed = False
+        self.nreq = 0.0           # requests of fetch.request_bytes it counts for
+        self.order = 0            # place in the fetch program
+        self.end_pos = 0.0        # requests taken from the program up to and including it
+        self.wait_cause = None    # why it waits to issue, once room and dependency are there
+        self.dep_cause = None     # the dependency it was set aside for
+        self.hs = None            # when its handover to the consumer starts (``last``: ends)
+        self.early = False        # arrived whole and waiting for an earlier transaction
+        self.desc = 0             # fetch descriptor it belongs to (chunks of one plane fetch)
+        self.readers = 1          # head groups each reading their own part of it (a shared query)
         self.is_write = False     # bursts written to memory (else read)
 
     def mark(self, stage, t_end):
