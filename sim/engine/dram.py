@@ -62,7 +62,8 @@ Interface used by the fetch unit (stable): ``submit(txn) -> simpy event``
 fired when the last byte has arrived (a write: when the write queue took it
 in), with the transaction's log marked ``memory_queue``, ``memory_latency``,
 ``memory_transfer`` (non-decreasing) and ``txn.mem_times`` set to the same
-three times before the event fires;
+three times before the event fires, at which moment ``txn.on_timed(txn)`` is
+called when set (the fetch unit streams the data to its consumer from there);
 ``report(total_cycles)`` for the result's ``dram`` section; ``busy_intervals``
 per channel (merged data-bus busy intervals); ``share_records()``.
 
@@ -662,7 +663,6 @@ class ChannelPool:
         txn.mem_times = (t_start, t_first, t_done)
         txn.log += (("memory_queue", t_start), ("memory_latency", t_first),
                     ("memory_transfer", t_done))
-        txn.mem_times = (t_start, t_first, t_done)
         if txn.on_timed is not None:   # the fetch unit streams data from here
             txn.on_timed(txn)
         if ev is None:
