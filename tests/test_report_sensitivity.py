@@ -73,11 +73,23 @@ def test_every_resource_doubled_and_halved_or_said_why(lane_report):
     got = {(r["resource"], r["direction"]) for r in rows}
     for res in S.RESOURCES:
         assert (res.name, "x2") in got and (res.name, "/2") in got
-    # an issue window of 0 cannot be halved; doubled it opens to a stated window
+    # the issue window is halved and doubled like any other resource
     win = {r["direction"]: r for r in rows if r["resource"] == "issue window"}
-    assert doc["arch"]["config"]["fetch"]["issue_window"] == 0
-    assert win["/2"]["status"] == "not run" and "nothing to halve" in win["/2"]["error"]
-    assert win["x2"]["setting"] == f"fetch.issue_window 0 -> {S.ISSUE_WINDOW_FROM_ZERO}"
+    w = doc["arch"]["config"]["fetch"]["issue_window"]
+    assert w > 1
+    assert win["/2"]["setting"] == f"fetch.issue_window {w} -> {w // 2}"
+    assert win["x2"]["setting"] == f"fetch.issue_window {w} -> {w * 2}"
+
+
+def test_issue_window_of_zero_opens_to_a_stated_window():
+    """An issue window of 0 cannot be halved; doubled it opens to a stated window."""
+    arch = sim.load_arch("arch_configs/edge.yaml").with_overrides({"fetch.issue_window": 0})
+    doc = sim.simulate(arch, "traces/demo_decode.yaml", keep_intervals=False).to_dict()
+    run = Run(doc, "x", trace_path="traces/demo_decode.yaml")
+    label_runs([run])
+    var = {v.direction: v for v in S.plan_variants(run) if v.resource == "issue window"}
+    assert var["/2"].config is None and "nothing to halve" in var["/2"].error
+    assert var["x2"].setting == f"fetch.issue_window 0 -> {S.ISSUE_WINDOW_FROM_ZERO}"
 
 
 def test_invalid_variant_is_named_not_run():

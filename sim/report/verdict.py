@@ -23,6 +23,11 @@ LEVER = {
 }
 
 
+def _first_upper(text):
+    """``text`` with its first letter raised (``str.capitalize`` would lower the rest: p.V)."""
+    return text[:1].upper() + text[1:]
+
+
 def limiting_unit(doc):
     """The unit the classification names (the critical unit when the limit is a wait)."""
     v = verdict_of(doc)
@@ -38,7 +43,7 @@ def limit_text(doc):
     if kind in ("compute", "unit"):
         busy = u[res]["busy"]
         lanes = v.get("lanes") if kind == "compute" else None
-        out = (f"{UNIT_TEXT.get(res, res).capitalize()} limits it: {res} is busy {pct(busy)} of the run"
+        out = (f"{_first_upper(UNIT_TEXT.get(res, res))} limits it: {res} is busy {pct(busy)} of the run"
                + (", saturated" if busy >= 0.85 else ""))
         if lanes and v.get("lane_underuse"):
             dims = ", ".join(map(str, lanes["head_dims"]))
