@@ -500,9 +500,11 @@ def _validate_visible(src, at, s):
 
 def _validate_requests(src, steps):
     """A request's prefill steps share one kv_rows (its prompt) and come before
-    its decode steps; a decode step's context is at least the prompt and never
-    shrinks from one token to the next at the same layer."""
+    its decode steps; a decode step's context is at least the prompt, never
+    shrinks from one token to the next at the same layer, and is the same at
+    every layer of one token (the k-th decode step of a request at each layer)."""
     prompt, decoded, last = {}, set(), {}
+    tokens, context = {}, {}
     for i, s in enumerate(steps):
         r = int(s.request)
         if s.stage == "prefill":
@@ -526,6 +528,13 @@ def _validate_requests(src, steps):
                              f"request {r}'s context at layer {s.layer} cannot shrink between tokens: "
                              f"expected >= {before[0]} (steps[{before[1]}])")
         last[(r, s.layer)] = (s.kv_rows, i)
+        k = tokens.get((r, s.layer), 0)
+        tokens[(r, s.layer)] = k + 1
+        first = context.setdefault((r, k), (s.kv_rows, i, s.layer))
+        if first[0] != s.kv_rows:
+            raise TraceError(src, f"steps[{i}].kv_rows", s.kv_rows,
+                             f"request {r}'s decode token {k} reads one context at every layer: expected "
+                             f"{first[0]} as at layer {first[2]} (steps[{first[1]}])")
 
 
 def _validate_cascade(src, steps):
