@@ -109,14 +109,17 @@ def test_bad_engine_option():
 
 def test_lost_dependency_raises_instead_of_hanging(monkeypatch):
     """A datapath that stops making progress raises SimulationStalled naming the waiting units."""
-    real = program.ProgramBuilder.build
+    real = program.ProgramBuilder._fetch
+    made = []
 
-    def broken(self):
-        prog = real(self)
-        prog.fetch[3].waits = list(prog.fetch[3].waits) + [(self.env.event(), "never")]
-        return prog
+    def broken(self, *args, **kwargs):
+        txn = real(self, *args, **kwargs)
+        made.append(txn)
+        if len(made) == 4:   # the fourth fetch waits for an event nothing fires
+            txn.waits = list(txn.waits) + [(self.env.event(), "never")]
+        return txn
 
-    monkeypatch.setattr(program.ProgramBuilder, "build", broken)
+    monkeypatch.setattr(program.ProgramBuilder, "_fetch", broken)
     tr = _trace([make_step(0, "decode", 64, 4, 1, 512)])
     with pytest.raises(SimulationStalled, match="waits for never"):
         sim.simulate(_mid(), tr)

@@ -42,7 +42,7 @@ def _program(monkeypatch, trace, share):
     arch = sim.load_arch(MID)
     if not share:  # a key of its own for every step: nothing shared
         keys = iter(range(10 ** 9))
-        monkeypatch.setattr(program, "_shape_key", lambda step, amap: next(keys))
+        monkeypatch.setattr(program, "_shape_key", lambda step, amap, layer: next(keys))
     env = simpy.Environment()
     max_rows = max(s.kv_rows for s in trace.steps)
     amaps = {64: AddressMap(arch, 2, 4, max_rows, 64)}
@@ -56,7 +56,7 @@ def _program(monkeypatch, trace, share):
 
 def _fetch_view(prog):
     return [(t.kind, t.step, t.head, t.block, t.rows, t.layer,
-             [(h, np.asarray(p).tolist()) for h, p in t.positions]) for t in prog.fetch]
+             [(h, np.asarray(p).tolist()) for h, p in t.positions]) for t in prog.fetch.ops]
 
 
 def _ops_view(ops):
@@ -70,25 +70,25 @@ def test_shared_plans_build_the_same_program(monkeypatch, pruning):
                         **pruning)
     if not pruning:  # every layer of a decode token plans alike: shared
         amap = AddressMap(sim.load_arch(MID), 2, 4, 99, 64)
-        keys = {program._shape_key(s, amap) for s in trace.steps}
+        keys = {program._shape_key(s, amap, s.layer) for s in trace.steps}
         assert len(keys) < len(trace.steps)
     shared = _program(monkeypatch, trace, share=True)
     alone = _program(monkeypatch, trace, share=False)
     assert _fetch_view(shared) == _fetch_view(alone)
     # ops name their transactions by position in the fetch list
-    pos_s = {id(t): i for i, t in enumerate(shared.fetch)}
-    pos_a = {id(t): i for i, t in enumerate(alone.fetch)}
-    for a, b in ((shared.dot_qk, alone.dot_qk), (shared.softmax, alone.softmax)):
+    pos_s = {id(t): i for i, t in enumerate(shared.fetch.ops)}
+    pos_a = {id(t): i for i, t in enumerate(alone.fetch.ops)}
+    for a, b in ((shared.dot_qk.ops, alone.dot_qk.ops), (shared.softmax.ops, alone.softmax.ops)):
         assert len(a) == len(b)
     view_s = [(k, st, h, bl, m, [pos_s[i] for i in ins], [pos_s[i] for i in rel])
-              for k, st, h, bl, m, ins, rel in _ops_view(shared.dot_qk)]
+              for k, st, h, bl, m, ins, rel in _ops_view(shared.dot_qk.ops)]
     view_a = [(k, st, h, bl, m, [pos_a[i] for i in ins], [pos_a[i] for i in rel])
-              for k, st, h, bl, m, ins, rel in _ops_view(alone.dot_qk)]
+              for k, st, h, bl, m, ins, rel in _ops_view(alone.dot_qk.ops)]
     assert view_s == view_a
-    assert [(o.rows, o.cols, o.second) for o in shared.softmax] == [(o.rows, o.cols, o.second)
-                                                                     for o in alone.softmax]
-    assert [(o.kind, o.n, o.keep, o.comparisons) for o in shared.topk] == [
-        (o.kind, o.n, o.keep, o.comparisons) for o in alone.topk]
+    assert [(o.rows, o.cols, o.second) for o in shared.softmax.ops] == [(o.rows, o.cols, o.second)
+                                                                     for o in alone.softmax.ops]
+    assert [(o.kind, o.n, o.keep, o.comparisons) for o in shared.topk.ops] == [
+        (o.kind, o.n, o.keep, o.comparisons) for o in alone.topk.ops]
     assert shared.counts == alone.counts
     assert shared.compulsory_bytes == alone.compulsory_bytes
     assert shared.macs_by_dim == alone.macs_by_dim

@@ -19,10 +19,11 @@ from . import topk as tkmod
 from .addrmap import AddressMap
 from .buffers import Buffer
 from .dram import ChannelPool
-from .fetch import fetch_process
+from .fetch import FetchUnit, fetch_process
 from .program import ProgramBuilder
 from .stats import RunStats, UnitState
 from .tiling import check_fits
+from .writeback import writeback_process
 
 PLANE_KEYS = ("bytes_Q", "bytes_K", "bytes_KL", "bytes_V")
 
@@ -59,8 +60,9 @@ def _address_maps(arch, trace):
     dims = sorted({s.head_dim for s in trace.steps})
     for d in dims:
         check_fits(arch, d, arch.source)
-    layers = max(s.layer for s in trace.steps) + 1
-    heads = max(int(s.heads.max()) for s in trace.steps) + 1
+    # each request has its own regions: layer l of request r is region r * layers + l
+    layers = (max(s.layer for s in trace.steps) + 1) * (max(s.request for s in trace.steps) + 1)
+    heads = max(max(int(s.heads.max()), int(s.kv_heads.max())) for s in trace.steps) + 1
     max_rows = max(s.kv_rows for s in trace.steps)
     return {d: AddressMap(arch, layers, heads, max_rows, d) for d in dims}
 
@@ -71,24 +73,26 @@ def _run(arch, trace, grain_rows, seed, keep_intervals):
     env = simpy.Environment()
     buffers = {name: Buffer(env, name, kib * 1024) for name, kib in (
         ("query", arch.buffers.query_kib), ("key", arch.buffers.key_kib), ("value", arch.buffers.value_kib))}
-    prog = ProgramBuilder(env, arch, trace, amaps, buffers, grain_rows, np.random.default_rng(seed)).build()
+    # steps are made as the units reach them (the program's feeds)
+    prog = ProgramBuilder(env, arch, trace, amaps, buffers, grain_rows, np.random.default_rng(seed)).prog
     pool = ChannelPool(env, arch)
     # the fetch unit's intervals are always kept: the pool's stalls are read from them
     names = ("fetch", "dot", "softmax", "topk") + (() if arch.dot.arrays == "shared" else ("dot_pv",))
     states = {n: UnitState(env, n, keep_intervals or n == "fetch") for n in names}
     fetch_stats = dict.fromkeys(("bytes", "transactions", "requests") + PLANE_KEYS, 0)
-    procs = _start_units(env, arch, prog, pool, _amap_router(amaps, trace), states, fetch_stats)
-    step_times = [None] * len(prog.step_done)
-    for i, ev in enumerate(prog.step_done):
-        ev.callbacks.append(lambda _e, i=i: step_times.__setitem__(i, env.now))
+    router = _amap_router(amaps, trace)
+    fetch = FetchUnit(env, prog.fetch, pool, router, arch, states["fetch"], fetch_stats)
+    procs = _start_units(env, arch, prog, fetch, states)
+    writer = env.process(writeback_process(env, prog.writes, pool, router, arch.dram.burst_bytes))
     env.run()
-    if any(t is None for t in step_times) or any(p.is_alive for p in procs.values()):
-        raise _stalled(env, arch, trace, prog, states, procs, step_times)
+    step_times = prog.step_times
+    if any(t is None for t in step_times) or any(p.is_alive for p in procs.values()) or writer.is_alive:
+        raise _stalled(env, arch, trace, fetch, states, procs, step_times)
     return RunStats(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, max(step_times),
                     {"grain_rows": grain_rows, "seed": seed})
 
 
-def _start_units(env, arch, prog, pool, router, states, fetch_stats):
+def _start_units(env, arch, prog, fetch, states):
     """One simpy process per unit; returns them by name."""
     shared = arch.dot.arrays == "shared"
     sm_queue = smmod.ScoreQueue(env, capacity=2)
@@ -99,7 +103,7 @@ def _start_units(env, arch, prog, pool, router, states, fetch_stats):
                                   states[name], sm_queue, states["fetch"])
 
     procs = {
-        "fetch": fetch_process(env, prog.fetch, pool, router, arch, states["fetch"], fetch_stats),
+        "fetch": fetch_process(fetch),
         "dot": array(prog.dot_qk, "dot"),
         "softmax": smmod.softmax_process(env, prog.softmax, arch.softmax.lanes,
                                          arch.softmax.latency_cycles, states["softmax"], sm_queue),
@@ -111,13 +115,12 @@ def _start_units(env, arch, prog, pool, router, states, fetch_stats):
     return {name: env.process(p) for name, p in procs.items()}
 
 
-def _stalled(env, arch, trace, prog, states, procs, step_times):
+def _stalled(env, arch, trace, fetch, states, procs, step_times):
     """The error for a run whose event queue emptied before the last step: which units
     wait, on what, and what the oldest unissued fetch waits for."""
     stuck = [f"{n}: {st.state}" + (f" ({st.cause})" if st.cause else "")
              for n, st in states.items() if procs[n].is_alive]
-    held = next(((t, c) for t in prog.fetch if t.mem_times is None
-                 for ev, c in t.waits if not ev.processed), None)
+    held = next(((t, c) for t in fetch.unissued() for ev, c in t.waits if not ev.processed), None)
     why = (f"; the oldest unissued fetch ({held[0].kind} of step {held[0].step}) waits for {held[1]}"
            if held else "")
     done = sum(t is not None for t in step_times)

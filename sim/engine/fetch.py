@@ -104,6 +104,10 @@ class FetchUnit:
         self.poke()
 
     # ----------------------------------------------------------- the program
+    def unissued(self):
+        """Transactions taken and not yet issued, oldest first (for a stall report)."""
+        return sorted(self.aside + self.ready, key=_ORDER)
+
     def take(self):
         """The next transaction of the program, with its addresses and size; None at the end."""
         txn = next(self.program, None)
@@ -279,9 +283,9 @@ class FetchUnit:
         return "starved", None
 
 
-def fetch_process(env, txns, pool, router, arch, state, stats):
-    """Issue ``txns`` (in program order) to ``pool``; ``router.bursts_for(txn)`` gives addresses."""
-    u = FetchUnit(env, txns, pool, router, arch, state, stats)
+def fetch_process(u):
+    """The fetch unit ``u`` issuing its program (in order) to its pool."""
+    env, state = u.env, u.state
     strict = u.window == 0
     cur = req = None     # taken from the program, waiting for buffer room
     nxt = u.take()

@@ -28,24 +28,62 @@ import numpy as np
 from . import dot as dotmod
 from . import softmax as smmod
 from . import topk as tkmod
-from .tiling import plan_step, pv_macs, selects_next
+from .tiling import plan_step, selects_next
 from .txn import Txn
 
 
-class Program:
-    """Per-unit operation lists for one trace on one architecture, and its work counts."""
+class Feed:
+    """One unit's operations in program order, made a step at a time as the unit
+    reaches them: only the steps in flight are held, so a run's memory follows
+    the work in flight, not the length of the trace."""
 
-    def __init__(self, shared_array):
-        self.fetch = []
-        self.dot_qk = []
-        self.dot_pv = self.dot_qk if shared_array else []
-        self.softmax = []
-        self.topk = []
-        self.step_done = []
+    def __init__(self, more):
+        self.ops = deque()
+        self.more = more          # makes the next step; False once every step is made
+
+    def append(self, op):
+        self.ops.append(op)
+
+    def __iter__(self):
+        return self
+
+    def __next__(self):
+        ops = self.ops
+        while not ops:
+            if not self.more():
+                raise StopIteration
+        return ops.popleft()
+
+
+class Program:
+    """Per-unit operation feeds for one trace on one architecture, and its work counts
+    (complete once every feed has been read to its end)."""
+
+    def __init__(self, shared_array, n_steps, more):
+        self.fetch = Feed(more)
+        self.dot_qk = Feed(more)
+        self.dot_pv = self.dot_qk if shared_array else Feed(more)
+        self.softmax = Feed(more)
+        self.topk = Feed(more)
+        self.writes = Feed(more)       # (step's end event, its write transactions)
+        self.step_times = [None] * n_steps
         self.counts = {"macs_qk": 0, "macs_lsb": 0, "macs_pv": 0, "softmax_elements": 0,
                        "topk_comparisons": 0.0, "topk_selections": 0, "value_selections": 0}
         self.macs_by_dim = {}
         self.compulsory_bytes = 0
+
+
+SHAPE_CACHE = 64   # step plans kept for reuse (the layers of a decode token share one)
+
+
+def _next_of_request(steps):
+    """Per step, the index of the next step of the same request (None for its last)."""
+    out, seen = [None] * len(steps), {}
+    for i in range(len(steps) - 1, -1, -1):
+        r = steps[i].request
+        out[i] = seen.get(r)
+        seen[r] = i
+    return out
 
 
 def _array_key(a):
@@ -53,13 +91,15 @@ def _array_key(a):
     return a.dtype.str, a.shape, a.tobytes()
 
 
-def _shape_key(step, amap):
-    """What a step's plan depends on: its shape and kept rows, and its layer only
-    when where the layer sits in DRAM can change what its rows cost."""
-    return (None if amap.costs_anywhere else step.layer, step.stage, step.head_dim, step.q_rows,
+def _shape_key(step, amap, layer):
+    """What a step's plan depends on: its shape and kept rows, and its DRAM region
+    only when where the region sits can change what its rows cost."""
+    return (None if amap.costs_anywhere else layer, step.stage, step.head_dim, step.q_rows,
             step.kv_rows, _array_key(step.heads), _array_key(step.kept_k), _array_key(step.kept_v),
             _array_key(step.lsb_rows),
-            None if step.kept_v_idx is None else tuple(_array_key(a) for a in step.kept_v_idx))
+            None if step.kept_v_idx is None else tuple(_array_key(a) for a in step.kept_v_idx),
+            _array_key(step.kv_heads), step.causal, step.window,
+            None if step.kv_kept_k is None else tuple(_array_key(a) for a in step.kv_kept_k))
 
 
 def _rows(segments):
@@ -70,23 +110,20 @@ class _BlockShape:
     """One query block of a planned step, with the work counts of its operations."""
 
     __slots__ = ("gi", "gp", "bp", "head", "score_rows", "q_segments", "q_rows", "qk_macs",
-                 "lsb_src", "lsb_macs", "pv_chunks", "pv_macs", "pruned", "value_comps")
+                 "lsb_src", "lsb_macs", "pv_macs", "pruned", "value_comps")
 
-    def __init__(self, gi, gp, bp, d, n_kv):
+    def __init__(self, gi, gp, bp):
         self.gi, self.gp, self.bp = gi, gp, bp
         self.head = gp.heads[0]
         self.score_rows = bp.rows * len(gp.heads)
         self.q_segments = [(h, bp.q_positions) for h in gp.heads]
         self.q_rows = _rows(self.q_segments)
-        kplan = gp.k_chunks if gp.k_resident else bp.k_chunks
-        self.qk_macs = [bp.rows * c.rows * d for c in kplan]
+        self.qk_macs = bp.qk_macs
         self.lsb_src = gp.kl_chunks if gp.kl_resident else bp.lsb_chunks
-        self.lsb_macs = [sum(bp.lsb.get(h, 0) * len(p) for h, p in c.segments) * d for c in self.lsb_src]
-        self.pv_chunks = gp.v_chunks if gp.v_resident else bp.v_chunks
-        self.pv_macs = pv_macs(gp, self.pv_chunks, bp.rows, d)
-        self.pruned = gp.value_pruned_heads
-        self.value_comps = (bp.rows * sum(tkmod.select_cost(n_kv, gp.n_v(h)) for h in self.pruned)
-                            if self.pruned else 0.0)
+        self.lsb_macs = bp.lsb_macs
+        self.pv_macs = bp.pv_macs
+        self.pruned = bp.pruned
+        self.value_comps = bp.value_comps
 
 
 class _StepShape:
@@ -96,32 +133,30 @@ class _StepShape:
     does), so each step only makes its own transactions and operations.
     """
 
-    def __init__(self, arch, amap, step, grain_rows, q_room):
-        d, layer, n_kv = step.head_dim, step.layer, step.n_kept_k
-        self.plan = plan = plan_step(arch, amap, step, grain_rows)
+    def __init__(self, arch, amap, step, layer, grain_rows, q_room):
+        self.plan = plan = plan_step(arch, amap, step, grain_rows, layer)
         compulsory = 0
         for gp in plan:  # every row once: what an infinite buffer would fetch
-            compulsory += gp.k_bytes + gp.v_bytes + amap.burst * sum(
+            compulsory += gp.k_bytes + gp.v_bytes + gp.lsb_bytes + amap.burst * sum(
                 amap.burst_count(layer, "Q", h, bp.q_positions) for bp in gp.blocks for h in gp.heads)
-            compulsory += sum(gp.lsb_bytes[h] for h in {h for bp in gp.blocks for h in bp.lsb})
         self.compulsory_bytes = compulsory
-        self.shared_q = self._shared_query(amap, step, q_room)
-        self.blocks = [_BlockShape(gi, gp, bp, d, n_kv) for gi, gp in enumerate(plan) for bp in gp.blocks]
+        self.shared_q = self._shared_query(amap, step, layer, q_room)
+        self.blocks = [_BlockShape(gi, gp, bp) for gi, gp in enumerate(plan) for bp in gp.blocks]
         self.macs = {"qk": sum(sum(b.qk_macs) for b in self.blocks),
                      "lsb": sum(sum(b.lsb_macs) for b in self.blocks),
                      "pv": sum(sum(b.pv_macs) for b in self.blocks)}
         self.mac_total = sum(self.macs.values())
-        self.softmax_elements = sum(b.score_rows * n_kv + b.bp.lsb_rows * n_kv for b in self.blocks)
+        self.softmax_elements = sum(b.bp.elements + b.bp.lsb_elements for b in self.blocks)
         self.value_selections = sum(b.bp.rows * len(b.pruned) for b in self.blocks)
 
-    def _shared_query(self, amap, step, q_room):
+    def _shared_query(self, amap, step, layer, q_room):
         """One query block per group: the step's whole query vector is one transaction
         (when it fits half the query buffer); else None."""
         if not all(len(gp.blocks) == 1 for gp in self.plan):
             return None
         q_rows = self.plan[0].blocks[0].q_positions
         heads = step.heads.tolist()
-        if amap.burst * sum(amap.burst_count(step.layer, "Q", h, q_rows) for h in heads) > q_room:
+        if amap.burst * sum(amap.burst_count(layer, "Q", h, q_rows) for h in heads) > q_room:
             return None
         segs = [(h, q_rows) for h in heads]
         return segs, _rows(segs)
@@ -130,8 +165,8 @@ class _StepShape:
 class _StepBuild:
     """What the builder keeps while it emits one step."""
 
-    def __init__(self, s, step, shape, dep_q, dep_kv):
-        self.s, self.step, self.shape = s, step, shape
+    def __init__(self, s, step, layer, shape, dep_q, dep_kv):
+        self.s, self.step, self.layer, self.shape = s, step, layer, shape
         self.dep_q, self.dep_kv = dep_q, dep_kv
         self.shared_q = None
         self.resident = {"K": {}, "V": {}, "KL": {}}   # group index -> its chunk transactions
@@ -153,32 +188,53 @@ class ProgramBuilder:
         self.env, self.arch, self.trace = env, arch, trace
         self.amaps, self.buffers = amaps, buffers
         self.grain_rows, self.rng = grain_rows, rng
-        self.prog = Program(arch.dot.arrays == "shared")
+        self.prog = Program(arch.dot.arrays == "shared", len(trace.steps), self._more)
         self.shapes = {}
         self.desc = 0   # fetch descriptor: one plane of one head group for one query block
+        self.layers = max(s.layer for s in trace.steps) + 1
+        self.next_of = _next_of_request(trace.steps)
+        self.prev = {}  # request -> (its last step's end event, whether a selection ended it)
+        self.made = 0   # steps made so far
 
     def build(self):
-        prev_done, prev_selected = None, False
-        steps = self.trace.steps
-        for s, step in enumerate(steps):
-            dep_q = [(prev_done, "layer_dependency")] if prev_done is not None else []
-            dep_kv = []
-            if prev_done is not None and (step.stage == "prefill" or prev_selected):
-                dep_kv = [(prev_done, "topk" if prev_selected else "layer_dependency")]
-            st = _StepBuild(s, step, self._shape(step), dep_q, dep_kv)
-            self._emit_step(st)
-            nxt = steps[s + 1] if s + 1 < len(steps) else None
-            prev_done, prev_selected = self._select_next(st, nxt)
-            self.prog.step_done.append(prev_done)
+        """Make every step now (the engine makes them as units reach them instead)."""
+        while self._more():
+            pass
         return self.prog
 
-    def _shape(self, step):
+    def _more(self):
+        """Make the next step of the trace; False when none is left."""
+        s = self.made
+        steps = self.trace.steps
+        if s >= len(steps):
+            return False
+        self.made += 1
+        step = steps[s]
+        prev_done, prev_selected = self.prev.get(step.request, (None, False))
+        dep_q = [(prev_done, "layer_dependency")] if prev_done is not None else []
+        dep_kv = []
+        if prev_done is not None and (step.stage == "prefill" or prev_selected):
+            dep_kv = [(prev_done, "topk" if prev_selected else "layer_dependency")]
+        layer = step.request * self.layers + step.layer   # each request its own KV-cache region
+        st = _StepBuild(s, step, layer, self._shape(step, layer), dep_q, dep_kv)
+        self._emit_step(st)
+        nxt = self.next_of[s]
+        done, selected = self._select_next(st, None if nxt is None else steps[nxt])
+        self.prev[step.request] = (done, selected)
+        times, env = self.prog.step_times, self.env
+        done.callbacks.append(lambda _e, i=s: times.__setitem__(i, env.now))
+        self._writes(st, done)
+        return True
+
+    def _shape(self, step, layer):
         amap = self.amaps[step.head_dim]
-        key = _shape_key(step, amap)
+        key = _shape_key(step, amap, layer)
         shape = self.shapes.get(key)
         if shape is None:
+            if len(self.shapes) >= SHAPE_CACHE:   # a long decode plans a new shape per token
+                self.shapes.pop(next(iter(self.shapes)))
             q_room = self.buffers["query"].capacity / 2
-            shape = self.shapes[key] = _StepShape(self.arch, amap, step, self.grain_rows, q_room)
+            shape = self.shapes[key] = _StepShape(self.arch, amap, step, layer, self.grain_rows, q_room)
         return shape
 
     # ------------------------------------------------------------------ a step
@@ -216,7 +272,7 @@ class ProgramBuilder:
     def _fetch(self, st, kind, segments, rows, waits, head, block, skip=0):
         t = Txn(kind, st.s, head, block, rows, 0, 0.0, "fetch")
         t.desc = self.desc
-        t.layer = st.step.layer
+        t.layer = st.layer
         t.positions = segments
         t.buffer = self.buffers[{"Q": "query", "V": "value"}.get(kind, "key")]
         t.waits = waits
@@ -227,15 +283,11 @@ class ProgramBuilder:
         self.prog.fetch.append(t)
         return t
 
-    def _chunks(self, st, kind, chunks, waits, b, cache=None):
-        """One descriptor's chunk transactions; with ``cache`` (resident rows) made once
-        per group and shared by its blocks, in which case missing entries are filled."""
+    def _chunks(self, st, kind, chunks, waits, b):
+        """One descriptor's chunk transactions."""
         self.desc += 1
-        out = cache if cache is not None else [None] * len(chunks)
-        for i, c in enumerate(chunks):
-            if out[i] is None:
-                out[i] = self._fetch(st, kind, c.segments, c.rows, waits, b.head, b.bp.block, c.skip)
-        return out
+        return [self._fetch(st, kind, c.segments, c.rows, waits, b.head, b.bp.block, c.skip)
+                for c in chunks]
 
     def _resident(self, st, plane, b, n):
         """The cache list of a group's resident chunks of ``plane`` (created empty on first use)."""
@@ -243,6 +295,18 @@ class ProgramBuilder:
         if b.gi not in res:
             res[b.gi] = [None] * n
         return res[b.gi]
+
+    def _resident_chunks(self, st, kind, chunks, idx, waits, b):
+        """The resident chunks ``idx`` a block reads, made on first use: each once per group,
+        in the order blocks first read them."""
+        cache = self._resident(st, kind, b, len(chunks))
+        if any(cache[i] is None for i in idx):
+            self.desc += 1
+            for i in idx:
+                if cache[i] is None:
+                    c = chunks[i]
+                    cache[i] = self._fetch(st, kind, c.segments, c.rows, waits, b.head, b.bp.block, c.skip)
+        return [cache[i] for i in idx]
 
     def _query(self, st, b):
         shape = st.shape
@@ -259,23 +323,21 @@ class ProgramBuilder:
     def _keys(self, st, b):
         gp = b.gp
         if gp.k_resident:
-            cache = self._resident(st, "K", b, len(gp.k_chunks))
-            if all(t is not None for t in cache):
-                return cache
-            return self._chunks(st, "K", gp.k_chunks, st.dep_kv, b, cache)
+            return self._resident_chunks(st, "K", gp.k_chunks, b.bp.k_idx, st.dep_kv, b)
         return self._chunks(st, "K", b.bp.k_chunks, st.dep_kv, b)
 
     # ------------------------------------------------------------ compute
     def _qk(self, st, b, q, kch):
         """q.K of a block over its key chunks; returns the softmax op it feeds."""
         s, d, bp = st.s, st.step.head_dim, b.bp
-        for ch, macs in zip(kch, b.qk_macs):
+        # a block whose rows see no key (a window of pruned keys) still passes its rows on
+        for ch, macs in list(zip(kch, b.qk_macs)) or [(None, 0)]:
             op = dotmod.DotOp("qk", s, b.head, bp.block, macs, d)
             op.part = b.gi if q.readers > 1 else None
-            st.reads(op, q, ch)
+            st.reads(op, q, *(() if ch is None else (ch,)))
             self.prog.dot_qk.append(op)
         op.out = Txn("S", s, b.head, bp.block, b.score_rows, 0, 0.0, "dot")
-        sm = smmod.SoftmaxOp(s, b.head, bp.block, b.score_rows, st.step.n_kept_k)
+        sm = smmod.SoftmaxOp(s, b.head, bp.block, b.score_rows, _cols(bp.elements, b.score_rows))
         sm.done = self.env.event()
         self.prog.softmax.append(sm)
         return sm
@@ -303,7 +365,8 @@ class ProgramBuilder:
                 st.reads(op, kch[min(i, len(kch) - 1)])
             self.prog.dot_qk.append(op)
         op.out = Txn("S", s, b.head, bp.block, bp.lsb_rows, 0, 0.0, "dot")
-        sm = smmod.SoftmaxOp(s, b.head, bp.block, bp.lsb_rows, st.step.n_kept_k, second=True)
+        sm = smmod.SoftmaxOp(s, b.head, bp.block, bp.lsb_rows, _cols(bp.lsb_elements, bp.lsb_rows),
+                             second=True)
         sm.done = self.env.event()
         self.prog.softmax.append(sm)
         return sm
@@ -324,16 +387,15 @@ class ProgramBuilder:
         s, d, gp, bp = st.s, st.step.head_dim, b.gp, b.bp
         waits = st.dep_kv + ([(vsel.done, "topk")] if vsel is not None else [])
         if gp.v_resident:
-            cache = self._resident(st, "V", b, len(b.pv_chunks))
-            chunks = cache if all(t is not None for t in cache) else self._chunks(
-                st, "V", b.pv_chunks, waits, b, cache)
+            chunks = self._resident_chunks(st, "V", gp.v_chunks, bp.v_idx, waits, b)
         else:
-            chunks = self._chunks(st, "V", b.pv_chunks, waits, b)
-        for i, (ch, macs) in enumerate(zip(chunks, b.pv_macs)):
+            chunks = self._chunks(st, "V", bp.v_chunks, waits, b)
+        for i, (ch, macs) in enumerate(list(zip(chunks, b.pv_macs)) or [(None, 0)]):
             op = dotmod.DotOp("pv", s, b.head, bp.block, macs, d)
             if i == 0:
                 op.waits = [(final_sm.done, "softmax")]
-            st.reads(op, ch)
+            if ch is not None:
+                st.reads(op, ch)
             self.prog.dot_pv.append(op)
         op.done = self.env.event()
         st.last_pv_done = op.done
@@ -359,3 +421,35 @@ class ProgramBuilder:
             self.prog.counts["topk_selections"] += 1
             done, ran = op.done, True
         return done, ran
+
+    # ------------------------------------------------------------- writes
+    def _writes(self, st, done):
+        """The step's writes, posted once it ends: the K/V rows it appends to the cache
+        (every plane, per K/V head it read) and its output rows (per query head, over the
+        query rows' place in the layer's region)."""
+        step = st.step
+        txns = []
+        if step.new_kv_rows:
+            rows = np.arange(step.kv_rows - step.new_kv_rows, step.kv_rows, dtype=np.int64)
+            kvs = np.unique(step.kv_heads).tolist()
+            planes = ("K", "KL", "V") if self.arch.precision.k_lsb_bits > 0 else ("K", "V")
+            txns += [self._write(st, pl, [(g, rows) for g in kvs]) for pl in planes]
+        if step.out_rows:
+            rows = step.query_positions()[-step.out_rows:]
+            txns.append(self._write(st, "Q", [(h, rows) for h in step.heads.tolist()]))
+        if txns:
+            self.prog.writes.append((done, txns))
+
+    def _write(self, st, plane, segments):
+        t = Txn(plane, st.s, -1, 0, sum(len(p) for _h, p in segments), 0, 0.0, "dot")
+        t.layer = st.layer
+        t.positions = segments
+        t.is_write = True
+        return t
+
+
+def _cols(elements, rows):
+    """Score columns per row: whole when every row sees as many keys (as in version 1)."""
+    if not rows:
+        return 0
+    return elements // rows if elements % rows == 0 else elements / rows

@@ -47,6 +47,7 @@ import numpy as np
 
 from ..errors import ConfigError
 from .addrmap import row_bytes
+from .topk import select_cost
 
 
 class Chunk:
@@ -67,20 +68,37 @@ class Chunk:
 
 
 class BlockPlan:
-    """One query block of one head group."""
+    """One query block of one head group, with the work of each of its operations.
 
-    __slots__ = ("block", "q_positions", "rows", "k_chunks", "lsb", "lsb_chunks",
-                 "lsb_msb_chunks", "v_chunks")
+    ``k_chunks`` / ``v_chunks`` are the chunks the block reads: its own when the
+    plane streams, or ``k_idx`` / ``v_idx`` index the group's resident chunks.
+    ``qk_macs``, ``lsb_macs`` and ``pv_macs`` run parallel to the chunks the
+    block reads for that operation; ``elements`` and ``lsb_elements`` are the
+    score entries of the first pass and the recompute (softmax work).
+    """
+
+    __slots__ = ("block", "q_positions", "rows", "k_chunks", "k_idx", "lsb", "lsb_chunks",
+                 "lsb_msb_chunks", "v_chunks", "v_idx", "qk_macs", "lsb_macs", "pv_macs",
+                 "elements", "lsb_elements", "pruned", "value_comps")
 
     def __init__(self, block, q_positions):
         self.block = block
         self.q_positions = q_positions   # same query positions for every head of the group
         self.rows = len(q_positions)
         self.k_chunks = []        # fetched for this block (empty when K is resident)
+        self.k_idx = None         # indices of the resident K chunks it reads
         self.lsb = {}             # head -> query rows recomputed with the LSB plane
         self.lsb_chunks = []      # LSB plane chunks for the recompute
         self.lsb_msb_chunks = []  # MSB chunks fetched again when K was not resident
         self.v_chunks = []        # fetched for this block (empty when V is resident)
+        self.v_idx = None
+        self.qk_macs = []
+        self.lsb_macs = []
+        self.pv_macs = []
+        self.elements = 0
+        self.lsb_elements = 0
+        self.pruned = []          # heads whose V rows a top-k selects (decode value pruning)
+        self.value_comps = 0.0    # the selector's comparisons for them
 
     @property
     def lsb_rows(self):
@@ -88,20 +106,25 @@ class BlockPlan:
 
 
 class GroupPlan:
-    """All query blocks of a group of heads, with its resident chunks."""
+    """All query blocks of a head group -- the query heads that read one K/V head --
+    with its resident chunks. K, KL and V rows are the K/V head's, fetched once
+    for the group; q.K and p.V work is per query head."""
 
-    __slots__ = ("heads", "n_kv", "v_positions", "v_work", "select", "k_resident", "v_resident", "k_chunks",
-                 "v_chunks", "blocks", "k_bytes", "v_bytes", "lsb_bytes", "kl_resident", "kl_chunks",
-                 "kl_msb_chunks")
+    __slots__ = ("heads", "kv", "n_kv", "v_positions", "v_work", "select", "k_resident", "v_resident",
+                 "k_chunks", "v_chunks", "blocks", "k_bytes", "v_bytes", "lsb_bytes", "kl_resident",
+                 "kl_chunks", "kl_msb_chunks")
 
-    def __init__(self, heads):
-        self.heads = heads        # head ids
+    def __init__(self, heads, kv):
+        self.heads = heads        # query head ids
+        self.kv = kv              # the K/V head they read
         self.blocks = []
         self.k_chunks = []        # resident K chunks (fetched once for the group)
         self.v_chunks = []
-        self.v_positions = {}     # head -> V positions fetched
+        self.v_positions = None   # V positions fetched (the union over the group's heads)
         self.v_work = {}          # head -> V rows each query row multiplies (p.V work)
         self.select = False       # decode value pruning: a top-k picks the V rows
+        self.k_bytes = self.v_bytes = self.lsb_bytes = 0   # every row once (compulsory)
+        self.k_resident = self.v_resident = False
         self.kl_resident = False  # LSB plane fetched once and shared by the group's blocks
         self.kl_chunks = []       # resident LSB chunks
         self.kl_msb_chunks = []   # the MSB chunks they pair with (fetched per block unless K is resident)
@@ -135,9 +158,10 @@ def check_fits(arch, head_dim, source):
                           f"needs room for two query rows at head_dim {head_dim} ({need_q / 1024:g} KiB)")
 
 
-def query_block_rows(arch, head_dim, q_rows):
+def query_block_rows(arch, head_dim, q_rows, group=1):
+    """Query rows per block: a block of every query head of a group fits half the query buffer."""
     cap = arch.buffers.query_kib * 1024
-    per_block = int(cap / 2 // row_bytes(arch, "Q", head_dim))
+    per_block = int(cap / 2 // (row_bytes(arch, "Q", head_dim) * group))
     return max(1, min(q_rows, per_block))
 
 
@@ -166,16 +190,6 @@ def value_positions(step, j):
         return k
     pick = np.unique(np.round(np.linspace(0, len(k) - 1, kv)).astype(np.int64))
     return k[pick]
-
-
-def group_size(step):
-    """Query heads processed as one group: those that read the same K and V.
-
-    Each head has its own K and V (multi-head attention), so a group is one
-    head: the array runs q.K of one head while the softmax and the selector
-    work on the head before it. The buffers and the engine grain play no part.
-    """
-    return 1
 
 
 def split(amap, layer, planes, segments, max_rows, max_bytes):
@@ -244,82 +258,99 @@ def _bytes(amap, layer, plane, head, positions):
     return amap.burst_count(layer, plane, head, positions) * amap.burst
 
 
-def plan_step(arch, amap, step, grain_rows):
-    """Cut one step into head-group plans (see the module docstring)."""
+def plan_step(arch, amap, step, grain_rows, layer=None):
+    """Cut one step into head-group plans (see the module docstring).
+
+    ``layer``: the DRAM region the step's rows live in (default its layer; the
+    engine gives each request its own).
+    """
+    from .band import plan_banded
+
+    layer = step.layer if layer is None else layer
     d = step.head_dim
-    qb = query_block_rows(arch, d, step.q_rows)
-    nqb = math.ceil(step.q_rows / qb)
-    if step.stage == "prefill":
-        q_pos = step.kept_k
-    else:  # decode: the new token's query row(s) sit at the end of the context
-        q_pos = np.arange(step.kv_rows - step.q_rows, step.kv_rows, dtype=np.int64)
+    groups_of = step.kv_groups()
+    qb = query_block_rows(arch, d, step.q_rows, max(len(i) for i in groups_of.values()))
+    q_pos = step.query_positions()
+    blocks = [q_pos[b:b + qb] for b in range(0, step.q_rows, qb)]
     kc = chunk_rows(arch, "K", d, grain_rows)
     vc = chunk_rows(arch, "V", d, grain_rows)
-    lsb_plane = arch.precision.k_lsb_bits > 0
     # LSB recompute chunks pair one KL chunk with one MSB chunk: same rows, both must fit
-    klc = min(kc, chunk_rows(arch, "KL", d, grain_rows)) if lsb_plane else kc
+    klc = min(kc, chunk_rows(arch, "KL", d, grain_rows)) if arch.precision.k_lsb_bits > 0 else kc
+    cuts = (kc, vc, klc)
     heads = step.heads.tolist()
-    select = step.stage == "decode"
-    v_all = [value_positions(step, j) if select else step.kept_k for j in range(len(heads))]
-    g = group_size(step)
-    block_rows = [len(q_pos[b * qb:(b + 1) * qb]) for b in range(nqb)]
+    keys_of = step.kv_keys()
     groups = []
-    for start in range(0, len(heads), g):
-        idx = range(start, min(start + g, len(heads)))
-        flagged = {heads[j]: int(step.lsb_rows[j]) for j in idx if lsb_plane and step.lsb_rows[j]}
-        share = {h: spread(f, block_rows) for h, f in flagged.items()}
-        gp = _group_plan(arch, amap, step, [heads[j] for j in idx], [v_all[j] for j in idx],
-                         [int(step.kept_v[j]) for j in idx], share, nqb, (kc, vc, klc))
-        for b in range(nqb):
-            bp = BlockPlan(b, q_pos[b * qb:(b + 1) * qb])
-            if not gp.k_resident:
-                bp.k_chunks = gp.k_chunks
-            if not gp.v_resident:
-                bp.v_chunks = gp.v_chunks
-            bp.lsb = {h: rows[b] for h, rows in share.items() if rows[b]}
-            if bp.lsb:
-                _plan_lsb(arch, amap, step.layer, gp, bp, step.kept_k, klc)
-            gp.blocks.append(bp)
-        if not gp.k_resident:
-            gp.k_chunks = []
-        if not gp.v_resident:
-            gp.v_chunks = []
+    for kv, idx in groups_of.items():
+        idx = idx.tolist()
+        gp = GroupPlan([heads[j] for j in idx], kv)
+        gp.select = step.stage == "decode"
+        if step.plain:
+            _plan_group(arch, amap, step, layer, gp, idx, blocks, cuts)
+        else:
+            plan_banded(arch, amap, step, layer, gp, idx, keys_of[kv], blocks, cuts)
         groups.append(gp)
     return groups
 
 
-def _group_plan(arch, amap, step, heads, v_positions, v_work, share, nqb, cuts):
-    """A head group's residency decisions and its K / V chunks (the same for every block).
-
-    ``share``: head -> flagged LSB rows per query block.
-    """
+def _plan_group(arch, amap, step, layer, gp, idx, blocks, cuts):
+    """A group of a step every query row of which sees every kept key: residency,
+    chunks, LSB rows spread over the blocks, and the work of each operation."""
     kc, vc, klc = cuts
-    layer, kept = step.layer, step.kept_k
+    kept, kv, d = step.kept_k, gp.kv, step.head_dim
     half_k, half_v = _half(arch, "K"), _half(arch, "V")
-    gp = GroupPlan(heads)
-    gp.n_kv = step.n_kept_k
-    gp.select = step.stage == "decode"
-    for h, vp, w in zip(heads, v_positions, v_work):
-        gp.v_positions[h] = vp
-        gp.v_work[h] = w
-    gp.k_bytes = sum(_bytes(amap, layer, "K", h, kept) for h in heads)
-    gp.v_bytes = sum(_bytes(amap, layer, "V", h, gp.v_positions[h]) for h in heads)
-    gp.lsb_bytes = {h: _bytes(amap, layer, "KL", h, kept) for h in heads} if share else {}
+    nqb = len(blocks)
+    gp.n_kv = len(kept)
+    select = gp.select
+    vpos = [value_positions(step, j) if select else kept for j in idx]
+    gp.v_positions = vpos[0] if len(vpos) == 1 else np.unique(np.concatenate(vpos))
+    for h, j in zip(gp.heads, idx):
+        gp.v_work[h] = int(step.kept_v[j])
+    flagged = {h: int(step.lsb_rows[j]) for h, j in zip(gp.heads, idx)
+               if arch.precision.k_lsb_bits > 0 and step.lsb_rows[j]}
+    share = {h: spread(f, [len(q) for q in blocks]) for h, f in flagged.items()}
+    gp.k_bytes = _bytes(amap, layer, "K", kv, kept)
+    gp.v_bytes = _bytes(amap, layer, "V", kv, gp.v_positions)
+    gp.lsb_bytes = _bytes(amap, layer, "KL", kv, kept) if share else 0
     gp.k_resident = (nqb > 1 or bool(share)) and gp.k_bytes <= half_k
     gp.v_resident = nqb > 1 and gp.v_bytes <= half_v
     # the LSB plane, like K: resident when several blocks recompute rows and it fits in
-    # what resident K leaves of half the key buffer (several blocks: a one-head group)
+    # what resident K leaves of half the key buffer
     lsb_blocks = sum(1 for b in range(nqb) if any(rows[b] for rows in share.values()))
-    kl_bytes = sum(gp.lsb_bytes[h] for h in share)
-    gp.kl_resident = lsb_blocks > 1 and kl_bytes + (gp.k_bytes if gp.k_resident else 0) <= half_k
-    gp.k_chunks = [c[0] for c in split(amap, layer, ("K",), [(h, kept) for h in heads], kc, half_k)]
-    gp.v_chunks = [c[0] for c in split(amap, layer, ("V",), [(h, gp.v_positions[h]) for h in heads],
-                                       vc, half_v)]
+    gp.kl_resident = lsb_blocks > 1 and gp.lsb_bytes + (gp.k_bytes if gp.k_resident else 0) <= half_k
+    k_chunks = [c[0] for c in split(amap, layer, ("K",), [(kv, kept)], kc, half_k)]
+    v_chunks = [c[0] for c in split(amap, layer, ("V",), [(kv, gp.v_positions)], vc, half_v)]
     if gp.kl_resident:
-        pairs = split(amap, layer, ("KL", "K"), [(h, kept) for h in share], klc, half_k / 2)
+        pairs = split(amap, layer, ("KL", "K"), [(kv, kept)], klc, half_k / 2)
         gp.kl_chunks = [c[0] for c in pairs]
         gp.kl_msb_chunks = [c[1] for c in pairs]
-    return gp
+    nq = len(gp.heads)
+    pruned = gp.value_pruned_heads
+    for b, q in enumerate(blocks):
+        bp = BlockPlan(b, q)
+        if gp.k_resident:
+            bp.k_idx = list(range(len(k_chunks)))
+        else:
+            bp.k_chunks = k_chunks
+        if gp.v_resident:
+            bp.v_idx = list(range(len(v_chunks)))
+        else:
+            bp.v_chunks = v_chunks
+        bp.lsb = {h: rows[b] for h, rows in share.items() if rows[b]}
+        if bp.lsb:
+            _plan_lsb(arch, amap, layer, gp, bp, kept, klc)
+        bp.qk_macs = [bp.rows * c.rows * d * nq for c in k_chunks]
+        lsb_src = gp.kl_chunks if gp.kl_resident else bp.lsb_chunks
+        bp.lsb_macs = [bp.lsb_rows * c.rows * d for c in lsb_src] if bp.lsb else []
+        bp.pv_macs = pv_macs(gp, v_chunks, bp.rows, d)
+        bp.elements = bp.rows * nq * gp.n_kv
+        bp.lsb_elements = bp.lsb_rows * gp.n_kv
+        bp.pruned = pruned
+        bp.value_comps = bp.rows * sum(select_cost(gp.n_kv, gp.n_v(h)) for h in pruned) if pruned else 0.0
+        gp.blocks.append(bp)
+    if gp.k_resident:
+        gp.k_chunks = k_chunks
+    if gp.v_resident:
+        gp.v_chunks = v_chunks
 
 
 def _plan_lsb(arch, amap, layer, gp, bp, kept, klc):
@@ -329,7 +360,7 @@ def _plan_lsb(arch, amap, layer, gp, bp, kept, klc):
         if not gp.k_resident:
             bp.lsb_msb_chunks = gp.kl_msb_chunks
         return
-    pairs = split(amap, layer, ("KL", "K"), [(h, kept) for h in bp.lsb], klc, _half(arch, "K") / 2)
+    pairs = split(amap, layer, ("KL", "K"), [(gp.kv, kept)], klc, _half(arch, "K") / 2)
     bp.lsb_chunks = [c[0] for c in pairs]
     if not gp.k_resident:
         bp.lsb_msb_chunks = [c[1] for c in pairs]
@@ -353,18 +384,15 @@ def spread(flagged, block_rows):
 
 
 def pv_macs(gp, chunks, rows, head_dim):
-    """p.V MACs of each V chunk: the head's work spread over its fetched rows, exact in total."""
-    fetched = {h: len(gp.v_positions[h]) for h in gp.heads}
-    seen = dict.fromkeys(gp.heads, 0)
+    """p.V MACs of each V chunk: each head's work spread over the fetched rows, exact in total."""
+    n = len(gp.v_positions)
+    work = [gp.v_work[h] for h in gp.heads]
+    seen = 0
     out = []
     for c in chunks:
-        m = 0
-        for h, p in c.segments:
-            a = seen[h]
-            b = a + len(p)
-            w, n = gp.v_work[h], fetched[h]
-            m += (w * b // n - w * a // n) if n else 0
-            seen[h] = b
+        a, b = seen, seen + c.rows
+        m = sum(w * b // n - w * a // n for w in work) if n else 0
+        seen = b
         out.append(m * rows * head_dim)
     return out
 
@@ -381,19 +409,17 @@ def chunk_bytes(amap, layer, chunk):
     return sum(_bytes(amap, layer, chunk.plane, h, p) for h, p in chunk.segments) - chunk.skip * amap.burst
 
 
-def step_traffic(arch, amap, step, groups):
+def step_traffic(arch, amap, step, groups, layer=None):
     """(fetched, compulsory) bytes of a planned step, from the same rule the engine uses."""
     fetched = compulsory = 0
-    layer = step.layer
+    layer = step.layer if layer is None else layer
 
     def nbytes(chunks):
         return sum(chunk_bytes(amap, layer, c) for c in chunks)
 
     for gp in groups:
         q_bytes = sum(_bytes(amap, layer, "Q", h, bp.q_positions) for bp in gp.blocks for h in gp.heads)
-        compulsory += q_bytes + gp.k_bytes + gp.v_bytes
-        lsb_heads = {h for bp in gp.blocks for h in bp.lsb}
-        compulsory += sum(gp.lsb_bytes[h] for h in lsb_heads)   # the LSB plane, once
+        compulsory += q_bytes + gp.k_bytes + gp.v_bytes + gp.lsb_bytes   # every row once
         fetched += q_bytes + nbytes(gp.k_chunks) + nbytes(gp.v_chunks) + nbytes(gp.kl_chunks)
         for bp in gp.blocks:
             fetched += (nbytes(bp.k_chunks) + nbytes(bp.lsb_chunks) + nbytes(bp.lsb_msb_chunks)

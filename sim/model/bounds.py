@@ -53,38 +53,41 @@ def bounds_from_counts(arch, macs_by_dim, macs_pv_by_dim, softmax_elements, topk
 
 
 def closed_form(arch, trace, grain_rows=None):
-    """Bounds for ``trace`` on ``arch`` without simulating (for screening)."""
+    """Bounds for ``trace`` on ``arch`` without simulating (for screening): the work of
+    every step exactly (:meth:`sim.trace.step.Step.work`) and the bytes the tiling rule
+    moves, each request in its own DRAM region as the engine places it."""
     from ..engine.addrmap import AddressMap
     from ..engine.tiling import plan_step, selects_next, step_traffic
 
     g = arch.engine.grain_rows if grain_rows is None else grain_rows
-    dims = sorted({s.head_dim for s in trace.steps})
-    layers = max(s.layer for s in trace.steps) + 1
-    heads = max(int(s.heads.max()) for s in trace.steps) + 1
-    max_rows = max(s.kv_rows for s in trace.steps)
-    amaps = {d: AddressMap(arch, layers, heads, max_rows, d) for d in dims}
+    steps = trace.steps
+    dims = sorted({s.head_dim for s in steps})
+    layers = max(s.layer for s in steps) + 1
+    regions = layers * (max(s.request for s in steps) + 1)
+    heads = max(max(int(s.heads.max()), int(s.kv_heads.max())) for s in steps) + 1
+    max_rows = max(s.kv_rows for s in steps)
+    amaps = {d: AddressMap(arch, regions, heads, max_rows, d) for d in dims}
     macs, macs_pv = {}, {}
     elements = 0
     comps = 0.0
     fetched = compulsory = 0
-    steps = trace.steps
+    nxt_of, later = {}, {}
+    for i in range(len(steps) - 1, -1, -1):   # the next step of the same request
+        nxt_of[i] = later.get(steps[i].request)
+        later[steps[i].request] = i
     for i, step in enumerate(steps):
         d = step.head_dim
-        plan = plan_step(arch, amaps[d], step, g)
-        f, c = step_traffic(arch, amaps[d], step, plan)
+        layer = step.request * layers + step.layer
+        plan = plan_step(arch, amaps[d], step, g, layer)
+        f, c = step_traffic(arch, amaps[d], step, plan, layer)
         fetched += f
         compulsory += c
-        for gp in plan:
-            nh = len(gp.heads)
-            nv = sum(gp.n_v(h) for h in gp.heads)
-            for bp in gp.blocks:
-                qk = bp.rows * gp.n_kv * d * nh + bp.lsb_rows * gp.n_kv * d
-                pv = bp.rows * nv * d
-                macs[d] = macs.get(d, 0) + qk + pv
-                macs_pv[d] = macs_pv.get(d, 0) + pv
-                elements += (bp.rows * nh + bp.lsb_rows) * gp.n_kv
-                comps += bp.rows * sum(tkmod.select_cost(gp.n_kv, gp.n_v(h)) for h in gp.value_pruned_heads)
-        nxt = steps[i + 1] if i + 1 < len(steps) else None
+        w = step.work()
+        macs[d] = macs.get(d, 0) + w.macs
+        macs_pv[d] = macs_pv.get(d, 0) + w.pv_macs
+        elements += w.softmax + w.lsb_softmax
+        comps += sum(bp.value_comps for gp in plan for bp in gp.blocks)
+        nxt = None if nxt_of[i] is None else steps[nxt_of[i]]
         if selects_next(step, nxt):
             # counted selections need the engine's generator; the expectation is no bound,
             # so only the part every selection must do (one look at each key) counts here

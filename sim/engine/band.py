@@ -1,0 +1,220 @@
+"""Banded steps: causal prefill, sliding windows and per-K/V-head key sets.
+
+In such a step query rows see different keys: the row at position p sees the
+kept keys of its K/V head at positions <= p (causal) and > p - window
+(sliding window). Per query block only the keys some row of the block sees
+are fetched -- key tiles wholly above the causal diagonal, or older than the
+window, are skipped -- and the work of every chunk is counted row by row, so
+a step's totals equal :meth:`sim.trace.step.Step.work` exactly.
+
+Rows flagged for the least-significant key plane are the step's last rows
+(the trace gives a count per head, and :meth:`~sim.trace.step.Step.work`
+takes the last rows too). Value pruning in decode keeps, per head, the
+trace's ``kept_v_idx`` or ``kept_v`` positions spread evenly over the keys
+the block sees; in prefill the block's visible keys are fetched and
+``kept_v`` only bounds the products each row does.
+"""
+
+import numpy as np
+
+from .tiling import BlockPlan, _bytes, _half, split
+from .topk import select_cost
+
+
+def row_ranges(keys, q_pos, causal, window):
+    """Per query row, the half-open index range ``[lo, hi)`` of sorted ``keys`` it sees."""
+    n = len(keys)
+    hi = (np.searchsorted(keys, q_pos, side="right") if causal
+          else np.full(len(q_pos), n, dtype=np.int64))
+    lo = (np.searchsorted(keys, q_pos - window, side="right") if window
+          else np.zeros(len(q_pos), dtype=np.int64))
+    return lo, np.maximum(hi, lo)
+
+
+def seen_below(lo, hi, bounds):
+    """Per bound x: the keys with index < x that the rows ``[lo, hi)`` see, summed over rows."""
+    x = np.asarray(bounds, dtype=np.int64)[:, None]
+    return (np.clip(x, lo[None, :], hi[None, :]) - lo[None, :]).sum(axis=1)
+
+
+def _span(lo, hi):
+    """``(first, end)`` key indices any row sees (``(0, 0)`` when none sees any)."""
+    seen = hi > lo
+    if not seen.any():
+        return 0, 0
+    return int(lo[seen].min()), int(hi[seen].max())
+
+
+def _cut(amap, layer, plane, kv, positions, start, max_rows, max_bytes):
+    """Chunks of ``positions`` (key indices ``start`` on) and each chunk's index bounds."""
+    if len(positions) == 0:
+        return [], np.zeros(1, dtype=np.int64) + start
+    chunks = [c[0] for c in split(amap, layer, (plane,), [(kv, positions)], max_rows, max_bytes)]
+    return chunks, start + np.concatenate([[0], np.cumsum([c.rows for c in chunks])])
+
+
+def _overlapping(bounds, a, b):
+    """Indices of the chunks with index bounds ``bounds`` that hold part of ``[a, b)``."""
+    if b <= a:
+        return []
+    first = int(np.searchsorted(bounds, a, side="right")) - 1
+    last = int(np.searchsorted(bounds, b, side="left"))
+    return list(range(max(first, 0), min(last, len(bounds) - 1)))
+
+
+def _spread_total(total, weights):
+    """``total`` split over ``weights`` in whole numbers, exact in sum."""
+    n = sum(weights)
+    if not n:
+        return [0] * len(weights)
+    out, seen = [], 0
+    for w in weights:
+        out.append(total * (seen + w) // n - total * seen // n)
+        seen += w
+    return out
+
+
+def plan_banded(arch, amap, step, layer, gp, idx, keys, blocks, cuts):
+    """Plan one head group of a banded step: per block, the K chunks its rows see, the
+    LSB recompute of the step's last rows, the V rows, and the work of each operation."""
+    kc, vc, klc = cuts
+    ranges = []
+    r0 = 0
+    for q in blocks:
+        lo, hi = row_ranges(keys, q, step.causal, step.window)
+        ranges.append((r0, lo, hi, _span(lo, hi)))
+        r0 += len(q)
+    spans = [r[3] for r in ranges if r[3][1] > r[3][0]]
+    hull = (min(a for a, _b in spans), max(b for _a, b in spans)) if spans else (0, 0)
+    gp.n_kv = hull[1] - hull[0]
+    gp.k_bytes = _bytes(amap, layer, "K", gp.kv, keys[hull[0]:hull[1]])
+    lsb_on = arch.precision.k_lsb_bits > 0
+    flagged = {h: int(step.lsb_rows[j]) for h, j in zip(gp.heads, idx) if lsb_on and step.lsb_rows[j]}
+    gp.k_resident = (len(blocks) > 1 or bool(flagged)) and gp.k_bytes <= _half(arch, "K")
+    res_k = None
+    if gp.k_resident:
+        res_k = _cut(amap, layer, "K", gp.kv, keys[hull[0]:hull[1]], hull[0], kc, _half(arch, "K"))
+        gp.k_chunks = res_k[0]
+    vplan = _ValuePlan(arch, amap, step, layer, gp, idx, keys, ranges, vc)
+    lsb_hull = []
+    for b, (q, (r0, lo, hi, span)) in enumerate(zip(blocks, ranges)):
+        bp = BlockPlan(b, q)
+        bp.k_idx, bounds = _block_keys(amap, layer, gp, bp, keys, span, res_k, kc, arch)
+        scale = len(gp.heads) * step.head_dim
+        per = [int(x) * scale for x in np.diff(seen_below(lo, hi, bounds))]
+        bp.qk_macs = per if bp.k_idx is None else [per[i] for i in bp.k_idx]
+        bp.elements = len(gp.heads) * int((hi - lo).sum())
+        _plan_lsb_rows(arch, amap, step, layer, gp, bp, keys, r0, lo, hi, flagged, klc, lsb_hull)
+        vplan.plan_block(bp, r0, lo, hi, span)
+        gp.blocks.append(bp)
+    if lsb_hull:
+        a, b = min(x for x, _y in lsb_hull), max(y for _x, y in lsb_hull)
+        gp.lsb_bytes = _bytes(amap, layer, "KL", gp.kv, keys[a:b])
+
+
+def _block_keys(amap, layer, gp, bp, keys, span, res_k, kc, arch):
+    """The block's K chunks: the resident ones its span overlaps (returns their indices),
+    or its own cut of the keys its rows see. Returns ``(indices or None, bounds)``."""
+    a, b = span
+    if gp.k_resident:
+        bounds = res_k[1]
+        return _overlapping(bounds, a, b), bounds
+    bp.k_chunks, bounds = _cut(amap, layer, "K", gp.kv, keys[a:b], a, kc, _half(arch, "K"))
+    return None, bounds
+
+
+def _plan_lsb_rows(arch, amap, step, layer, gp, bp, keys, r0, lo, hi, flagged, klc, lsb_hull):
+    """The recompute of the block's rows among the step's last flagged rows of each head."""
+    starts = {}
+    for h, m in flagged.items():
+        first = max(0, step.q_rows - m - r0)     # local index of the head's first flagged row
+        if first < bp.rows:
+            starts[h] = first
+            bp.lsb[h] = bp.rows - first
+    if not starts:
+        return
+    s0 = min(starts.values())
+    a, b = _span(lo[s0:], hi[s0:])
+    if b <= a:
+        bp.lsb = {}
+        return
+    lsb_hull.append((a, b))
+    pairs = split(amap, layer, ("KL", "K"), [(gp.kv, keys[a:b])], klc, _half(arch, "K") / 2)
+    bp.lsb_chunks = [c[0] for c in pairs]
+    if not gp.k_resident:
+        bp.lsb_msb_chunks = [c[1] for c in pairs]
+    bounds = a + np.concatenate([[0], np.cumsum([c.rows for c in bp.lsb_chunks])])
+    d = step.head_dim
+    macs = np.zeros(len(bp.lsb_chunks), dtype=np.int64)
+    for h, first in starts.items():
+        macs += np.diff(seen_below(lo[first:], hi[first:], bounds))
+        bp.lsb_elements += int((hi[first:] - lo[first:]).sum())
+    bp.lsb_macs = [int(x) * d for x in macs]
+
+
+class _ValuePlan:
+    """The V side of a banded group: which rows each block fetches, and the p.V work."""
+
+    def __init__(self, arch, amap, step, layer, gp, idx, keys, ranges, vc):
+        self.arch, self.amap, self.step, self.layer, self.gp = arch, amap, step, layer, gp
+        self.idx, self.keys, self.vc = idx, keys, vc
+        self.half = _half(arch, "V")
+        self.sets = [self._positions(lo, span) for _r0, lo, _hi, span in ranges]
+        union = [s for s in self.sets if len(s)]
+        gp.v_positions = np.unique(np.concatenate(union)) if union else keys[:0]
+        gp.v_bytes = _bytes(amap, layer, "V", gp.kv, gp.v_positions)
+        gp.v_resident = len(ranges) > 1 and gp.v_bytes <= self.half
+        if gp.v_resident:
+            gp.v_chunks, self.bounds = _cut(amap, layer, "V", gp.kv, gp.v_positions, 0, vc, self.half)
+
+    def _positions(self, lo, span):
+        """V positions the block fetches: the union over the group's heads."""
+        a, b = span
+        seen = self.keys[a:b]
+        if not self.gp.select:      # prefill: every row keeps its own values
+            return seen
+        step = self.step
+        parts = []
+        for j in self.idx:
+            if step.kept_v_idx is not None:
+                vi = step.kept_v_idx[j]
+                parts.append(vi[(vi >= seen[0]) & (vi <= seen[-1])] if len(seen) else vi[:0])
+            else:
+                kv = min(int(step.kept_v[j]), len(seen))
+                pick = np.unique(np.round(np.linspace(0, len(seen) - 1, kv)).astype(np.int64)) if kv else []
+                parts.append(seen[pick])
+        return parts[0] if len(parts) == 1 else np.unique(np.concatenate(parts))
+
+    def _use(self, j, q, lo, hi):
+        """V rows each query row of head ``j`` multiplies (the rule of Step.work)."""
+        step = self.step
+        if step.kept_v_idx is not None:
+            vi = step.kept_v_idx[j]
+            top = np.searchsorted(vi, q, side="right") if step.causal else np.full(len(q), len(vi))
+            low = np.searchsorted(vi, q - step.window, side="right") if step.window else 0
+            return np.maximum(top - low, 0)
+        return np.minimum(int(step.kept_v[j]), hi - lo)
+
+    def plan_block(self, bp, r0, lo, hi, span):
+        gp, step = self.gp, self.step
+        mine = self.sets[bp.block]
+        if gp.v_resident:
+            if len(mine):
+                a = int(np.searchsorted(gp.v_positions, mine[0]))
+                b = int(np.searchsorted(gp.v_positions, mine[-1], side="right"))
+            else:
+                a = b = 0
+            bp.v_idx = _overlapping(self.bounds, a, b)
+            weights = [min(b, self.bounds[i + 1]) - max(a, self.bounds[i]) for i in bp.v_idx]
+        else:
+            bp.v_chunks, _b = _cut(self.amap, self.layer, "V", gp.kv, mine, 0, self.vc, self.half)
+            weights = [c.rows for c in bp.v_chunks]
+        n_vis = span[1] - span[0]
+        total = 0
+        for h, j in zip(gp.heads, self.idx):
+            use = self._use(j, bp.q_positions, lo, hi)
+            total += int(use.sum())
+            if gp.select and int(use.max(initial=0)) < n_vis:
+                bp.pruned.append(h)
+                bp.value_comps += bp.rows * select_cost(n_vis, int(round(use.mean())) if len(use) else 0)
+        bp.pv_macs = [m * step.head_dim for m in _spread_total(total, weights)]

@@ -1,0 +1,24 @@
+"""Write-back: the writes a step leaves behind, posted to the channel pool.
+
+Once a step ends, the K/V rows it appends to the cache and its output rows
+go to memory as posted writes (``txn.is_write``): each waits only for room in
+its channels' write queues, and the pool places them between reads by its
+drain policy (:mod:`sim.engine.dram`). Nothing on chip waits for a write, so
+writes cost time only through the bus time and turnarounds they take from
+reads. Writes still queued when the last step ends are not waited for: the
+run ends with its last step.
+"""
+
+
+def writeback_process(env, writes, pool, router, burst):
+    """Post each ``(end event, write transactions)`` of ``writes`` once its step has ended."""
+    for done, txns in writes:
+        if not done.processed:
+            yield done
+        for txn in txns:
+            txn.bursts = router.bursts_for(txn)
+            txn.nbytes = len(txn.bursts) * burst
+            ev = pool.submit(txn)
+            txn.bursts = None
+            if ev is not None and not ev.processed:
+                yield ev      # the write queue took it in
