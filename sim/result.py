@@ -294,9 +294,11 @@ def format_summary(result):
                  f"{show(b['memory_cycles'], 'cycles')} memory); the run reaches "
                  f"{show(v['roofline_fraction'], 'share')} of it")
     dr = d["dram"]
-    lines.append(f"  memory    {show(dr['bytes'], 'bytes')} fetched ({show(dr['fetched_over_compulsory'], 'speedup')} "
+    written = dr.get("write_bytes") or 0
+    lines.append(f"  memory    {show(dr['bytes'] - written, 'bytes')} fetched ({show(dr['fetched_over_compulsory'], 'speedup')} "
                  f"compulsory) in {show(d['fetch']['requests'], 'requests')}, "
-                 f"{fm.value(dr['achieved_gbps'], 'bandwidth')} of {show(dr['peak_gbps'], 'bandwidth')}"
+                 + (f"{show(written, 'bytes')} written, " if written else "")
+                 + f"{fm.value(dr['achieved_gbps'], 'bandwidth')} of {show(dr['peak_gbps'], 'bandwidth')}"
                  + (f"; {show(dr['effective_key_bits'], 'bits')} per key element"
                     if dr.get("effective_key_bits") else ""))
     t, c = d["throughput"], d["compute"]
