@@ -544,13 +544,13 @@ def _cmd_trace_synth(args):
         from .trace.shapes import load_shape
         shape = load_shape(args.shape)
     layers = args.layers or (shape.layers if shape else 12)
-    kv_heads = args.kv_heads or (shape.kv_heads if shape else None) or args.heads or (shape.heads if shape else 12)
     # the key positions a dense trace of this shape lists, estimated before anything is allocated
     tokens = args.prompt + args.decode
-    rows = layers * kv_heads * args.batch * ((0 if args.no_prefill else args.prompt) + args.decode * tokens)
+    # (one kept-key list per step, shared by its heads: synth keeps no per-KV-head keys)
+    rows = layers * args.batch * ((0 if args.no_prefill else args.prompt) + args.decode * tokens)
     if rows > MAX_SYNTH_KEY_ROWS:
         raise InputError("trace synth", "prompt", args.prompt,
-                         f"a trace of {layers} layers x {kv_heads} KV heads x {args.batch} requests with "
+                         f"a trace of {layers} layers x {args.batch} requests with "
                          f"{args.prompt} prompt and {args.decode} decode tokens lists about {rows:,} key "
                          f"positions (~{rows * 8 / 2**30:.1f} GiB); expected at most {MAX_SYNTH_KEY_ROWS:,}")
     trace = synth_trace(prompt_tokens=args.prompt, decode_steps=args.decode, layers=args.layers,
