@@ -255,6 +255,7 @@ class ChannelPool:
     """
 
     def __init__(self, env, arch, log_commands=False):
+        T.load_kernels()     # compiled once per machine, loaded once per process
         self.env = env
         self.arch = arch
         d = arch.dram
@@ -345,7 +346,7 @@ class ChannelPool:
         now = self.env.now
         self._arrive(now)
         for tries in range(MAX_ROOM_TRIES + 1):
-            ok, t_start, t_end = serve_fixed(txn.bursts, self.interleave, now, self.free_at,
+            ok, t_start, t_end = serve_fixed(txn.bursts, self.interleave, float(now), self.free_at,
                                              *self._fixed_args)
             if ok > 0:
                 break
@@ -597,7 +598,7 @@ class ChannelPool:
         times = self._times
         times[:] = -np.inf
         tries = 0
-        while serve_addresses(b, *self._lut_args, now, times, *self._state_args) < 0:
+        while serve_addresses(b, *self._lut_args, float(now), times, *self._state_args) < 0:
             _room_or_stall(tries, "banked serve")
             tries += 1
             self._make_room(len(b))
@@ -627,7 +628,7 @@ class ChannelPool:
         times[1] = -np.inf
         times[2] = -np.inf if rec[4] == rec[0] else rec[4]
         for tries in range(MAX_ROOM_TRIES + 1):
-            nch = serve_and_book(ch, gb, row, now, rec[0], times, *self._state_args)
+            nch = serve_and_book(ch, gb, row, float(now), float(rec[0]), times, *self._state_args)
             if nch >= 0:
                 break
             _room_or_stall(tries, "banked commit")

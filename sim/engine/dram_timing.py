@@ -49,9 +49,19 @@ Everything here is plain loops over numpy arrays, compiled with numba when it
 is installed (``ATTNSIM_NO_JIT=1`` runs the same code as Python, slowly); the
 state arrays are updated in place. ``tests/test_dram_timing.py`` holds these
 loops to a brute-force reference and to a protocol check of their command log.
+
+The loops the pool calls are compiled for one argument signature each
+(:data:`KERNELS`), once per machine: :func:`load_kernels` loads them from
+numba's cache, and the first process to find the cache empty compiles them
+under a machine-wide lock while any other waits and then loads.
 """
 
+import contextlib
+import hashlib
 import os
+import tempfile
+import time
+from typing import NamedTuple
 
 import numpy as np
 
@@ -999,3 +1009,140 @@ def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, de
     ch, gb, row = decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, len(busy))
     return serve_and_book(ch, gb, row, now, now, times, depth, rq, groups, banks, close_page, P,
                           open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI)
+
+
+# ---------------------------------------------------------------- compile once, load once
+# The channel pool calls the six loops below from Python, always with these argument types
+# (ints and floats as int64 / float64, arrays C-contiguous): one compiled version each,
+# made once per machine and loaded by every process before its first run.
+
+KERNELS = ("serve_addresses", "serve_and_book", "serve_writes", "serve_fixed", "decode_sorted", "compact")
+
+
+def signatures():
+    """``{kernel name: argument types}`` the channel pool calls each of :data:`KERNELS` with."""
+    from numba import types as nt
+
+    i, f, b = nt.int64, nt.float64, nt.boolean
+
+    def a(dtype, ndim):
+        return nt.Array(dtype, ndim, "C")
+
+    # depth, rq, groups, banks, close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI
+    state = (i, i, i, i, b, a(f, 1), a(i, 1), a(f, 2), a(f, 3), a(i, 3), a(f, 4), a(i, 2), a(f, 2),
+             a(f, 3), a(f, 2), a(f, 3), a(f, 1), a(f, 1), a(f, 2), a(i, 1))
+    return {
+        "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1)) + state,
+        "serve_and_book": (a(i, 1), a(i, 1), a(i, 1), f, f, a(f, 1)) + state,
+        "serve_writes": (a(i, 1), a(i, 1), i, f, a(f, 1)) + state[2:],
+        "serve_fixed": (a(i, 1), i, f, a(f, 1), f, f, i, i, a(f, 3), a(i, 2), a(f, 2), a(f, 3), a(f, 1),
+                        a(f, 1), a(i, 1)),
+        "decode_sorted": (a(i, 1), i, a(i, 1), a(i, 1), i, i, i),
+        "compact": (a(f, 3), a(i, 3), a(f, 4), a(i, 2), a(f, 2), a(f, 1)),
+    }
+
+
+class KernelLoad(NamedTuple):
+    """What readying compiled kernels did in this process."""
+
+    seconds: float          # wall time, numba's start-up and any waiting included
+    waited: float           # of which waiting for another process's compilation
+    compiled: tuple         # kernels compiled here (numba's cache had none)
+    loaded: tuple           # kernels loaded from the cache (or ready in this process already)
+
+
+_loaded = None
+
+
+def load_kernels():
+    """Make the compiled loops ready in this process; returns a :class:`KernelLoad`.
+
+    Loads each kernel of :data:`KERNELS` from numba's cache for its one
+    signature; one the cache lacks is compiled and cached, under a
+    machine-wide lock, so processes that start together compile once and the
+    others load. Called again, it returns the first call's figures at no cost.
+    Without numba (or with ``ATTNSIM_NO_JIT=1``) there is nothing to load.
+    """
+    global _loaded
+    if _loaded is None:
+        if JIT:
+            sigs = signatures()
+            _loaded = compile_or_load({name: (globals()[name], sigs[name]) for name in KERNELS})
+        else:
+            _loaded = KernelLoad(0.0, 0.0, (), ())
+    return _loaded
+
+
+def compile_or_load(kernels):
+    """Ready ``{name: (numba dispatcher, signature)}`` in this process; returns a :class:`KernelLoad`.
+
+    Each is loaded from numba's cache or, when the cache has none, compiled and
+    cached; all under the lock of :func:`lock_path`, so that of processes
+    starting together one compiles and the rest wait and load.
+    """
+    t0 = time.perf_counter()
+    _init_numba()      # numba's own start-up (~1 s), outside the lock
+    with _machine_lock() as waited:
+        # a kernel may be compiled as part of another that calls it: count misses after all
+        misses = {name: _misses(k) for name, (k, _sig) in kernels.items()}
+        for k, sig in kernels.values():
+            k.compile(sig)
+        compiled = tuple(name for name, (k, _sig) in kernels.items() if _misses(k) > misses[name])
+    loaded = tuple(name for name in kernels if name not in compiled)
+    return KernelLoad(time.perf_counter() - t0, waited, compiled, loaded)
+
+
+def _misses(kernel):
+    return sum(kernel.stats.cache_misses.values())
+
+
+def _init_numba():
+    """Numba's one-time set-up (type registries, which import scipy when present), done before
+    taking the lock so that processes loading side by side do not queue for it."""
+    try:
+        from numba.core.registry import cpu_target
+
+        cpu_target.target_context.refresh()
+    except (ImportError, AttributeError):  # pragma: no cover - another numba layout: the first load does it
+        pass
+
+
+def lock_path(cache_dir=None):
+    """The lock file for this source file and numba cache folder (default: numba's configured
+    one): one per machine, in the temporary folder."""
+    import numba
+
+    if cache_dir is None:
+        cache_dir = getattr(numba.config, "CACHE_DIR", "") or ""
+    tag = f"{os.path.abspath(__file__)}|{cache_dir}|{numba.__version__}"
+    return os.path.join(tempfile.gettempdir(),
+                        f"attnsim-kernels-{hashlib.sha256(tag.encode()).hexdigest()[:16]}.lock")
+
+
+@contextlib.contextmanager
+def _machine_lock():
+    """Hold an exclusive lock on :func:`lock_path`; yields the seconds spent waiting for it.
+
+    Where no lock can be had (no ``fcntl``, a lock file of another user), the
+    kernels load without it: processes then may compile side by side, which
+    costs time but changes nothing else."""
+    try:
+        import fcntl
+    except ImportError:
+        yield 0.0
+        return
+    path = lock_path()
+    try:
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)
+    except OSError:
+        try:
+            fd = os.open(path, os.O_RDONLY)     # made by another user: a shared lock file
+        except OSError:
+            yield 0.0
+            return
+    try:
+        t0 = time.perf_counter()
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        yield time.perf_counter() - t0
+    finally:
+        os.close(fd)      # closing the descriptor releases the lock

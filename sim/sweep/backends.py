@@ -9,14 +9,18 @@ inputs and offers the same three calls:
   ``("lost", line, None)`` when the process running it died;
 * ``close()``.
 
-``slots`` says how many tasks are worth keeping in flight.
+``slots`` says how many tasks are worth keeping in flight. ``prepare(traces)``,
+called before the first ``submit``, readies every worker for its first point
+(:func:`sim.sweep.worker.prepare`: DRAM kernels loaded, traces read), so no
+point pays for them.
 """
 
 import concurrent.futures as cf
+import multiprocessing as mp
 import os
 
 from .spec import SweepError
-from .worker import run_point
+from .worker import prepare, run_point
 
 CONNECT_TIMEOUT_S = 3
 
@@ -29,6 +33,9 @@ class SerialBackend:
 
     def __init__(self):
         self._queue = []
+
+    def prepare(self, traces):
+        prepare(traces)
 
     def submit(self, task):
         self._queue.append(task)
@@ -49,6 +56,11 @@ class PoolBackend:
 
     When a worker process dies the pool breaks: every task then in flight is
     reported ``lost`` and a fresh pool takes the next submissions.
+
+    Where processes start by ``fork``, :meth:`prepare` readies this process
+    before the pool starts, and every worker inherits the loaded kernels and
+    traces (no worker loads anything); otherwise each worker readies itself as
+    it starts.
     """
 
     name = "local pool"
@@ -59,10 +71,19 @@ class PoolBackend:
             raise SweepError("--jobs", "jobs", jobs, "expected a whole number >= 1")
         self.jobs = jobs
         self.slots = 2 * jobs
-        self._pool = self._new_pool()
+        self._context = mp.get_context()
+        self._traces = ()
+        self._pool = None          # started by the first submit, after prepare
         self._futures = {}
 
+    def prepare(self, traces):
+        self._traces = tuple(traces)
+        if self._context.get_start_method() == "fork":
+            prepare(self._traces)
+
     def submit(self, task):
+        if self._pool is None:
+            self._pool = self._new_pool()
         try:
             fut = self._pool.submit(run_point, *task.args)
         except cf.process.BrokenProcessPool:
@@ -75,7 +96,9 @@ class PoolBackend:
         self._pool = self._new_pool()
 
     def _new_pool(self):
-        return cf.ProcessPoolExecutor(max_workers=self.jobs, initializer=_one_thread_each)
+        # under fork the initializer finds everything inherited and returns at once
+        return cf.ProcessPoolExecutor(max_workers=self.jobs, mp_context=self._context, initializer=prepare,
+                                      initargs=(self._traces, True))
 
     def wait(self):
         done, _ = cf.wait(list(self._futures), return_when=cf.FIRST_COMPLETED)
@@ -102,19 +125,8 @@ class PoolBackend:
         return len(self._futures)
 
     def close(self):
-        self._pool.shutdown(wait=True, cancel_futures=True)
-
-
-def _one_thread_each():
-    """Pool workers use one BLAS/OpenMP thread each: N processes already fill N cores,
-    and nested threads only contend (Dask's nanny does the same for its workers)."""
-    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
-        os.environ[var] = "1"
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:
-        return
-    threadpool_limits(limits=1)
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
 
 
 class TLSFiles:
@@ -235,6 +247,21 @@ class DaskBackend:
         self._futures = {}
         self._attempt = 0
         self._done = distributed.as_completed(loop=self._client.loop)
+
+    def prepare(self, traces):
+        """Ready every worker (and any that joins later) before the first point."""
+        from .dask_plugin import ReadyWorker
+
+        try:
+            self._client.register_plugin(ReadyWorker(traces))
+        except Exception:  # noqa: BLE001 - e.g. a worker of another build; its points still run
+            pass
+
+    def worker_reports(self):
+        """``{worker address: {"prepared": prepare() report, "rss": bytes}}`` (for benchmarks)."""
+        from .dask_plugin import worker_report
+
+        return self._client.run(worker_report)
 
     def submit(self, task):
         self._attempt += 1

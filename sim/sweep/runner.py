@@ -174,6 +174,9 @@ def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, fo
 
         if todo and own_backend:
             backend = make_backend(jobs=jobs, cluster=cluster, workers=workers, security=security)
+        if todo and hasattr(backend, "prepare"):
+            wanted = {p.trace_digest for p in todo}
+            backend.prepare([(path, digest) for _n, path, digest in plan.traces if digest in wanted])
         queue = collections.deque(todo)
         strikes = collections.Counter()
         wrong_build = collections.Counter()

@@ -8,8 +8,15 @@ inputs and hand back the same document, bit for bit.
 Traces are loaded once per worker process and kept by digest. :func:`build_id`
 fingerprints the simulator's own source, so results from a different build
 never pass for this one's (in the cache key, and checked on remote workers).
+
+:func:`prepare` readies a process before its first point -- the compiled DRAM
+kernels loaded (compiled first, once per machine, if numba's cache has none)
+and the sweep's traces read -- so no point pays for either, and a forked pool
+worker inherits both from the process that made the pool.
 """
 
+import os
+import time
 from collections import OrderedDict
 
 from ..build import build_id
@@ -33,6 +40,53 @@ def _trace(path, digest):
     else:
         _traces.move_to_end(digest)
     return tr
+
+
+def prepare(traces=(), one_thread=False):
+    """Ready this process for sweep points; returns what it took, as a dict.
+
+    ``traces``: ``[(path, digest)]`` read into the trace cache now (one that
+    fails to read is left for its points to report). ``one_thread``: limit
+    BLAS/OpenMP to one thread (for pool workers: N processes already fill N
+    cores, and nested threads only contend). Cheap when called again.
+    """
+    t0 = time.perf_counter()
+    if one_thread:
+        _one_thread()
+    from ..engine.dram_timing import load_kernels
+
+    kernels = load_kernels()
+    t1 = time.perf_counter()
+    for path, digest in list(traces)[:TRACE_CACHE_SIZE]:
+        try:
+            _trace(path, digest)
+        except Exception:  # noqa: S112 - the points of this trace record the error
+            continue
+    t2 = time.perf_counter()
+    global _first
+    report = {"pid": os.getpid(), "seconds": t2 - t0, "kernels_seconds": t1 - t0, "traces_seconds": t2 - t1,
+              "kernels": kernels._asdict()}
+    _first = _first or report
+    return report
+
+
+_first = None    # the first prepare() report of this process (a forked worker inherits its parent's)
+
+
+def status():
+    """This process's id and the first :func:`prepare` report it holds (``None``: never
+    prepared); a report whose ``pid`` is another process's was inherited through fork."""
+    return {"pid": os.getpid(), "prepared": _first}
+
+
+def _one_thread():
+    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ[var] = "1"
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        return
+    threadpool_limits(limits=1)
 
 
 def _simulate(config, trace):
