@@ -74,6 +74,10 @@ TINY = textwrap.dedent("""
     @njit(cache=True)
     def twice(x):
         return 2.0 * x
+
+    @njit(cache=True)
+    def thrice(x):
+        return 3.0 * x
 """)
 
 STARTER = textwrap.dedent("""
@@ -84,36 +88,55 @@ STARTER = textwrap.dedent("""
 
     T._init_numba()
     print("ready", flush=True)
-    load = T.compile_or_load({"twice": (tiny.twice, (nt.float64,))})
-    assert tiny.twice(1.5) == 3.0
+    load = T.compile_or_load({"twice": (tiny.twice, (nt.float64,)), "thrice": (tiny.thrice, (nt.float64,))})
+    assert tiny.twice(1.5) == 3.0 and tiny.thrice(1.5) == 4.5
     print(json.dumps(load._asdict()), flush=True)
 """)
 
 
-def test_processes_starting_together_on_an_empty_cache_compile_once(tmp_path):
+def start_holding(tmp_path, held, n):
+    """Start ``n`` processes readying the two tiny kernels on an empty cache while this process
+    holds the locks of the kernels ``held``; release them once every process is at its locks
+    (it printed "ready" after numba's start-up, a second ago). Each process's report."""
     import fcntl
 
     (tmp_path / "tiny.py").write_text(TINY)
     cache = tmp_path / "cache"
     cache.mkdir()
     env = dict(os.environ, PYTHONPATH=os.pathsep.join([ROOT, str(tmp_path)]), NUMBA_CACHE_DIR=str(cache))
-    fd = os.open(T.lock_path(str(cache)), os.O_RDWR | os.O_CREAT, 0o666)
+    fds = [os.open(T.lock_path(name, str(cache)), os.O_RDWR | os.O_CREAT, 0o666) for name in held]
     procs = []
     try:
-        fcntl.flock(fd, fcntl.LOCK_EX)       # as if a third process were compiling
+        for fd in fds:
+            fcntl.flock(fd, fcntl.LOCK_EX)      # as if another process were compiling them
         procs = [subprocess.Popen([sys.executable, "-c", STARTER], cwd=str(tmp_path), env=env,
-                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-                 for _ in range(2)]
+                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for _ in range(n)]
         for p in procs:
             assert p.stdout.readline().strip() == "ready", p.stderr.read()
-        time.sleep(0.5)                      # both are at the lock now
+        time.sleep(1.0)
     finally:
-        os.close(fd)                         # releases the lock
-    results = []
+        for fd in fds:
+            os.close(fd)                        # releases the lock
+    out = []
     for p in procs:
-        out, err = p.communicate(timeout=300)
+        text, err = p.communicate(timeout=300)
         assert p.returncode == 0, err
-        results.append(json.loads(out.strip().splitlines()[-1]))
-    assert sorted(r["compiled"] for r in results) == [[], ["twice"]]
-    assert [r["loaded"] for r in results if not r["compiled"]] == [["twice"]]
-    assert all(r["waited"] >= 0.4 for r in results)     # both queued behind the lock
+        out.append(json.loads(text.strip().splitlines()[-1]))
+    return out
+
+
+def test_processes_starting_together_on_an_empty_cache_compile_each_kernel_once(tmp_path):
+    results = start_holding(tmp_path, ["twice", "thrice"], 2)
+    for name in ("twice", "thrice"):
+        assert sum(name in r["compiled"] for r in results) == 1, (name, results)
+    for r in results:
+        assert sorted(r["compiled"] + r["loaded"]) == ["thrice", "twice"]
+        assert r["waited"] >= 0.5              # both queued behind the locks held
+
+
+def test_a_kernel_another_process_compiles_is_waited_for_last(tmp_path):
+    """The lock of ``twice`` is held elsewhere: the process compiles ``thrice`` meanwhile,
+    then waits for ``twice`` (whose holder compiled nothing, so it compiles it too)."""
+    (r,) = start_holding(tmp_path, ["twice"], 1)
+    assert r["compiled"] == ["thrice", "twice"]
+    assert r["waited"] >= 0.5

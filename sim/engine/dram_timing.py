@@ -1016,7 +1016,12 @@ def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, de
 # (ints and floats as int64 / float64, arrays C-contiguous): one compiled version each,
 # made once per machine and loaded by every process before its first run.
 
-KERNELS = ("serve_addresses", "serve_and_book", "serve_writes", "serve_fixed", "decode_sorted", "compact")
+KERNELS = ("serve_addresses", "serve_and_book", "decode_sorted", "serve_writes", "compact", "serve_fixed")
+# kernels compiled together, each group under its own lock: serve_addresses calls the other two
+# of its group (compiling it compiles them); the groups share little, so processes starting on
+# an empty cache compile different groups side by side
+GROUPS = (("serve_addresses", "serve_and_book", "decode_sorted"), ("serve_writes",), ("compact",),
+          ("serve_fixed",))
 
 
 def signatures():
@@ -1046,8 +1051,8 @@ class KernelLoad(NamedTuple):
     """What readying compiled kernels did in this process."""
 
     seconds: float          # wall time, numba's start-up and any waiting included
-    waited: float           # of which waiting for another process's compilation
-    compiled: tuple         # kernels compiled here (numba's cache had none)
+    waited: float           # of which waiting for other processes' compilations
+    compiled: tuple         # kernels compiled here (numba's cache had none), in the order done
     loaded: tuple           # kernels loaded from the cache (or ready in this process already)
 
 
@@ -1058,38 +1063,59 @@ def load_kernels():
     """Make the compiled loops ready in this process; returns a :class:`KernelLoad`.
 
     Loads each kernel of :data:`KERNELS` from numba's cache for its one
-    signature; one the cache lacks is compiled and cached, under a
-    machine-wide lock, so processes that start together compile once and the
-    others load. Called again, it returns the first call's figures at no cost.
-    Without numba (or with ``ATTNSIM_NO_JIT=1``) there is nothing to load.
+    signature; those the cache lacks are compiled and cached under
+    machine-wide locks, so processes that start together compile each once
+    and load the rest. Called again, it returns the first call's figures at no
+    cost. Without numba (or with ``ATTNSIM_NO_JIT=1``) there is nothing to load.
     """
     global _loaded
     if _loaded is None:
         if JIT:
             sigs = signatures()
-            _loaded = compile_or_load({name: (globals()[name], sigs[name]) for name in KERNELS})
+            _loaded = compile_or_load({name: (globals()[name], sigs[name]) for name in KERNELS}, GROUPS)
         else:
             _loaded = KernelLoad(0.0, 0.0, (), ())
     return _loaded
 
 
-def compile_or_load(kernels):
+def compile_or_load(kernels, groups=None):
     """Ready ``{name: (numba dispatcher, signature)}`` in this process; returns a :class:`KernelLoad`.
 
-    Each is loaded from numba's cache or, when the cache has none, compiled and
-    cached; all under the lock of :func:`lock_path`, so that of processes
-    starting together one compiles and the rest wait and load.
+    Each kernel is loaded from numba's cache or, when the cache has none,
+    compiled and cached. ``groups`` (tuples of names; default one group per
+    kernel) are readied each under its own lock (:func:`lock_path`): a process
+    first takes the groups no other process holds, then waits for the rest
+    and loads what the holder compiled.
     """
     t0 = time.perf_counter()
-    _init_numba()      # numba's own start-up (~1 s), outside the lock
-    with _machine_lock() as waited:
-        # a kernel may be compiled as part of another that calls it: count misses after all
-        misses = {name: _misses(k) for name, (k, _sig) in kernels.items()}
-        for k, sig in kernels.values():
-            k.compile(sig)
-        compiled = tuple(name for name, (k, _sig) in kernels.items() if _misses(k) > misses[name])
+    _init_numba()      # numba's own start-up (~1 s), outside the locks
+    todo = [tuple(g) for g in (groups or [(name,) for name in kernels])]
+    compiled, waited = [], 0.0
+    while todo:
+        for group in todo:
+            with _machine_lock(group[0], wait=False) as held:
+                if held:
+                    compiled += _ready(kernels, group)
+                    break
+        else:              # every group left is being compiled elsewhere: wait for the first
+            group = todo[0]
+            w0 = time.perf_counter()
+            with _machine_lock(group[0]):
+                waited += time.perf_counter() - w0
+                compiled += _ready(kernels, group)
+        todo.remove(group)
     loaded = tuple(name for name in kernels if name not in compiled)
-    return KernelLoad(time.perf_counter() - t0, waited, compiled, loaded)
+    return KernelLoad(time.perf_counter() - t0, waited, tuple(compiled), loaded)
+
+
+def _ready(kernels, group):
+    """Compile or load the kernels of ``group``; the names of those compiled here."""
+    # a kernel may be compiled as part of another that calls it: count misses after all
+    misses = {name: _misses(kernels[name][0]) for name in group}
+    for name in group:
+        kernel, sig = kernels[name]
+        kernel.compile(sig)
+    return [name for name in group if _misses(kernels[name][0]) > misses[name]]
 
 
 def _misses(kernel):
@@ -1098,7 +1124,7 @@ def _misses(kernel):
 
 def _init_numba():
     """Numba's one-time set-up (type registries, which import scipy when present), done before
-    taking the lock so that processes loading side by side do not queue for it."""
+    taking a lock so that processes loading side by side do not queue for it."""
     try:
         from numba.core.registry import cpu_target
 
@@ -1107,42 +1133,50 @@ def _init_numba():
         pass
 
 
-def lock_path(cache_dir=None):
-    """The lock file for this source file and numba cache folder (default: numba's configured
-    one): one per machine, in the temporary folder."""
+def lock_path(name, cache_dir=None):
+    """The lock file of kernel (group) ``name`` of this source file and numba cache folder
+    (default: numba's configured one): one per machine, in the temporary folder."""
     import numba
 
     if cache_dir is None:
         cache_dir = getattr(numba.config, "CACHE_DIR", "") or ""
-    tag = f"{os.path.abspath(__file__)}|{cache_dir}|{numba.__version__}"
+    tag = f"{os.path.abspath(__file__)}|{cache_dir}|{numba.__version__}|{name}"
     return os.path.join(tempfile.gettempdir(),
-                        f"attnsim-kernels-{hashlib.sha256(tag.encode()).hexdigest()[:16]}.lock")
+                        f"attnsim-kernel-{hashlib.sha256(tag.encode()).hexdigest()[:16]}.lock")
 
 
 @contextlib.contextmanager
-def _machine_lock():
-    """Hold an exclusive lock on :func:`lock_path`; yields the seconds spent waiting for it.
+def _machine_lock(name, wait=True):
+    """Hold an exclusive lock on ``lock_path(name)``; yields whether it is held (with
+    ``wait=False``, False at once when another process holds it).
 
-    Where no lock can be had (no ``fcntl``, a lock file of another user), the
-    kernels load without it: processes then may compile side by side, which
-    costs time but changes nothing else."""
+    Where no lock can be had (no ``fcntl``, a lock file that cannot be opened),
+    this yields True without one: processes then may compile side by side,
+    which costs time but changes nothing else."""
     try:
         import fcntl
     except ImportError:
-        yield 0.0
+        yield True
         return
-    path = lock_path()
+    fd = _open_lock(lock_path(name))
+    if fd is None:
+        yield True
+        return
     try:
-        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)
-    except OSError:
         try:
-            fd = os.open(path, os.O_RDONLY)     # made by another user: a shared lock file
-        except OSError:
-            yield 0.0
+            fcntl.flock(fd, fcntl.LOCK_EX | (0 if wait else fcntl.LOCK_NB))
+        except BlockingIOError:
+            yield False
             return
-    try:
-        t0 = time.perf_counter()
-        fcntl.flock(fd, fcntl.LOCK_EX)
-        yield time.perf_counter() - t0
+        yield True
     finally:
         os.close(fd)      # closing the descriptor releases the lock
+
+
+def _open_lock(path):
+    for flags in (os.O_RDWR | os.O_CREAT, os.O_RDONLY):   # a lock file of another user: read-only
+        try:
+            return os.open(path, flags, 0o666)
+        except OSError:
+            continue
+    return None
