@@ -9,15 +9,21 @@ moves the figures less than wall time would.
 ``--against REV`` runs the same measurement on revision REV of this repository
 (exported with ``git archive`` into a temporary folder, its own configs, its
 compiled loops built there once) and prints new / old for each figure: this is
-how the banked scheduler's cost is compared with an earlier pool.
+how the banked scheduler's cost is compared with an earlier pool. ``--rev REV``
+measures revision REV instead of this checkout on the new side, so two revisions
+of the history can be compared (say the channel pool's changes alone, without the
+engine changes that came after them). ``--rounds N`` measures the two sides in turn
+N times and keeps each figure's best, so a machine whose speed drifts moves both
+sides alike.
 
     python bench/dram_bench.py [--arch mid] [--txns 3000] [--repeat 3] [--decode 16]
-                               [--no-replay] [--against REV]
+                               [--no-replay] [--against REV] [--rev REV] [--rounds N]
 """
 
 import argparse
 import json
 import os
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -104,18 +110,56 @@ def measure(root, arch_name, txns, repeat, replay, decode):
     return out
 
 
-def run_elsewhere(rev, args):
-    """:func:`measure` on revision ``rev``, exported into a temporary folder."""
+def export(rev):
+    """A temporary folder holding revision ``rev`` of this repository (``git archive``)."""
     tmp = tempfile.mkdtemp(prefix="attnsim-bench-")
     archive = subprocess.run(["git", "-C", ROOT, "archive", rev], check=True, capture_output=True).stdout
     subprocess.run(["tar", "-x", "-C", tmp], input=archive, check=True)
-    cmd = [sys.executable, os.path.abspath(__file__), "--measure", tmp, "--arch", args.arch,
+    return tmp
+
+
+def measure_in(root, args):
+    """:func:`measure` on the code under ``root``, in a process of its own."""
+    cmd = [sys.executable, os.path.abspath(__file__), "--measure", root, "--arch", args.arch,
            "--txns", str(args.txns), "--repeat", str(args.repeat), "--decode", str(args.decode)]
     if args.no_replay:
         cmd.append("--no-replay")
-    env = dict(os.environ, PYTHONPATH=tmp)
+    env = dict(os.environ, PYTHONPATH=root)
     done = subprocess.run(cmd, check=True, capture_output=True, text=True, env=env)
     return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def best_of(runs):
+    """Per figure, the run with the least CPU time."""
+    out = dict(runs[0], pool={}, replay={})
+    for part, cost in (("pool", "us"), ("replay", "s")):
+        for key in runs[0][part]:
+            out[part][key] = min((r[part][key] for r in runs), key=lambda v: v[cost])
+    return out
+
+
+def compare(args):
+    """Measure the new side (this checkout or ``--rev``) and ``--against``, in turn for
+    ``--rounds`` rounds, so a machine whose speed drifts moves both alike."""
+    folders = []
+    try:
+        new_root = ROOT
+        if args.rev:
+            new_root = export(args.rev)
+            folders.append(new_root)
+        old_root = None
+        if args.against:
+            old_root = export(args.against)
+            folders.append(old_root)
+        new, old = [], []
+        for _ in range(args.rounds):
+            new.append(measure_in(new_root, args))
+            if old_root:
+                old.append(measure_in(old_root, args))
+        return best_of(new), (best_of(old) if old else None)
+    finally:
+        for f in folders:
+            shutil.rmtree(f, ignore_errors=True)
 
 
 def show(new, old=None, rev=None):
@@ -145,14 +189,18 @@ def main():
     ap.add_argument("--decode", type=int, default=16)
     ap.add_argument("--no-replay", action="store_true")
     ap.add_argument("--against", metavar="REV", help="also measure git revision REV and print new / old")
+    ap.add_argument("--rev", metavar="REV", help="measure git revision REV instead of this checkout")
+    ap.add_argument("--rounds", type=int, default=1,
+                    help="measure the two sides in turn this many times (best of all rounds)")
     ap.add_argument("--measure", metavar="ROOT", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.measure:
         print(json.dumps(measure(args.measure, args.arch, args.txns, args.repeat, not args.no_replay,
                                  args.decode)))
         return
-    old = run_elsewhere(args.against, args) if args.against else None
-    new = measure(ROOT, args.arch, args.txns, args.repeat, not args.no_replay, args.decode)
+    new, old = compare(args)
+    if args.rev:
+        print(f"new side: revision {args.rev}")
     show(new, old, args.against)
 
 
