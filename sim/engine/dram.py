@@ -77,6 +77,8 @@ the fixed-latency model moves writes on its bus like reads and takes them in
 when their bus slot starts.
 """
 
+from array import array
+
 import numpy as np
 
 from ..errors import SimulationStalled
@@ -286,10 +288,11 @@ class ChannelPool:
         self.write_wait = 0.0                            # cycles writes waited for queue room
         self.wait_total = 0.0
         self.latency_total = 0.0
-        self.latencies = []
+        self.latencies = array("d")                  # per read: submit to last data (8 bytes each)
         # live occupancy: transactions submitted and not yet complete
         self.in_flight = 0
-        self._occ = []                              # (t, +1 / -1) as they happen
+        self._occ_t = array("d")                    # when a transaction arrived or left, and
+        self._occ_d = array("b")                    # +1 / -1: compact, a long run logs millions
         self.interleave = d.interleave_bytes
         if self.model == "fixed-latency":
             self.submit = self._submit_fixed
@@ -676,21 +679,23 @@ class ChannelPool:
 
     def _arrive(self, now):
         self.in_flight += 1
-        self._occ.append((now, 1))
+        self._occ_t.append(now)
+        self._occ_d.append(1)
 
     def _left(self, _ev):
         self.in_flight -= 1
-        self._occ.append((self.env.now, -1))
+        self._occ_t.append(self.env.now)
+        self._occ_d.append(-1)
 
     def occupancy(self, total_cycles, bins=OCCUPANCY_BINS):
         """Time-average transactions in the pool: overall, per time bin, and the peak."""
-        if not self._occ or total_cycles <= 0:
+        if not self._occ_t or total_cycles <= 0:
             return {"bins": [0.0] * bins, "bin_cycles": total_cycles / bins if bins else 0.0,
                     "mean": 0.0, "max": 0}
-        ev = np.array(self._occ, dtype=float)
-        order = np.argsort(ev[:, 0], kind="stable")
-        t = ev[order, 0]
-        level = np.cumsum(ev[order, 1])
+        times = np.frombuffer(self._occ_t, dtype=float)
+        order = np.argsort(times, kind="stable")
+        t = times[order]
+        level = np.cumsum(np.frombuffer(self._occ_d, dtype=np.int8)[order].astype(float))
         edges = np.linspace(0.0, total_cycles, bins + 1)
         # integral of the step function up to each edge
         seg_t = np.append(t, max(total_cycles, t[-1]))
@@ -715,7 +720,7 @@ class ChannelPool:
         """The result document's ``dram`` section (before the engine adds peaks)."""
         seconds = total_cycles / (self.arch.clock_ghz * 1e9) if total_cycles else 0.0
         util = (self.busy_cycles / total_cycles).tolist() if total_cycles else [0.0] * self.n
-        lat = np.asarray(self.latencies) if self.latencies else np.zeros(1)
+        lat = np.frombuffer(self.latencies, dtype=float) if self.latencies else np.zeros(1)
         reads = self.txns - self.write_txns
         achieved = (self.bytes / seconds / 1e9) if seconds else 0.0
         out = {
