@@ -11,9 +11,7 @@ from __future__ import annotations
 import copy
 import json
 import math
-from collections import defaultdict
 from itertools import chain
-from operator import itemgetter
 
 import numpy as np
 
@@ -106,22 +104,17 @@ def _dram_states(pool, fetch_state, end):
     channels, so fractions stay per unit and sum to 1.
     """
     n = pool.n
-    iv = fetch_state.intervals
-    m = len(iv)
-    a = np.fromiter(map(itemgetter(0), iv), np.float64, m)
-    b = np.fromiter(map(itemgetter(1), iv), np.float64, m)
+    a, b, raw_all, fetch_keys = fetch_state.interval_arrays()
     b_end = np.minimum(b, end)
     kept = np.flatnonzero(b_end > a)
     # after the fetch unit's last interval: nothing left to fetch
     t0 = np.append(a[kept], b[kept[-1]] if len(kept) else 0.0)
     t1 = np.maximum(np.append(b_end[kept], end), t0)
     # one code per distinct (state, cause) of the fetch unit, then its class here
-    codes = defaultdict(lambda: len(codes))
-    raw = np.fromiter(map(codes.__getitem__, zip(map(itemgetter(2), iv), map(itemgetter(3), iv))),
-                      np.intp, m)[kept]
+    raw = raw_all[kept]
     classes = {}
-    class_of = np.empty(len(codes), dtype=np.intp)
-    for (state, cause), code in codes.items():
+    class_of = np.empty(len(fetch_keys), dtype=np.intp)
+    for code, (state, cause) in enumerate(fetch_keys):
         key = (("idle", None) if state == "idle" else
                ("starved", "fetch_issue") if state == "busy" else ("starved", cause or "fetch"))
         class_of[code] = classes.setdefault(key, len(classes))
@@ -245,7 +238,7 @@ def build_result(stats):
     doc["verdict"] = classify(doc)
     doc["energy"] = energy_section(arch, doc, trace)
     doc["area"] = area_section(arch)
-    intervals = {name: st.intervals for name, st in states.items()}
+    intervals = {name: st.intervals if st.keep_intervals else [] for name, st in states.items()}
     intervals["dram"] = pool.busy_intervals
     return Result(_round(doc), intervals)
 

@@ -9,8 +9,11 @@ states sum to 1 per unit and each starved or blocked interval carries a cause.
 One helper for every unit, so a new unit gets utilization and stalls for free.
 """
 
+from array import array
 from collections import defaultdict
 from itertools import islice
+
+import numpy as np
 
 STATES = ("busy", "starved", "blocked", "idle")
 
@@ -20,7 +23,9 @@ class UnitState:
 
     The unit calls :meth:`set` on each transition (or :meth:`charge_wait` after
     waiting for a transaction). Intervals are kept for the timeline export;
-    consecutive intervals of the same state and cause are merged.
+    consecutive intervals of the same state and cause are merged. They are
+    logged in typed arrays (begin, end, a code per (state, cause)): about 20
+    bytes an interval, where a long run logs millions.
     """
 
     def __init__(self, env, name, keep_intervals=True):
@@ -31,7 +36,38 @@ class UnitState:
         self.cause = "start"
         self.since = env.now
         self.totals = defaultdict(float)   # (state, cause) -> cycles
-        self.intervals = []                # [t0, t1, state, cause]
+        self._t0 = array("d")              # the interval log: begin,
+        self._t1 = array("d")              # end,
+        self._code = array("i")            # and the code of its (state, cause)
+        self._codes = {}                   # (state, cause) -> code
+        self._keys = []                    # code -> (state, cause)
+
+    def _log(self, t0, t1, state, cause):
+        key = (state, cause)
+        code = self._codes.get(key)
+        if code is None:
+            code = self._codes[key] = len(self._keys)
+            self._keys.append(key)
+        ends = self._t1
+        if ends and ends[-1] == t0 and self._code[-1] == code:
+            ends[-1] = t1
+            return
+        self._t0.append(t0)
+        ends.append(t1)
+        self._code.append(code)
+
+    @property
+    def intervals(self):
+        """The log as ``[[t0, t1, state, cause], ...]`` (made on each call: for export)."""
+        keys = self._keys
+        return [[a, b, *keys[c]] for a, b, c in zip(self._t0, self._t1, self._code)]
+
+    def interval_arrays(self):
+        """The log as numpy arrays ``(t0, t1, code)`` and the ``(state, cause)`` of each code."""
+        return (np.frombuffer(self._t0, dtype=float) if self._t0 else np.zeros(0),
+                np.frombuffer(self._t1, dtype=float) if self._t1 else np.zeros(0),
+                np.frombuffer(self._code, dtype=np.int32) if self._code else np.zeros(0, dtype=np.int32),
+                list(self._keys))
 
     def _close(self, t):
         since = self.since
@@ -40,14 +76,7 @@ class UnitState:
         state, cause = self.state, self.cause
         self.totals[state, cause] += t - since
         if self.keep_intervals:
-            iv = self.intervals
-            if iv:
-                last = iv[-1]
-                if last[1] == since and last[2] == state and last[3] == cause:
-                    last[1] = t
-                    self.since = t
-                    return
-            iv.append([since, t, state, cause])
+            self._log(since, t, state, cause)
         self.since = t
 
     def set(self, state, cause=None):
@@ -67,18 +96,19 @@ class UnitState:
         stays charged to the producer itself.
         """
         out = []
-        iv = self.intervals
-        lo, hi = 0, len(iv)
+        begins, ends, codes, keys = self._t0, self._t1, self._code, self._keys
+        lo, hi = 0, len(ends)
         while lo < hi:  # first interval ending after t0
             mid = (lo + hi) // 2
-            if iv[mid][1] <= t0:
+            if ends[mid] <= t0:
                 lo = mid + 1
             else:
                 hi = mid
         i = lo
-        while i < len(iv) and iv[i][0] < t1:
-            a, b, state, cause = iv[i]
-            out.append((min(b, t1), self.name if state == "busy" or not cause else cause))
+        n = len(ends)
+        while i < n and begins[i] < t1:
+            state, cause = keys[codes[i]]
+            out.append((min(ends[i], t1), self.name if state == "busy" or not cause else cause))
             i += 1
         if self.since < t1:  # the open interval, not logged yet
             out.append((t1, self.name if self.state == "busy" or not self.cause else self.cause))
@@ -153,13 +183,7 @@ class UnitState:
         """Log ``[t0, t1)`` as starved by ``cause`` (a piece of a wait, t0 < t1)."""
         self.totals["starved", cause] += t1 - t0
         if self.keep_intervals:
-            iv = self.intervals
-            if iv:
-                last = iv[-1]
-                if last[1] == t0 and last[2] == "starved" and last[3] == cause:
-                    last[1] = t1
-                    return
-            iv.append([t0, t1, "starved", cause])
+            self._log(t0, t1, "starved", cause)
 
     def finish(self, t_end):
         """Close the log at the end of the run; the tail after the last busy is idle."""
