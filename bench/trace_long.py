@@ -9,7 +9,18 @@ shape `dec-8b`: 32 layers, 32 query heads, 8 KV heads, head width 128):
 * ``decode128k``: 16 decode tokens on a 131072-token context (no prefill steps);
 * ``batch32``: a batch of 32 requests, 4096-token prompts (spread 0.5), 16 tokens.
 
+With ``--engine`` each case is then simulated, each case x config in a fresh
+process that builds the trace and runs ``sim.simulate`` (``keep_intervals``
+off, as a sweep runs it): wall seconds of the simulation, peak RSS of the
+process (trace included) and of the trace alone, fetch transactions and DRAM
+transactions per wall second, simulated cycles. ``prompt32k`` runs on every
+bundled datapath (``edge``, ``mid``, ``server``, ``hbm2_stack``), the others on
+``mid``; ``--arch NAME`` (repeatable) replaces those lists. Each process's
+address space is capped (``--limit-gib``, 8 by default); a case that fails
+(refused, out of memory, killed) prints its exit status and last line of error.
+
     python bench/trace_long.py [--repeat 3] [--case NAME]
+    python bench/trace_long.py --engine [--repeat 1] [--case NAME] [--arch NAME] [--skip-build]
 """
 
 import argparse
@@ -57,20 +68,91 @@ def run_case(name):
                       "max_kv_rows": max(s.kv_rows for s in back.steps)}))
 
 
+ENGINE_ARCHS = {"prompt32k": ["edge", "mid", "server", "hbm2_stack"], "decode128k": ["mid"], "batch32": ["mid"]}
+
+
+def run_engine_case(name, arch_name, limit_gib):
+    """One case simulated on one bundled config in this process; prints a JSON line.
+    The address space is capped at ``limit_gib`` so a case that outgrows it fails
+    (MemoryError) instead of taking the machine down."""
+    resource.setrlimit(resource.RLIMIT_AS, (int(limit_gib * 2**30),) * 2)
+    sys.path.insert(0, ROOT)
+    import sim
+    from sim.bundled import config
+    from sim.trace.synth import synth_trace
+
+    arch = sim.load_arch(config(arch_name))
+    sim.simulate(arch, synth_trace(prompt_tokens=64, decode_steps=1, layers=1, heads=2))  # load the compiled loops
+    t0 = time.perf_counter()
+    trace = synth_trace(**CASES[name], seed=1)
+    t1 = time.perf_counter()
+    trace_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    doc = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+    t2 = time.perf_counter()
+    rss_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    wall = t2 - t1
+    print(json.dumps({"case": name, "arch": arch_name, "steps": len(trace.steps), "synth_s": t1 - t0,
+                      "sim_s": wall, "trace_rss_mib": trace_rss, "peak_rss_mib": rss_mib,
+                      "fetch_txns": doc["fetch"]["transactions"], "dram_txns": doc["dram"]["transactions"],
+                      "fetch_txn_per_s": doc["fetch"]["transactions"] / wall,
+                      "dram_txn_per_s": doc["dram"]["transactions"] / wall, "cycles": doc["cycles"],
+                      "dram_gib": doc["dram"]["bytes"] / 2**30, "bound": doc["bounds"]["bound"]}))
+
+
+def engine_table(names, archs, repeat, limit_gib):
+    print(f"\n{'case':<11} {'arch':<11} {'steps':>6} {'sim s':>8} {'fetch txn/s':>12} {'DRAM txn/s':>11} "
+          f"{'cycles':>15} {'DRAM GiB':>9} {'trace RSS':>10} {'peak RSS MiB':>13}   (best of {repeat}; RSS: largest)")
+    for name in names:
+        for arch in archs or ENGINE_ARCHS[name]:
+            runs = []
+            for _ in range(repeat):
+                proc = subprocess.run([sys.executable, __file__, "--one-engine", name, arch, str(limit_gib)],
+                                      capture_output=True, text=True)
+                if proc.returncode:
+                    last = (proc.stderr.strip().splitlines() or ["(no message)"])[-1]
+                    print(f"{name:<11} {arch:<11} failed: exit {proc.returncode}: {last}")
+                    break
+                runs.append(json.loads(proc.stdout.strip().splitlines()[-1]))
+            if not runs:
+                continue
+            best = min(runs, key=lambda r: r["sim_s"])
+            print(f"{name:<11} {arch:<11} {best['steps']:>6} {best['sim_s']:>8.1f} {best['fetch_txn_per_s']:>12,.0f} "
+                  f"{best['dram_txn_per_s']:>11,.0f} {best['cycles']:>15,} {best['dram_gib']:>9.2f} "
+                  f"{max(r['trace_rss_mib'] for r in runs):>10.0f} {max(r['peak_rss_mib'] for r in runs):>13.0f}",
+                  flush=True)
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--case", choices=sorted(CASES), action="append")
+    ap.add_argument("--engine", action="store_true", help="also simulate each case (see above)")
+    ap.add_argument("--arch", action="append", help="bundled config for --engine (repeatable)")
+    ap.add_argument("--skip-build", action="store_true", help="with --engine: skip the trace-building table")
     ap.add_argument("--one", help=argparse.SUPPRESS)
+    ap.add_argument("--limit-gib", type=float, default=8.0,
+                    help="address-space cap of each --engine process (default 8 GiB)")
+    ap.add_argument("--one-engine", nargs=3, help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.one:
         run_case(args.one)
         return
+    if args.one_engine:
+        name, arch, limit = args.one_engine
+        run_engine_case(name, arch, float(limit))
+        return
+    if not (args.engine and args.skip_build):
+        build_table(args.case or list(CASES), args.repeat)
+    if args.engine:
+        engine_table(args.case or list(CASES), args.arch, args.repeat, args.limit_gib)
+
+
+def build_table(names, repeat):
     print(f"{'case':<11} {'steps':>6} {'synth s':>8} {'write s':>8} {'read s':>7} {'work s':>7} "
-          f"{'file MiB':>9} {'peak RSS MiB':>13}   (best of {args.repeat}; RSS: largest)")
-    for name in args.case or list(CASES):
+          f"{'file MiB':>9} {'peak RSS MiB':>13}   (best of {repeat}; RSS: largest)")
+    for name in names:
         runs = []
-        for _ in range(args.repeat):
+        for _ in range(repeat):
             out = subprocess.run([sys.executable, __file__, "--one", name], check=True,
                                  capture_output=True, text=True).stdout
             runs.append(json.loads(out.strip().splitlines()[-1]))
