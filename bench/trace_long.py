@@ -18,9 +18,11 @@ bundled datapath (``edge``, ``mid``, ``server``, ``hbm2_stack``), the others on
 ``mid``; ``--arch NAME`` (repeatable) replaces those lists. Each process's
 address space is capped (``--limit-gib``, 8 by default); a case that fails
 (refused, out of memory, killed) prints its exit status and last line of error.
+``--skip-budget`` calls the engine directly, without ``sim.budget``'s up-front
+estimate and refusal, to measure what the engine itself needs.
 
     python bench/trace_long.py [--repeat 3] [--case NAME]
-    python bench/trace_long.py --engine [--repeat 1] [--case NAME] [--arch NAME] [--skip-build]
+    python bench/trace_long.py --engine [--repeat 1] [--case NAME] [--arch NAME] [--skip-build] [--skip-budget]
 """
 
 import argparse
@@ -71,7 +73,7 @@ def run_case(name):
 ENGINE_ARCHS = {"prompt32k": ["edge", "mid", "server", "hbm2_stack"], "decode128k": ["mid"], "batch32": ["mid"]}
 
 
-def run_engine_case(name, arch_name, limit_gib):
+def run_engine_case(name, arch_name, limit_gib, skip_budget=False):
     """One case simulated on one bundled config in this process; prints a JSON line.
     The address space is capped at ``limit_gib`` so a case that outgrows it fails
     (MemoryError) instead of taking the machine down."""
@@ -87,7 +89,13 @@ def run_engine_case(name, arch_name, limit_gib):
     trace = synth_trace(**CASES[name], seed=1)
     t1 = time.perf_counter()
     trace_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    doc = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+    if skip_budget:  # the engine itself, without sim.budget's estimate and refusal
+        from sim.engine.datapath import run_datapath
+        from sim.result import build_result
+
+        doc = build_result(run_datapath(arch, trace, keep_intervals=False)).to_dict()
+    else:
+        doc = sim.simulate(arch, trace, keep_intervals=False).to_dict()
     t2 = time.perf_counter()
     rss_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     wall = t2 - t1
@@ -99,14 +107,15 @@ def run_engine_case(name, arch_name, limit_gib):
                       "dram_gib": doc["dram"]["bytes"] / 2**30, "bound": doc["bounds"]["bound"]}))
 
 
-def engine_table(names, archs, repeat, limit_gib):
+def engine_table(names, archs, repeat, limit_gib, skip_budget):
     print(f"\n{'case':<11} {'arch':<11} {'steps':>6} {'sim s':>8} {'fetch txn/s':>12} {'DRAM txn/s':>11} "
           f"{'cycles':>15} {'DRAM GiB':>9} {'trace RSS':>10} {'peak RSS MiB':>13}   (best of {repeat}; RSS: largest)")
     for name in names:
         for arch in archs or ENGINE_ARCHS[name]:
             runs = []
             for _ in range(repeat):
-                proc = subprocess.run([sys.executable, __file__, "--one-engine", name, arch, str(limit_gib)],
+                proc = subprocess.run([sys.executable, __file__, "--one-engine", name, arch, str(limit_gib)]
+                                      + (["--skip-budget"] if skip_budget else []),
                                       capture_output=True, text=True)
                 if proc.returncode:
                     last = (proc.stderr.strip().splitlines() or ["(no message)"])[-1]
@@ -132,6 +141,8 @@ def main():
     ap.add_argument("--one", help=argparse.SUPPRESS)
     ap.add_argument("--limit-gib", type=float, default=8.0,
                     help="address-space cap of each --engine process (default 8 GiB)")
+    ap.add_argument("--skip-budget", action="store_true",
+                    help="with --engine: run the engine without sim.budget's up-front refusal (the cap still holds)")
     ap.add_argument("--one-engine", nargs=3, help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.one:
@@ -139,12 +150,12 @@ def main():
         return
     if args.one_engine:
         name, arch, limit = args.one_engine
-        run_engine_case(name, arch, float(limit))
+        run_engine_case(name, arch, float(limit), args.skip_budget)
         return
     if not (args.engine and args.skip_build):
         build_table(args.case or list(CASES), args.repeat)
     if args.engine:
-        engine_table(args.case or list(CASES), args.arch, args.repeat, args.limit_gib)
+        engine_table(args.case or list(CASES), args.arch, args.repeat, args.limit_gib, args.skip_budget)
 
 
 def build_table(names, repeat):
