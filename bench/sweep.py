@@ -22,7 +22,9 @@ store holds byte-identical records. ``--values N`` shortens the extra axis.
     python bench/sweep.py [--values 18] [--dask 1,2,4] [--jobs 2] [--skip-demo] [--skip-kernels]
 
 Wall figures depend on the load of the machine: the load average is printed
-before and after each run.
+before and after each run, and so are the CPU seconds each run took (this
+process and the worker processes it waited for), which other work on the
+machine does not inflate.
 """
 
 import argparse
@@ -57,6 +59,14 @@ LOAD = textwrap.dedent("""
     r = T.load_kernels()
     print(json.dumps({"numba_import": t1 - t0, "numba_start": t3 - t2, **r._asdict()}))
 """)
+
+def cpu_seconds():
+    """User + system seconds of this process and of the children it has waited for."""
+    import resource
+
+    own, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return own.ru_utime + own.ru_stime + kids.ru_utime + kids.ru_stime
+
 
 def load_avg():
     return ", ".join(f"{x:.2f}" for x in os.getloadavg())
@@ -167,9 +177,17 @@ def sweep(tmp, values, jobs, dask):
     runs += [(f"dask, {w} local worker{'s' if w > 1 else ''}", None, w) for w in dask]
     print(f"\nsweep: {os.path.relpath(SPEC, ROOT)} x fetch.issue_window ({values} values); "
           f"{os.cpu_count()} cores")
+    # this process's imports and kernels once, before any timed run (the serial run would pay
+    # them alone, the pool's workers inherit them); Dask workers ready themselves, timed
+    import sim.engine.datapath  # noqa: F401
+    import sim.result  # noqa: F401
+    from sim.sweep.worker import prepare
+
+    prepare()
     for label, j, w in runs:
         out = os.path.join(tmp, label.split(",")[0].replace(" ", "_") + f"_{j or w}")
         la = load_avg()
+        cpu0 = cpu_seconds()
         t0 = time.perf_counter()
         extra = ""
         if w is None:
@@ -190,16 +208,19 @@ def sweep(tmp, values, jobs, dask):
             mib = ", ".join(f"{m:.0f}" for m in rss)
             extra = f"; cluster start {start:.1f} s; per worker: ready in {ready} s (kernels {kern} s), RSS {mib} MiB"
         wall = time.perf_counter() - t0
+        cpu = cpu_seconds() - cpu0
         c = run.summary["counts"]
         n = n or run.executed
         assert run.executed == n, c
         stores[label] = records(out)
-        rows.append((label, wall, c, la, load_avg(), extra))
+        rows.append((label, wall, cpu, c, la, load_avg(), extra))
     base = rows[0][1]
-    print(f"  {'backend':<28} {'wall s':>8} {'points/min':>11} {'vs serial':>9}")
-    for label, wall, c, la, lb, extra in rows:
-        print(f"  {label:<28} {wall:8.1f} {n / wall * 60:11.0f} {base / wall:8.2f}x  "
+    print(f"  {'backend':<28} {'wall s':>8} {'points/min':>11} {'vs serial':>9} {'CPU s':>7}")
+    for label, wall, cpu, c, la, lb, extra in rows:
+        print(f"  {label:<28} {wall:8.1f} {n / wall * 60:11.0f} {base / wall:8.2f}x {cpu:7.1f}  "
               f"({c['ok']} ok, {c['error']} failed; load {la} -> {lb}){extra}")
+    print("  CPU s: this process and every worker process it waited for (user + system); on a machine"
+          " other work shares, it shows what a run costs where the wall time cannot")
     from sim.sweep.plan import make_plan
     from sim.sweep.spec import load_spec
 
