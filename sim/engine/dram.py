@@ -651,6 +651,11 @@ class ChannelPool:
             t_first = t_start
         if t_done < t_first:
             t_done = t_first
+        if t_done < now:
+            # a share held for a row-hits-first decision is placed from its arrival, so its
+            # data may be due before the decision was taken: it is handed over at the decision
+            t_done = now
+            t_first = min(t_first, t_done)
         if nbursts is None:
             nbursts = len(txn.bursts)
         self.bursts += nbursts
