@@ -2,10 +2,13 @@
 
 :func:`check_run` is called by :func:`sim.simulate` after the config and the
 trace are loaded and before the engine builds anything. It refuses, with the
-estimate, a pair whose DRAM address map would not fit 62 bits or whose
-program would hold more transactions than the machine has memory for. The
-transaction count is an upper estimate from the tiling rule's own formulas
-(query blocks x chunks per head, K, V and LSB planes), not a run.
+estimate, a pair whose DRAM address map would not fit 62 bits or whose run
+would log more than the machine has memory for. The program is made step by
+step, so what grows with the run is its logs: per transaction, the channel
+pool's share records and bus intervals, the fetch unit's state log and the
+occupancy log (``BYTES_PER_TXN``, measured). The transaction count is an upper
+estimate from the tiling rule's own formulas (query blocks x chunks per K/V
+group, K, V and LSB planes; the causal triangle, the window), not a run.
 """
 
 from __future__ import annotations
@@ -13,10 +16,15 @@ from __future__ import annotations
 import math
 import os
 
+import numpy as np
+
 from .errors import InputError
 
 ADDRESS_BITS = 62
-BYTES_PER_TXN = 1024          # Python objects of one transaction and its ops, measured order of magnitude
+# peak RSS above the loaded baseline per transaction: 1.8 KB on the 24-layer x 16-head 1024+256
+# replay of bench/llm_replay.py (920 MiB for 510,720 transactions; the pool's growing tables
+# and the run's logs, the program being made step by step)
+BYTES_PER_TXN = 2048
 MAX_TXNS = 50_000_000
 
 
@@ -32,11 +40,12 @@ def physical_memory() -> int | None:
 
 
 def address_span(arch, trace) -> int:
-    """Bytes the address map spans: regions per layer, plane and head, each the largest context."""
+    """Bytes the address map spans: regions per layer of each request, plane and head, each
+    the largest context."""
     from .engine.addrmap import PLANES, REGION_ALIGN, row_bytes
 
     steps = trace.steps
-    layers = max(s.layer for s in steps) + 1
+    layers = (max(s.layer for s in steps) + 1) * (max(s.request for s in steps) + 1)
     heads = max(max(int(s.heads.max()), int(s.kv_heads.max())) for s in steps) + 1
     rows = max(s.kv_rows for s in steps)
     d = max(s.head_dim for s in steps)
@@ -46,7 +55,7 @@ def address_span(arch, trace) -> int:
 
 
 def transactions(arch, trace, grain_rows=None) -> int:
-    """Upper estimate of the transactions the engine's program holds."""
+    """Upper estimate of the transactions the engine issues for the trace."""
     from .engine.tiling import chunk_rows, query_block_rows
 
     grain = grain_rows or arch.engine.grain_rows
@@ -54,13 +63,20 @@ def transactions(arch, trace, grain_rows=None) -> int:
     lsb = arch.precision.k_lsb_bits > 0
     for s in trace.steps:
         d = s.head_dim
-        nqb = math.ceil(s.q_rows / query_block_rows(arch, d, s.q_rows))
+        groups = len(np.unique(s.kv_heads))        # a K/V head's rows are fetched once for its group
+        group = -(-s.n_heads // groups)
+        nqb = math.ceil(s.q_rows / query_block_rows(arch, d, s.q_rows, group))
         kc = chunk_rows(arch, "K", d, grain)
         vc = chunk_rows(arch, "V", d, grain)
-        k = math.ceil(s.n_kept_k / kc)
-        v = math.ceil(int(s.kept_v.max()) / vc)
-        per_head = nqb * (k + v) + (k if lsb and int(s.lsb_rows.max()) else 0)
-        total += s.n_heads * per_head
+        keys = s.n_kept_k if not s.window else min(s.n_kept_k, s.window + s.q_rows)
+        k = math.ceil(keys / kc)
+        v = math.ceil(min(int(s.kept_v.max()), keys) / vc)
+        # causal: block b sees about (b + 1) / nqb of the keys
+        blocks = (nqb + 1) / 2 if s.causal else nqb
+        rounding = 2 * nqb if s.causal else 0      # a partly seen chunk per plane and block
+        # the LSB recompute: a KL chunk and its MSB chunk again, per block
+        per_group = math.ceil(blocks * (k + v)) + rounding + nqb + (2 * k * nqb if lsb and int(s.lsb_rows.max()) else 0)
+        total += groups * per_group
     return total
 
 

@@ -155,3 +155,18 @@ def test_causal_prefill_skips_key_tiles_above_the_diagonal():
     ka, kb = a["dram"]["bytes_by_plane"]["K"], b["dram"]["bytes_by_plane"]["K"]
     assert kb < 0.7 * ka
     assert b["cycles"] < a["cycles"]
+
+
+@pytest.mark.parametrize("cfg", ["edge", "mid"])
+def test_the_run_budget_never_underestimates_the_transactions(cfg):
+    """sim.budget refuses runs from an upper estimate of their transactions: it must stay
+    above what the engine issues for grouped, causal, windowed and LSB steps alike."""
+    from sim.budget import transactions
+
+    for kw in (dict(prompt_tokens=512, decode_steps=8, layers=2, heads=4, lsb_fraction=0.3, value_keep=0.5),
+               dict(prompt_tokens=700, decode_steps=3, layers=2, heads=4, kv_heads=2, lsb_fraction=0.5,
+                    causal=True, window=100)):
+        tr = synth_trace(head_dim=64, **kw)
+        arch = _arch(cfg, **{"engine.grain_rows": 16})
+        issued = sim.simulate(arch, tr, keep_intervals=False).to_dict()["fetch"]["transactions"]
+        assert transactions(arch, tr) >= issued
