@@ -32,14 +32,26 @@ from .tiling import plan_step, selects_next
 from .txn import Txn
 
 
-class Feed:
-    """One unit's operations in program order, made a step at a time as the unit
-    reaches them: only the steps in flight are held, so a run's memory follows
-    the work in flight, not the length of the trace."""
+WAIT = object()   # Feed.take: the next operation is not made yet; wait for Feed.wait()
 
-    def __init__(self, more):
+
+class Feed:
+    """One unit's operations in program order, made a step at a time as the units
+    reach them: only the steps in flight are held, so a run's memory follows the
+    work in flight, not the length of the trace.
+
+    Iterating makes the next step when the feed runs dry. A unit whose
+    operations are sparse (the selector, the write-back: a trace may have none)
+    must not make steps ahead of the fetch unit, so it uses :meth:`take` and
+    waits for :meth:`wait` instead.
+    """
+
+    def __init__(self, more, env=None):
         self.ops = deque()
         self.more = more          # makes the next step; False once every step is made
+        self.env = env
+        self.done = False         # every step made
+        self.event = None         # fired when a step is made or the last was
 
     def append(self, op):
         self.ops.append(op)
@@ -54,23 +66,45 @@ class Feed:
                 raise StopIteration
         return ops.popleft()
 
+    def take(self):
+        """The next operation, None at the end, or WAIT (nothing made yet)."""
+        if self.ops:
+            return self.ops.popleft()
+        return None if self.done else WAIT
+
+    def wait(self):
+        if self.event is None:
+            self.event = self.env.event()
+        return self.event
+
+    def notify(self, done):
+        self.done = done
+        ev, self.event = self.event, None
+        if ev is not None:
+            ev.succeed()
+
 
 class Program:
     """Per-unit operation feeds for one trace on one architecture, and its work counts
     (complete once every feed has been read to its end)."""
 
-    def __init__(self, shared_array, n_steps, more):
+    def __init__(self, shared_array, n_steps, more, env=None):
         self.fetch = Feed(more)
         self.dot_qk = Feed(more)
         self.dot_pv = self.dot_qk if shared_array else Feed(more)
         self.softmax = Feed(more)
-        self.topk = Feed(more)
-        self.writes = Feed(more)       # (step's end event, its write transactions)
+        self.topk = Feed(more, env)        # sparse: taken with Feed.take
+        self.writes = Feed(more, env)      # (step's end event, its write transactions)
         self.step_times = [None] * n_steps
         self.counts = {"macs_qk": 0, "macs_lsb": 0, "macs_pv": 0, "softmax_elements": 0,
                        "topk_comparisons": 0.0, "topk_selections": 0, "value_selections": 0}
         self.macs_by_dim = {}
         self.compulsory_bytes = 0
+
+    def made(self, done):
+        """A step was made (``done``: the last one): wake the units that wait for one."""
+        self.topk.notify(done)
+        self.writes.notify(done)
 
 
 SHAPE_CACHE = 64   # step plans kept for reuse (the layers of a decode token share one)
@@ -188,7 +222,7 @@ class ProgramBuilder:
         self.env, self.arch, self.trace = env, arch, trace
         self.amaps, self.buffers = amaps, buffers
         self.grain_rows, self.rng = grain_rows, rng
-        self.prog = Program(arch.dot.arrays == "shared", len(trace.steps), self._more)
+        self.prog = Program(arch.dot.arrays == "shared", len(trace.steps), self._more, env)
         self.shapes = {}
         self.desc = 0   # fetch descriptor: one plane of one head group for one query block
         self.layers = max(s.layer for s in trace.steps) + 1
@@ -224,6 +258,7 @@ class ProgramBuilder:
         times, env = self.prog.step_times, self.env
         done.callbacks.append(lambda _e, i=s: times.__setitem__(i, env.now))
         self._writes(st, done)
+        self.prog.made(self.made == len(steps))
         return True
 
     def _shape(self, step, layer):

@@ -87,6 +87,11 @@ class UnitState:
         self.state = state
         self.cause = cause
 
+    def relabel(self, state, cause):
+        """Give the interval open since the last transition ``state`` and ``cause``
+        (what the unit turned out to be waiting for), without closing it."""
+        self.state, self.cause = state, cause
+
     def explain(self, t0, t1):
         """Split ``[t0, t1)`` of this unit's time into (t_end, cause) pieces.
 

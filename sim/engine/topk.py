@@ -107,7 +107,19 @@ def topk_process(env, ops, comparators, latency, state):
     """Run selections in order."""
     from .dot import later
 
-    for op in ops:
+    from .program import WAIT
+
+    while True:
+        op = ops.take()
+        if op is WAIT:          # the step is not made yet: its selections cannot have started
+            yield ops.wait()
+            continue
+        if op is None:
+            break
+        # the time spent waiting for the step to be made belongs to what the op waits for
+        first = next((cause for ev, cause in op.waits if not ev.processed), None)
+        if first is not None:
+            state.relabel("starved", first)
         for ev, cause in op.waits:
             if not ev.processed:
                 state.set("starved", cause)
@@ -116,4 +128,5 @@ def topk_process(env, ops, comparators, latency, state):
         yield env.timeout(service_cycles(op.comparisons, comparators))
         later(env, latency, op.done)
         state.set("starved", None)
+    state.relabel("idle", None)     # the unit had nothing left since its last selection
     state.set("idle")

@@ -12,7 +12,16 @@ run ends with its last step.
 
 def writeback_process(env, writes, pool, router, burst):
     """Post each ``(end event, write transactions)`` of ``writes`` once its step has ended."""
-    for done, txns in writes:
+    from .program import WAIT
+
+    while True:
+        item = writes.take()
+        if item is WAIT:
+            yield writes.wait()
+            continue
+        if item is None:
+            return
+        done, txns = item
         if not done.processed:
             yield done
         for txn in txns:
