@@ -28,60 +28,10 @@ import numpy as np
 from . import dot as dotmod
 from . import softmax as smmod
 from . import topk as tkmod
-from .tiling import plan_step, selects_next
+from .feed import Feed
+from .plan import plan_step
+from .tiling import selects_next
 from .txn import Txn
-
-
-WAIT = object()   # Feed.take: the next operation is not made yet; wait for Feed.wait()
-
-
-class Feed:
-    """One unit's operations in program order, made a step at a time as the units
-    reach them: only the steps in flight are held, so a run's memory follows the
-    work in flight, not the length of the trace.
-
-    Iterating makes the next step when the feed runs dry. A unit whose
-    operations are sparse (the selector, the write-back: a trace may have none)
-    must not make steps ahead of the fetch unit, so it uses :meth:`take` and
-    waits for :meth:`wait` instead.
-    """
-
-    def __init__(self, more, env=None):
-        self.ops = deque()
-        self.more = more          # makes the next step; False once every step is made
-        self.env = env
-        self.done = False         # every step made
-        self.event = None         # fired when a step is made or the last was
-
-    def append(self, op):
-        self.ops.append(op)
-
-    def __iter__(self):
-        return self
-
-    def __next__(self):
-        ops = self.ops
-        while not ops:
-            if not self.more():
-                raise StopIteration
-        return ops.popleft()
-
-    def take(self):
-        """The next operation, None at the end, or WAIT (nothing made yet)."""
-        if self.ops:
-            return self.ops.popleft()
-        return None if self.done else WAIT
-
-    def wait(self):
-        if self.event is None:
-            self.event = self.env.event()
-        return self.event
-
-    def notify(self, done):
-        self.done = done
-        ev, self.event = self.event, None
-        if ev is not None:
-            ev.succeed()
 
 
 class Program:

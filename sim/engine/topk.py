@@ -107,7 +107,7 @@ def topk_process(env, ops, comparators, latency, state):
     """Run selections in order."""
     from .dot import later
 
-    from .program import WAIT
+    from .feed import WAIT
 
     while True:
         op = ops.take()

@@ -12,7 +12,7 @@ run ends with its last step.
 
 def writeback_process(env, writes, pool, router, burst):
     """Post each ``(end event, write transactions)`` of ``writes`` once its step has ended."""
-    from .program import WAIT
+    from .feed import WAIT
 
     while True:
         item = writes.take()

@@ -57,7 +57,8 @@ def closed_form(arch, trace, grain_rows=None):
     every step exactly (:meth:`sim.trace.step.Step.work`) and the bytes the tiling rule
     moves, each request in its own DRAM region as the engine places it."""
     from ..engine.addrmap import AddressMap
-    from ..engine.tiling import plan_step, selects_next, step_traffic
+    from ..engine.plan import plan_step
+    from ..engine.tiling import selects_next, step_traffic
 
     g = arch.engine.grain_rows if grain_rows is None else grain_rows
     steps = trace.steps
