@@ -17,7 +17,7 @@ the block sees; in prefill the block's visible keys are fetched and
 
 import numpy as np
 
-from .tiling import BlockPlan, _bytes, _half, split
+from .tiling import BlockPlan, _bytes, _half, even_pick, split
 from .topk import select_cost
 
 
@@ -105,7 +105,7 @@ def plan_banded(arch, amap, step, layer, gp, idx, keys, blocks, cuts):
         bp.qk_macs = per if bp.k_idx is None else [per[i] for i in bp.k_idx]
         bp.elements = len(gp.heads) * int((hi - lo).sum())
         _plan_lsb_rows(arch, amap, step, layer, gp, bp, keys, r0, lo, hi, flagged, klc, lsb_hull)
-        vplan.plan_block(bp, r0, lo, hi, span)
+        vplan.plan_block(bp, lo, hi, span)
         gp.blocks.append(bp)
     if lsb_hull:
         a, b = min(x for x, _y in lsb_hull), max(y for _x, y in lsb_hull)
@@ -159,7 +159,7 @@ class _ValuePlan:
         self.arch, self.amap, self.step, self.layer, self.gp = arch, amap, step, layer, gp
         self.idx, self.keys, self.vc = idx, keys, vc
         self.half = _half(arch, "V")
-        self.sets = [self._positions(lo, span) for _r0, lo, _hi, span in ranges]
+        self.sets = [self._positions(span) for _r0, _lo, _hi, span in ranges]
         union = [s for s in self.sets if len(s)]
         gp.v_positions = np.unique(np.concatenate(union)) if union else keys[:0]
         gp.v_bytes = _bytes(amap, layer, "V", gp.kv, gp.v_positions)
@@ -167,7 +167,7 @@ class _ValuePlan:
         if gp.v_resident:
             gp.v_chunks, self.bounds = _cut(amap, layer, "V", gp.kv, gp.v_positions, 0, vc, self.half)
 
-    def _positions(self, lo, span):
+    def _positions(self, span):
         """V positions the block fetches: the union over the group's heads."""
         a, b = span
         seen = self.keys[a:b]
@@ -180,22 +180,18 @@ class _ValuePlan:
                 vi = step.kept_v_idx[j]
                 parts.append(vi[(vi >= seen[0]) & (vi <= seen[-1])] if len(seen) else vi[:0])
             else:
-                kv = min(int(step.kept_v[j]), len(seen))
-                pick = np.unique(np.round(np.linspace(0, len(seen) - 1, kv)).astype(np.int64)) if kv else []
-                parts.append(seen[pick])
+                parts.append(even_pick(seen, int(step.kept_v[j])))
         return parts[0] if len(parts) == 1 else np.unique(np.concatenate(parts))
 
     def _use(self, j, q, lo, hi):
         """V rows each query row of head ``j`` multiplies (the rule of Step.work)."""
         step = self.step
         if step.kept_v_idx is not None:
-            vi = step.kept_v_idx[j]
-            top = np.searchsorted(vi, q, side="right") if step.causal else np.full(len(q), len(vi))
-            low = np.searchsorted(vi, q - step.window, side="right") if step.window else 0
-            return np.maximum(top - low, 0)
+            v_lo, v_hi = row_ranges(step.kept_v_idx[j], q, step.causal, step.window)
+            return v_hi - v_lo
         return np.minimum(int(step.kept_v[j]), hi - lo)
 
-    def plan_block(self, bp, r0, lo, hi, span):
+    def plan_block(self, bp, lo, hi, span):
         gp, step = self.gp, self.step
         mine = self.sets[bp.block]
         if gp.v_resident:

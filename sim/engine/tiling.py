@@ -181,14 +181,18 @@ def chunk_rows(arch, plane, head_dim, grain_rows):
 
 def value_positions(step, j):
     """Positions of the V rows kept for active head index ``j``."""
-    k = step.kept_k
-    kv = int(step.kept_v[j])
     if step.kept_v_idx is not None:
         return step.kept_v_idx[j]
-    if kv >= len(k):
-        return k
-    pick = np.unique(np.round(np.linspace(0, len(k) - 1, kv)).astype(np.int64))
-    return k[pick]
+    return even_pick(step.kept_k, int(step.kept_v[j]))
+
+
+def even_pick(rows, keep):
+    """``keep`` of the sorted ``rows`` spread evenly over them (all when ``keep`` covers them)."""
+    if keep >= len(rows):
+        return rows
+    if keep <= 0:
+        return rows[:0]
+    return rows[np.unique(np.round(np.linspace(0, len(rows) - 1, keep)).astype(np.int64))]
 
 
 def split(amap, layer, planes, segments, max_rows, max_bytes):

@@ -12,6 +12,8 @@ import math
 
 import numpy as np
 
+from .feed import WAIT
+
 
 def harmonic(n):
     """H_n, the n-th harmonic number (H_0 = 0)."""
@@ -106,8 +108,6 @@ class TopkOp:
 def topk_process(env, ops, comparators, latency, state):
     """Run selections in order."""
     from .dot import later
-
-    from .feed import WAIT
 
     while True:
         op = ops.take()

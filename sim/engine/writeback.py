@@ -9,11 +9,11 @@ reads. Writes still queued when the last step ends are not waited for: the
 run ends with its last step.
 """
 
+from .feed import WAIT
+
 
 def writeback_process(env, writes, pool, router, burst):
     """Post each ``(end event, write transactions)`` of ``writes`` once its step has ended."""
-    from .feed import WAIT
-
     while True:
         item = writes.take()
         if item is WAIT:
