@@ -427,7 +427,8 @@ def drive(path=None):
     for k, (ch, gb, row) in enumerate(batches):
         now += 37.0 * (k % 3)
         times = np.full(3, -np.inf)
-        assert T.serve_and_book(ch, gb, row, now, now, times, *pool._state_args) >= 0
+        pos = np.arange(len(ch), dtype=np.int64)
+        assert T.serve_and_book(ch, gb, row, pos, now, now, times, *pool._state_args, 1) >= 0
         out.append(times.copy())
     state = {name: getattr(pool, name) for name in STATE}
     state["times"] = np.array(out)

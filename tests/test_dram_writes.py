@@ -148,7 +148,9 @@ def test_a_50_50_random_mix_is_slower_than_reads_by_the_turnarounds(name, req):
     (:func:`turnaround_cost_ns`) for the fewest drains the write queue allows: each drain
     moves at most (queue + one request - low mark) bursts. The last drain may end the
     run with no read after it, so one drain is not counted."""
-    arch = preset(name, **{"dram.channels": 1, "fetch.request_bytes": req})
+    # a check of the memory: the fetch unit's in-flight limit (the pool applies it to reads
+    # request by request) is lifted, as in the JEDEC checks
+    arch = preset(name, **{"dram.channels": 1, "fetch.request_bytes": req, "fetch.inflight": 65536})
     d = arch.dram
     rng = np.random.default_rng(5)
     n = 4000

@@ -28,6 +28,17 @@ open). A channel's queue holds ``dram.queue_depth`` requests (see
 :class:`RequestSlots`); the channel serves them first come first served (per
 bank, in order), or lets row hits go first.
 
+Requests in flight. A read transaction is a run of requests (``fetch.request_bytes``
+each, per channel). They enter in address order, each once its channel's queue
+has room for it and the fetch unit has a free request slot (``fetch.inflight``
+over all channels); a slot frees once the request's data has arrived and the
+earlier requests of the same buffer's stream have theirs (the fetch unit hands
+data over in order). A transaction that fits whole when it arrives enters at
+once; a larger one enters request by request as room frees, so it never holds
+more than the limits allow -- exactly what the same bytes cut into small
+transactions get. Under ``row_hits_first`` the pool leaves the in-flight count
+to the fetch unit (a transaction's shares are placed at different decisions).
+
 Writes (``txn.is_write``) are posted: each channel's share enters the
 channel's write queue of ``dram.write_queue`` bursts once there is room (the
 burst that many places ahead has left), and the transaction's event fires
@@ -41,8 +52,8 @@ write tRTW after a read.
 
 Transaction grain: cutting a stream into more transactions must not change
 the answer, so nothing here depends on how bursts are grouped, only on their
-order: queue room is counted in requests, spacing across share boundaries is
-the same as inside a share, and under row hits first a held share keeps the
+order: queue room and fetch slots are counted request by request, spacing
+across share boundaries is the same as inside a share, and under row hits first a held share keeps the
 time it arrived (the controller could open its row from then; only the order
 is decided later). Row hits first itself reorders whole shares, so a finer
 grain gives it more to reorder.
@@ -88,6 +99,8 @@ from .dram_timing import (B_ACT, B_CLOSE, B_COL, B_PRE_MIN, B_PRE_READY, B_REF_O
                           serve_addresses, serve_and_book, serve_fixed)
 
 OCCUPANCY_BINS = 32
+# the fetch unit's streams, one per buffer: data is handed over in order within each
+_STREAM = {"Q": 0, "V": 2}            # the rest (K, KL) fill the key buffer: 1
 
 
 def burst_cycles(arch):
@@ -171,9 +184,10 @@ class RequestSlots:
         self.make_room(1)
         T.slots_add(self.H, self.TN, self.CF, channel, float(first), float(done), float(amount))
 
-    def make_room(self, shares=1):
-        """Room for ``shares`` more shares per channel."""
-        need = self.TN[:, T.N_HEAP].max() + (shares + 1) * (T.PIECES + 1)
+    def make_room(self, bursts=1):
+        """Room for one more share of ``bursts`` bursts per channel, taken in whole or a
+        request at a time."""
+        need = self.TN[:, T.N_HEAP].max() + bursts + 2 * (T.PIECES + 1)
         if need > self.H.shape[1]:
             self.H = _grown(self.H, need, axis=1)
 
@@ -270,6 +284,15 @@ class ChannelPool:
         self.req_bursts = max(1, arch.fetch.request_bytes // self.burst)
         self.free_at = np.zeros(self.n)
         self.outstanding = RequestSlots(self.n)
+        # the fetch unit's request slots over all channels (fetch.inflight; a slot frees
+        # when its request's data has arrived): a large transaction never has more out
+        self.FS = np.zeros((1024, 3))       # see dram_timing.fslots_add
+        self.FI = np.zeros(2, dtype=np.int64)
+        self.FF = np.full(5, -np.inf)
+        self.FF[:2] = 0.0
+        # (row hits first commits a transaction's shares at different times: the fetch
+        # unit's own count of handed-over requests is the limit there, see fetch.py)
+        self.fetch_depth = arch.fetch.inflight if d.scheduler != "row_hits_first" else 1 << 40
         self.IV = np.zeros((self.n, 1024, 2))            # data-bus busy intervals per channel
         self.busy_cycles = np.zeros(self.n)
         self.acc = np.zeros(T.N_ACC)                     # counters, see dram_timing.A_*
@@ -341,6 +364,8 @@ class ChannelPool:
         self.held = [[] for _ in range(self.n)]
         self.timer_at = [None] * self.n
         self.submit = self._submit_banked
+        if not self.rows_first:
+            self.slot_room_at = self._slot_room_at
         self._bind()
 
     # ------------------------------------------------------------------ fixed
@@ -363,7 +388,13 @@ class ChannelPool:
 
     def _make_room(self, rows):
         """Grow the tables that lack room for ``rows`` more bursts (one share) per channel."""
-        self.outstanding.make_room(1)
+        self.outstanding.make_room(rows)
+        p, n = self.FI
+        if p:                                   # drop completions counted already
+            self.FS[:n - p] = self.FS[p:n]
+            self.FI[:] = (0, n - p)
+        if self.FI[1] + rows + 1 > len(self.FS):
+            self.FS = _grown(self.FS, self.FI[1] + rows + 1, axis=0)
         self.H = self.outstanding.H
         iv = self.TN[:, T.N_IV].max() + rows
         if iv > self.IV.shape[1]:
@@ -380,6 +411,12 @@ class ChannelPool:
             if self.NI[T.I_LOGGING] and self.NI[T.I_LOG] + 3 * rows > len(self.LOG):
                 self.LOG = _grown(self.LOG, self.NI[T.I_LOG] + 3 * rows, axis=0)
         self._bind()
+
+    def _slot_room_at(self, now, need):
+        """Earliest time from ``now`` at which ``need`` (one at most) more requests fit in
+        the fetch unit's request slots."""
+        return T.fslots_level_time(self.FS, self.FI, self.FF, float(now),
+                                   self.FF[1] + min(need, 1.0) - self.fetch_depth)
 
     @property
     def busy_intervals(self):
@@ -427,11 +464,12 @@ class ChannelPool:
             return self._submit_write(txn, b, now)
         if self._lut is not None and not (self.first_free or self.rows_first):
             return self._serve_now(txn, b, now)
-        ch, gb, row = self._decode(b, now)
-        rec = [now, 0, now, now, now, None]   # arrival, shares left, start, first data, done, event
+        ch, gb, row, pos = self._decode(b, now)
+        # arrival, shares left, start, first data, done, event, stream
+        rec = [now, 0, now, now, now, None, _STREAM.get(txn.kind, 1)]
         if not self.rows_first:
             rec[1] = -1                        # committed in one go
-            self._commit(rec, ch, gb, row, now)
+            self._commit(rec, ch, gb, row, now, pos)
             return self._finish(txn, now, rec[2], rec[3], rec[4], None)
         cnt = np.bincount(ch, minlength=self.n)
         chans = np.flatnonzero(cnt).tolist()
@@ -447,7 +485,7 @@ class ChannelPool:
                 keep = ~np.isin(ch, hold)
                 self._commit(rec, ch[keep], gb[keep], row[keep], now)
         else:
-            self._commit(rec, ch, gb, row, now)
+            self._commit(rec, ch, gb, row, now, pos)
         if rec[1] == 0:
             return self._finish(txn, now, rec[2], rec[3], rec[4], None)
         ev = self.env.event()
@@ -455,18 +493,22 @@ class ChannelPool:
         return ev
 
     def _decode(self, b, now):
-        """Channel, global bank and row of burst addresses ``b``, sorted by channel."""
+        """Channel, global bank and row of burst addresses ``b``, sorted by channel, and where
+        each burst of ``b`` went in the sorted arrays."""
         if self.first_free:
             c = self._first_free_channel(now)
             _, bank, row = self.decoder.decode(b)
-            return np.full(len(b), c, dtype=np.int64), bank + c * self.banks, row
+            return (np.full(len(b), c, dtype=np.int64), bank + c * self.banks, row,
+                    np.arange(len(b), dtype=np.int64))
         if self._lut is not None:
             return decode_sorted(b, self.burst, *self._lut, self.n)
         ch, gb, row = self.decoder.decode_global(b)
+        pos = np.arange(len(b), dtype=np.int64)
         if self.n > 1:
             order = np.argsort(ch, kind="stable")
             ch, gb, row = ch[order], gb[order], row[order]
-        return ch, gb, row
+            pos[order] = np.arange(len(b), dtype=np.int64)
+        return ch, gb, row, pos
 
     # ----------------------------------------------------------------- writes
     def _submit_write(self, txn, b, now):
@@ -474,7 +516,7 @@ class ChannelPool:
         burst ``write_queue`` places ahead of it has left); the event fires when every share
         is in. A channel drains its oldest writes when the queue reaches the high mark, down
         to the low mark, and all of them once it has no read left to serve."""
-        ch, gb, row = self._decode(b, now)
+        ch, gb, row, _ = self._decode(b, now)
         cnt = np.bincount(ch, minlength=self.n)
         ends = np.cumsum(cnt)
         t_in = now
@@ -601,7 +643,8 @@ class ChannelPool:
         times = self._times
         times[:] = -np.inf
         tries = 0
-        while serve_addresses(b, *self._lut_args, float(now), times, *self._state_args) < 0:
+        while serve_addresses(b, *self._lut_args, float(now), times, *self._state_args,
+                              _STREAM.get(txn.kind, 1)) < 0:
             _room_or_stall(tries, "banked serve")
             tries += 1
             self._make_room(len(b))
@@ -617,21 +660,26 @@ class ChannelPool:
             return
         self._state_args = (self.depth, self.req_bursts, self.groups, self.banks, self.close_page,
                             self.P, self.open_row, self.BF, self.TL, self.TK, self.TG, self.TN, self.CF,
-                            self.H, self.R, self.IV, self.busy_cycles, self.acc, self.LOG, self.NI)
+                            self.H, self.R, self.IV, self.busy_cycles, self.acc, self.LOG, self.NI,
+                            self.fetch_depth, self.FS, self.FI, self.FF)
         self._write_args = (self.groups, self.banks, self.close_page, self.P, self.open_row, self.BF,
                             self.TL, self.TK, self.TG, self.TN, self.CF, self.H, self.R, self.IV,
                             self.busy_cycles, self.acc, self.LOG, self.NI)
         if self._lut is not None:
             self._lut_args = (self.burst,) + self._lut
 
-    def _commit(self, rec, ch, gb, row, now):
-        """Fix the timing of one batch of bursts ``ch``/``gb``/``row`` (sorted by channel)."""
+    def _commit(self, rec, ch, gb, row, now, pos=None):
+        """Fix the timing of one batch of bursts ``ch``/``gb``/``row`` (sorted by channel;
+        ``pos``: where each burst in address order is, by default channel by channel)."""
+        if pos is None:
+            pos = np.arange(len(ch), dtype=np.int64)
         times = self._times
         times[0] = -np.inf
         times[1] = -np.inf
         times[2] = -np.inf if rec[4] == rec[0] else rec[4]
         for tries in range(MAX_ROOM_TRIES + 1):
-            nch = serve_and_book(ch, gb, row, float(now), float(rec[0]), times, *self._state_args)
+            nch = serve_and_book(ch, gb, row, pos, float(now), float(rec[0]), times, *self._state_args,
+                                 rec[6])
             if nch >= 0:
                 break
             _room_or_stall(tries, "banked commit")

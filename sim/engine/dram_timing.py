@@ -765,11 +765,12 @@ def _heap_pop(H, TN, c):
 
 
 @_compile
-def slots_room_at(H, TN, CF, c, now, need, depth):
-    """Earliest time from ``now`` at which ``need`` more requests (one at most) fit in ``c``'s queue.
+def level_time(H, TN, CF, c, now, level):
+    """Earliest time from ``now`` at which ``c``'s completions reach ``level`` requests.
 
     Completions are counted in the order they happen, wherever their request
     sits in the queue; ramps that finished by ``now`` are counted on the way.
+    A level beyond every completion entered is taken as reached now.
     """
     rel = CF[c, F_REL]
     s = CF[c, F_RAMP_START]
@@ -781,7 +782,6 @@ def slots_room_at(H, TN, CF, c, now, need, depth):
         d = -np.inf
     while TN[c, N_HEAP] > 0 and H[c, 0, 0] <= now:
         rel += _heap_pop(H, TN, c)[2]
-    level = CF[c, F_ENTERED] + min(need, 1.0) - depth       # completions needed first
     t = now
     if level > 1e-9:
         x = level - 1e-9
@@ -795,6 +795,12 @@ def slots_room_at(H, TN, CF, c, now, need, depth):
     CF[c, F_RAMP_DONE] = d
     CF[c, F_RAMP_AMOUNT] = a
     return t if t > now else now
+
+
+@_compile
+def slots_room_at(H, TN, CF, c, now, need, depth):
+    """Earliest time from ``now`` at which ``need`` more requests (one at most) fit in ``c``'s queue."""
+    return level_time(H, TN, CF, c, now, CF[c, F_ENTERED] + min(need, 1.0) - depth)
 
 
 @_compile
@@ -822,11 +828,61 @@ def slots_add(H, TN, CF, c, first, done, amount):
         x = y
 
 
+# The fetch unit's request slots, over all channels: each request's completion ramp
+# (done, start, amount) in ``FS[:FI[1]]`` sorted by done; those before ``FI[0]`` are
+# counted in ``FF[0]``; ``FF[1]``: requests entered; ``FF[2 + s]``: when stream ``s``'s
+# last request's slot frees (query, key, value buffers). Completions of different channels come
+# out of order, so they are kept sorted (a late one goes in its place, near the end)
+# rather than consumed by a search that could pass one still to come.
+
+@_compile
+def fslots_add(FS, FI, FF, start, done, amount):
+    """``amount`` requests (one at most) enter, completing from ``start`` to ``done``."""
+    FF[1] += amount
+    if amount <= 0.0:
+        return
+    k = FI[1]
+    while k > FI[0] and FS[k - 1, 0] > done:
+        FS[k, 0] = FS[k - 1, 0]
+        FS[k, 1] = FS[k - 1, 1]
+        FS[k, 2] = FS[k - 1, 2]
+        k -= 1
+    FS[k, 0] = done
+    FS[k, 1] = start
+    FS[k, 2] = amount
+    FI[1] += 1
+
+
+@_compile
+def fslots_level_time(FS, FI, FF, now, level):
+    """Earliest time from ``now`` at which the slots' completions reach ``level`` requests
+    (a level beyond every completion entered is taken as reached now)."""
+    p = FI[0]
+    n = FI[1]
+    rel = FF[0]
+    while p < n and FS[p, 0] <= now:
+        rel += FS[p, 2]
+        p += 1
+    FI[0] = p
+    FF[0] = rel
+    if level <= rel + 1e-9:
+        return now
+    x = level - 1e-9
+    for k in range(p, n):
+        a = FS[k, 2]
+        if rel + a >= x:
+            t = FS[k, 1] + (level - rel) / a * (FS[k, 0] - FS[k, 1])
+            return t if t > now else now
+        rel += a
+    return now
+
+
 # ---------------------------------------------------------------- whole batches
 
 @_compile
 def decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels):
-    """Channel, global bank and row of burst addresses ``b``, stably sorted by channel."""
+    """Channel, global bank and row of burst addresses ``b``, stably sorted by channel, and
+    where each burst of ``b`` went in the sorted arrays."""
     n = len(b)
     cnt = np.zeros(channels + 1, dtype=np.int64)
     low = np.empty(n, dtype=np.int64)
@@ -839,6 +895,7 @@ def decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels):
     ch = np.empty(n, dtype=np.int64)
     gb = np.empty(n, dtype=np.int64)
     row = np.empty(n, dtype=np.int64)
+    pos = np.empty(n, dtype=np.int64)
     for i in range(n):
         c = lut_ch[low[i]]
         k = cnt[c]
@@ -846,7 +903,8 @@ def decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels):
         ch[k] = c
         gb[k] = lut_gb[low[i]]
         row[k] = (b[i] // burst) >> low_bits
-    return ch, gb, row
+        pos[i] = k
+    return ch, gb, row, pos
 
 
 @_compile
@@ -864,7 +922,7 @@ def _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
         while j < n and ch[j] == c:
             j += 1
         m = j - i
-        if TN[c, N_HEAP] + PIECES + 1 > H.shape[1] or TN[c, N_IV] + m > IV.shape[1]:
+        if TN[c, N_HEAP] + m + PIECES + 1 > H.shape[1] or TN[c, N_IV] + m > IV.shape[1]:
             return False
         cap = TL.shape[2]
         for w in range(2):
@@ -877,59 +935,172 @@ def _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
 
 
 @_compile
-def serve_and_book(ch, gb, row, now, arrival, times, depth, rq, groups, banks, close_page, P, open_row,
-                   BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI):
-    """Queue, serve and book one batch of reads (sorted by channel) arriving at ``now``.
+def _book_requests(out, s0, s1, c, rq, P, H, TN, CF, FS, FI, FF, stream):
+    """Enter bursts ``s0 .. s1-1`` of channel ``c`` (column times ``out``, address order)
+    into the channel's queue slots and the fetch unit's, a request at a time, so the
+    counts do not depend on how bursts were batched. A request leaves the channel's queue
+    from its first data to its last; its fetch slot frees no earlier than the slot of the
+    request before it in the same buffer's stream (data is handed over in order)."""
+    lat = P[P_CL] + P[P_CTRL]
+    burst = P[P_BURST]
+    k = s0
+    while k < s1:
+        ent = CF[c, F_ENTERED]
+        take = int((np.floor(ent + 1e-9) + 1.0 - ent) * rq + 0.5)     # to a whole request
+        if take < 1:
+            take = 1
+        if take > s1 - k:
+            take = s1 - k
+        lo = np.inf
+        hi = -np.inf
+        for x in range(k, k + take):
+            if out[x] < lo:
+                lo = out[x]
+            if out[x] > hi:
+                hi = out[x]
+        lo += lat
+        hi += lat + burst
+        slots_add(H, TN, CF, c, lo, hi, take / rq)
+        last = FF[2 + stream]
+        if lo < last:
+            lo = last
+        if hi < last:
+            hi = last
+        FF[2 + stream] = hi
+        fslots_add(FS, FI, FF, lo, hi, take / rq)
+        k += take
 
-    Each channel's share enters the channel's read queue once its first request
-    fits, and its bursts are placed from then (:func:`place_bursts`); the share then
-    enters the queue slots (``H``...), the share records (``R`` rows: channel,
-    arrival, start, first data, last data, bursts), the data-bus intervals
-    (``IV``) and the busy cycles. ``times`` holds the batch's start, first data
-    and last data, raised here. Returns the number of channels served, or -1
-    without changing any timing state if a table is full.
-    """
-    if not _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
-        return -1
-    n = len(ch)
-    ctrl = P[P_CTRL]
-    t_start = times[0]
-    t_first = times[1]
-    t_done = times[2]
-    out = np.empty(n)
-    nch = 0
+
+@_inline
+def _run_end(ch, pos, k, n):
+    """End of the run of bursts from ``k`` (address order) on one channel, side by side in
+    the sorted arrays."""
+    e = k + 1
+    while e < n and pos[e] == pos[e - 1] + 1 and ch[pos[e]] == ch[pos[k]]:
+        e += 1
+    return e
+
+
+@_compile
+def _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF):
+    """Whether the whole batch fits now: every share in its channel's queue, all of it in
+    the fetch unit's request slots."""
+    if n / rq > gdepth or fslots_level_time(FS, FI, FF, now, FF[1] + n / rq - gdepth) > now:
+        return False
     i = 0
     while i < n:
         c = ch[i]
         j = i
         while j < n and ch[j] == c:
             j += 1
-        m = j - i
-        # the channel's queue is full: wait for requests to complete
-        t = slots_room_at(H, TN, CF, c, now, m / rq, depth)
-        begin, first, last = place_bursts(gb, row, i, j, c, 0, t, out, P, groups, banks, close_page,
-                                          open_row, BF, TL, TK, TG, TN, CF, acc, LOG, NI, IV, busy)
-        first += ctrl
-        last += ctrl
-        nreq = m / rq
-        acc[A_REQUESTS] += nreq
-        slots_add(H, TN, CF, c, first, last, nreq)
+        if (j - i) / rq > depth or level_time(H, TN, CF, c, now, CF[c, F_ENTERED] + (j - i) / rq - depth) > now:
+            return False
+        i = j
+    return True
+
+
+@_compile
+def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, banks, close_page, P,
+                   open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth, FS, FI, FF,
+                   stream):
+    """Queue, serve and book one batch of reads (sorted by channel; ``pos[k]``: where the
+    batch's ``k``-th burst in address order is) arriving at ``now``.
+
+    Requests enter a channel's read queue once it has room for them (``depth``
+    requests per channel) and the fetch unit has a free request slot
+    (``gdepth`` over all channels, :func:`_book_requests` says when one frees).
+    When the whole batch fits now, each channel's share is placed in
+    one go; otherwise the batch goes in address order a request at a time, each
+    waiting for its room, so a large batch never holds more than the limits
+    allow -- the same as the same bytes cut into small batches. Bursts are
+    placed by :func:`place_bursts`; each share then enters the share records
+    (``R`` rows: channel, arrival, start, first data, last data, bursts), the
+    data-bus intervals (``IV``) and the busy cycles. ``times`` holds the batch's
+    start, first data and last data, raised here. Returns the number of
+    channels served, or -1 without changing any timing state if a table is full.
+    """
+    n = len(ch)
+    if not _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P) or FI[1] + n + 1 > FS.shape[0]:
+        return -1
+    ctrl = P[P_CTRL]
+    out = np.empty(n)
+    nc = TN.shape[0]
+    agg = np.empty((nc, 4))         # per channel: start, first data, last data, bursts
+    agg[:, 0] = np.inf
+    agg[:, 1] = np.inf
+    agg[:, 2] = -np.inf
+    agg[:, 3] = 0.0
+    if _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF):
+        i = 0
+        while i < n:
+            c = ch[i]
+            j = i
+            while j < n and ch[j] == c:
+                j += 1
+            begin, first, last = place_bursts(gb, row, i, j, c, 0, now, out, P, groups, banks, close_page,
+                                              open_row, BF, TL, TK, TG, TN, CF, acc, LOG, NI, IV, busy)
+            agg[c, 0] = begin
+            agg[c, 1] = first + ctrl
+            agg[c, 2] = last + ctrl
+            agg[c, 3] = j - i
+            i = j
+        k = 0
+        while k < n:                         # in address order, run by run
+            e = _run_end(ch, pos, k, n)
+            _book_requests(out, pos[k], pos[k] + e - k, ch[pos[k]], rq, P, H, TN, CF, FS, FI, FF, stream)
+            k = e
+        acc[A_REQUESTS] += n / rq
+    else:
+        k = 0
+        while k < n:
+            s0 = pos[k]
+            c = ch[s0]
+            e = _run_end(ch, pos, k, n)
+            while k < e:
+                ent = CF[c, F_ENTERED]
+                take = int((np.floor(ent + 1e-9) + 1.0 - ent) * rq + 0.5)   # to a whole request
+                if take < 1:
+                    take = 1
+                if take > e - k:
+                    take = e - k
+                amount = take / rq
+                t = level_time(H, TN, CF, c, now, ent + amount - depth)
+                tg = fslots_level_time(FS, FI, FF, now, FF[1] + amount - gdepth)
+                if tg > t:
+                    t = tg
+                s0 = pos[k]
+                begin, first, last = place_bursts(gb, row, s0, s0 + take, c, 0, t, out, P, groups, banks,
+                                                  close_page, open_row, BF, TL, TK, TG, TN, CF, acc, LOG,
+                                                  NI, IV, busy)
+                _book_requests(out, s0, s0 + take, c, rq, P, H, TN, CF, FS, FI, FF, stream)
+                acc[A_REQUESTS] += amount
+                agg[c, 0] = min(agg[c, 0], begin)
+                agg[c, 1] = min(agg[c, 1], first + ctrl)
+                agg[c, 2] = max(agg[c, 2], last + ctrl)
+                agg[c, 3] += take
+                k += take
+    t_start = times[0]
+    t_first = times[1]
+    t_done = times[2]
+    nch = 0
+    for c in range(nc):
+        if agg[c, 3] == 0.0:
+            continue
         r = NI[I_RECORDS]
         R[r, 0] = c
         R[r, 1] = arrival
-        R[r, 2] = begin
-        R[r, 3] = first
-        R[r, 4] = last
-        R[r, 5] = m
+        R[r, 2] = agg[c, 0]
+        R[r, 3] = agg[c, 1]
+        R[r, 4] = agg[c, 2]
+        R[r, 5] = agg[c, 3]
         NI[I_RECORDS] = r + 1
-        if begin > t_start:
-            t_start = begin
-        if first > t_first:
-            t_first = first
-        if last > t_done:
-            t_done = last
+        if agg[c, 0] > t_start:
+            t_start = agg[c, 0]
+        if agg[c, 1] > t_first:
+            t_first = agg[c, 1]
+        if agg[c, 2] > t_done:
+            t_done = agg[c, 2]
         nch += 1
-        i = j
     times[0] = t_start
     times[1] = t_first
     times[2] = t_done
@@ -1004,11 +1175,13 @@ def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, H, TN, C
 
 @_compile
 def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, depth, rq, groups, banks,
-                    close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI):
+                    close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth,
+                    FS, FI, FF, stream):
     """:func:`decode_sorted` then :func:`serve_and_book` for reads arriving now."""
-    ch, gb, row = decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, len(busy))
-    return serve_and_book(ch, gb, row, now, now, times, depth, rq, groups, banks, close_page, P,
-                          open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI)
+    ch, gb, row, pos = decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, len(busy))
+    return serve_and_book(ch, gb, row, pos, now, now, times, depth, rq, groups, banks, close_page, P,
+                          open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth, FS,
+                          FI, FF, stream)
 
 
 # ---------------------------------------------------------------- compile once, load once
@@ -1036,9 +1209,11 @@ def signatures():
     # depth, rq, groups, banks, close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI
     state = (i, i, i, i, b, a(f, 1), a(i, 1), a(f, 2), a(f, 3), a(i, 3), a(f, 4), a(i, 2), a(f, 2),
              a(f, 3), a(f, 2), a(f, 3), a(f, 1), a(f, 1), a(f, 2), a(i, 1))
+    # the fetch unit's request slots: gdepth, FS, FI, FF, and the stream a batch belongs to
+    slots = (i, a(f, 2), a(i, 1), a(f, 1), i)
     return {
-        "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1)) + state,
-        "serve_and_book": (a(i, 1), a(i, 1), a(i, 1), f, f, a(f, 1)) + state,
+        "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1)) + state + slots,
+        "serve_and_book": (a(i, 1), a(i, 1), a(i, 1), a(i, 1), f, f, a(f, 1)) + state + slots,
         "serve_writes": (a(i, 1), a(i, 1), i, f, a(f, 1)) + state[2:],
         "serve_fixed": (a(i, 1), i, f, a(f, 1), f, f, i, i, a(f, 3), a(i, 2), a(f, 2), a(f, 3), a(f, 1),
                         a(f, 1), a(i, 1)),

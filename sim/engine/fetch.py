@@ -25,10 +25,19 @@ Its ``done`` event fires at the first of these and ``txn.last`` holds the
 second: a consumer starts on the first tile and finishes no earlier than the
 last tile's arrival plus that tile's service (see :mod:`sim.engine.dot`), so a
 coarse transaction keeps the overlap of fine ones. ``fetch.inflight`` bounds
-the requests issued and not yet handed over (a transaction may issue once its
-first request fits); ``fetch.reorder_entries`` bounds the requests that have
+the requests issued and not yet handed over: a transaction may issue once its
+first request fits, and with the banked pool its further requests wait there,
+one by one, for slots (the pool keeps the count request by request, see
+:mod:`sim.engine.dram`), so a large transaction never has more requests out
+than small ones would. ``fetch.reorder_entries`` bounds the requests that have
 arrived but wait for an earlier transaction -- when it is full the unit stops
 issuing.
+
+**Descriptors.** Once the unit has begun issuing a descriptor (one plane of one
+head group for one query block), it issues that descriptor's ready chunks
+before any other's, as a unit working through whole descriptors would; a
+descriptor whose dependency fires goes next. So the order memory sees does not
+depend on how finely the engine cuts a descriptor.
 """
 
 from bisect import insort
@@ -67,6 +76,8 @@ class FetchUnit:
         f = arch.fetch
         self.window = f.issue_window
         self.inflight_cap = f.inflight
+        # the banked pool counts the requests in flight one by one (its fetch slots)
+        self.slot_room_at = getattr(pool, "slot_room_at", None)
         self.reorder_cap = f.reorder_entries
         self.req_bytes = f.request_bytes
         self.burst = arch.dram.burst_bytes
@@ -79,6 +90,7 @@ class FetchUnit:
         self.taken = 0              # transactions taken from the program
         self.walked = 0.0           # their requests
         self.issue_free = 0.0       # the request port is busy issuing until then
+        self.desc_now = -1          # the descriptor issued last
         self.wake = env.event()
         self.timer = None           # the pending re-evaluation timer, and its time
         self.timer_at = 0.0
@@ -128,6 +140,15 @@ class FetchUnit:
         plane of one head group for one query block, however many chunks the engine
         grain cuts it into) past the oldest one set aside."""
         return not self.aside or txn.desc - self.aside[0].desc <= self.window
+
+    def next_ready(self):
+        """Index in ``ready`` of the transaction to issue next: the oldest of the descriptor
+        being issued (a descriptor is not interrupted while it can go on), else the oldest."""
+        d = self.desc_now
+        for k, t in enumerate(self.ready):
+            if t.desc == d:
+                return k
+        return 0
 
     def set_aside(self, txn, now):
         cause = next(c for ev, c in txn.waits if not ev.processed)
@@ -193,7 +214,10 @@ class FetchUnit:
     def issue_block(self, txn):
         """Why ``txn`` cannot issue now (a blocked cause), or None."""
         if self.npending:
-            if self.inflight_now() + min(txn.nreq, 1.0) > self.inflight_cap + 1e-6:
+            if self.slot_room_at is not None:
+                if self.slot_room_at(self.env.now, txn.nreq) > self.env.now:
+                    return "inflight_limit"
+            elif self.inflight_now() + min(txn.nreq, 1.0) > self.inflight_cap + 1e-6:
                 return "inflight_limit"
             if self.count_early() >= self.reorder_cap:
                 return "reorder_full"
@@ -203,6 +227,8 @@ class FetchUnit:
         """Earliest time the in-flight count lets ``txn`` issue, or None if a
         transaction on the way has not been timed yet (the pool pokes then)."""
         now = self.env.now
+        if self.slot_room_at is not None:
+            return self.slot_room_at(now, txn.nreq)
         excess = self.inflight_now() + min(txn.nreq, 1.0) - self.inflight_cap
         ramps = []
         for st in self.streams.values():
@@ -300,10 +326,12 @@ def fetch_process(u):
                 yield env.timeout(u.issue_free - now)
                 continue
             u.retire()
-            txn = u.ready[0]
+            k = u.next_ready()
+            txn = u.ready[k]
             why = u.issue_block(txn)
             if why is None:
-                del u.ready[0]
+                del u.ready[k]
+                u.desc_now = txn.desc
                 u.issue(txn, txn.wait_cause or "fetch")
                 continue
             if txn.wait_cause is None:
@@ -345,7 +373,9 @@ def fetch_process(u):
         if u.ready and u.npending:
             t = u.when_room(u.ready[0]) if u.ready[0].wait_cause == "inflight_limit" else u.next_handover()
             if t is not None:   # else the pool pokes when it times the transaction on the way
-                u.poke_at(max(t, now))
+                # blocked now, so room comes later: a ramp a rounding error long must not
+                # bring the unit back at the same instant forever
+                u.poke_at(t if t > now else now + 1e-9)
         if not u.wake.triggered:
             yield u.wake
         u.wake = env.event()

@@ -30,7 +30,7 @@ from . import softmax as smmod
 from . import topk as tkmod
 from .feed import Feed
 from .plan import plan_step
-from .tiling import selects_next
+from .tiling import pair_unit_rows, pair_units, selects_next
 from .txn import Txn
 
 
@@ -334,21 +334,28 @@ class ProgramBuilder:
         waits = st.dep_kv + [(sm1.done, "softmax")]
         kls = self._resident(st, "KL", b, len(b.lsb_src)) if gp.kl_resident else [None] * len(b.lsb_src)
         self.desc += 1
-        for i, (c, macs) in enumerate(zip(b.lsb_src, b.lsb_macs)):
-            # each LSB chunk, then the MSB chunk it pairs with: the order the array reads them
-            if kls[i] is None:
-                kls[i] = self._fetch(st, "KL", c.segments, c.rows, waits, b.head, bp.block, c.skip)
-            op = dotmod.DotOp("lsb", s, b.head, bp.block, macs, d)
-            op.part = b.gi if q.readers > 1 else None
-            if i == 0:
-                op.waits = [(sm1.done, "softmax")]
-            st.reads(op, q, kls[i])
-            if bp.lsb_msb_chunks:   # K was not resident: its MSB rows come again
-                m = bp.lsb_msb_chunks[i]
-                st.reads(op, self._fetch(st, "K", m.segments, m.rows, waits, b.head, bp.block, m.skip))
-            elif gp.k_resident:
-                st.reads(op, kch[min(i, len(kch) - 1)])
-            self.prog.dot_qk.append(op)
+        msb = bp.lsb_msb_chunks       # K was not resident: its MSB rows come again
+        first = True
+        for unit in pair_units(b.lsb_src, pair_unit_rows(self.arch, d)):
+            # a unit's LSB rows, then its MSB rows: the order does not depend on the grain
+            for i in unit:
+                if kls[i] is None:
+                    c = b.lsb_src[i]
+                    kls[i] = self._fetch(st, "KL", c.segments, c.rows, waits, b.head, bp.block, c.skip)
+            again = {i: self._fetch(st, "K", msb[i].segments, msb[i].rows, waits, b.head, bp.block,
+                                    msb[i].skip) for i in unit} if msb else {}
+            for i in unit:
+                op = dotmod.DotOp("lsb", s, b.head, bp.block, b.lsb_macs[i], d)
+                op.part = b.gi if q.readers > 1 else None
+                if first:
+                    op.waits = [(sm1.done, "softmax")]
+                    first = False
+                st.reads(op, q, kls[i])
+                if msb:
+                    st.reads(op, again[i])
+                elif gp.k_resident:
+                    st.reads(op, kch[min(i, len(kch) - 1)])
+                self.prog.dot_qk.append(op)
         op.out = Txn("S", s, b.head, bp.block, bp.lsb_rows, 0, 0.0, "dot")
         sm = smmod.SoftmaxOp(s, b.head, bp.block, bp.lsb_rows, _cols(bp.lsb_elements, bp.lsb_rows),
                              second=True)

@@ -26,7 +26,9 @@ Per step:
   is fetched once, by the first (:attr:`Chunk.skip`);
 * a query block with rows flagged for the least-significant key plane
   (progressive quantization) fetches that plane's chunks (plus the MSB chunks
-  again when K was not resident) and recomputes those rows' scores. A head's
+  again when K was not resident) and recomputes those rows' scores. The two
+  planes come in units of what fits half the key buffer, a unit's LSB rows
+  before its MSB rows (:func:`pair_units`), whatever the grain. A head's
   flagged rows are spread over its query blocks in proportion to their size,
   never more than a block holds, and every flagged row is recomputed once;
 * value pruning is a decode technique here: in a decode step the selector
@@ -177,6 +179,29 @@ def _room_rows(arch, plane, head_dim):
 
 def chunk_rows(arch, plane, head_dim, grain_rows):
     return max(1, min(grain_rows, _room_rows(arch, plane, head_dim)))
+
+
+def pair_unit_rows(arch, head_dim):
+    """Rows of an LSB recompute unit: as many as an LSB chunk and its MSB chunk hold when
+    the grain does not cut them (half the key buffer for the pair)."""
+    widest = max(row_bytes(arch, "K", head_dim), row_bytes(arch, "KL", head_dim))
+    return max(1, int((_half(arch, "K") / 2 - 2 * arch.dram.burst_bytes) // widest))
+
+
+def pair_units(chunks, unit_rows):
+    """Consecutive ``chunks`` grouped into units of at most ``unit_rows`` rows (one chunk
+    at least): the fetch unit takes a unit's LSB chunks, then its MSB chunks, so the
+    order memory sees is the same at every grain."""
+    units, cur, rows = [], [], 0
+    for i, c in enumerate(chunks):
+        if cur and rows + c.rows > unit_rows:
+            units.append(cur)
+            cur, rows = [], 0
+        cur.append(i)
+        rows += c.rows
+    if cur:
+        units.append(cur)
+    return units
 
 
 def value_positions(step, j):
