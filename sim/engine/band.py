@@ -17,7 +17,7 @@ the block sees; in prefill the block's visible keys are fetched and
 
 import numpy as np
 
-from .tiling import BlockPlan, _bytes, _half, even_pick, split
+from .tiling import BlockPlan, _bytes, _half, chunk_cap, even_pick, split
 from .topk import select_cost
 
 
@@ -93,7 +93,7 @@ def plan_banded(arch, amap, step, layer, gp, idx, keys, blocks, cuts):
     gp.k_resident = (len(blocks) > 1 or bool(flagged)) and gp.k_bytes <= _half(arch, "K")
     res_k = None
     if gp.k_resident:
-        res_k = _cut(amap, layer, "K", gp.kv, keys[hull[0]:hull[1]], hull[0], kc, _half(arch, "K"))
+        res_k = _cut(amap, layer, "K", gp.kv, keys[hull[0]:hull[1]], hull[0], kc, chunk_cap(arch, "K"))
         gp.k_chunks = res_k[0]
     vplan = _ValuePlan(arch, amap, step, layer, gp, idx, keys, ranges, vc)
     lsb_hull = []
@@ -119,7 +119,7 @@ def _block_keys(amap, layer, gp, bp, keys, span, res_k, kc, arch):
     if gp.k_resident:
         bounds = res_k[1]
         return _overlapping(bounds, a, b), bounds
-    bp.k_chunks, bounds = _cut(amap, layer, "K", gp.kv, keys[a:b], a, kc, _half(arch, "K"))
+    bp.k_chunks, bounds = _cut(amap, layer, "K", gp.kv, keys[a:b], a, kc, chunk_cap(arch, "K"))
     return None, bounds
 
 
@@ -139,7 +139,7 @@ def _plan_lsb_rows(arch, amap, step, layer, gp, bp, keys, r0, lo, hi, flagged, k
         bp.lsb = {}
         return
     lsb_hull.append((a, b))
-    pairs = split(amap, layer, ("KL", "K"), [(gp.kv, keys[a:b])], klc, _half(arch, "K") / 2)
+    pairs = split(amap, layer, ("KL", "K"), [(gp.kv, keys[a:b])], klc, chunk_cap(arch, "K") / 2)
     bp.lsb_chunks = [c[0] for c in pairs]
     if not gp.k_resident:
         bp.lsb_msb_chunks = [c[1] for c in pairs]
@@ -159,13 +159,14 @@ class _ValuePlan:
         self.arch, self.amap, self.step, self.layer, self.gp = arch, amap, step, layer, gp
         self.idx, self.keys, self.vc = idx, keys, vc
         self.half = _half(arch, "V")
+        self.cap = chunk_cap(arch, "V")
         self.sets = [self._positions(span) for _r0, _lo, _hi, span in ranges]
         union = [s for s in self.sets if len(s)]
         gp.v_positions = np.unique(np.concatenate(union)) if union else keys[:0]
         gp.v_bytes = _bytes(amap, layer, "V", gp.kv, gp.v_positions)
         gp.v_resident = len(ranges) > 1 and gp.v_bytes <= self.half
         if gp.v_resident:
-            gp.v_chunks, self.bounds = _cut(amap, layer, "V", gp.kv, gp.v_positions, 0, vc, self.half)
+            gp.v_chunks, self.bounds = _cut(amap, layer, "V", gp.kv, gp.v_positions, 0, vc, self.cap)
 
     def _positions(self, span):
         """V positions the block fetches: the union over the group's heads."""
@@ -203,7 +204,7 @@ class _ValuePlan:
             bp.v_idx = _overlapping(self.bounds, a, b)
             weights = [min(b, self.bounds[i + 1]) - max(a, self.bounds[i]) for i in bp.v_idx]
         else:
-            bp.v_chunks, _b = _cut(self.amap, self.layer, "V", gp.kv, mine, 0, self.vc, self.half)
+            bp.v_chunks, _b = _cut(self.amap, self.layer, "V", gp.kv, mine, 0, self.vc, self.cap)
             weights = [c.rows for c in bp.v_chunks]
         n_vis = span[1] - span[0]
         total = 0
