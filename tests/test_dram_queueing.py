@@ -41,7 +41,7 @@ def queue_arch(channels, **extra):
 def run_open_loop(arch, arrivals, sizes):
     """Submit one transaction of ``sizes[i]`` bursts at each ``arrivals[i]``; return the pool."""
     env = simpy.Environment()
-    pool = ChannelPool(env, arch)
+    pool = ChannelPool(env, arch, keep_records=True)
     addr = [np.arange(n, dtype=np.int64) * BURST for n in range(int(sizes.max()) + 1)]
 
     def source():
@@ -160,7 +160,7 @@ def test_littles_law_in_flight():
     lam = 1 / 40.0
     arrivals = np.cumsum(rng.exponential(1 / lam, n))
     env = simpy.Environment()
-    pool = ChannelPool(env, arch)
+    pool = ChannelPool(env, arch, keep_records=True)
 
     def source():
         for t in arrivals.tolist():
@@ -200,7 +200,7 @@ def test_erlang_c_through_the_default_address_steering():
     arrivals = 1000.0 + np.cumsum(rng.exponential(1 / lam, n))
     chans = rng.integers(0, c, n)
     env = simpy.Environment()
-    pool = ChannelPool(env, arch)
+    pool = ChannelPool(env, arch, keep_records=True)
 
     def source():
         for ch in range(c):                       # open each channel's row first

@@ -267,10 +267,12 @@ class ChannelPool:
     """A pool of memory channels: banks, rows, activation limits, refresh, queues and scheduling.
 
     ``log_commands=True`` keeps every command of the banked model (see
-    :meth:`command_log`), for protocol checks; runs leave it off.
+    :meth:`command_log`), for protocol checks; ``keep_records=True`` keeps a
+    record of every share (see :meth:`share_records`), for queueing checks. Runs
+    leave both off: each grows with the transactions.
     """
 
-    def __init__(self, env, arch, log_commands=False):
+    def __init__(self, env, arch, log_commands=False, keep_records=False):
         T.load_kernels()     # compiled once per machine, loaded once per process
         self.env = env
         self.arch = arch
@@ -293,11 +295,13 @@ class ChannelPool:
         # (row hits first commits a transaction's shares at different times: the fetch
         # unit's own count of handed-over requests is the limit there, see fetch.py)
         self.fetch_depth = arch.fetch.inflight if d.scheduler != "row_hits_first" else 1 << 40
+        self._room_key, self._room_t = None, 0.0
         self.IV = np.zeros((self.n, 1024, 2))            # data-bus busy intervals per channel
         self.busy_cycles = np.zeros(self.n)
         self.acc = np.zeros(T.N_ACC)                     # counters, see dram_timing.A_*
         self._counts = np.zeros(self.n, dtype=np.int64)
         self.R = np.zeros((1024, 6))                     # share records (banked)
+        self.keep_records = keep_records                 # else R is rewritten by each call
         # per-channel counts and times, shared with the read queue (see dram_timing.N_*, F_*)
         self.TN = self.outstanding.TN
         self.CF = self.outstanding.CF
@@ -415,8 +419,12 @@ class ChannelPool:
     def _slot_room_at(self, now, need):
         """Earliest time from ``now`` at which ``need`` (one at most) more requests fit in
         the fetch unit's request slots."""
-        return T.fslots_level_time(self.FS, self.FI, self.FF, float(now),
-                                   self.FF[1] + min(need, 1.0) - self.fetch_depth)
+        key = (float(self.FF[1]), min(need, 1.0))
+        if key == self._room_key:      # nothing entered since: the same time still holds
+            return max(self._room_t, now)
+        t = T.fslots_level_time(self.FS, self.FI, self.FF, float(now), key[0] + key[1] - self.fetch_depth)
+        self._room_key, self._room_t = key, t
+        return t
 
     @property
     def busy_intervals(self):
@@ -648,6 +656,8 @@ class ChannelPool:
             _room_or_stall(tries, "banked serve")
             tries += 1
             self._make_room(len(b))
+        if not self.keep_records:
+            self.NI[T.I_RECORDS] = 0
         t_start, t_first, t_done = times.tolist()
         return self._finish(txn, now, t_start, t_first, t_done, None)
 
@@ -684,6 +694,8 @@ class ChannelPool:
                 break
             _room_or_stall(tries, "banked commit")
             self._make_room(len(ch))
+        if not self.keep_records:
+            self.NI[T.I_RECORDS] = 0
         if rec[1] > 0:
             rec[1] -= nch
         rec[2], rec[3], rec[4] = times.tolist()
@@ -763,6 +775,8 @@ class ChannelPool:
         """Per channel share: channel, arrival, start, first data, done, bursts (numpy)."""
         if self.model != "banked":
             raise ValueError("share records exist only for dram.model: banked")
+        if not self.keep_records:
+            raise ValueError("the pool was made without keep_records=True")
         R = self.R[:self.NI[T.I_RECORDS]]
         out = {k: R[:, i] for i, k in enumerate(("channel", "arrival", "start", "first", "done", "bursts"))}
         out["channel"] = out["channel"].astype(np.int64)

@@ -91,6 +91,7 @@ class FetchUnit:
         self.walked = 0.0           # their requests
         self.issue_free = 0.0       # the request port is busy issuing until then
         self.desc_now = -1          # the descriptor issued last
+        self.fired = False          # a set-aside transaction's dependency fired since the last look
         self.wake = env.event()
         self.timer = None           # the pending re-evaluation timer, and its time
         self.timer_at = 0.0
@@ -157,10 +158,18 @@ class FetchUnit:
         self.aside.append(txn)
         for ev, _c in txn.waits:
             if not ev.processed:
-                ev.callbacks.append(self.poke)
+                ev.callbacks.append(self._fired)
+
+    def _fired(self, _ev):
+        """A dependency of a set-aside transaction fired."""
+        self.fired = True
+        self.poke()
 
     def release_aside(self, now):
         """Set-aside transactions whose dependency fired become ready."""
+        if not self.fired:
+            return
+        self.fired = False
         keep = []
         for t in self.aside:
             if all(ev.processed for ev, _c in t.waits):
