@@ -35,6 +35,7 @@ COMPUTE_UNITS = ("dot", "dot_pv", "softmax", "topk")
 MEMORY_CAUSES = ("memory_latency", "memory_queue", "memory_transfer", "memory_bandwidth", "reorder",
                  "fetch", "fetch_issue")
 BANDWIDTH_SHARE = 0.5   # DRAM must deliver at least this share of its peak to be called the limit
+CLOSE_SHARE = 0.05      # a runner-up this close to the limit's share is named with it (our choice)
 LANE_FILL_NOTE = 0.95   # below this useful share of the lanes the verdict names the mismatch
 
 CAUSE_TEXT = {
@@ -164,15 +165,23 @@ def classify(doc):
         g["share"] += w
         if w > g["top_share"]:
             g["top"], g["top_share"] = res, w
-    (kind, res), g = max(groups.items(), key=lambda kv: kv[1]["share"])
+    ranked_groups = sorted(groups.items(), key=lambda kv: kv[1]["share"], reverse=True)
+    (kind, res), g = ranked_groups[0]
     resource = res if res is not None else g["top"]
     cycles = doc["cycles"]
     dram = doc["dram"]
     achieved = dram["achieved_gbps"] / dram["peak_gbps"] if dram.get("peak_gbps") else 0.0
     b = doc["bounds"]
     mem_bound = b["memory_cycles"] / cycles if cycles else 0.0
+    memory_kind = "memory_bandwidth" if max(achieved, mem_bound) >= BANDWIDTH_SHARE else "memory_latency"
     if kind == "memory":
-        kind = "memory_bandwidth" if max(achieved, mem_bound) >= BANDWIDTH_SHARE else "memory_latency"
+        kind = memory_kind
+    close = None
+    if len(ranked_groups) > 1 and g["share"] - ranked_groups[1][1]["share"] <= CLOSE_SHARE:
+        (k2, r2), g2 = ranked_groups[1]
+        k2 = memory_kind if k2 == "memory" else k2
+        r2 = r2 if r2 is not None else g2["top"]
+        close = {"limit": k2, "resource": r2, "label": label(k2, r2), "share": g2["share"]}
     lanes = lane_figures(doc)
     busiest = max(units, key=lambda k: units[k]["busy"])
     ranked = sorted(((w, k) for k, w in shares.items()), reverse=True)
@@ -183,8 +192,11 @@ def classify(doc):
     return {
         "limit": kind,
         "resource": resource,
-        "label": label(kind, resource),
+        "label": label(kind, resource) + (f" (close: {close['label']})" if close else ""),
         "share": g["share"],
+        # the runner-up when it is within CLOSE_SHARE of the limit: the two limit the run about
+        # equally, and a small change of either (or of a simulation setting) can swap them
+        "close_to": close,
         "critical_unit": critical,
         "critical_busy": units[critical]["busy"],
         "shares": [{"kind": k[0], "resource": k[1], "share": w} for w, k in ranked],

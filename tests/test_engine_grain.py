@@ -6,8 +6,9 @@ chip), the fetch unit's issue window counts hardware descriptors, and chunks
 share no burst, so a coarse grain only saves events. Checked here:
 
 * every bundled trace on every bundled config: cycles at the default grain
-  within 2 % of cycles at 16 rows, and each unit's busy fraction within
-  2 points. Where a latency-bound run's critical transactions cross all-bank
+  within 2 % of cycles at 16 rows, each unit's busy fraction within 2 points,
+  and the same limit named (or, where two limits are within 5 points, the
+  same two named as close). Where a latency-bound run's critical transactions cross all-bank
   refresh windows, the slightest timing change moves it by a refresh time one
   way or the other; there the grain's move averaged over refresh intervals
   nudged by up to 1 % must stay within 2 % (the grain does not bias it);
@@ -54,7 +55,20 @@ def _runs(arch, trace, grains):
     for g in grains:
         doc = sim.simulate(arch, trace, keep_intervals=False, grain_rows=g).to_dict()
         out.append((doc["cycles"], {n: u["busy"] for n, u in doc["units"].items()}))
+        _runs.verdicts.append(doc["verdict"])
     return out
+
+
+_runs.verdicts = []
+
+
+def _same_conclusion(v0, v1):
+    """Both grains name the same limit, or each names the other's as close to its own."""
+    if v0["label"] == v1["label"]:
+        return True
+    def pair(v):
+        return {v["label"].split(" (close: ")[0]} | ({v["close_to"]["label"]} if v["close_to"] else set())
+    return pair(v0) == pair(v1)
 
 
 NUDGES = (0.99, 0.995, 0.9975, 1.0, 1.0025, 1.005, 1.01)
@@ -72,7 +86,10 @@ def _mean_move_over_refresh_phases(arch, trace):
 
 
 def _check_close(arch, trace, label):
+    _runs.verdicts.clear()
     (c0, b0), (c1, b1) = _runs(arch, trace, (arch.engine.grain_rows, FINE))
+    v0, v1 = _runs.verdicts
+    assert _same_conclusion(v0, v1), (label, v0["label"], v1["label"])
     move = (c0 - c1) / c1
     if abs(move) > 0.02 and arch.dram.model == "banked" and arch.dram.t_rfc_ns > 0:
         # A latency-bound run whose critical transactions cross all-bank refresh windows

@@ -98,8 +98,13 @@ def test_table_verdict_summary_and_roofline_agree(a, w):
     assert opening is not None, text
     v_kind, v_unit = OPENING[opening]
     assert v_kind == kind, (label, text)
+    head = label.split(" (close: ")[0]          # a close runner-up is named after the limit
     if v_unit is not None:
-        assert f"({v_unit})" in label or label in ("softmax unit", "top-k selector")
+        assert f"({v_unit})" in head or head in ("softmax unit", "top-k selector")
+    close = doc["verdict"]["close_to"]
+    if close:   # named in the label and the verdict, and really within 5 points of the limit
+        assert label == f"{head} (close: {close['label']})" and "comes close behind" in text
+        assert doc["verdict"]["share"] - close["share"] <= 0.05
     # the terminal summary's limit line and the roofline figure's data
     limit_line = next(ln for ln in format_summary(doc).splitlines() if ln.strip().startswith("limit "))
     assert limit_line.split(None, 1)[1].startswith(label + ":")

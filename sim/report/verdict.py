@@ -76,6 +76,17 @@ def limit_text(doc):
                else "."))
 
 
+def close_text(doc):
+    """A sentence when a second limit is within a few points of the first, else ''."""
+    v = verdict_of(doc)
+    c = v.get("close_to")
+    if not c:
+        return ""
+    return (f"{_first_upper(c['label'])} comes close behind ({fm.pct(c['share'])} of the critical unit's "
+            f"time against {fm.pct(v['share'])}): the two limit the run about equally, and a small change "
+            "of either can swap them.")
+
+
 def roofline_text(doc):
     v = verdict_of(doc)
     rf, bound = v["roofline_fraction"], v["bound"]
@@ -126,7 +137,7 @@ def energy_text(doc):
 def write_verdict(run, peers=(), sensitivity=None):
     """A short paragraph for ``run``; ``peers``: comparable runs; ``sensitivity``: its measured reruns."""
     d = run.doc
-    parts = [limit_text(d), roofline_text(d), sensitivity_text(sensitivity), rank_text(run, peers),
+    parts = [limit_text(d), close_text(d), roofline_text(d), sensitivity_text(sensitivity), rank_text(run, peers),
              energy_text(d)]
     return " ".join(p for p in parts if p)
 
