@@ -224,8 +224,10 @@ SCHEMA = {
     },
     "fetch": {
         "request_bytes": Field("int", 1024, "largest request the fetch unit sends to one channel"),
-        "inflight": Field("int", 32, "transactions the fetch unit may have outstanding"),
-        "reorder_entries": Field("int", 16, "completed transactions the reorder stage can hold"),
+        "inflight": Field("int", 32, "requests (fetch.request_bytes each) the fetch unit may have issued "
+                                     "and not yet handed over, over all channels"),
+        "reorder_entries": Field("int", 16, "requests that have arrived and wait in the reorder stage for an "
+                                            "earlier one"),
         "issue_window": Field("int", 16, "fetch descriptors (one plane of one head group for one query "
                               "block) the fetch unit may issue past one that waits for a result (a "
                               "top-k, a softmax decision, the previous layer); 0: strict program order",
