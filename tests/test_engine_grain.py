@@ -54,12 +54,8 @@ def _runs(arch, trace, grains):
     out = []
     for g in grains:
         doc = sim.simulate(arch, trace, keep_intervals=False, grain_rows=g).to_dict()
-        out.append((doc["cycles"], {n: u["busy"] for n, u in doc["units"].items()}))
-        _runs.verdicts.append(doc["verdict"])
+        out.append((doc["cycles"], {n: u["busy"] for n, u in doc["units"].items()}, doc["verdict"]))
     return out
-
-
-_runs.verdicts = []
 
 
 def _same_conclusion(v0, v1):
@@ -80,15 +76,13 @@ def _mean_move_over_refresh_phases(arch, trace):
     moves = []
     for f in NUDGES:
         nudged = arch.with_overrides({"dram.t_refi_ns": arch.dram.t_refi_ns * f})
-        (c0, _), (c1, _) = _runs(nudged, trace, (arch.engine.grain_rows, FINE))
+        (c0, _, _), (c1, _, _) = _runs(nudged, trace, (arch.engine.grain_rows, FINE))
         moves.append((c0 - c1) / c1)
     return sum(moves) / len(moves), moves
 
 
 def _check_close(arch, trace, label):
-    _runs.verdicts.clear()
-    (c0, b0), (c1, b1) = _runs(arch, trace, (arch.engine.grain_rows, FINE))
-    v0, v1 = _runs.verdicts
+    (c0, b0, v0), (c1, b1, v1) = _runs(arch, trace, (arch.engine.grain_rows, FINE))
     assert _same_conclusion(v0, v1), (label, v0["label"], v1["label"])
     move = (c0 - c1) / c1
     if abs(move) > 0.02 and arch.dram.model == "banked" and arch.dram.t_rfc_ns > 0:
@@ -133,7 +127,7 @@ def test_bundled_sweep_ranks_alike_at_default_and_fine_grain():
     for p in plan.points:
         tr = traces.setdefault(p.trace_path, sim.load_trace(p.trace_path))
         arch = sim.load_arch(p.config)
-        default, fine = (c for c, _b in _runs(arch, tr, (arch.engine.grain_rows, 64)))
+        default, fine = (c for c, _b, _v in _runs(arch, tr, (arch.engine.grain_rows, 64)))
         ranks.setdefault(p.trace_path, []).append((tuple(sorted(p.point.items())), default, fine))
     for path, rows in ranks.items():
         # same order: a pair one grain ranks apart (more than the 1 % the report calls a
@@ -164,5 +158,5 @@ def test_a_narrow_part_does_not_depend_on_the_grain_on_any_memory(preset, tmp_pa
     cfg.write_text(yaml.safe_dump(raw))
     arch = sim.load_arch(str(cfg))
     trace = sim.load_trace(os.path.join(ROOT, "traces", "synth_decode.npz"))
-    (c0, _), (c1, _) = _runs(arch, trace, (arch.engine.grain_rows, FINE))
+    (c0, _, _), (c1, _, _) = _runs(arch, trace, (arch.engine.grain_rows, FINE))
     assert abs(c0 - c1) <= 0.05 * c1, (os.path.basename(preset), arch.dram.channels, c0, c1)

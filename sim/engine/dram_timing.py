@@ -934,6 +934,16 @@ def _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
     return True
 
 
+@_inline
+def _to_request(ent, rq, left):
+    """Bursts from a queue's ``ent`` requests entered to its next whole request, at most
+    ``left`` and at least one: the piece a request-by-request entry takes next."""
+    take = int((np.floor(ent + 1e-9) + 1.0 - ent) * rq + 0.5)
+    if take < 1:
+        take = 1
+    return left if take > left else take
+
+
 @_compile
 def _book_requests(out, s0, s1, c, rq, P, H, TN, CF, FS, FI, FF, stream):
     """Enter bursts ``s0 .. s1-1`` of channel ``c`` (column times ``out``, address order)
@@ -945,12 +955,7 @@ def _book_requests(out, s0, s1, c, rq, P, H, TN, CF, FS, FI, FF, stream):
     burst = P[P_BURST]
     k = s0
     while k < s1:
-        ent = CF[c, F_ENTERED]
-        take = int((np.floor(ent + 1e-9) + 1.0 - ent) * rq + 0.5)     # to a whole request
-        if take < 1:
-            take = 1
-        if take > s1 - k:
-            take = s1 - k
+        take = _to_request(CF[c, F_ENTERED], rq, s1 - k)
         lo = np.inf
         hi = -np.inf
         for x in range(k, k + take):
@@ -1053,18 +1058,12 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     else:
         k = 0
         while k < n:
-            s0 = pos[k]
-            c = ch[s0]
+            c = ch[pos[k]]
             e = _run_end(ch, pos, k, n)
             while k < e:
-                ent = CF[c, F_ENTERED]
-                take = int((np.floor(ent + 1e-9) + 1.0 - ent) * rq + 0.5)   # to a whole request
-                if take < 1:
-                    take = 1
-                if take > e - k:
-                    take = e - k
+                take = _to_request(CF[c, F_ENTERED], rq, e - k)
                 amount = take / rq
-                t = level_time(H, TN, CF, c, now, ent + amount - depth)
+                t = level_time(H, TN, CF, c, now, CF[c, F_ENTERED] + amount - depth)
                 tg = fslots_level_time(FS, FI, FF, now, FF[1] + amount - gdepth)
                 if tg > t:
                     t = tg
