@@ -34,10 +34,12 @@ def test_non_editable_install_runs_demo_from_a_temporary_folder(tmp_path):
     # path entry; .pth files there are not run, so an editable install of the checkout stays invisible
     site = subprocess.run([py, "-c", "import sysconfig; print(sysconfig.get_paths()['purelib'])"],
                           capture_output=True, text=True, check=True).stdout.strip()
-    ours = {sysconfig.get_paths()["purelib"], sysconfig.get_paths()["platlib"]} | {
-        p for p in sys.path if p.endswith(("site-packages", "dist-packages"))}
+    # in this interpreter's search order: a virtual environment's packages (a newer setuptools,
+    # say) before the base interpreter's
+    ours = [p for p in sys.path if p.endswith(("site-packages", "dist-packages"))]
+    ours += [p for p in (sysconfig.get_paths()["purelib"], sysconfig.get_paths()["platlib"]) if p not in ours]
     with open(os.path.join(site, "outer_env.pth"), "w", encoding="utf-8") as fh:
-        fh.write("\n".join(sorted(ours)) + "\n")
+        fh.write("\n".join(dict.fromkeys(ours)) + "\n")
     env = {k: v for k, v in os.environ.items() if k not in ("PYTHONPATH", "PYTHONHOME")}
     code, out, err = _run([py, "-m", "pip", "install", "--quiet", "--no-deps", "--no-build-isolation",
                            "--no-index", str(src)], cwd=tmp_path, env=env)

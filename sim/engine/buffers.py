@@ -14,7 +14,23 @@ operation that streams through a chunk frees its rows as it goes, not all at
 its end, so a coarse simulated chunk holds the room fine ones would. Waiting
 reservations are served in order, each as soon as the releases in progress
 make room for it (one timer, not one event per row).
+
+**Room request by request.** A buffer made with ``ahead=True`` also grants a
+reservation that does not fit yet but that the releases already under way
+will make room for (consumers that have started reading their rows): the
+grant carries *when* room comes for each part of it (:meth:`Buffer.room`),
+and the memory pool lets each request of the transaction in only once its
+part has room. That is what a fetch unit reserving a buffer slot per request
+does, so a chunk cut coarse does not hold room a finely cut one would only
+take later. Reservations are still granted in order, and only against
+releases already fixed in time, so nothing granted can wait on room that only
+a later reservation frees.
 """
+
+import numpy as np
+
+# a grant ahead may take up to this share of its bytes beyond the releases under way
+TAIL_SHARE = 8
 
 from collections import deque
 
@@ -56,7 +72,7 @@ def ramp_time(now, amount, ramps):
 class Buffer:
     """An on-chip buffer of ``capacity`` bytes with peak-occupancy tracking."""
 
-    def __init__(self, env, name, capacity):
+    def __init__(self, env, name, capacity, ahead=False):
         if capacity <= 0:
             raise ValueError(f"buffer {name!r}: capacity must be > 0, got {capacity!r}")
         self.env = env
@@ -70,15 +86,20 @@ class Buffer:
         self.bytes_written = 0.0
         self.bytes_read = 0.0
         self._slack = capacity * 1e-9    # rounding of the ramps' sums (a fraction of a byte)
+        self.ahead = ahead
+        self.granted = None         # room of the last grant (see :meth:`room`)
 
     def reserve(self, nbytes):
-        """Reserve ``nbytes``; None if granted now, else an event fired when granted."""
+        """Reserve ``nbytes``; None if granted now, else an event fired when granted
+        (:meth:`room` then says when each part of it has room)."""
         if nbytes > self.capacity:
             raise ValueError(f"buffer {self.name!r}: {nbytes} bytes can never fit in {self.capacity}")
         self.bytes_written += nbytes
-        if not self.waiting and self.occupied() + nbytes <= self.capacity + self._slack:
-            self._grant(nbytes)
-            return None
+        if not self.waiting:
+            room = self._room_for(nbytes)
+            if room is not False:
+                self._grant(nbytes, room)
+                return None
         ev = self.env.event()
         self.waiting.append((nbytes, ev))
         if len(self.waiting) == 1:
@@ -104,11 +125,52 @@ class Buffer:
         self.ramps = keep
         return held
 
-    def _grant(self, nbytes):
-        self.level += nbytes
+    def room(self):
+        """When the last grant has room: None if all of it had room when granted, else
+        ``(bytes, times)``, rising: its first ``bytes[k]`` bytes have room from
+        ``times[k]`` (linear in between, ``times[0]`` up to ``bytes[0]``)."""
+        return self.granted
+
+    def _room_for(self, nbytes):
+        """None if ``nbytes`` fit now; their room (see :meth:`room`) if the releases under
+        way make it (``ahead`` buffers); False if neither."""
         held = self.occupied()
-        if held > self.peak:
-            self.peak = held
+        free = self.capacity - held
+        if nbytes <= free + self._slack:
+            return None
+        if not self.ahead or not self.ramps:
+            return False
+        now = self.env.now
+        edges = {}
+        for t0, t1, b in self.ramps:
+            a = max(now, t0)
+            rate = b / (t1 - t0)
+            edges[a] = edges.get(a, 0.0) + rate
+            edges[t1] = edges.get(t1, 0.0) - rate
+        xs = [free]
+        ts = [now]
+        rate = last = 0.0
+        for t in sorted(edges):
+            if t > ts[-1]:
+                xs.append(xs[-1] + rate * (t - ts[-1]))
+                ts.append(t)
+                last = rate
+            rate += edges[t]
+        short = nbytes - xs[-1]
+        if short > self._slack:
+            if short > nbytes / TAIL_SHARE:
+                return False
+            # a short tail: its room comes as the next reader goes on at the last one's pace
+            xs.append(nbytes)
+            ts.append(ts[-1] + short / last)
+        return np.array(xs), np.array(ts)
+
+    def _grant(self, nbytes, room=None):
+        self.level += nbytes
+        self.granted = room
+        held = self.occupied()
+        if held > self.peak:   # a grant ahead counts rows not in yet: the buffer holds at most its size
+            self.peak = min(held, self.capacity)
 
     def release(self, nbytes):
         """Free ``nbytes`` now."""
@@ -125,10 +187,13 @@ class Buffer:
 
     def _serve(self):
         w = self.waiting
-        while w and self.occupied() + w[0][0] <= self.capacity + self._slack:
+        while w:
+            room = self._room_for(w[0][0])
+            if room is False:
+                break
             n, ev = w.popleft()
-            self._grant(n)
-            ev.succeed()
+            self._grant(n, room)
+            ev.succeed(room)
         if w:
             self._arm()
 

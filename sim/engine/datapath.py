@@ -22,7 +22,7 @@ from .dram import ChannelPool
 from .fetch import FetchUnit, fetch_process
 from .program import ProgramBuilder
 from .stats import RunStats, UnitState
-from .tiling import check_fits
+from .tiling import check_fits, room_by_request
 from .writeback import writeback_process
 
 PLANE_KEYS = ("bytes_Q", "bytes_K", "bytes_KL", "bytes_V")
@@ -71,7 +71,8 @@ def _run(arch, trace, grain_rows, seed, keep_intervals):
     grain_rows, seed = _engine_options(arch, grain_rows, seed)
     amaps = _address_maps(arch, trace)
     env = simpy.Environment()
-    buffers = {name: Buffer(env, name, kib * 1024) for name, kib in (
+    ahead = room_by_request(arch)
+    buffers = {name: Buffer(env, name, kib * 1024, ahead) for name, kib in (
         ("query", arch.buffers.query_kib), ("key", arch.buffers.key_kib), ("value", arch.buffers.value_kib))}
     # steps are made as the units reach them (the program's feeds)
     prog = ProgramBuilder(env, arch, trace, amaps, buffers, grain_rows, np.random.default_rng(seed)).prog

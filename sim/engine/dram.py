@@ -350,6 +350,7 @@ class ChannelPool:
         self.LOG = np.zeros((4096 if log_commands else 0, 5))
         # per-share records (channel, arrival, start, first data, done, bursts)
         self._times = np.zeros(3)
+        self._no_room = (np.zeros(1), np.full(1, -np.inf))   # room_time: room from the start
         lut = self.decoder.lut
         self._lut = (lut[0], lut[2], self.decoder.low_bits, self.decoder.low_mask) if lut else None
         # write queues: bursts entered and drained so far, those waiting (oldest first), the
@@ -477,7 +478,7 @@ class ChannelPool:
         rec = [now, 0, now, now, now, None, _STREAM.get(txn.kind, 1)]
         if not self.rows_first:
             rec[1] = -1                        # committed in one go
-            self._commit(rec, ch, gb, row, now, pos)
+            self._commit(rec, ch, gb, row, now, pos, txn.room)
             return self._finish(txn, now, rec[2], rec[3], rec[4], None)
         cnt = np.bincount(ch, minlength=self.n)
         chans = np.flatnonzero(cnt).tolist()
@@ -651,8 +652,9 @@ class ChannelPool:
         times = self._times
         times[:] = -np.inf
         tries = 0
+        rx, rt = txn.room or self._no_room
         while serve_addresses(b, *self._lut_args, float(now), times, *self._state_args,
-                              _STREAM.get(txn.kind, 1)) < 0:
+                              _STREAM.get(txn.kind, 1), rx, rt) < 0:
             _room_or_stall(tries, "banked serve")
             tries += 1
             self._make_room(len(b))
@@ -678,18 +680,20 @@ class ChannelPool:
         if self._lut is not None:
             self._lut_args = (self.burst,) + self._lut
 
-    def _commit(self, rec, ch, gb, row, now, pos=None):
+    def _commit(self, rec, ch, gb, row, now, pos=None, room=None):
         """Fix the timing of one batch of bursts ``ch``/``gb``/``row`` (sorted by channel;
-        ``pos``: where each burst in address order is, by default channel by channel)."""
+        ``pos``: where each burst in address order is, by default channel by channel;
+        ``room``: when its buffer has room for it, see :meth:`sim.engine.buffers.Buffer.reserve`)."""
         if pos is None:
             pos = np.arange(len(ch), dtype=np.int64)
+        rx, rt = room or self._no_room
         times = self._times
         times[0] = -np.inf
         times[1] = -np.inf
         times[2] = -np.inf if rec[4] == rec[0] else rec[4]
         for tries in range(MAX_ROOM_TRIES + 1):
             nch = serve_and_book(ch, gb, row, pos, float(now), float(rec[0]), times, *self._state_args,
-                                 rec[6])
+                                 rec[6], rx, rt)
             if nch >= 0:
                 break
             _room_or_stall(tries, "banked commit")

@@ -1004,10 +1004,23 @@ def _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF):
     return True
 
 
+@_inline
+def room_time(RX, RT, x):
+    """When the buffer has room for the batch's first ``x`` bursts: ``RT`` at ``RX``
+    (cumulative bursts, rising), linear in between, ``RT[0]`` before the first point."""
+    n = len(RX)
+    if x <= RX[0]:
+        return RT[0]
+    for k in range(1, n):
+        if x <= RX[k]:
+            return RT[k - 1] + (x - RX[k - 1]) / (RX[k] - RX[k - 1]) * (RT[k] - RT[k - 1])
+    return RT[n - 1]
+
+
 @_compile
 def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, banks, close_page, P,
                    open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth, FS, FI, FF,
-                   stream):
+                   stream, RX, RT):
     """Queue, serve and book one batch of reads (sorted by channel; ``pos[k]``: where the
     batch's ``k``-th burst in address order is) arriving at ``now``.
 
@@ -1017,7 +1030,10 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     When the whole batch fits now, each channel's share is placed in
     one go; otherwise the batch goes in address order a request at a time, each
     waiting for its room, so a large batch never holds more than the limits
-    allow -- the same as the same bytes cut into small batches. Bursts are
+    allow -- the same as the same bytes cut into small batches. A request also
+    waits for room in its buffer: the batch's first ``x`` bursts have room from
+    :func:`room_time` (``RX``, ``RT``: the buffer's known releases, see
+    :meth:`sim.engine.buffers.Buffer.reserve`). Bursts are
     placed by :func:`place_bursts`; each share then enters the share records
     (``R`` rows: channel, arrival, start, first data, last data, bursts), the
     data-bus intervals (``IV``) and the busy cycles. ``times`` holds the batch's
@@ -1035,7 +1051,7 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     agg[:, 1] = np.inf
     agg[:, 2] = -np.inf
     agg[:, 3] = 0.0
-    if _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF):
+    if room_time(RX, RT, n) <= now and _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF):
         i = 0
         while i < n:
             c = ch[i]
@@ -1067,6 +1083,9 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
                 tg = fslots_level_time(FS, FI, FF, now, FF[1] + amount - gdepth)
                 if tg > t:
                     t = tg
+                tr = room_time(RX, RT, k + take)
+                if tr > t:
+                    t = tr
                 s0 = pos[k]
                 begin, first, last = place_bursts(gb, row, s0, s0 + take, c, 0, t, out, P, groups, banks,
                                                   close_page, open_row, BF, TL, TK, TG, TN, CF, acc, LOG,
@@ -1175,12 +1194,12 @@ def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, H, TN, C
 @_compile
 def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, depth, rq, groups, banks,
                     close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth,
-                    FS, FI, FF, stream):
+                    FS, FI, FF, stream, RX, RT):
     """:func:`decode_sorted` then :func:`serve_and_book` for reads arriving now."""
     ch, gb, row, pos = decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, len(busy))
     return serve_and_book(ch, gb, row, pos, now, now, times, depth, rq, groups, banks, close_page, P,
                           open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth, FS,
-                          FI, FF, stream)
+                          FI, FF, stream, RX, RT)
 
 
 # ---------------------------------------------------------------- compile once, load once
@@ -1208,8 +1227,9 @@ def signatures():
     # depth, rq, groups, banks, close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI
     state = (i, i, i, i, b, a(f, 1), a(i, 1), a(f, 2), a(f, 3), a(i, 3), a(f, 4), a(i, 2), a(f, 2),
              a(f, 3), a(f, 2), a(f, 3), a(f, 1), a(f, 1), a(f, 2), a(i, 1))
-    # the fetch unit's request slots: gdepth, FS, FI, FF, and the stream a batch belongs to
-    slots = (i, a(f, 2), a(i, 1), a(f, 1), i)
+    # the fetch unit's request slots: gdepth, FS, FI, FF, the stream a batch belongs to, and
+    # when its buffer has room for it (RX, RT)
+    slots = (i, a(f, 2), a(i, 1), a(f, 1), i, a(f, 1), a(f, 1))
     return {
         "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1)) + state + slots,
         "serve_and_book": (a(i, 1), a(i, 1), a(i, 1), a(i, 1), f, f, a(f, 1)) + state + slots,

@@ -3,7 +3,10 @@
 It walks its transactions in program order. Each one first gets room in its
 target buffer (reservations are granted in program order, which is what
 keeps the datapath free of deadlock: nothing reserved can need room that only
-a later transaction frees), then waits for its data dependency (the previous
+a later transaction frees; a buffer may grant room ahead, against rows its
+reader is already freeing, and the transaction then carries ``txn.room`` so
+the pool lets each request in only once its part has room, see
+:mod:`sim.engine.buffers`), then waits for its data dependency (the previous
 layer, the softmax that decides an LSB refetch, the top-k that decides which
 V rows are kept) and for a free in-flight slot, and is issued to the channel
 pool (one issue cycle per request of ``fetch.request_bytes``).
@@ -44,6 +47,8 @@ from bisect import insort
 from collections import deque
 from heapq import heappop, heappush
 from operator import attrgetter
+
+import numpy as np
 
 from .buffers import ramp_time
 from .dot import later
@@ -261,9 +266,21 @@ class FetchUnit:
             st = self.streams[txn.buffer.name] = _Stream()
         return st
 
+    def room_ahead(self, txn, room):
+        """Keep the buffer's room for ``txn`` if some of it comes later (see
+        :meth:`sim.engine.buffers.Buffer.room`), in bursts, for the pool."""
+        if room is not None:
+            txn.room = (room[0] / self.burst, room[1])
+
     def issue(self, txn, cause):
         now = self.env.now
         txn.log.append((cause, now))
+        if txn.room is not None:
+            # its first burst waits for room in the pool: say so in its log
+            rx, rt = txn.room
+            t = float(np.interp(1.0, rx, rt))
+            if t > now:
+                txn.log.append((f"{txn.buffer.name}_buffer_full", t))
         st = self.stream(txn)
         st.pending.append(txn)
         st.untimed.append(txn)
@@ -363,10 +380,13 @@ def fetch_process(u):
             if req is not None:
                 cur.log.append(("fetch", now))
                 req.callbacks.append(u.poke)
+            else:
+                u.room_ahead(cur, cur.buffer.room())
         # 3. room granted: ready to issue, or set aside until its dependency fires
         if cur is not None and (req is None or req.processed):
             if req is not None:
                 cur.log.append((f"{cur.buffer.name}_buffer_full", now))
+                u.room_ahead(cur, req.value)
             txn, cur, req = cur, None, None
             u.walked += txn.nreq
             txn.end_pos = u.walked

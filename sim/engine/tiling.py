@@ -22,7 +22,8 @@ Per step:
   carry the rows of several heads of a group), capped so one chunk takes at
   most an eighth of its buffer (:data:`CHUNK_SHARE`: a chunk holds its room
   while its data arrives, so the buffer must hold several for a coarse grain
-  to behave as a fine one). The grain is a simulation setting: chunks stream (see
+  to behave as a fine one), or half of it where the memory pool lets each
+  request in only once the buffer has room for it (:func:`room_by_request`). The grain is a simulation setting: chunks stream (see
   :mod:`sim.engine.fetch`), so cutting finer changes event counts, not the
   modelled hardware. A burst that two neighbouring chunks of one head share
   is fetched once, by the first (:attr:`Chunk.skip`);
@@ -173,17 +174,28 @@ def _half(arch, plane):
     return (arch.buffers.value_kib if plane == "V" else arch.buffers.key_kib) * 1024 / 2
 
 
-# A chunk takes at most this share of its buffer. A chunk holds its room from the moment it is
-# taken until its rows are read, while its data arrives at the memory's pace; with chunks of
-# half the buffer the buffer would work as two slots and a coarse grain would wait for room a
-# fine one does not (measured: up to 4.6 % on grouped-query decode); an eighth keeps that
-# within about 1 %.
+# A chunk takes at most this share of its buffer. A chunk that holds all its room from the
+# moment it is taken until its rows are read makes the buffer work as a few slots: with chunks
+# of half the buffer a coarse grain waited for room a fine one does not (measured: up to 4.6 %
+# on grouped-query decode); an eighth keeps that within about 1 %. Where the memory pool lets
+# each request of a chunk in only once the buffer has room for it (:func:`room_by_request`),
+# a chunk holds no room early and may take half its buffer (the other half is the next
+# group's, see above).
 CHUNK_SHARE = 8
+CHUNK_SHARE_BY_REQUEST = 2
+
+
+def room_by_request(arch):
+    """Whether the memory pool enters a transaction's requests one by one as its buffer frees
+    room (the banked pool, first come first served), so buffers grant room ahead."""
+    return arch.dram.model == "banked" and arch.dram.scheduler != "row_hits_first"
 
 
 def chunk_cap(arch, plane):
-    """Bytes a chunk of ``plane`` may take: :data:`CHUNK_SHARE` of its buffer."""
-    return 2 * _half(arch, plane) / CHUNK_SHARE
+    """Bytes a chunk of ``plane`` may take: :data:`CHUNK_SHARE` of its buffer, or
+    :data:`CHUNK_SHARE_BY_REQUEST` where room comes request by request."""
+    share = CHUNK_SHARE_BY_REQUEST if room_by_request(arch) else CHUNK_SHARE
+    return 2 * _half(arch, plane) / share
 
 
 def _room_rows(arch, plane, head_dim):
