@@ -317,7 +317,6 @@ class ChannelPool:
         self.latency_total = 0.0
         self.latencies = array("d")                  # per read: submit to last data (8 bytes each)
         # live occupancy: transactions submitted and not yet complete
-        self.in_flight = 0
         self._occ_t = array("d")                    # when a transaction arrived or left, and
         self._occ_d = array("b")                    # +1 / -1: compact, a long run logs millions
         self.interleave = d.interleave_bytes
@@ -738,6 +737,10 @@ class ChannelPool:
                     ("memory_transfer", t_done))
         if txn.on_timed is not None:   # the fetch unit streams data from here
             txn.on_timed(txn)
+            if ev is None:             # and waits on no event of ours: leave at t_done, no timer
+                self._occ_t.append(t_done)
+                self._occ_d.append(-1)
+                return None
         if ev is None:
             out = env.timeout(t_done - now)
             out.callbacks.append(self._left)
@@ -746,13 +749,18 @@ class ChannelPool:
         out.callbacks.append(lambda _e, ev=ev: (self._left(_e), ev.succeed()))
         return ev
 
+    @property
+    def in_flight(self):
+        """Transactions in the pool now: submitted, and their data not all back."""
+        t = np.frombuffer(self._occ_t, dtype=float)
+        d = np.frombuffer(self._occ_d, dtype=np.int8)
+        return int(d[t <= self.env.now].sum())
+
     def _arrive(self, now):
-        self.in_flight += 1
         self._occ_t.append(now)
         self._occ_d.append(1)
 
     def _left(self, _ev):
-        self.in_flight -= 1
         self._occ_t.append(self.env.now)
         self._occ_d.append(-1)
 
@@ -762,9 +770,10 @@ class ChannelPool:
             return {"bins": [0.0] * bins, "bin_cycles": total_cycles / bins if bins else 0.0,
                     "mean": 0.0, "max": 0}
         times = np.frombuffer(self._occ_t, dtype=float)
-        order = np.argsort(times, kind="stable")
+        steps = np.frombuffer(self._occ_d, dtype=np.int8)
+        order = np.lexsort((steps, times))   # in time order, a departure before an arrival at one instant
         t = times[order]
-        level = np.cumsum(np.frombuffer(self._occ_d, dtype=np.int8)[order].astype(float))
+        level = np.cumsum(steps[order].astype(float))
         edges = np.linspace(0.0, total_cycles, bins + 1)
         # integral of the step function up to each edge
         seg_t = np.append(t, max(total_cycles, t[-1]))

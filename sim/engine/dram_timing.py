@@ -723,7 +723,7 @@ def place_bursts(gb, row, i0, i1, c, w, t, out, P, groups, banks, close_page, op
 PIECES = 64          # a share's completion ramp is cut into at most this many heap entries
 
 
-@_compile
+@_inline
 def _heap_push(H, TN, c, d, s, a):
     k = TN[c, N_HEAP]
     H[c, k, 0] = d
@@ -739,7 +739,7 @@ def _heap_push(H, TN, c, d, s, a):
         k = up
 
 
-@_compile
+@_inline
 def _heap_pop(H, TN, c):
     d = H[c, 0, 0]
     s = H[c, 0, 1]
@@ -764,7 +764,7 @@ def _heap_pop(H, TN, c):
     return d, s, a
 
 
-@_compile
+@_inline
 def level_time(H, TN, CF, c, now, level):
     """Earliest time from ``now`` at which ``c``'s completions reach ``level`` requests.
 
@@ -803,7 +803,7 @@ def slots_room_at(H, TN, CF, c, now, need, depth):
     return level_time(H, TN, CF, c, now, CF[c, F_ENTERED] + min(need, 1.0) - depth)
 
 
-@_compile
+@_inline
 def slots_add(H, TN, CF, c, first, done, amount):
     """``amount`` requests enter ``c``'s queue, completing linearly from ``first`` to ``done``.
 
@@ -835,7 +835,7 @@ def slots_add(H, TN, CF, c, first, done, amount):
 # out of order, so they are kept sorted (a late one goes in its place, near the end)
 # rather than consumed by a search that could pass one still to come.
 
-@_compile
+@_inline
 def fslots_add(FS, FI, FF, start, done, amount):
     """``amount`` requests (one at most) enter, completing from ``start`` to ``done``."""
     FF[1] += amount
@@ -853,7 +853,7 @@ def fslots_add(FS, FI, FF, start, done, amount):
     FI[1] += 1
 
 
-@_compile
+@_inline
 def fslots_level_time(FS, FI, FF, now, level):
     """Earliest time from ``now`` at which the slots' completions reach ``level`` requests
     (a level beyond every completion entered is taken as reached now)."""
@@ -944,7 +944,7 @@ def _to_request(ent, rq, left):
     return left if take > left else take
 
 
-@_compile
+@_inline
 def _book_requests(out, s0, s1, c, rq, P, H, TN, CF, FS, FI, FF, stream):
     """Enter bursts ``s0 .. s1-1`` of channel ``c`` (column times ``out``, address order)
     into the channel's queue slots and the fetch unit's, a request at a time, so the
@@ -986,7 +986,7 @@ def _run_end(ch, pos, k, n):
     return e
 
 
-@_compile
+@_inline
 def _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF):
     """Whether the whole batch fits now: every share in its channel's queue, all of it in
     the fetch unit's request slots."""

@@ -97,6 +97,7 @@ class FetchUnit:
         self.issue_free = 0.0       # the request port is busy issuing until then
         self.desc_now = -1          # the descriptor issued last
         self.fired = False          # a set-aside transaction's dependency fired since the last look
+        self.issuing = False        # inside pool.submit
         self.wake = env.event()
         self.timer = None           # the pending re-evaluation timer, and its time
         self.timer_at = 0.0
@@ -237,6 +238,14 @@ class FetchUnit:
                 return "reorder_full"
         return None
 
+    def slots_hold(self, txn):
+        """When the pool's request slots (banked) let ``txn`` go, if that is after the request
+        port is free (else None): nothing but the unit's own issues changes when they free."""
+        if self.slot_room_at is None or not self.npending:
+            return None
+        t = self.slot_room_at(self.env.now, txn.nreq)
+        return t if t > self.issue_free else None
+
     def when_room(self, txn):
         """Earliest time the in-flight count lets ``txn`` issue, or None if a
         transaction on the way has not been timed yet (the pool pokes then)."""
@@ -288,7 +297,9 @@ class FetchUnit:
         self.npending += 1
         txn.last = None
         txn.on_timed = self.timed
+        self.issuing = True
         self.pool.submit(txn)   # times it now (first come first served) or when it commits
+        self.issuing = False
         txn.bursts = None
         stats = self.stats
         key = self.plane_keys.get(txn.kind)
@@ -320,7 +331,8 @@ class FetchUnit:
             heappush(self.arrivals, (done, t.order, t))
             t.log.append(("reorder", t.last))
             later(env, max(0.0, h_first - env.now), t.done)
-        self.poke()
+        if not self.issuing:   # timed inside issue: the unit looks again right after
+            self.poke()
 
     def why(self, cur, more):
         """(state, cause) while nothing can move."""
@@ -349,19 +361,28 @@ def fetch_process(u):
         if u.ready:
             if now < u.issue_free:
                 # the port is still issuing: nothing else goes out before it is free
-                yield env.timeout(u.issue_free - now)
-                continue
-            u.retire()
-            k = u.next_ready()
-            txn = u.ready[k]
-            why = u.issue_block(txn)
+                u.retire()
+                k = u.next_ready()
+                txn = u.ready[k]
+                hold = u.slots_hold(txn)
+                if hold is None:
+                    yield env.timeout(u.issue_free - now)
+                    continue
+                # the slots hold it past then: it waits for them from the port's end
+                u.poke_at(hold)
+                why, t_wait = "inflight_limit", u.issue_free
+            else:
+                u.retire()
+                k = u.next_ready()
+                txn = u.ready[k]
+                why, t_wait = u.issue_block(txn), now
             if why is None:
                 del u.ready[k]
                 u.desc_now = txn.desc
                 u.issue(txn, txn.wait_cause or "fetch")
                 continue
             if txn.wait_cause is None:
-                txn.log.append(("fetch", now))
+                txn.log.append(("fetch", t_wait))
             txn.wait_cause = why
         # 2. take the next transaction while the window allows, and reserve its room
         if cur is None and nxt is not None and u.window_open(nxt) and not (strict and u.ready):
