@@ -13,7 +13,8 @@ A column has a kind -- ``int``, ``float`` or ``text`` -- which fixes its type
 in the store and its dtype in a DataFrame.
 """
 
-from .result import UNIT_ORDER
+# the order units take in a result document, its rows and its tables
+UNIT_ORDER = ("dram", "fetch", "dot", "dot_pv", "softmax", "topk")
 
 # (column, kind): paths into the result document
 FIGURES = (

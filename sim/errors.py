@@ -61,6 +61,10 @@ class TraceError(InputError):
     """An attention trace is malformed or inconsistent."""
 
 
+class SweepError(InputError):
+    """A sweep spec, its output folder or its backend is unusable."""
+
+
 class OptionError(InputError):
     """A command-line option or output path is unusable (``--out = 'x': exists ...``)."""
 

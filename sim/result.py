@@ -18,13 +18,13 @@ import numpy as np
 from . import __version__
 from . import formats as fm
 from .build import build_id
+from .columns import UNIT_ORDER, result_frame, unit_frame
 from .limits import classify, cause_text, verdict_of
 from .model.area import area_section
 from .model.bounds import bounds_from_counts
 from .model.dense import dense_macs
 from .model.energy import energy_section
 
-UNIT_ORDER = ("dram", "fetch", "dot", "dot_pv", "softmax", "topk")
 
 
 class Result:
@@ -70,14 +70,10 @@ class Result:
 
     def to_frame(self):
         """A one-row pandas DataFrame: the figures and knobs under the sweep table's column names."""
-        from .columns import result_frame
-
         return result_frame(self._doc)
 
     def unit_frame(self):
         """A pandas DataFrame with a row per unit: state fractions and ``stall.<cause>`` fractions."""
-        from .columns import unit_frame
-
         return unit_frame(self._doc)
 
 

@@ -17,7 +17,7 @@ import math
 import numbers
 
 from .. import arch as archmod
-from ..errors import closest
+from ..errors import SweepError, closest
 
 COMPARE = {
     "le": lambda a, b: a <= b, "lt": lambda a, b: a < b,
@@ -55,7 +55,6 @@ DERIVED = {
 
 
 def _err(source, field, value, expected):
-    from .spec import SweepError  # spec imports this module
     return SweepError(source, field, value, expected)
 
 

@@ -29,7 +29,7 @@ import math
 import os
 
 from .. import arch as archmod
-from ..errors import NO_VALUE, InputError, closest
+from ..errors import NO_VALUE, SweepError, closest
 from ..yamlio import guess_kind, locate, read_mapping_doc, unknown_keys_error
 from . import constraints as cons
 from .objectives import OBJECTIVES
@@ -40,10 +40,6 @@ MAX_VALUES = 10000   # per axis; a range that long is a typo, not a plan
 MAX_POINTS = 1_000_000
 MAX_TRACES = 1000
 MAX_LINKED = 100     # linked groups
-
-
-class SweepError(InputError):
-    """A sweep spec, its output folder or its backend is unusable."""
 
 
 class Spec:

@@ -39,7 +39,7 @@ import zlib
 
 from ..arch import MAIN_KNOBS, knob_paths
 from ..columns import _at_parts, figure_columns, figure_row
-from ..result import UNIT_ORDER
+from ..columns import UNIT_ORDER
 
 FORMAT = "attnsim-sweep"
 VERSION = 2
