@@ -11,7 +11,6 @@ from __future__ import annotations
 import copy
 import json
 import math
-from itertools import chain
 
 import numpy as np
 
@@ -117,11 +116,10 @@ def _dram_states(pool, fetch_state, end):
     keys = list(classes)
     busy_total = 0.0
     busy_in = np.zeros(len(t0))
-    for busy in pool.busy_intervals:
-        if not busy:
+    for busy in pool.busy_arrays():
+        if not len(busy):
             continue
-        arr = np.fromiter(chain.from_iterable(busy), np.float64, 2 * len(busy)).reshape(-1, 2)
-        arr = np.clip(arr, 0, end)
+        arr = np.clip(busy, 0, end)
         dur = arr[:, 1] - arr[:, 0]
         c = np.cumsum(dur)
         xs = arr.reshape(-1)
@@ -234,8 +232,10 @@ def build_result(stats):
     doc["verdict"] = classify(doc)
     doc["energy"] = energy_section(arch, doc, trace)
     doc["area"] = area_section(arch)
-    intervals = {name: st.intervals if st.keep_intervals else [] for name, st in states.items()}
-    intervals["dram"] = pool.busy_intervals
+    intervals = {}
+    if stats.timeline:   # lists for the timeline export only: a long run has millions
+        intervals = {name: st.intervals for name, st in states.items()}
+        intervals["dram"] = pool.busy_intervals
     return Result(_round(doc), intervals)
 
 

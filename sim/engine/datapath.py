@@ -90,7 +90,7 @@ def _run(arch, trace, grain_rows, seed, keep_intervals):
     if any(t is None for t in step_times) or any(p.is_alive for p in procs.values()) or writer.is_alive:
         raise _stalled(env, arch, trace, fetch, states, procs, step_times)
     return RunStats(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, max(step_times),
-                    {"grain_rows": grain_rows, "seed": seed})
+                    {"grain_rows": grain_rows, "seed": seed}, keep_intervals)
 
 
 def _start_units(env, arch, prog, fetch, states):

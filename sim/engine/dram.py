@@ -426,16 +426,22 @@ class ChannelPool:
         self._room_key, self._room_t = key, t
         return t
 
-    @property
-    def busy_intervals(self):
-        """Per channel, the merged data-bus busy intervals ``[[begin, end], ...]``, in time order."""
+    def busy_arrays(self):
+        """Per channel, the data-bus busy intervals as an array of rows ``begin, end``, in time
+        order, overlaps merged."""
         out = []
         for c in range(self.n):
             iv = self.IV[c, :self.TN[c, T.N_IV]]
             if len(iv) > 1 and np.any(iv[1:, 0] < iv[:-1, 1]):
                 iv = _merged(iv)
-            out.append(iv.tolist())
+            out.append(iv)
         return out
+
+    @property
+    def busy_intervals(self):
+        """Per channel, the merged data-bus busy intervals ``[[begin, end], ...]``, in time order
+        (for a timeline: lists, about ten times the memory of :meth:`busy_arrays`)."""
+        return [iv.tolist() for iv in self.busy_arrays()]
 
     @property
     def requests(self):

@@ -220,9 +220,10 @@ class RunStats:
     """
 
     __slots__ = ("arch", "trace", "prog", "pool", "states", "buffers", "fetch_stats", "step_times",
-                 "end", "engine")
+                 "end", "engine", "timeline")
 
-    def __init__(self, arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end, engine):
+    def __init__(self, arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end, engine,
+                 timeline=True):
         self.arch = arch
         self.trace = trace
         self.prog = prog                # per-unit programs and work counts
@@ -233,3 +234,4 @@ class RunStats:
         self.step_times = step_times    # cycle each step finished
         self.end = end                  # cycle the last step finished
         self.engine = engine            # engine settings the run used
+        self.timeline = timeline        # every unit's intervals were kept (for a timeline)
