@@ -25,7 +25,6 @@ from .model.dense import dense_macs
 from .model.energy import energy_section
 
 
-
 class Result:
     """One run's measurements. ``to_dict()`` gives the result document."""
 

@@ -27,12 +27,12 @@ releases already fixed in time, so nothing granted can wait on room that only
 a later reservation frees.
 """
 
+from collections import deque
+
 import numpy as np
 
 # a grant ahead may take up to this share of its bytes beyond the releases under way
 TAIL_SHARE = 8
-
-from collections import deque
 
 
 def ramp_time(now, amount, ramps):

@@ -359,11 +359,11 @@ def fetch_process(u):
             u.release_aside(now)
         # 1. issue the oldest ready transaction when the port and the limits allow
         if u.ready:
+            u.retire()
+            k = u.next_ready()
+            txn = u.ready[k]
             if now < u.issue_free:
                 # the port is still issuing: nothing else goes out before it is free
-                u.retire()
-                k = u.next_ready()
-                txn = u.ready[k]
                 hold = u.slots_hold(txn)
                 if hold is None:
                     yield env.timeout(u.issue_free - now)
@@ -372,9 +372,6 @@ def fetch_process(u):
                 u.poke_at(hold)
                 why, t_wait = "inflight_limit", u.issue_free
             else:
-                u.retire()
-                k = u.next_ready()
-                txn = u.ready[k]
                 why, t_wait = u.issue_block(txn), now
             if why is None:
                 del u.ready[k]

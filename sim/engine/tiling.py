@@ -23,7 +23,8 @@ Per step:
   most an eighth of its buffer (:data:`CHUNK_SHARE`: a chunk holds its room
   while its data arrives, so the buffer must hold several for a coarse grain
   to behave as a fine one), or half of it where the memory pool lets each
-  request in only once the buffer has room for it (:func:`room_by_request`). The grain is a simulation setting: chunks stream (see
+  request in only once the buffer has room for it (:func:`room_by_request`).
+  The grain is a simulation setting: chunks stream (see
   :mod:`sim.engine.fetch`), so cutting finer changes event counts, not the
   modelled hardware. A burst that two neighbouring chunks of one head share
   is fetched once, by the first (:attr:`Chunk.skip`);

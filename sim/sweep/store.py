@@ -38,8 +38,7 @@ import sqlite3
 import zlib
 
 from ..arch import MAIN_KNOBS, knob_paths
-from ..columns import _at_parts, figure_columns, figure_row
-from ..columns import UNIT_ORDER
+from ..columns import UNIT_ORDER, _at_parts, figure_columns, figure_row
 
 FORMAT = "attnsim-sweep"
 VERSION = 2
