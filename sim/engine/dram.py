@@ -289,12 +289,14 @@ class ChannelPool:
         # the fetch unit's request slots over all channels (fetch.inflight; a slot frees
         # when its request's data has arrived): a large transaction never has more out
         self.FS = np.zeros((1024, 3))       # see dram_timing.fslots_add
-        self.FI = np.zeros(2, dtype=np.int64)
-        self.FF = np.full(5, -np.inf)
+        self.FI = np.zeros(3, dtype=np.int64)
+        self.FF = np.full(6, -np.inf)
         self.FF[:2] = 0.0
+        self.FF[5] = 0.0
         # (row hits first commits a transaction's shares at different times: the fetch
         # unit's own count of handed-over requests is the limit there, see fetch.py)
         self.fetch_depth = arch.fetch.inflight if d.scheduler != "row_hits_first" else 1 << 40
+        self._entries = 0         # calls that entered requests into the fetch slots
         self._room_key, self._room_t = None, 0.0
         self.IV = np.zeros((self.n, 1024, 2))            # data-bus busy intervals per channel
         self.busy_cycles = np.zeros(self.n)
@@ -393,10 +395,12 @@ class ChannelPool:
     def _make_room(self, rows):
         """Grow the tables that lack room for ``rows`` more bursts (one share) per channel."""
         self.outstanding.make_room(rows)
-        p, n = self.FI
+        p, n, q = self.FI
         if p:                                   # drop completions counted already
             self.FS[:n - p] = self.FS[p:n]
-            self.FI[:] = (0, n - p)
+            if q < p:
+                q, self.FF[5] = p, self.FF[0]
+            self.FI[:] = (0, n - p, q - p)
         if self.FI[1] + rows + 1 > len(self.FS):
             self.FS = _grown(self.FS, self.FI[1] + rows + 1, axis=0)
         self.H = self.outstanding.H
@@ -419,11 +423,14 @@ class ChannelPool:
     def _slot_room_at(self, now, need):
         """Earliest time from ``now`` at which ``need`` (one at most) more requests fit in
         the fetch unit's request slots."""
-        key = (float(self.FF[1]), min(need, 1.0))
-        if key == self._room_key:      # nothing entered since: the same time still holds
-            return max(self._room_t, now)
-        t = T.fslots_level_time(self.FS, self.FI, self.FF, float(now), key[0] + key[1] - self.fetch_depth)
-        self._room_key, self._room_t = key, t
+        if need > 1.0:
+            need = 1.0
+        if self._room_key == (self._entries, need):   # nothing entered since: the same time holds
+            t = self._room_t
+            return t if t > now else now
+        level = float(self.FF[1]) + need - self.fetch_depth
+        t = T.fslots_level_time(self.FS, self.FI, self.FF, float(now), level)
+        self._room_key, self._room_t = (self._entries, need), t
         return t
 
     def busy_arrays(self):
@@ -658,6 +665,7 @@ class ChannelPool:
         times[:] = -np.inf
         tries = 0
         rx, rt = txn.room or self._no_room
+        self._entries += 1
         while serve_addresses(b, *self._lut_args, float(now), times, *self._state_args,
                               _STREAM.get(txn.kind, 1), rx, rt) < 0:
             _room_or_stall(tries, "banked serve")
@@ -696,6 +704,7 @@ class ChannelPool:
         times[0] = -np.inf
         times[1] = -np.inf
         times[2] = -np.inf if rec[4] == rec[0] else rec[4]
+        self._entries += 1
         for tries in range(MAX_ROOM_TRIES + 1):
             nch = serve_and_book(ch, gb, row, pos, float(now), float(rec[0]), times, *self._state_args,
                                  rec[6], rx, rt)

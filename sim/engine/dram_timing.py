@@ -833,7 +833,9 @@ def slots_add(H, TN, CF, c, first, done, amount):
 # counted in ``FF[0]``; ``FF[1]``: requests entered; ``FF[2 + s]``: when stream ``s``'s
 # last request's slot frees (query, key, value buffers). Completions of different channels come
 # out of order, so they are kept sorted (a late one goes in its place, near the end)
-# rather than consumed by a search that could pass one still to come.
+# rather than consumed by a search that could pass one still to come. The levels asked
+# for rise, so a search resumes where the last one stopped: ``FI[2]``, with the amounts
+# before it in ``FF[5]``.
 
 @_inline
 def fslots_add(FS, FI, FF, start, done, amount):
@@ -851,6 +853,9 @@ def fslots_add(FS, FI, FF, start, done, amount):
     FS[k, 1] = start
     FS[k, 2] = amount
     FI[1] += 1
+    if k < FI[2]:
+        FI[2] += 1
+        FF[5] += amount
 
 
 @_inline
@@ -868,12 +873,21 @@ def fslots_level_time(FS, FI, FF, now, level):
     if level <= rel + 1e-9:
         return now
     x = level - 1e-9
-    for k in range(p, n):
+    q = FI[2]
+    if q >= p and FF[5] < x:        # the answer is at or past the last one's
+        rel = FF[5]
+    else:
+        q = p
+    for k in range(q, n):
         a = FS[k, 2]
         if rel + a >= x:
+            FI[2] = k
+            FF[5] = rel
             t = FS[k, 1] + (level - rel) / a * (FS[k, 0] - FS[k, 1])
             return t if t > now else now
         rel += a
+    FI[2] = n
+    FF[5] = rel
     return now
 
 
@@ -945,12 +959,13 @@ def _to_request(ent, rq, left):
 
 
 @_inline
-def _book_requests(out, s0, s1, c, rq, P, H, TN, CF, FS, FI, FF, stream):
+def _book_requests(out, s0, s1, c, rq, P, H, TN, CF, FS, FI, FF, stream, chq):
     """Enter bursts ``s0 .. s1-1`` of channel ``c`` (column times ``out``, address order)
-    into the channel's queue slots and the fetch unit's, a request at a time, so the
-    counts do not depend on how bursts were batched. A request leaves the channel's queue
-    from its first data to its last; its fetch slot frees no earlier than the slot of the
-    request before it in the same buffer's stream (data is handed over in order)."""
+    into the channel's queue slots (if ``chq``, else only counted) and the fetch unit's, a
+    request at a time, so the counts do not depend on how bursts were batched. A request
+    leaves the channel's queue from its first data to its last; its fetch slot frees no
+    earlier than the slot of the request before it in the same buffer's stream (data is
+    handed over in order)."""
     lat = P[P_CL] + P[P_CTRL]
     burst = P[P_BURST]
     k = s0
@@ -965,7 +980,10 @@ def _book_requests(out, s0, s1, c, rq, P, H, TN, CF, FS, FI, FF, stream):
                 hi = out[x]
         lo += lat
         hi += lat + burst
-        slots_add(H, TN, CF, c, lo, hi, take / rq)
+        if chq:
+            slots_add(H, TN, CF, c, lo, hi, take / rq)
+        else:
+            CF[c, F_ENTERED] += take / rq
         last = FF[2 + stream]
         if lo < last:
             lo = last
@@ -987,11 +1005,13 @@ def _run_end(ch, pos, k, n):
 
 
 @_inline
-def _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF):
-    """Whether the whole batch fits now: every share in its channel's queue, all of it in
-    the fetch unit's request slots."""
+def _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF, chq):
+    """Whether the whole batch fits now: every share in its channel's queue (if ``chq``), all
+    of it in the fetch unit's request slots."""
     if n / rq > gdepth or fslots_level_time(FS, FI, FF, now, FF[1] + n / rq - gdepth) > now:
         return False
+    if not chq:
+        return True
     i = 0
     while i < n:
         c = ch[i]
@@ -1043,6 +1063,10 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     n = len(ch)
     if not _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P) or FI[1] + n + 1 > FS.shape[0]:
         return -1
+    # A request is in its channel's queue no longer than in a fetch slot (it leaves the
+    # queue at its data, the slot at handover), so with no more fetch slots than queue
+    # entries the queue can never be the one that waits: it is not kept then.
+    chq = gdepth > depth
     ctrl = P[P_CTRL]
     out = np.empty(n)
     nc = TN.shape[0]
@@ -1051,7 +1075,8 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     agg[:, 1] = np.inf
     agg[:, 2] = -np.inf
     agg[:, 3] = 0.0
-    if room_time(RX, RT, n) <= now and _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF):
+    if room_time(RX, RT, n) <= now and _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF,
+                                                chq):
         i = 0
         while i < n:
             c = ch[i]
@@ -1068,7 +1093,8 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
         k = 0
         while k < n:                         # in address order, run by run
             e = _run_end(ch, pos, k, n)
-            _book_requests(out, pos[k], pos[k] + e - k, ch[pos[k]], rq, P, H, TN, CF, FS, FI, FF, stream)
+            _book_requests(out, pos[k], pos[k] + e - k, ch[pos[k]], rq, P, H, TN, CF, FS, FI, FF, stream,
+                           chq)
             k = e
         acc[A_REQUESTS] += n / rq
     else:
@@ -1079,7 +1105,7 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
             while k < e:
                 take = _to_request(CF[c, F_ENTERED], rq, e - k)
                 amount = take / rq
-                t = level_time(H, TN, CF, c, now, CF[c, F_ENTERED] + amount - depth)
+                t = level_time(H, TN, CF, c, now, CF[c, F_ENTERED] + amount - depth) if chq else now
                 tg = fslots_level_time(FS, FI, FF, now, FF[1] + amount - gdepth)
                 if tg > t:
                     t = tg
@@ -1090,7 +1116,7 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
                 begin, first, last = place_bursts(gb, row, s0, s0 + take, c, 0, t, out, P, groups, banks,
                                                   close_page, open_row, BF, TL, TK, TG, TN, CF, acc, LOG,
                                                   NI, IV, busy)
-                _book_requests(out, s0, s0 + take, c, rq, P, H, TN, CF, FS, FI, FF, stream)
+                _book_requests(out, s0, s0 + take, c, rq, P, H, TN, CF, FS, FI, FF, stream, chq)
                 acc[A_REQUESTS] += amount
                 agg[c, 0] = min(agg[c, 0], begin)
                 agg[c, 1] = min(agg[c, 1], first + ctrl)

@@ -287,7 +287,7 @@ class FetchUnit:
         if txn.room is not None:
             # its first burst waits for room in the pool: say so in its log
             rx, rt = txn.room
-            t = float(np.interp(1.0, rx, rt))
+            t = float(rt[0] if rx[0] >= 1.0 else np.interp(1.0, rx, rt))
             if t > now:
                 txn.log.append((f"{txn.buffer.name}_buffer_full", t))
         st = self.stream(txn)
