@@ -90,6 +90,9 @@ def _round(x, nd=12):
     return x
 
 
+_BLOCK = 1 << 16       # fetch intervals classified at a time
+
+
 def _dram_states(pool, fetch_state, end):
     """Classify the pool's non-busy channel time by what the fetch unit was doing.
 
@@ -99,13 +102,7 @@ def _dram_states(pool, fetch_state, end):
     """
     n = pool.n
     a, b, raw_all, fetch_keys = fetch_state.interval_arrays()
-    b_end = np.minimum(b, end)
-    kept = np.flatnonzero(b_end > a)
-    # after the fetch unit's last interval: nothing left to fetch
-    t0 = np.append(a[kept], b[kept[-1]] if len(kept) else 0.0)
-    t1 = np.maximum(np.append(b_end[kept], end), t0)
     # one code per distinct (state, cause) of the fetch unit, then its class here
-    raw = raw_all[kept]
     classes = {}
     class_of = np.empty(len(fetch_keys), dtype=np.intp)
     for code, (state, cause) in enumerate(fetch_keys):
@@ -113,27 +110,50 @@ def _dram_states(pool, fetch_state, end):
                ("starved", "fetch_issue") if state == "busy" else ("starved", cause or "fetch"))
         class_of[code] = classes.setdefault(key, len(classes))
     keys = list(classes)
+    # each channel's busy time as a cumulative curve: busy cycles before any instant
     busy_total = 0.0
-    busy_in = np.zeros(len(t0))
+    curves = []
     for busy in pool.busy_arrays():
         if not len(busy):
             continue
         arr = np.clip(busy, 0, end)
         dur = arr[:, 1] - arr[:, 0]
         c = np.cumsum(dur)
-        xs = arr.reshape(-1)
-        ys = np.empty(len(xs))
+        ys = np.empty(2 * len(c))
         ys[0::2] = c - dur
         ys[1::2] = c
         busy_total += float(c[-1])
-        busy_in += np.interp(t1, xs, ys) - np.interp(t0, xs, ys)
-    free = np.maximum((t1 - t0) * n - busy_in, 0.0)
-    # sums per class in time order (bincount adds in input order), classes in order of first use
-    cls = class_of[raw]
-    sums = np.bincount(cls, weights=free[:-1], minlength=len(keys)).tolist()
-    labels, first = np.unique(cls, return_index=True)
-    totals = {keys[k]: sums[k] for k in labels[np.argsort(first)].tolist()}
-    totals[("idle", None)] = totals.get(("idle", None), 0.0) + float(free[-1])
+        curves.append((arr.reshape(-1), ys))
+
+    def free_in(u0, u1):
+        """Channel cycles not busy within each ``[u0, u1)``."""
+        busy_in = np.zeros(len(u0))
+        for xs, ys in curves:
+            busy_in += np.interp(u1, xs, ys) - np.interp(u0, xs, ys)
+        return np.maximum((u1 - u0) * n - busy_in, 0.0)
+
+    # the fetch unit's intervals (those before the end) a block at a time, so a long run's
+    # temporaries stay small; sums per class in time order (bincount adds in input order)
+    sums = np.zeros(len(keys))
+    first = np.full(len(keys), len(a), dtype=np.int64)
+    last_end = 0.0
+    for lo in range(0, len(a), _BLOCK):
+        u0 = a[lo:lo + _BLOCK]
+        u1 = np.minimum(b[lo:lo + _BLOCK], end)
+        kept = np.flatnonzero(u1 > u0)
+        if not len(kept):
+            continue
+        last_end = float(b[lo + kept[-1]])
+        cls = class_of[raw_all[lo:lo + _BLOCK][kept]]
+        sums += np.bincount(cls, weights=free_in(u0[kept], u1[kept]), minlength=len(keys))
+        labels, at = np.unique(cls, return_index=True)
+        first[labels] = np.minimum(first[labels], kept[at] + lo)
+    # classes in order of first use; after the fetch unit's last interval: nothing left to fetch
+    used = np.flatnonzero(first < len(a))
+    sums = sums.tolist()
+    totals = {keys[k]: sums[k] for k in used[np.argsort(first[used])].tolist()}
+    tail = free_in(np.array([last_end]), np.array([max(end, last_end)]))
+    totals[("idle", None)] = totals.get(("idle", None), 0.0) + float(tail[0])
     scale = n * end if end else 1.0
     frac = {"busy": busy_total / scale if end else 0.0, "starved": 0.0, "blocked": 0.0, "idle": 0.0}
     stalls = {}

@@ -52,3 +52,20 @@ def test_unit_frame_rows_and_stalls(result):
         assert r[["busy", "starved", "blocked", "idle"]].sum() == pytest.approx(1.0, abs=1e-9)
         for cause in [c[len("stall."):] for c in uf.columns if c.startswith("stall.")]:
             assert r[f"stall.{cause}"] == u["stalls"].get(cause, 0.0)
+
+
+def test_dram_stall_classification_does_not_depend_on_its_block_size(monkeypatch):
+    """The pool's non-busy time is classified a block of fetch intervals at a time (so a
+    long run's temporaries stay small); blocks of 3 give the fractions of one block, to
+    the rounding of a sum taken in pieces (arithmetic: a sum does not depend on grouping)."""
+    import sim.result as result_mod
+
+    arch, trace = sim.load_arch("arch_configs/mid.yaml"), sim.load_trace("traces/synth_decode.npz")
+    whole = sim.simulate(arch, trace).to_dict()["units"]["dram"]
+    monkeypatch.setattr(result_mod, "_BLOCK", 3)
+    blocks = sim.simulate(arch, trace).to_dict()["units"]["dram"]
+    assert set(blocks["stalls"]) == set(whole["stalls"]) and list(blocks["stalls"])[:1] == list(whole["stalls"])[:1]
+    for state in ("busy", "starved", "blocked", "idle"):
+        assert blocks[state] == pytest.approx(whole[state], rel=1e-9, abs=1e-12)
+    for cause, frac in whole["stalls"].items():
+        assert blocks["stalls"][cause] == pytest.approx(frac, rel=1e-9, abs=1e-12)
