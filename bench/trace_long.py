@@ -21,8 +21,16 @@ address space is capped (``--limit-gib``, 8 by default); a case that fails
 ``--skip-budget`` calls the engine directly, without ``sim.budget``'s up-front
 estimate and refusal, to measure what the engine itself needs.
 
+``--slope`` asks whether simulation time follows the trace's work: one layer of
+the 8B-class shape, causal prefill of 8k, 16k and 32k tokens (the work grows
+as the square of the prompt), each simulated on ``mid`` (or ``--arch``) in a
+fresh process; it prints each point's seconds, transactions and bytes, a
+least-squares line of seconds over fetch transactions, and each point's
+distance from it.
+
     python bench/trace_long.py [--repeat 3] [--case NAME]
     python bench/trace_long.py --engine [--repeat 1] [--case NAME] [--arch NAME] [--skip-build] [--skip-budget]
+    python bench/trace_long.py --slope [--arch NAME]
 """
 
 import argparse
@@ -42,6 +50,9 @@ CASES = {
     "decode128k": dict(prompt_tokens=131072, decode_steps=16, shape="dec-8b", include_prefill=False),
     "batch32": dict(prompt_tokens=4096, decode_steps=16, shape="dec-8b", batch=32, causal=True),
 }
+# one layer of the 8B-class shape, causal prefill only: the points of --slope
+SLOPE_CASES = {f"prompt{k}k-1L": dict(prompt_tokens=k * 1024, decode_steps=0, shape="dec-8b", layers=1,
+                                       causal=True) for k in (8, 16, 32)}
 
 
 def run_case(name):
@@ -86,7 +97,7 @@ def run_engine_case(name, arch_name, limit_gib, skip_budget=False):
     arch = sim.load_arch(config(arch_name))
     sim.simulate(arch, synth_trace(prompt_tokens=64, decode_steps=1, layers=1, heads=2))  # load the compiled loops
     t0 = time.perf_counter()
-    trace = synth_trace(**CASES[name], seed=1)
+    trace = synth_trace(**(CASES.get(name) or SLOPE_CASES[name]), seed=1)
     t1 = time.perf_counter()
     trace_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     if skip_budget:  # the engine itself, without sim.budget's estimate and refusal
@@ -107,6 +118,39 @@ def run_engine_case(name, arch_name, limit_gib, skip_budget=False):
                       "dram_gib": doc["dram"]["bytes"] / 2**30, "bound": doc["bounds"]["bound"]}))
 
 
+def engine_run(name, arch, limit_gib, skip_budget=False, width=11):
+    """One case simulated on ``arch`` in a fresh process: its figures, or None (failure printed)."""
+    proc = subprocess.run([sys.executable, __file__, "--one-engine", name, arch, str(limit_gib)]
+                          + (["--skip-budget"] if skip_budget else []), capture_output=True, text=True)
+    if proc.returncode:
+        last = (proc.stderr.strip().splitlines() or ["(no message)"])[-1]
+        print(f"{name:<{width}} {arch:<11} failed: exit {proc.returncode}: {last}")
+        return None
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def slope_table(archs, limit_gib):
+    """Simulation seconds against the trace's work: the prefill points of SLOPE_CASES on each
+    config, a least-squares line of seconds over fetch transactions, each point's residual."""
+    import numpy as np
+
+    for arch in archs or ["mid"]:
+        rows = [r for r in (engine_run(name, arch, limit_gib, width=13) for name in SLOPE_CASES) if r]
+        print(f"\n{'case':<13} {'arch':<11} {'sim s':>8} {'fetch txns':>12} {'DRAM GiB':>9} {'us/txn':>7} "
+              f"{'peak RSS MiB':>13}")
+        for r in rows:
+            print(f"{r['case']:<13} {arch:<11} {r['sim_s']:>8.1f} {r['fetch_txns']:>12,} {r['dram_gib']:>9.2f} "
+                  f"{r['sim_s'] / r['fetch_txns'] * 1e6:>7.1f} {r['peak_rss_mib']:>13.0f}")
+        if len(rows) >= 2:
+            x = np.array([r["fetch_txns"] for r in rows], dtype=float)
+            y = np.array([r["sim_s"] for r in rows])
+            b, a = np.polyfit(x, y, 1)
+            fit = a + b * x
+            res = ", ".join(f"{(yi - fi) / yi:+.1%}" for yi, fi in zip(y, fit))
+            print(f"  least squares: sim s = {a:.2f} + {b * 1e6:.1f} us x fetch transactions; "
+                  f"residuals {res}; work grows {x[-1] / x[0]:.1f}x, time {y[-1] / y[0]:.1f}x")
+
+
 def engine_table(names, archs, repeat, limit_gib, skip_budget):
     print(f"\n{'case':<11} {'arch':<11} {'steps':>6} {'sim s':>8} {'fetch txn/s':>12} {'DRAM txn/s':>11} "
           f"{'cycles':>15} {'DRAM GiB':>9} {'trace RSS':>10} {'peak RSS MiB':>13}   (best of {repeat}; RSS: largest)")
@@ -114,14 +158,10 @@ def engine_table(names, archs, repeat, limit_gib, skip_budget):
         for arch in archs or ENGINE_ARCHS[name]:
             runs = []
             for _ in range(repeat):
-                proc = subprocess.run([sys.executable, __file__, "--one-engine", name, arch, str(limit_gib)]
-                                      + (["--skip-budget"] if skip_budget else []),
-                                      capture_output=True, text=True)
-                if proc.returncode:
-                    last = (proc.stderr.strip().splitlines() or ["(no message)"])[-1]
-                    print(f"{name:<11} {arch:<11} failed: exit {proc.returncode}: {last}")
+                run = engine_run(name, arch, limit_gib, skip_budget)
+                if run is None:
                     break
-                runs.append(json.loads(proc.stdout.strip().splitlines()[-1]))
+                runs.append(run)
             if not runs:
                 continue
             best = min(runs, key=lambda r: r["sim_s"])
@@ -144,6 +184,7 @@ def main():
     ap.add_argument("--skip-budget", action="store_true",
                     help="with --engine: run the engine without sim.budget's up-front refusal (the cap still holds)")
     ap.add_argument("--one-engine", nargs=3, help=argparse.SUPPRESS)
+    ap.add_argument("--slope", action="store_true", help="simulation time against work (see above)")
     args = ap.parse_args()
     if args.one:
         run_case(args.one)
@@ -151,6 +192,9 @@ def main():
     if args.one_engine:
         name, arch, limit = args.one_engine
         run_engine_case(name, arch, float(limit), args.skip_budget)
+        return
+    if args.slope:
+        slope_table(args.arch, args.limit_gib)
         return
     if not (args.engine and args.skip_build):
         build_table(args.case or list(CASES), args.repeat)

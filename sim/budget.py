@@ -21,10 +21,11 @@ import numpy as np
 from .errors import InputError
 
 ADDRESS_BITS = 62
-# peak RSS above the loaded baseline per transaction: about 0.6 KB on the 24-layer x 16-head
-# 1024+256 replay of bench/llm_replay.py (389 MiB peak for 510,720 transactions; the pool's
-# growing tables and the run's logs, the program being made step by step), 0.65 KB on a
-# 32k-context decode; counted at 1 KB, as the tables grow by doubling
+# peak RSS above the loaded baseline and the trace per transaction: about 0.25 KB on the
+# 131072-token decode of bench/trace_long.py (914 MiB peak, trace 176 MiB, 3.17 million
+# transactions: the pool's growing tables and the run's logs, the program being made step by
+# step); counted at 1 KB, as the tables grow by doubling and shorter runs carry more per
+# transaction (0.6 KB measured before the result was built in blocks)
 BYTES_PER_TXN = 1024
 MAX_TXNS = 50_000_000
 
