@@ -18,6 +18,7 @@ from . import __version__
 from . import formats as fm
 from .build import build_id
 from .columns import UNIT_ORDER, result_frame, unit_frame
+from .engine.stats import busy_curve
 from .limits import classify, cause_text, verdict_of
 from .model.area import area_section
 from .model.bounds import bounds_from_counts
@@ -93,12 +94,13 @@ def _round(x, nd=12):
 _BLOCK = 1 << 16       # fetch intervals classified at a time
 
 
-def _dram_states(pool, fetch_state, end):
+def _dram_states(pool, fetch_state, end, folded=None):
     """Classify the pool's non-busy channel time by what the fetch unit was doing.
 
     A channel with nothing to move is starved for the same reason the fetch
     unit was not issuing (a full buffer, a dependency...). Averaged over
-    channels, so fractions stay per unit and sum to 1.
+    channels, so fractions stay per unit and sum to 1. ``folded``: the bus time
+    the pool handed over during the run (:class:`~sim.engine.stats.BusyFold`).
     """
     n = pool.n
     a, b, raw_all, fetch_keys = fetch_state.interval_arrays()
@@ -111,23 +113,17 @@ def _dram_states(pool, fetch_state, end):
         class_of[code] = classes.setdefault(key, len(classes))
     keys = list(classes)
     # each channel's busy time as a cumulative curve: busy cycles before any instant
-    busy_total = 0.0
+    busy_total = folded.total if folded is not None else 0.0
     curves = []
     for busy in pool.busy_arrays():
         if not len(busy):
             continue
-        arr = np.clip(busy, 0, end)
-        dur = arr[:, 1] - arr[:, 0]
-        c = np.cumsum(dur)
-        ys = np.empty(2 * len(c))
-        ys[0::2] = c - dur
-        ys[1::2] = c
-        busy_total += float(c[-1])
-        curves.append((arr.reshape(-1), ys))
+        curves.append(busy_curve(np.clip(busy, 0, end)))
+        busy_total += float(curves[-1][1][-1])
 
-    def free_in(u0, u1):
-        """Channel cycles not busy within each ``[u0, u1)``."""
-        busy_in = np.zeros(len(u0))
+    def free_in(u0, u1, taken=None):
+        """Channel cycles not busy within each ``[u0, u1)`` (``taken``: busy time handed over)."""
+        busy_in = np.zeros(len(u0)) if taken is None else taken.copy()
         for xs, ys in curves:
             busy_in += np.interp(u1, xs, ys) - np.interp(u0, xs, ys)
         return np.maximum((u1 - u0) * n - busy_in, 0.0)
@@ -145,7 +141,13 @@ def _dram_states(pool, fetch_state, end):
             continue
         last_end = float(b[lo + kept[-1]])
         cls = class_of[raw_all[lo:lo + _BLOCK][kept]]
-        sums += np.bincount(cls, weights=free_in(u0[kept], u1[kept]), minlength=len(keys))
+        taken = None
+        if folded is not None:
+            taken = folded.busy_in[lo:lo + len(u0)]
+            if len(taken) < len(u0):
+                taken = np.concatenate((taken, np.zeros(len(u0) - len(taken))))
+            taken = taken[kept]
+        sums += np.bincount(cls, weights=free_in(u0[kept], u1[kept], taken), minlength=len(keys))
         labels, at = np.unique(cls, return_index=True)
         first[labels] = np.minimum(first[labels], kept[at] + lo)
     # classes in order of first use; after the fetch unit's last interval: nothing left to fetch
@@ -177,7 +179,7 @@ def build_result(stats):
     for name, st in states.items():
         st.finish(end)
         units[name] = st.summary(end)
-    units["dram"] = _dram_states(pool, states["fetch"], end)
+    units["dram"] = _dram_states(pool, states["fetch"], end, stats.folded)
     units = {k: units[k] for k in UNIT_ORDER if k in units}
 
     # per step / layer / stage cycles: a step lasts from the previous step's end to its own

@@ -69,3 +69,31 @@ def test_dram_stall_classification_does_not_depend_on_its_block_size(monkeypatch
         assert blocks[state] == pytest.approx(whole[state], rel=1e-9, abs=1e-12)
     for cause, frac in whole["stalls"].items():
         assert blocks["stalls"][cause] == pytest.approx(frac, rel=1e-9, abs=1e-12)
+
+
+def test_bus_time_handed_over_during_the_run_gives_the_same_stall_split(monkeypatch):
+    """Without a timeline the channel pool hands its final data-bus intervals to a fold
+    during the run instead of keeping them all (memory bounded on long runs); the memory's
+    state fractions and stall split equal those computed from every interval kept, to the
+    rounding of a sum taken in pieces (arithmetic: a sum does not depend on grouping)."""
+    import sim.engine.dram as dram_mod
+    import sim.engine.stats as stats_mod
+    from sim.trace.synth import synth_trace
+
+    monkeypatch.setattr(dram_mod, "FOLD_INTERVALS", 1024)
+    folds = []
+    real = stats_mod.BusyFold.__call__
+    monkeypatch.setattr(stats_mod.BusyFold, "__call__", lambda self: (folds.append(1), real(self))[1])
+    arch = sim.load_arch("arch_configs/mid.yaml")
+    trace = synth_trace(prompt_tokens=1024, decode_steps=2, shape="dec-8b", layers=1, causal=True, seed=1)
+    kept = sim.simulate(arch, trace, keep_intervals=True).to_dict()
+    assert not folds                          # a timeline keeps every interval
+    folded = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+    assert len(folds) >= 5                    # and this run handed intervals over several times
+    assert folded["cycles"] == kept["cycles"]
+    a, b = kept["units"]["dram"], folded["units"]["dram"]
+    for state in ("busy", "starved", "blocked", "idle"):
+        assert b[state] == pytest.approx(a[state], rel=1e-9, abs=1e-12)
+    assert list(b["stalls"]) == list(a["stalls"])
+    for cause, frac in a["stalls"].items():
+        assert b["stalls"][cause] == pytest.approx(frac, rel=1e-9, abs=1e-12)

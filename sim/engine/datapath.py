@@ -21,7 +21,7 @@ from .buffers import Buffer
 from .dram import ChannelPool
 from .fetch import FetchUnit, fetch_process
 from .program import ProgramBuilder
-from .stats import RunStats, UnitState
+from .stats import BusyFold, RunStats, UnitState
 from .tiling import check_fits, room_by_request
 from .writeback import writeback_process
 
@@ -81,6 +81,9 @@ def _run(arch, trace, grain_rows, seed, keep_intervals):
     names = ("fetch", "dot", "softmax", "topk") + (() if arch.dot.arrays == "shared" else ("dot_pv",))
     states = {n: UnitState(env, n, keep_intervals or n == "fetch") for n in names}
     fetch_stats = dict.fromkeys(("bytes", "transactions", "requests") + PLANE_KEYS, 0)
+    # without a timeline the pool hands over its final bus intervals instead of keeping them all
+    folded = None if keep_intervals else BusyFold(pool, states["fetch"])
+    pool.on_full = folded
     router = _amap_router(amaps, trace)
     fetch = FetchUnit(env, prog.fetch, pool, router, arch, states["fetch"], fetch_stats)
     procs = _start_units(env, arch, prog, fetch, states)
@@ -90,7 +93,7 @@ def _run(arch, trace, grain_rows, seed, keep_intervals):
     if any(t is None for t in step_times) or any(p.is_alive for p in procs.values()) or writer.is_alive:
         raise _stalled(env, arch, trace, fetch, states, procs, step_times)
     return RunStats(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, max(step_times),
-                    {"grain_rows": grain_rows, "seed": seed}, keep_intervals)
+                    {"grain_rows": grain_rows, "seed": seed}, keep_intervals, folded)
 
 
 def _start_units(env, arch, prog, fetch, states):

@@ -138,6 +138,9 @@ def _grown(a, need, axis):
     return out
 
 
+FOLD_INTERVALS = 1 << 16  # data-bus intervals a channel keeps before it hands the final ones over
+
+
 def _merged(iv):
     """Intervals ``[[begin, end], ...]`` sorted and merged where they overlap or touch."""
     iv = iv[np.argsort(iv[:, 0], kind="stable")]
@@ -299,6 +302,7 @@ class ChannelPool:
         self._entries = 0         # calls that entered requests into the fetch slots
         self._room_key, self._room_t = None, 0.0
         self.IV = np.zeros((self.n, 1024, 2))            # data-bus busy intervals per channel
+        self.on_full = None       # called when the intervals would outgrow FOLD_INTERVALS (see take_busy)
         self.busy_cycles = np.zeros(self.n)
         self.acc = np.zeros(T.N_ACC)                     # counters, see dram_timing.A_*
         self._counts = np.zeros(self.n, dtype=np.int64)
@@ -405,6 +409,9 @@ class ChannelPool:
             self.FS = _grown(self.FS, self.FI[1] + rows + 1, axis=0)
         self.H = self.outstanding.H
         iv = self.TN[:, T.N_IV].max() + rows
+        if iv > self.IV.shape[1] >= FOLD_INTERVALS and self.on_full is not None:
+            self.on_full()                      # hand over the final part instead of growing
+            iv = self.TN[:, T.N_IV].max() + rows
         if iv > self.IV.shape[1]:
             self.IV = _grown(self.IV, iv, axis=1)
         if self.NI[T.I_RECORDS] + rows > len(self.R):
@@ -432,6 +439,34 @@ class ChannelPool:
         t = T.fslots_level_time(self.FS, self.FI, self.FF, float(now), level)
         self._room_key, self._room_t = (self._entries, need), t
         return t
+
+    def final_time(self):
+        """Before this time the data buses' busy intervals are final: no burst still to come
+        can be placed earlier (each channel places from the time it last took bursts in)."""
+        if self.model != "banked":
+            return -np.inf
+        return float(self.CF[:, T.F_TAKEN].min())
+
+    def take_busy(self, upto):
+        """Remove from the data-bus intervals what lies before ``upto`` (which must not pass
+        :meth:`final_time`); returns it per channel, merged (see :meth:`busy_arrays`)."""
+        out = []
+        for c in range(self.n):
+            m = self.TN[c, T.N_IV]
+            iv = self.IV[c, :m]
+            early = iv[iv[:, 0] < upto]
+            if len(early):
+                early = early.copy()
+                np.minimum(early[:, 1], upto, out=early[:, 1])
+                early = _merged(early)
+            rest = iv[iv[:, 1] > upto]
+            if len(rest):
+                rest = rest.copy()
+                np.maximum(rest[:, 0], upto, out=rest[:, 0])
+            self.IV[c, :len(rest)] = rest
+            self.TN[c, T.N_IV] = len(rest)
+            out.append(early)
+        return out
 
     def busy_arrays(self):
         """Per channel, the data-bus busy intervals as an array of rows ``begin, end``, in time

@@ -212,6 +212,60 @@ class UnitState:
         return out
 
 
+class BusyFold:
+    """The channel pool's data-bus busy time inside each of the fetch unit's logged intervals,
+    taken from the pool as it becomes final, so that a long run need not keep every bus
+    interval (the memory's stall split, :func:`sim.result._dram_states`, adds what the pool
+    still holds at the end).
+
+    Called by the pool when its interval table is full: everything before the earlier of the
+    pool's :meth:`~sim.engine.dram.ChannelPool.final_time` and the end of the fetch unit's
+    last logged interval is taken (:meth:`~sim.engine.dram.ChannelPool.take_busy`) and added,
+    per fetch interval, to :attr:`busy_in`; :attr:`total` counts it all.
+    """
+
+    def __init__(self, pool, fetch_state):
+        self.pool = pool
+        self.fetch = fetch_state
+        self.busy_in = np.zeros(1024)    # per logged fetch interval, in log order
+        self.total = 0.0                 # busy channel cycles taken, over all channels
+        self.upto = -np.inf              # taken up to here
+
+    def __call__(self):
+        ends = self.fetch._t1
+        if not ends:
+            return
+        h = min(self.pool.final_time(), ends[-1])
+        if h <= self.upto:
+            return
+        parts = self.pool.take_busy(h)
+        a = np.frombuffer(self.fetch._t0, dtype=float)
+        b = np.frombuffer(ends, dtype=float)
+        if len(b) > len(self.busy_in):
+            self.busy_in = np.concatenate((self.busy_in, np.zeros(max(len(b), 2 * len(self.busy_in)))))
+        # what was taken lies in [upto, h): only the intervals that reach into it change
+        lo, hi = int(np.searchsorted(b, self.upto, side="right")), int(np.searchsorted(a, h))
+        for busy in parts:
+            if not len(busy):
+                continue
+            xs, ys = busy_curve(busy)
+            self.total += float(ys[-1])
+            if hi > lo:
+                self.busy_in[lo:hi] += np.interp(b[lo:hi], xs, ys) - np.interp(a[lo:hi], xs, ys)
+        self.upto = h
+
+
+def busy_curve(busy):
+    """Busy intervals ``[[begin, end], ...]`` (sorted, disjoint) as a cumulative curve: the
+    points ``xs`` and the busy cycles before each, ``ys`` (linear in between)."""
+    dur = busy[:, 1] - busy[:, 0]
+    c = np.cumsum(dur)
+    ys = np.empty(2 * len(c))
+    ys[0::2] = c - dur
+    ys[1::2] = c
+    return busy.reshape(-1), ys
+
+
 class RunStats:
     """What a finished run measured: the raw material of the result document.
 
@@ -220,10 +274,10 @@ class RunStats:
     """
 
     __slots__ = ("arch", "trace", "prog", "pool", "states", "buffers", "fetch_stats", "step_times",
-                 "end", "engine", "timeline")
+                 "end", "engine", "timeline", "folded")
 
     def __init__(self, arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end, engine,
-                 timeline=True):
+                 timeline=True, folded=None):
         self.arch = arch
         self.trace = trace
         self.prog = prog                # per-unit programs and work counts
@@ -235,3 +289,4 @@ class RunStats:
         self.end = end                  # cycle the last step finished
         self.engine = engine            # engine settings the run used
         self.timeline = timeline        # every unit's intervals were kept (for a timeline)
+        self.folded = folded            # a BusyFold: bus time the pool handed over during the run
