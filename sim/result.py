@@ -118,12 +118,13 @@ def _dram_states(pool, fetch_state, end, folded=None):
     for busy in pool.busy_arrays():
         if not len(busy):
             continue
-        curves.append(busy_curve(np.clip(busy, 0, end)))
-        busy_total += float(curves[-1][1][-1])
+        xs, ys = busy_curve(np.clip(busy, 0, end))
+        curves.append((xs, ys))
+        busy_total += float(ys[-1])
 
     def free_in(u0, u1, taken=None):
         """Channel cycles not busy within each ``[u0, u1)`` (``taken``: busy time handed over)."""
-        busy_in = np.zeros(len(u0)) if taken is None else taken.copy()
+        busy_in = np.zeros(len(u0)) if taken is None else taken
         for xs, ys in curves:
             busy_in += np.interp(u1, xs, ys) - np.interp(u0, xs, ys)
         return np.maximum((u1 - u0) * n - busy_in, 0.0)
@@ -141,12 +142,7 @@ def _dram_states(pool, fetch_state, end, folded=None):
             continue
         last_end = float(b[lo + kept[-1]])
         cls = class_of[raw_all[lo:lo + _BLOCK][kept]]
-        taken = None
-        if folded is not None:
-            taken = folded.busy_in[lo:lo + len(u0)]
-            if len(taken) < len(u0):
-                taken = np.concatenate((taken, np.zeros(len(u0) - len(taken))))
-            taken = taken[kept]
+        taken = folded.busy_within(lo, lo + len(u0))[kept] if folded is not None else None
         sums += np.bincount(cls, weights=free_in(u0[kept], u1[kept], taken), minlength=len(keys))
         labels, at = np.unique(cls, return_index=True)
         first[labels] = np.minimum(first[labels], kept[at] + lo)

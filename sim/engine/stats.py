@@ -232,15 +232,13 @@ class BusyFold:
         self.upto = -np.inf              # taken up to here
 
     def __call__(self):
-        ends = self.fetch._t1
-        if not ends:
+        a, b, _codes, _keys = self.fetch.interval_arrays()
+        if not len(b):
             return
-        h = min(self.pool.final_time(), ends[-1])
+        h = min(self.pool.final_time(), float(b[-1]))
         if h <= self.upto:
             return
         parts = self.pool.take_busy(h)
-        a = np.frombuffer(self.fetch._t0, dtype=float)
-        b = np.frombuffer(ends, dtype=float)
         if len(b) > len(self.busy_in):
             self.busy_in = np.concatenate((self.busy_in, np.zeros(max(len(b), 2 * len(self.busy_in)))))
         # what was taken lies in [upto, h): only the intervals that reach into it change
@@ -253,6 +251,14 @@ class BusyFold:
             if hi > lo:
                 self.busy_in[lo:hi] += np.interp(b[lo:hi], xs, ys) - np.interp(a[lo:hi], xs, ys)
         self.upto = h
+
+    def busy_within(self, lo, hi):
+        """Busy time taken within fetch intervals ``lo .. hi-1`` (a new array; zero for those
+        logged after the last hand-over)."""
+        out = np.zeros(hi - lo)
+        got = self.busy_in[lo:hi]
+        out[:len(got)] = got
+        return out
 
 
 def busy_curve(busy):
