@@ -85,13 +85,16 @@ def test_the_queue_drains_from_the_high_mark_to_the_low_mark():
 
 def test_a_full_write_queue_makes_the_next_write_wait():
     """The 65th write burst into a 64-burst queue enters when the first one has left (its
-    column command issued): later than the first 64, which enter at once."""
+    column command issued): later than the first 64, which enter at once; the writes
+    behind it enter in order, each when the burst 64 places ahead has left."""
     arch = preset("ddr4_3200", **{"fetch.request_bytes": 64, "dram.write_high": 1.0})
     env = simpy.Environment()
     pool = ChannelPool(env, arch, log_commands=True)
     for i in range(4000):                                    # reads keep the channel busy
         submit(pool, i * 4096, 64, False)
     txns = [submit(pool, (1 << 30) + i * 8192, 64, True)[0] for i in range(70)]
+    assert all(t.mem_times is None for t in txns[64:])      # not taken in yet
+    env.run()
     entered = [t.mem_times[0] for t in txns]
     assert entered[:64] == [0.0] * 64
     assert all(t > 0 for t in entered[64:])
@@ -99,6 +102,31 @@ def test_a_full_write_queue_makes_the_next_write_wait():
     wr = np.sort(wr[wr[:, 3] == T.CMD_WR, 0])
     # queue position k - 64 left at its column command; the drain left them in order here
     np.testing.assert_allclose(entered[64:], wr[:6])
+
+
+def test_a_write_larger_than_the_queue_enters_as_room_frees():
+    """A 20,000-burst write into a 64-burst queue enters as the queue drains: at first
+    only the queue's 64 bursts are in, it is taken in once the burst 64 places before
+    its last one has left, and the channel's command timelines never hold more than a
+    few queues' worth of commands (memory does not grow with the size of a write)."""
+    arch = preset("ddr4_3200")
+    n, cap = 20000, arch.dram.write_queue
+    env = simpy.Environment()
+    pool = ChannelPool(env, arch, log_commands=True)
+    txn, ev = submit(pool, 1 << 20, n * arch.dram.burst_bytes, True)
+    rep = pool.report(0)
+    assert rep["write_bursts_drained"] + rep["write_bursts_waiting"] == cap
+    assert not ev.processed and txn.mem_times is None
+    env.run()
+    assert ev.processed
+    rep = pool.report(env.now)
+    assert rep["write_bursts_drained"] == n and rep["write_bursts_waiting"] == 0
+    wr = pool.command_log()
+    wr = np.sort(wr[wr[:, 3] == T.CMD_WR, 0])
+    assert len(wr) == n
+    assert wr[n - cap - 1] <= txn.mem_times[0] <= wr[-1]
+    assert pool.TL.shape[2] <= 16 * cap
+    assert check_protocol(pool.command_log(), arch) == []
 
 
 @pytest.mark.parametrize("name", ALL)
@@ -110,8 +138,15 @@ def test_hammering_reads_and_writes_keep_every_timing_rule(name):
     env = simpy.Environment()
     pool = ChannelPool(env, arch, log_commands=True)
     rng = np.random.default_rng(3)
-    for a, w in zip((rng.integers(0, 1 << 24, 3000) // 64 * 64).tolist(), (rng.random(3000) < 0.5).tolist()):
-        submit(pool, a, 64, w)
+    mix = list(zip((rng.integers(0, 1 << 24, 3000) // 64 * 64).tolist(), (rng.random(3000) < 0.5).tolist()))
+
+    def source():      # arriving over time: writes that wait for queue room meet later reads
+        for i, (a, w) in enumerate(mix):
+            submit(pool, a, 64, w)
+            if i % 16 == 15:
+                yield env.timeout(20)
+
+    env.process(source())
     env.run()
     log = pool.command_log()
     assert check_protocol(log, arch) == []

@@ -226,11 +226,11 @@ def test_batch_with_cache_writes_streams_b_times_the_bytes():
     peak bandwidth (roofline, Williams et al. 2009: writes cross the interface too).
 
     B times one request's cycles is no upper bound here: a lone request drains its
-    posted writes while the channels idle, for free, but a batch leaves no idle
-    time, so its writes drain at the write queue's high mark between reads (bus
+    posted writes while the channels idle, nearly for free, but a batch leaves no
+    idle time, so its writes drain at the write queue's high mark between reads (bus
     turnarounds, rows reopened). Measured (2 tokens, 4 requests): one request 6,827
-    cycles with or without writes; four take 26,914 without writes and 29,359 with
-    (4.30 x one)."""
+    cycles without writes and 7,305 with (the run ends once its last write is in
+    memory); four take 26,914 without writes and 29,861 with (4.09 x one)."""
     heads, kv_heads, n, d, batch = 8, 2, 1024, 128, 4
     arch = sim.load_arch(config("hbm2_stack"))
     one = run(arch, decode_trace(heads, kv_heads, n, d, tokens=2, writes=True))

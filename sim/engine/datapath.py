@@ -92,7 +92,9 @@ def _run(arch, trace, grain_rows, seed, keep_intervals):
     step_times = prog.step_times
     if any(t is None for t in step_times) or any(p.is_alive for p in procs.values()) or writer.is_alive:
         raise _stalled(env, arch, trace, fetch, states, procs, step_times)
-    return RunStats(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, max(step_times),
+    # the run ends when the last step has ended and the last write has reached memory
+    end = max(max(step_times), pool.write_end)
+    return RunStats(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end,
                     {"grain_rows": grain_rows, "seed": seed}, keep_intervals, folded)
 
 

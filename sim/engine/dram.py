@@ -40,9 +40,12 @@ transactions get. Under ``row_hits_first`` the pool leaves the in-flight count
 to the fetch unit (a transaction's shares are placed at different decisions).
 
 Writes (``txn.is_write``) are posted: each channel's share enters the
-channel's write queue of ``dram.write_queue`` bursts once there is room (the
-burst that many places ahead has left), and the transaction's event fires
-when every share is in -- the write is then accepted, not yet in the array.
+channel's write queue of ``dram.write_queue`` bursts burst by burst as there
+is room (the burst that many places ahead has left), after the shares that
+came before it, and the transaction's event fires when every share is in --
+the write is then accepted, not yet in the array. A share waiting for room
+is entered at the time room comes, so reads that arrive meanwhile are placed
+first, and only a queue's worth of writes is ever fixed ahead of time.
 A channel drains its oldest writes when ``dram.write_high`` of the queue is
 full, down to ``dram.write_low``, and all of them once it has no read left to
 serve (a watermark drain; common practice, no single source). Drained writes
@@ -89,6 +92,7 @@ when their bus slot starts.
 """
 
 from array import array
+from collections import deque
 
 import numpy as np
 
@@ -319,6 +323,7 @@ class ChannelPool:
         self.write_txns = 0
         self.write_bytes = 0
         self.write_wait = 0.0                            # cycles writes waited for queue room
+        self.write_end = 0.0                             # when the last write data fixed so far leaves the bus
         self.wait_total = 0.0
         self.latency_total = 0.0
         self.latencies = array("d")                  # per read: submit to last data (8 bytes each)
@@ -369,6 +374,8 @@ class ChannelPool:
         self.w_leave = [np.zeros(0) for _ in range(self.n)]
         self.w_base = [0] * self.n
         self.w_timer = [None] * self.n
+        self.w_entering = [deque() for _ in range(self.n)]   # [bursts, rows, job] not all in yet
+        self.w_room_timer = [None] * self.n
         self.acc_w = [0, 0]                           # drains at the high mark, idle drains
         # row_hits_first: shares held per channel until its decision time
         self.held = [[] for _ in range(self.n)]
@@ -391,6 +398,7 @@ class ChannelPool:
             _room_or_stall(tries, "fixed-latency serve")
             self._make_room(1)
         if txn.is_write:                    # posted: taken in when its bus slot starts
+            self.write_end = max(self.write_end, t_end)
             return self._finish(txn, now, t_start, t_start, t_start, None, write=True)
         t_first = t_start + self.t_lat
         t_done = max(t_end, t_start) + self.t_lat
@@ -568,31 +576,86 @@ class ChannelPool:
 
     # ----------------------------------------------------------------- writes
     def _submit_write(self, txn, b, now):
-        """Posted writes: each channel's share enters its write queue once there is room (the
-        burst ``write_queue`` places ahead of it has left); the event fires when every share
-        is in. A channel drains its oldest writes when the queue reaches the high mark, down
-        to the low mark, and all of them once it has no read left to serve."""
+        """Posted writes: each channel's share enters its write queue burst by burst as there
+        is room (the burst ``write_queue`` places ahead has left), after any share still
+        entering there; the event fires when every share is in. A channel drains its oldest
+        writes when the queue reaches the high mark, down to the low mark, and all of them
+        once it has no read left to serve."""
         ch, gb, row, _ = self._decode(b, now)
         cnt = np.bincount(ch, minlength=self.n)
         ends = np.cumsum(cnt)
-        t_in = now
-        for c in np.flatnonzero(cnt).tolist():
-            lo, hi = ends[c] - cnt[c], ends[c]
-            ahead = self.w_entered[c] - self.wq_cap        # the burst that must have left first
-            t = now
-            if ahead >= 0:
-                if ahead >= self.w_drained[c]:             # full of writes not yet drained
-                    self._drain(c, ahead + 1 - self.w_drained[c], now)
-                t = max(now, self.w_leave[c][ahead - self.w_base[c]])
-            self.w_pending[c].append((gb[lo:hi], row[lo:hi]))
-            self.w_entered[c] += hi - lo
+        chans = np.flatnonzero(cnt).tolist()
+        # the transaction, when it arrived, when its last burst entered, shares not in yet,
+        # bursts, its event once it must wait
+        job = [txn, now, now, len(chans), len(b), None]
+        for c in chans:
+            self.w_entering[c].append([gb[ends[c] - cnt[c]:ends[c]], row[ends[c] - cnt[c]:ends[c]], job])
+            self._enter_writes(c, now)
+        if job[3] == 0:
+            return self._finish(txn, now, now, now, now, None, len(b), write=True)
+        job[5] = self.env.event()
+        return job[5]
+
+    def _enter_writes(self, c, at, catch_up=False):
+        """Enter channel ``c``'s waiting write shares at ``at`` as far as its queue has room.
+        The rest enters in steps, not burst by burst: at the time enough of it has room to
+        bring the queue to its high mark (or all of it, if less), or when the channel idles
+        (``catch_up``). Only a queue's worth of drained writes is ever fixed ahead of time,
+        so the command timelines stay short."""
+        if self.w_room_timer[c] is not None and not catch_up:   # a step is due already
+            return
+        shares = self.w_entering[c]
+        while shares:
+            share = shares[0]
+            k = self._write_room(c, len(share[0]), at)
+            if k == 0:
+                if self.w_room_timer[c] is None:
+                    t = self._write_step_time(c, len(share[0]))
+                    self.w_room_timer[c] = t
+                    self.env.timeout(t - self.env.now).callbacks.append(
+                        lambda _e, c=c, t=t: self._room_due(c, t))
+                return
+            self.w_pending[c].append((share[0][:k], share[1][:k]))
+            self.w_entered[c] += k
+            share[0], share[1] = share[0][k:], share[1][k:]
             waiting = self.w_entered[c] - self.w_drained[c]
             if waiting >= self.wq_high:
                 self.acc_w[0] += 1                           # drains at the high mark
-                self._drain(c, waiting - self.wq_low, t)
-            t_in = max(t_in, t)
+                self._drain(c, waiting - self.wq_low, at)
             self._arm_idle(c)
-        return self._finish(txn, now, t_in, t_in, t_in, None, write=True)
+            if not len(share[0]):
+                shares.popleft()
+                job = share[2]
+                job[2], job[3] = max(job[2], at), job[3] - 1
+                if job[3] == 0 and job[5] is not None:
+                    self._finish(job[0], job[1], job[2], job[2], job[2], job[5], job[4], write=True)
+
+    def _room_due(self, c, t):
+        self.w_room_timer[c] = None
+        self._enter_writes(c, max(self.env.now, t))      # t, not a rounding error before it
+
+    def _write_step_time(self, c, m):
+        """When enough of the next ``m`` write bursts of channel ``c`` have room to reach the
+        high mark (or all ``m`` of them); the queue is full now."""
+        need = min(m, max(1, self.wq_high - (self.w_entered[c] - self.w_drained[c])))
+        first = self.w_entered[c] - self.wq_cap - self.w_base[c]
+        hi = min(first + need, self.w_drained[c] - self.w_base[c])
+        return float(self.w_leave[c][first:hi].max())
+
+    def _write_room(self, c, m, at):
+        """How many of the next ``m`` write bursts of channel ``c`` have room at ``at``."""
+        first = self.w_entered[c] - self.wq_cap          # the position that must have left first
+        if first + m <= 0:
+            return m
+        free = -first if first < 0 else 0
+        lo = first + free
+        if lo >= self.w_drained[c]:
+            if free:                                     # the rest waits for writes not yet in
+                return free
+            self._drain(c, lo + 1 - self.w_drained[c], at)   # full of writes not yet drained
+        hi = min(first + m, self.w_drained[c]) - self.w_base[c]
+        left = np.maximum.accumulate(self.w_leave[c][lo - self.w_base[c]:hi])
+        return free + int(np.searchsorted(left, at, side="right"))
 
     def _drain(self, c, count, t):
         """Fix the commands of channel ``c``'s ``count`` oldest queued writes, seen from ``t``."""
@@ -615,6 +678,7 @@ class ChannelPool:
                 break
             _room_or_stall(tries, "write drain")
             self._make_room(count)
+        self.write_end = max(self.write_end, float(out.max()) + self.P[T.P_CWL] + self.P[T.P_BURST])
         # leave times of the drained bursts, by queue position (older positions are no longer read)
         keep = self.w_drained[c] - self.wq_cap - self.w_base[c]
         if keep > 0:
@@ -635,6 +699,7 @@ class ChannelPool:
         self.env.timeout(t - now).callbacks.append(lambda _e, c=c: self._idle(c))
 
     def _idle(self, c):
+        self._enter_writes(c, self.env.now, catch_up=True)   # what has room by now is in
         self.w_timer[c] = None
         waiting = self.w_entered[c] - self.w_drained[c]
         if not waiting:

@@ -292,7 +292,7 @@ class RunStats:
         self.buffers = buffers          # buffer name -> Buffer
         self.fetch_stats = fetch_stats  # bytes, transactions, requests by plane
         self.step_times = step_times    # cycle each step finished
-        self.end = end                  # cycle the last step finished
+        self.end = end                  # cycle the last step finished and the last write left
         self.engine = engine            # engine settings the run used
         self.timeline = timeline        # every unit's intervals were kept (for a timeline)
         self.folded = folded            # a BusyFold: bus time the pool handed over during the run

@@ -5,8 +5,8 @@ go to memory as posted writes (``txn.is_write``): each waits only for room in
 its channels' write queues, and the pool places them between reads by its
 drain policy (:mod:`sim.engine.dram`). Nothing on chip waits for a write, so
 writes cost time only through the bus time and turnarounds they take from
-reads. Writes still queued when the last step ends are not waited for: the
-run ends with its last step.
+reads. The run ends when the last step has ended and the last write's data
+has crossed the bus: the trace's work includes putting its results in memory.
 """
 
 from .feed import WAIT
