@@ -178,12 +178,15 @@ def build_result(stats):
     units["dram"] = _dram_states(pool, states["fetch"], end, stats.folded)
     units = {k: units[k] for k in UNIT_ORDER if k in units}
 
-    # per step / layer / stage cycles: a step lasts from the previous step's end to its own
+    # per step / layer / stage cycles: a step lasts from the previous step's end to its own;
+    # the last also carries the run's tail (writes still reaching memory), so they sum to it
     per_step = []
     prev = 0.0
     for t in step_times:
         per_step.append(t - prev)
         prev = t
+    if per_step:
+        per_step[-1] += end - prev
     per_layer, per_stage = {}, {}
     for s, dur in zip(trace.steps, per_step):
         per_layer[str(s.layer)] = per_layer.get(str(s.layer), 0.0) + dur
