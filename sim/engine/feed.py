@@ -1,8 +1,8 @@
 """Feeds: each unit's operations in program order, made a step at a time.
 
 The program builder (:mod:`sim.engine.program`) appends a step's operations
-to every unit's feed when it makes the step; units read their feed as they
-go (see :class:`Feed`).
+to every unit's feed when it makes the step (a long step a few query blocks
+at a time); units read their feed as they go (see :class:`Feed`).
 """
 
 from collections import deque
@@ -13,8 +13,9 @@ WAIT = object()   # Feed.take: the next operation is not made yet; wait for Feed
 
 class Feed:
     """One unit's operations in program order, made a step at a time as the units
-    reach them: only the steps in flight are held, so a run's memory follows the
-    work in flight, not the length of the trace.
+    reach them: only the steps in flight are held (of a long step, the blocks in
+    flight), so a run's memory follows the work in flight, not the length of the
+    trace or of one step.
 
     Iterating makes the next step when the feed runs dry. A unit whose
     operations are sparse (the selector, the write-back: a trace may have none)

@@ -18,6 +18,12 @@ consistent order, with the events that connect them:
   tokens or heads; in decode without such a selection, cached K/V may stream
   in early, as far as the fetch unit's issue window lets them pass the query.
 
+A step of more than ``BLOCKS_PER_MAKE`` query blocks (a long prefill) is made
+in parts as the units reach it. A transaction's buffer room is freed by the
+last operation that reads it; made in parts, that reader is settled once no
+block still to be made can read the transaction (a resident chunk's last
+reading block is known from the plan), so the program is the same either way.
+
 Nothing here runs simpy processes: it only creates the events they share.
 """
 
@@ -58,6 +64,9 @@ class Program:
 
 
 SHAPE_CACHE = 64   # step plans kept for reuse (the layers of a decode token share one)
+# query blocks made at a time: a long prefill step (thousands of blocks) is made as the
+# units reach it, not all at once, so memory follows the blocks in flight
+BLOCKS_PER_MAKE = 64
 
 
 def _next_of_request(steps):
@@ -132,6 +141,23 @@ class _StepShape:
         self.mac_total = sum(self.macs.values())
         self.softmax_elements = sum(b.bp.elements + b.bp.lsb_elements for b in self.blocks)
         self.value_selections = sum(b.bp.rows * len(b.pruned) for b in self.blocks)
+        self.last_read = self._last_reads() if len(self.blocks) > BLOCKS_PER_MAKE else None
+
+    def _last_reads(self):
+        """(plane, group, chunk) -> the last block (index in ``blocks``) that reads that
+        resident chunk; ("KL", group) for the LSB plane, which every LSB block reads whole."""
+        last = {}
+        for j, b in enumerate(self.blocks):
+            gp, bp = b.gp, b.bp
+            if gp.k_resident:
+                for i in bp.k_idx:
+                    last["K", b.gi, i] = j
+            if gp.kl_resident and bp.lsb:
+                last["KL", b.gi] = j
+            if gp.v_resident:
+                for i in bp.v_idx:
+                    last["V", b.gi, i] = j
+        return last
 
     def _shared_query(self, amap, step, layer, q_room):
         """One query block per group: the step's whole query vector is one transaction
@@ -157,6 +183,14 @@ class _StepBuild:
         self.pending_pv = deque()      # (block, final softmax, value selection) awaiting p.V
         self.last_use = {}             # id(txn) -> (txn, the last op that reads it)
         self.last_pv_done = None
+        self.next_block = 0            # blocks made so far
+        self.open = {}                 # id(txn) -> (V plane, last block reading it): a later
+                                       # block may read it (only when made in parts)
+
+    def later_reader(self, key):
+        """Whether a block not made yet (or a p.V still pending) reads the transaction."""
+        v, last = self.open.get(key, (False, -1))
+        return last >= self.next_block - (len(self.pending_pv) if v else 0)
 
     def reads(self, op, *txns):
         """``op`` reads ``txns``: it is their last reader so far."""
@@ -178,7 +212,8 @@ class ProgramBuilder:
         self.layers = max(s.layer for s in trace.steps) + 1
         self.next_of = _next_of_request(trace.steps)
         self.prev = {}  # request -> (its last step's end event, whether a selection ended it)
-        self.made = 0   # steps made so far
+        self.made = 0   # steps begun so far
+        self.current = None   # the step being made, while it has blocks left
 
     def build(self):
         """Make every step now (the engine makes them as units reach them instead)."""
@@ -187,29 +222,42 @@ class ProgramBuilder:
         return self.prog
 
     def _more(self):
-        """Make the next step of the trace; False when none is left."""
+        """Make the next part of the trace (a step, or the next blocks of a long one);
+        False when nothing is left."""
+        st = self.current
+        if st is None:
+            if self.made >= len(self.trace.steps):
+                return False
+            st = self.current = self._start_step()
+        self._emit_blocks(st)
+        if st.next_block < len(st.shape.blocks):
+            self.prog.made(False)
+            return True
+        self.current = None
+        self._end_step(st)
+        return True
+
+    def _start_step(self):
         s = self.made
-        steps = self.trace.steps
-        if s >= len(steps):
-            return False
         self.made += 1
-        step = steps[s]
+        step = self.trace.steps[s]
         prev_done, prev_selected = self.prev.get(step.request, (None, False))
         dep_q = [(prev_done, "layer_dependency")] if prev_done is not None else []
         dep_kv = []
         if prev_done is not None and (step.stage == "prefill" or prev_selected):
             dep_kv = [(prev_done, "topk" if prev_selected else "layer_dependency")]
         layer = step.request * self.layers + step.layer   # each request its own KV-cache region
-        st = _StepBuild(s, step, layer, self._shape(step, layer), dep_q, dep_kv)
-        self._emit_step(st)
+        return _StepBuild(s, step, layer, self._shape(step, layer), dep_q, dep_kv)
+
+    def _end_step(self, st):
+        steps, s = self.trace.steps, st.s
         nxt = self.next_of[s]
         done, selected = self._select_next(st, None if nxt is None else steps[nxt])
-        self.prev[step.request] = (done, selected)
+        self.prev[st.step.request] = (done, selected)
         times, env = self.prog.step_times, self.env
         done.callbacks.append(lambda _e, i=s: times.__setitem__(i, env.now))
         self._writes(st, done)
         self.prog.made(self.made == len(steps))
-        return True
 
     def _shape(self, step, layer):
         amap = self.amaps[step.head_dim]
@@ -223,9 +271,15 @@ class ProgramBuilder:
         return shape
 
     # ------------------------------------------------------------------ a step
-    def _emit_step(self, st):
+    def _emit_blocks(self, st):
+        """Make the step's next blocks: all of them, or BLOCKS_PER_MAKE when it has more
+        (a transaction's last reader is then settled once no later block reads it)."""
         lookahead = self.arch.dot.lookahead
-        for b in st.shape.blocks:
+        blocks = st.shape.blocks
+        first = st.next_block
+        end = len(blocks) if st.shape.last_read is None else min(len(blocks), first + BLOCKS_PER_MAKE)
+        for j in range(first, end):
+            b = blocks[j]
             q = self._query(st, b)
             kch = self._keys(st, b)
             sm1 = self._qk(st, b, q, kch)
@@ -233,14 +287,27 @@ class ProgramBuilder:
                 self._pv(st, *st.pending_pv.popleft())
             final_sm = self._lsb(st, b, q, kch, sm1) if b.bp.lsb else sm1
             st.pending_pv.append((b, final_sm, self._value_select(st, b, final_sm)))
-        while st.pending_pv:
-            self._pv(st, *st.pending_pv.popleft())
-        for txn, op in st.last_use.values():
+        st.next_block = end
+        if end == len(blocks):
+            while st.pending_pv:
+                self._pv(st, *st.pending_pv.popleft())
+            self._settle(st, st.last_use)
+            self._count(st)
+            return
+        settled = {k: u for k, u in st.last_use.items() if not st.later_reader(k)}
+        for k in settled:
+            del st.last_use[k]
+            st.open.pop(k, None)
+        self._settle(st, settled)
+
+    @staticmethod
+    def _settle(st, uses):
+        """Each transaction's last reader releases its buffer room."""
+        for txn, op in uses.values():
             if op.release:
                 op.release.append(txn)
             else:
                 op.release = [txn]
-        self._count(st)
 
     def _count(self, st):
         prog, shape, d = self.prog, st.shape, st.step.head_dim
@@ -287,10 +354,13 @@ class ProgramBuilder:
         cache = self._resident(st, kind, b, len(chunks))
         if any(cache[i] is None for i in idx):
             self.desc += 1
+            last = st.shape.last_read
             for i in idx:
                 if cache[i] is None:
                     c = chunks[i]
                     cache[i] = self._fetch(st, kind, c.segments, c.rows, waits, b.head, b.bp.block, c.skip)
+                    if last is not None:
+                        st.open[id(cache[i])] = (kind == "V", last[kind, b.gi, i])
         return [cache[i] for i in idx]
 
     def _query(self, st, b):
@@ -301,6 +371,7 @@ class ProgramBuilder:
         if st.shared_q is None:
             self.desc += 1
             st.shared_q = self._fetch(st, "Q", *shape.shared_q, st.dep_q, -1, 0)
+            st.open[id(st.shared_q)] = (False, len(shape.blocks) - 1)   # every block reads it
             # each head group reads its own part, in order: the first can start on the first part
             st.shared_q.readers = st.shared_q.pieces = len(shape.plan)
         return st.shared_q
@@ -342,6 +413,8 @@ class ProgramBuilder:
                 if kls[i] is None:
                     c = b.lsb_src[i]
                     kls[i] = self._fetch(st, "KL", c.segments, c.rows, waits, b.head, bp.block, c.skip)
+                    if gp.kl_resident and st.shape.last_read is not None:
+                        st.open[id(kls[i])] = (False, st.shape.last_read["KL", b.gi])
             again = {i: self._fetch(st, "K", msb[i].segments, msb[i].rows, waits, b.head, bp.block,
                                     msb[i].skip) for i in unit} if msb else {}
             for i in unit:
