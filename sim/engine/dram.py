@@ -40,12 +40,14 @@ transactions get. Under ``row_hits_first`` the pool leaves the in-flight count
 to the fetch unit (a transaction's shares are placed at different decisions).
 
 Writes (``txn.is_write``) are posted: each channel's share enters the
-channel's write queue of ``dram.write_queue`` bursts burst by burst as there
-is room (the burst that many places ahead has left), after the shares that
-came before it, and the transaction's event fires when every share is in --
-the write is then accepted, not yet in the array. A share waiting for room
-is entered at the time room comes, so reads that arrive meanwhile are placed
-first, and only a queue's worth of writes is ever fixed ahead of time.
+channel's write queue of ``dram.write_queue`` bursts as there is room (a
+burst needs the one that many places ahead to have left), after the shares
+that came before it, and the transaction's event fires when every share is
+in -- the write is then accepted, not yet in the array. A share that does not
+fit enters in steps, each at the time room comes for enough of it to bring
+the queue to its high mark (or for all of it), or when the channel idles; so
+reads that arrive meanwhile are placed first, and only a queue's worth of
+writes is ever fixed ahead of time.
 A channel drains its oldest writes when ``dram.write_high`` of the queue is
 full, down to ``dram.write_low``, and all of them once it has no read left to
 serve (a watermark drain; common practice, no single source). Drained writes
@@ -576,11 +578,10 @@ class ChannelPool:
 
     # ----------------------------------------------------------------- writes
     def _submit_write(self, txn, b, now):
-        """Posted writes: each channel's share enters its write queue burst by burst as there
-        is room (the burst ``write_queue`` places ahead has left), after any share still
-        entering there; the event fires when every share is in. A channel drains its oldest
-        writes when the queue reaches the high mark, down to the low mark, and all of them
-        once it has no read left to serve."""
+        """Posted writes: each channel's share enters its write queue as there is room (see
+        :meth:`_enter_writes`), after any share still entering there; the event fires when
+        every share is in. A channel drains its oldest writes when the queue reaches the
+        high mark, down to the low mark, and all of them once it has no read left to serve."""
         ch, gb, row, _ = self._decode(b, now)
         cnt = np.bincount(ch, minlength=self.n)
         ends = np.cumsum(cnt)
