@@ -45,11 +45,12 @@ def _span(lo, hi):
     return int(lo[seen].min()), int(hi[seen].max())
 
 
-def _cut(amap, layer, plane, kv, positions, start, max_rows, max_bytes):
-    """Chunks of ``positions`` (key indices ``start`` on) and each chunk's index bounds."""
+def _cut(amap, layer, plane, kv, positions, start, max_rows, max_bytes, memo=None):
+    """Chunks of ``positions`` (key indices ``start`` on) and each chunk's index bounds
+    (``memo``: see :func:`sim.engine.tiling.split`)."""
     if len(positions) == 0:
         return [], np.zeros(1, dtype=np.int64) + start
-    chunks = [c[0] for c in split(amap, layer, (plane,), [(kv, positions)], max_rows, max_bytes)]
+    chunks = [c[0] for c in split(amap, layer, (plane,), [(kv, positions)], max_rows, max_bytes, memo)]
     return chunks, start + np.concatenate([[0], np.cumsum([c.rows for c in chunks])])
 
 
@@ -97,9 +98,10 @@ def plan_banded(arch, amap, step, layer, gp, idx, keys, blocks, cuts):
         gp.k_chunks = res_k[0]
     vplan = _ValuePlan(arch, amap, step, layer, gp, idx, keys, ranges, vc)
     lsb_hull = []
+    k_memo = {}          # first key -> the K chunks of streams from it, shared by blocks
     for b, (q, (r0, lo, hi, span)) in enumerate(zip(blocks, ranges)):
         bp = BlockPlan(b, q)
-        bp.k_idx, bounds = _block_keys(amap, layer, gp, bp, keys, span, res_k, kc, arch)
+        bp.k_idx, bounds = _block_keys(amap, layer, gp, bp, keys, span, res_k, kc, arch, k_memo)
         scale = len(gp.heads) * step.head_dim
         per = [int(x) * scale for x in np.diff(seen_below(lo, hi, bounds))]
         bp.qk_macs = per if bp.k_idx is None else [per[i] for i in bp.k_idx]
@@ -112,14 +114,15 @@ def plan_banded(arch, amap, step, layer, gp, idx, keys, blocks, cuts):
         gp.lsb_bytes = _bytes(amap, layer, "KL", gp.kv, keys[a:b])
 
 
-def _block_keys(amap, layer, gp, bp, keys, span, res_k, kc, arch):
+def _block_keys(amap, layer, gp, bp, keys, span, res_k, kc, arch, memo):
     """The block's K chunks: the resident ones its span overlaps (returns their indices),
     or its own cut of the keys its rows see. Returns ``(indices or None, bounds)``."""
     a, b = span
     if gp.k_resident:
         bounds = res_k[1]
         return _overlapping(bounds, a, b), bounds
-    bp.k_chunks, bounds = _cut(amap, layer, "K", gp.kv, keys[a:b], a, kc, chunk_cap(arch, "K"))
+    bp.k_chunks, bounds = _cut(amap, layer, "K", gp.kv, keys[a:b], a, kc, chunk_cap(arch, "K"),
+                               memo.setdefault(a, {}))
     return None, bounds
 
 
@@ -161,6 +164,7 @@ class _ValuePlan:
         self.half = _half(arch, "V")
         self.cap = chunk_cap(arch, "V")
         self.sets = [self._positions(span) for _r0, _lo, _hi, span in ranges]
+        self.memo = {}          # first key -> V chunks of streams from it (see plan_block)
         union = [s for s in self.sets if len(s)]
         gp.v_positions = np.unique(np.concatenate(union)) if union else keys[:0]
         gp.v_bytes = _bytes(amap, layer, "V", gp.kv, gp.v_positions)
@@ -204,7 +208,9 @@ class _ValuePlan:
             bp.v_idx = _overlapping(self.bounds, a, b)
             weights = [min(b, self.bounds[i + 1]) - max(a, self.bounds[i]) for i in bp.v_idx]
         else:
-            bp.v_chunks, _b = _cut(self.amap, self.layer, "V", gp.kv, mine, 0, self.vc, self.cap)
+            # in prefill a block's V rows are the keys it sees: streams from one key share chunks
+            memo = None if gp.select else self.memo.setdefault(span[0], {})
+            bp.v_chunks, _b = _cut(self.amap, self.layer, "V", gp.kv, mine, 0, self.vc, self.cap, memo)
             weights = [c.rows for c in bp.v_chunks]
         n_vis = span[1] - span[0]
         total = 0

@@ -248,7 +248,7 @@ def even_pick(rows, keep):
     return rows[np.unique(np.round(np.linspace(0, len(rows) - 1, keep)).astype(np.int64))]
 
 
-def split(amap, layer, planes, segments, max_rows, max_bytes):
+def split(amap, layer, planes, segments, max_rows, max_bytes, memo=None):
     """Cut a stream of ``segments`` ``[(head, positions)]`` into chunks.
 
     Each chunk holds at most ``max_rows`` rows and ``max_bytes`` bytes and may
@@ -256,6 +256,11 @@ def split(amap, layer, planes, segments, max_rows, max_bytes):
     (all planes get the same cut, so an LSB chunk pairs with its MSB chunk); a
     burst two neighbouring rows of one head share is counted, and fetched,
     once. Returns one list of Chunks (one per plane) per cut.
+
+    ``memo`` (a dict, row span -> Chunks) shares the Chunks of streams that
+    begin alike (the rows of each causal block start at the same key and only
+    grow): a cut is decided by the rows before it, so a row span cut from one
+    such stream is the same in the others.
     """
     plane = max(planes, key=lambda p: amap.row_bytes[p])
     total = sum(len(p) for _h, p in segments)
@@ -279,6 +284,10 @@ def split(amap, layer, planes, segments, max_rows, max_bytes):
         # rows i..j are new[i..j] (row i's shared burst came with the chunk before)
         j = int(np.searchsorted(cum, limit + cum[i] - new[i], side="right")) - 1
         j = max(i, min(j, i + max_rows - 1, total - 1))
+        if memo is not None and (i, j) in memo:
+            out.append(memo[i, j])
+            i = j + 1
+            continue
         segs = []
         for k in range(owner[i], owner[j] + 1):
             lo, hi = max(i, starts[k]) - starts[k], min(j + 1, starts[k + 1]) - starts[k]
@@ -286,6 +295,8 @@ def split(amap, layer, planes, segments, max_rows, max_bytes):
             segs.append((h, p if lo == 0 and hi == len(p) else p[lo:hi]))
         skip = int(shared[i])
         out.append([Chunk(pl, segs, skip) for pl in planes])
+        if memo is not None:
+            memo[i, j] = out[-1]
         i = j + 1
     return out
 
