@@ -4,11 +4,12 @@
 trace are loaded and before the engine builds anything. It refuses, with the
 estimate, a pair whose DRAM address map would not fit 62 bits or whose run
 would log more than the machine has memory for. The program is made step by
-step, so what grows with the run is its logs: per transaction, the channel
-pool's share records and bus intervals, the fetch unit's state log and the
-occupancy log (``BYTES_PER_TXN``, measured). The transaction count is an upper
-estimate from the tiling rule's own formulas (query blocks x chunks per K/V
-group, K, V and LSB planes; the causal triangle, the window), not a run.
+step (a long step a few query blocks at a time), so what grows with the run is
+its logs: per transaction, the channel pool's share records and bus intervals,
+the fetch unit's state log and the occupancy log (``BYTES_PER_TXN``, measured).
+The transaction count is an upper estimate from the tiling rule's own formulas
+(query blocks x chunks per K/V group, K, V and LSB planes; the causal triangle,
+the window), not a run.
 """
 
 from __future__ import annotations
@@ -24,8 +25,8 @@ ADDRESS_BITS = 62
 # peak RSS above the loaded baseline and the trace per transaction: about 0.25 KB on the
 # 131072-token decode of bench/trace_long.py (914 MiB peak, trace 176 MiB, 3.17 million
 # transactions: the pool's growing tables and the run's logs, the program being made step by
-# step); counted at 1 KB, as the tables grow by doubling and shorter runs carry more per
-# transaction (0.6 KB measured before the result was built in blocks)
+# step); about 0.37 KB on one layer of a causal 32k prefill on mid (778 MiB, 1.61 million);
+# counted at 1 KB, as the tables grow by doubling and shorter runs carry more per transaction
 BYTES_PER_TXN = 1024
 MAX_TXNS = 50_000_000
 
