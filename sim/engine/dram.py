@@ -378,6 +378,7 @@ class ChannelPool:
         self.w_timer = [None] * self.n
         self.w_entering = [deque() for _ in range(self.n)]   # [bursts, rows, job] not all in yet
         self.w_room_timer = [None] * self.n
+        self.w_left_by = [0.0] * self.n                     # when every drained write has left
         self.acc_w = [0, 0]                           # drains at the high mark, idle drains
         # row_hits_first: shares held per channel until its decision time
         self.held = [[] for _ in range(self.n)]
@@ -648,6 +649,8 @@ class ChannelPool:
         first = self.w_entered[c] - self.wq_cap          # the position that must have left first
         if first + m <= 0:
             return m
+        if self.w_left_by[c] <= at and self.w_drained[c] > first:   # every drained burst has left
+            return min(m, self.w_drained[c] - first)
         free = -first if first < 0 else 0
         lo = first + free
         if lo >= self.w_drained[c]:
@@ -679,7 +682,9 @@ class ChannelPool:
                 break
             _room_or_stall(tries, "write drain")
             self._make_room(count)
-        self.write_end = max(self.write_end, float(out.max()) + self.P[T.P_CWL] + self.P[T.P_BURST])
+        last = float(out.max())
+        self.w_left_by[c] = max(self.w_left_by[c], last)
+        self.write_end = max(self.write_end, last + self.P[T.P_CWL] + self.P[T.P_BURST])
         # leave times of the drained bursts, by queue position (older positions are no longer read)
         keep = self.w_drained[c] - self.wq_cap - self.w_base[c]
         if keep > 0:
@@ -700,7 +705,8 @@ class ChannelPool:
         self.env.timeout(t - now).callbacks.append(lambda _e, c=c: self._idle(c))
 
     def _idle(self, c):
-        self._enter_writes(c, self.env.now, catch_up=True)   # what has room by now is in
+        if self.w_entering[c]:
+            self._enter_writes(c, self.env.now, catch_up=True)   # what has room by now is in
         self.w_timer[c] = None
         waiting = self.w_entered[c] - self.w_drained[c]
         if not waiting:
