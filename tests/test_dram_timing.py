@@ -199,13 +199,17 @@ class Kernel:
     def __init__(self, arch, log=False):
         self.pool = p = ChannelPool(simpy.Environment(), arch, log_commands=log)
         p._make_room(4096)
+        none = np.zeros(1)
         self.args = (p.P, p.groups, p.banks, p.close_page, p.open_row, p.BF, p.TL, p.TK, p.TG, p.TN,
-                     p.CF, p.acc, p.LOG, p.NI, p.IV, p.busy_cycles)
+                     p.CF, p.acc, p.LOG, p.NI, p.IV, p.busy_cycles, p.H, p.FS, p.FI, p.FF, none, none,
+                     p.depth, p.req_bursts, p.fetch_depth, 0, False)
         self.out = np.zeros(1)
+        self.agg = np.zeros((p.n, 4))
 
     def place(self, c, b, r, w, t0):
-        begin, _, _ = T.place_bursts(np.array([b]), np.array([r]), 0, 1, c, w, t0, self.out, *self.args)
-        return self.out[0], begin
+        T.place_bursts(np.array([b]), np.array([r]), np.array([c]), np.array([0]), 0, 1, w, t0, self.out,
+                       self.agg, False, *self.args)
+        return self.out[0], self.agg[c, 0]
 
 
 def burst_stream(arch, rng, n, rows=4, writes=0.3, gap=20.0):

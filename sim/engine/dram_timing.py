@@ -448,16 +448,16 @@ def _log(LOG, NI, t, c, bank, kind, row):
 # ---------------------------------------------------------------- bursts
 
 @_compile
-def _after_all(CT, CK, n, x, code, w, last_write, reach, burst, ccd_l, rtw, w2r_s, w2r_l):
+def _after_all(TL, TK, c, n, x, code, w, last_write, reach, burst, ccd_l, rtw, w2r_s, w2r_l):
     """Column time >= ``x`` after all ``n`` columns of a timeline with no usable gap after
     ``x``: only the rules with the commands just before count, and x only grows, so one
     pass back over them is enough. With no write within reach, a read keeps tCCD only."""
-    if x < CT[n - 1]:
-        x = CT[n - 1]
+    if x < TL[c, COL, n - 1]:
+        x = TL[c, COL, n - 1]
     rr = reach if (w or last_write > x - reach) else ccd_l
     j = n - 1
-    while j >= 0 and CT[j] > x - rr:
-        need = CT[j] + col_spacing(CK[j], code, burst, ccd_l, rtw, w2r_s, w2r_l)
+    while j >= 0 and TL[c, COL, j] > x - rr:
+        need = TL[c, COL, j] + col_spacing(TK[c, COL, j], code, burst, ccd_l, rtw, w2r_s, w2r_l)
         if need > x:
             x = need
         j -= 1
@@ -465,13 +465,21 @@ def _after_all(CT, CK, n, x, code, w, last_write, reach, burst, ccd_l, rtw, w2r_
 
 
 @_compile
-def place_bursts(gb, row, i0, i1, c, w, t, out, P, groups, banks, close_page, open_row, BF, TL, TK,
-                 TG, TN, CF, acc, LOG, NI, IV, busy):
-    """Fix the commands of bursts ``i0 .. i1-1`` (global bank ``gb``, row ``row``), all on
-    channel ``c``, writes if ``w``, which the controller sees from time ``t``, in order;
-    update all state, the data-bus intervals ``IV`` and busy time. ``out[k]`` is burst
-    ``k``'s column time. Returns ``(begin, first, last)``: when the bursts' first command
-    issued, their first data and their last data (on the bus, before the controller)."""
+def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, groups, banks, close_page,
+                 open_row, BF, TL, TK, TG, TN, CF, acc, LOG, NI, IV, busy, H, FS, FI, FF, RX, RT, depth,
+                 rq, gdepth, stream, chq):
+    """Fix the commands of bursts ``k0 .. k1-1`` (global bank ``gb``, row ``row``, channel
+    ``ch``, sorted by channel), writes if ``w``; update all state, the data-bus intervals
+    ``IV`` and busy time. ``out[k]`` is burst ``k``'s column time; ``agg[c]`` gets
+    channel ``c``'s start (its first command), first data, last data (each after the
+    controller's delay) and bursts.
+
+    In one go (not ``by_request``): each channel's bursts in order, seen by the
+    controller from ``now``. ``by_request``: reads in address order (``pos[k]``: where
+    the ``k``-th is in the sorted arrays), a request at a time, each seen from when it
+    has room (see :func:`serve_and_book`) and then booked (:func:`_book_requests`).
+    One call for the whole batch: a compiled call costs the reference counts of
+    every array passed, and a call per request made that most of the loop's time."""
     burst = P[P_BURST]
     ccd_l = P[P_CCD_L]
     rcd = P[P_RCD]
@@ -489,228 +497,271 @@ def place_bursts(gb, row, i0, i1, c, w, t, out, P, groups, banks, close_page, op
     dur = P[P_REF_DUR]
     after_col = P[P_CWL] + burst + P[P_WR] if w else P[P_RTP]   # earliest precharge after a column
     logging = NI[I_LOGGING] > 0
-    CT = TL[c, COL]
-    CK = TK[c, COL]
-    CG = TG[c, COL]
-    AT = TL[c, ACT]
-    AG = TK[c, ACT]
-    # the channel takes bursts in in time order: none is seen before the last one taken in
-    if t < CF[c, F_TAKEN]:
-        t = CF[c, F_TAKEN]
-    else:
-        CF[c, F_TAKEN] = t
     gmask = groups - 1                          # bank groups come in powers of two
     lat = P[P_CWL] if w else P[P_CL]
+    ctrl = P[P_CTRL]
+    c = 0
     begin = np.inf
     first = np.inf
     last = -np.inf
-    for k in range(i0, i1):
-        b = gb[k]
-        r = row[k]
-        g = b & gmask
-        code = g * 2 + w
-        # a row hit placed after every column (the common case) skips the general search
-        fast = False
-        if open_row[b] == r and BF[b, B_CLOSE] > t and BF[b, B_ROW_END] > t:
-            cc = BF[b, B_ACT] + rcd
-            if t > cc:
-                cc = t
-            if BF[b, B_COL] + ccd_l > cc:
-                cc = BF[b, B_COL] + ccd_l
-            n = TN[c, N_COL]
-            gn = TN[c, N_COL_GAPS]
-            if n > 0 and cc >= CT[0] and (gn == 0 or CG[gn - 1, 1] <= cc):
-                cc = _after_all(CT, CK, n, cc, code, w, CF[c, F_LAST_WRITE], reach, burst, ccd_l, rtw,
-                                w2r_s, w2r_l)
-                fast = cc < BF[b, B_ROW_END]
-        off = BF[b, B_REF_OFF]
-        act = BF[b, B_ACT]
-        pre_ready = BF[b, B_PRE_READY]
-        shut = -1.0                              # a close-page precharge to log
-        first_cc = -1.0
-        kind = HIT
-        a = act
-        p = -np.inf
-        a_lo = 0.0
-        faw = False
-        s = BF[b, B_ROW_END]
-        if not fast:
-            o = open_row[b]
-            if o >= 0:
-                s = BF[b, B_ROW_END]
-                if BF[b, B_CLOSE] <= t and BF[b, B_CLOSE] < s:
-                    shut = BF[b, B_CLOSE]        # closed by its close-page precharge
-                    o = -1
-                elif s <= t:                     # a refresh closed the row
+    t = np.inf
+    kq = k0                                      # by request: the next burst in address order
+    e = k0                                      # and the end of its run on one channel
+    i0 = k0
+    i1 = k1
+    take = 0
+    while kq < k1:
+        if by_request:
+            if kq >= e:
+                c = ch[pos[kq]]
+                e = _run_end(ch, pos, kq, k1)
+            take = _to_request(CF[c, F_ENTERED], rq, e - kq)
+            t = level_time(H, TN, CF, c, now, CF[c, F_ENTERED] + take / rq - depth) if chq else now
+            tg = fslots_level_time(FS, FI, FF, now, FF[1] + take / rq - gdepth)
+            if tg > t:
+                t = tg
+            tr = room_time(RX, RT, kq + take)
+            if tr > t:
+                t = tr
+            i0 = pos[kq]
+            i1 = i0 + take
+            kq += take
+            begin = np.inf
+            first = np.inf
+            last = -np.inf
+        else:
+            c = ch[kq]
+            i0 = kq
+            while kq < k1 and ch[kq] == c:
+                kq += 1
+            i1 = kq
+            t = now
+            begin = np.inf
+            first = np.inf
+            last = -np.inf
+        # the channel takes bursts in in time order: none is seen before the last one taken in
+        if t < CF[c, F_TAKEN]:
+            t = CF[c, F_TAKEN]
+        else:
+            CF[c, F_TAKEN] = t
+        for k in range(i0, i1):
+            b = gb[k]
+            r = row[k]
+            g = b & gmask
+            code = g * 2 + w
+            # a row hit placed after every column (the common case) skips the general search
+            fast = False
+            if open_row[b] == r and BF[b, B_CLOSE] > t and BF[b, B_ROW_END] > t:
+                cc = BF[b, B_ACT] + rcd
+                if t > cc:
+                    cc = t
+                if BF[b, B_COL] + ccd_l > cc:
+                    cc = BF[b, B_COL] + ccd_l
+                n = TN[c, N_COL]
+                gn = TN[c, N_COL_GAPS]
+                if n > 0 and cc >= TL[c, COL, 0] and (gn == 0 or TG[c, COL, gn - 1, 1] <= cc):
+                    cc = _after_all(TL, TK, c, n, cc, code, w, CF[c, F_LAST_WRITE], reach, burst, ccd_l, rtw,
+                                    w2r_s, w2r_l)
+                    fast = cc < BF[b, B_ROW_END]
+            off = BF[b, B_REF_OFF]
+            act = BF[b, B_ACT]
+            pre_ready = BF[b, B_PRE_READY]
+            shut = -1.0                              # a close-page precharge to log
+            first_cc = -1.0
+            kind = HIT
+            a = act
+            p = -np.inf
+            a_lo = 0.0
+            faw = False
+            s = BF[b, B_ROW_END]
+            if not fast:
+                o = open_row[b]
+                if o >= 0:
+                    s = BF[b, B_ROW_END]
+                    if BF[b, B_CLOSE] <= t and BF[b, B_CLOSE] < s:
+                        shut = BF[b, B_CLOSE]        # closed by its close-page precharge
+                        o = -1
+                    elif s <= t:                     # a refresh closed the row
+                        o = -1
+                        if s + dur > pre_ready:
+                            pre_ready = s + dur
+                for _ in range(64):
+                    if o == r:
+                        kind = HIT
+                        a = act
+                        lo = act + rcd
+                        if t > lo:
+                            lo = t
+                        s = BF[b, B_ROW_END]
+                    else:
+                        if o < 0:
+                            kind = MISS
+                            a0 = pre_ready if pre_ready > t else t
+                        else:
+                            kind = CONFLICT
+                            p = BF[b, B_PRE_MIN]
+                            if act + ras > p:
+                                p = act + ras
+                            if t > p:
+                                p = t
+                            if BF[b, B_ROW_END] <= p:  # the refresh closes the row first
+                                o = -1
+                                if BF[b, B_ROW_END] + dur > pre_ready:
+                                    pre_ready = BF[b, B_ROW_END] + dur
+                                continue
+                            a0 = p + rp
+                        if act + rc > a0:
+                            a0 = act + rc
+                        a_lo = ref_clear(off, period, dur, a0)
+                        a = a_lo
+                        faw = False
+                        na = TN[c, N_ACT]
+                        gna = TN[c, N_ACT_GAPS]
+                        if na > 0 and a >= TL[c, ACT, 0] and (gna == 0 or TG[c, ACT, gna - 1, 1] <= a):
+                            # no gap ahead: after every activate (the common case); keep tRRD with
+                            # those just before and tFAW with the fourth before
+                            if a < TL[c, ACT, na - 1]:
+                                a = TL[c, ACT, na - 1]
+                            x = a
+                            j = na - 1
+                            while j >= 0 and TL[c, ACT, j] + rrd_l > a:
+                                need = TL[c, ACT, j] + (rrd_l if TK[c, ACT, j] == g else rrd_s)
+                                if need > x:
+                                    x = need
+                                j -= 1
+                            if faw_t > 0.0 and na >= 4 and TL[c, ACT, na - 4] + faw_t > x:
+                                x = TL[c, ACT, na - 4] + faw_t
+                                faw = True
+                            if ref_clear(off, period, dur, x) != x:
+                                a, f = act_slot(TL, TK, TG, TN, c, g, x, off, period, dur, P)
+                                faw = faw or f
+                            else:
+                                a = x
+                        elif na > 0:
+                            a, faw = act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, P)
+                        lo = a + rcd
+                        s = ref_after(off, period, dur, a)
+                    if BF[b, B_COL] + ccd_l > lo:    # a bank's bursts keep their order
+                        lo = BF[b, B_COL] + ccd_l
+                    n = TN[c, N_COL]
+                    gn = TN[c, N_COL_GAPS]
+                    if n == 0:
+                        cc = lo
+                    elif lo >= TL[c, COL, 0] and (gn == 0 or TG[c, COL, gn - 1, 1] <= lo):
+                        cc = _after_all(TL, TK, c, n, lo, code, w, CF[c, F_LAST_WRITE], reach, burst, ccd_l,
+                                        rtw, w2r_s, w2r_l)
+                    else:
+                        cc = col_place(TL, TK, TG, TN, CF, c, code, lo, P)
+                    if cc < s:
+                        break
+                    # a refresh window starts before the column: the row closes, open it again after
+                    if first_cc < 0.0:
+                        first_cc = cc
                     o = -1
                     if s + dur > pre_ready:
                         pre_ready = s + dur
-            for _ in range(64):
-                if o == r:
-                    kind = HIT
-                    a = act
-                    lo = act + rcd
-                    if t > lo:
-                        lo = t
-                    s = BF[b, B_ROW_END]
+            bank = b - c * banks
+            if kind != HIT:
+                if logging:
+                    if kind == CONFLICT:
+                        _log(LOG, NI, p, c, bank, CMD_PRE, open_row[b])
+                    elif shut >= 0.0:
+                        _log(LOG, NI, shut, c, bank, CMD_PRE, open_row[b])
+                    _log(LOG, NI, a, c, bank, CMD_ACT, r)
+                na = TN[c, N_ACT]
+                if na == 0 or a >= TL[c, ACT, na - 1]:       # appended (the common case)
+                    # a gap another activate could use later: wide enough for tRRD on both sides,
+                    # and not inside a full four-activate window
+                    if na > 0 and a - TL[c, ACT, na - 1] >= 2.0 * rrd_s and \
+                            (faw_t <= 0.0 or na < 3 or a >= TL[c, ACT, na - 3] + faw_t):
+                        _gap_add(TG, TN, c, ACT, TL[c, ACT, na - 1], a)
+                    TL[c, ACT, na] = a
+                    TK[c, ACT, na] = g
+                    TN[c, N_ACT] = na + 1
                 else:
-                    if o < 0:
-                        kind = MISS
-                        a0 = pre_ready if pre_ready > t else t
-                    else:
-                        kind = CONFLICT
-                        p = BF[b, B_PRE_MIN]
-                        if act + ras > p:
-                            p = act + ras
-                        if t > p:
-                            p = t
-                        if BF[b, B_ROW_END] <= p:  # the refresh closes the row first
-                            o = -1
-                            if BF[b, B_ROW_END] + dur > pre_ready:
-                                pre_ready = BF[b, B_ROW_END] + dur
-                            continue
-                        a0 = p + rp
-                    if act + rc > a0:
-                        a0 = act + rc
-                    a_lo = ref_clear(off, period, dur, a0)
-                    a = a_lo
-                    faw = False
-                    na = TN[c, N_ACT]
-                    gna = TN[c, N_ACT_GAPS]
-                    if na > 0 and a >= AT[0] and (gna == 0 or TG[c, ACT, gna - 1, 1] <= a):
-                        # no gap ahead: after every activate (the common case); keep tRRD with
-                        # those just before and tFAW with the fourth before
-                        if a < AT[na - 1]:
-                            a = AT[na - 1]
-                        x = a
-                        j = na - 1
-                        while j >= 0 and AT[j] + rrd_l > a:
-                            need = AT[j] + (rrd_l if AG[j] == g else rrd_s)
-                            if need > x:
-                                x = need
-                            j -= 1
-                        if faw_t > 0.0 and na >= 4 and AT[na - 4] + faw_t > x:
-                            x = AT[na - 4] + faw_t
-                            faw = True
-                        if ref_clear(off, period, dur, x) != x:
-                            a, f = act_slot(TL, TK, TG, TN, c, g, x, off, period, dur, P)
-                            faw = faw or f
-                        else:
-                            a = x
-                    elif na > 0:
-                        a, faw = act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, P)
-                    lo = a + rcd
-                    s = ref_after(off, period, dur, a)
-                if BF[b, B_COL] + ccd_l > lo:    # a bank's bursts keep their order
-                    lo = BF[b, B_COL] + ccd_l
-                n = TN[c, N_COL]
-                gn = TN[c, N_COL_GAPS]
-                if n == 0:
-                    cc = lo
-                elif lo >= CT[0] and (gn == 0 or CG[gn - 1, 1] <= lo):
-                    cc = _after_all(CT, CK, n, lo, code, w, CF[c, F_LAST_WRITE], reach, burst, ccd_l,
-                                    rtw, w2r_s, w2r_l)
-                else:
-                    cc = col_place(TL, TK, TG, TN, CF, c, code, lo, P)
-                if cc < s:
-                    break
-                # a refresh window starts before the column: the row closes, open it again after
-                if first_cc < 0.0:
-                    first_cc = cc
-                o = -1
-                if s + dur > pre_ready:
-                    pre_ready = s + dur
-        bank = b - c * banks
-        if kind != HIT:
+                    _insert(TL, TK, TG, TN, c, ACT, a, g, 2.0 * rrd_s)
+                BF[b, B_ACT] = a
+                BF[b, B_ROW_END] = s
+                BF[b, B_PRE_MIN] = -np.inf
+                open_row[b] = r
+                acc[A_ACTS] += 1.0
+                if faw:
+                    acc[A_FAW_ACTS] += 1.0
+                acc[A_ACT_DELAY] += a - a_lo
             if logging:
-                if kind == CONFLICT:
-                    _log(LOG, NI, p, c, bank, CMD_PRE, open_row[b])
-                elif shut >= 0.0:
-                    _log(LOG, NI, shut, c, bank, CMD_PRE, open_row[b])
-                _log(LOG, NI, a, c, bank, CMD_ACT, r)
-            na = TN[c, N_ACT]
-            if na == 0 or a >= AT[na - 1]:       # appended (the common case)
-                # a gap another activate could use later: wide enough for tRRD on both sides,
-                # and not inside a full four-activate window
-                if na > 0 and a - AT[na - 1] >= 2.0 * rrd_s and \
-                        (faw_t <= 0.0 or na < 3 or a >= AT[na - 3] + faw_t):
-                    _gap_add(TG, TN, c, ACT, AT[na - 1], a)
-                AT[na] = a
-                AG[na] = g
-                TN[c, N_ACT] = na + 1
+                _log(LOG, NI, cc, c, bank, CMD_WR if w else CMD_RD, r)
+            n = TN[c, N_COL]
+            if n == 0 or cc >= TL[c, COL, n - 1]:             # appended (the common case)
+                if n > 0:
+                    if cc - TL[c, COL, n - 1] >= 2.0 * burst:
+                        _gap_add(TG, TN, c, COL, TL[c, COL, n - 1], cc)
+                    pw = TK[c, COL, n - 1] & 1
+                    if pw != w:
+                        acc[A_RW if pw == 0 else A_WR] += 1.0
+                TL[c, COL, n] = cc
+                TK[c, COL, n] = code
+                TN[c, N_COL] = n + 1
             else:
-                _insert(TL, TK, TG, TN, c, ACT, a, g, 2.0 * rrd_s)
-            BF[b, B_ACT] = a
-            BF[b, B_ROW_END] = s
-            BF[b, B_PRE_MIN] = -np.inf
-            open_row[b] = r
-            acc[A_ACTS] += 1.0
-            if faw:
-                acc[A_FAW_ACTS] += 1.0
-            acc[A_ACT_DELAY] += a - a_lo
-        if logging:
-            _log(LOG, NI, cc, c, bank, CMD_WR if w else CMD_RD, r)
-        n = TN[c, N_COL]
-        if n == 0 or cc >= CT[n - 1]:             # appended (the common case)
-            if n > 0:
-                if cc - CT[n - 1] >= 2.0 * burst:
-                    _gap_add(TG, TN, c, COL, CT[n - 1], cc)
-                pw = CK[n - 1] & 1
-                if pw != w:
-                    acc[A_RW if pw == 0 else A_WR] += 1.0
-            CT[n] = cc
-            CK[n] = code
-            TN[c, N_COL] = n + 1
+                q = _insert(TL, TK, TG, TN, c, COL, cc, code, 2.0 * burst)
+                # read/write direction changes between neighbours on the bus
+                nw = TK[c, COL, q + 1] & 1
+                if nw != w:
+                    acc[A_RW if w == 0 else A_WR] += 1.0
+                if q > 0:
+                    pw = TK[c, COL, q - 1] & 1
+                    if pw != w:
+                        acc[A_RW if pw == 0 else A_WR] += 1.0
+                    if pw != nw:
+                        acc[A_RW if pw == 0 else A_WR] -= 1.0
+            if cc > CF[c, F_LAST]:
+                CF[c, F_LAST] = cc
+            if w and cc > CF[c, F_LAST_WRITE]:
+                CF[c, F_LAST_WRITE] = cc
+            BF[b, B_COL] = cc
+            if cc + after_col > BF[b, B_PRE_MIN]:
+                BF[b, B_PRE_MIN] = cc + after_col
+            if close_page:
+                sh = BF[b, B_PRE_MIN]
+                if BF[b, B_ACT] + ras > sh:
+                    sh = BF[b, B_ACT] + ras
+                BF[b, B_CLOSE] = sh
+                pre_ready = sh + rp
+            BF[b, B_PRE_READY] = pre_ready
+            acc[A_KIND + kind] += 1.0
+            if first_cc >= 0.0:
+                acc[A_REF_DELAY] += cc - first_cc
+            out[k] = cc
+            b0 = p if kind == CONFLICT else (a if kind == MISS else cc)
+            if b0 < begin:
+                begin = b0
+            d0 = cc + lat
+            if d0 < first:
+                first = d0
+            if d0 + burst > last:
+                last = d0 + burst
+            # the data bus is busy [d0, d0 + burst]: join the channel's last interval if they touch
+            m = TN[c, N_IV]
+            if m > 0 and IV[c, m - 1, 0] <= d0 <= IV[c, m - 1, 1] + 1e-9:
+                if d0 + burst > IV[c, m - 1, 1]:
+                    IV[c, m - 1, 1] = d0 + burst
+            else:
+                IV[c, m, 0] = d0
+                IV[c, m, 1] = d0 + burst
+                TN[c, N_IV] = m + 1
+        busy[c] += (i1 - i0) * burst
+        acc[A_WRITE_BURSTS if w else A_READ_BURSTS] += i1 - i0
+        if by_request:
+            _book_requests(out, i0, i1, c, rq, P, H, TN, CF, FS, FI, FF, stream, chq)
+            acc[A_REQUESTS] += take / rq
+            agg[c, 0] = min(agg[c, 0], begin)
+            agg[c, 1] = min(agg[c, 1], first + ctrl)
+            agg[c, 2] = max(agg[c, 2], last + ctrl)
+            agg[c, 3] += take
         else:
-            q = _insert(TL, TK, TG, TN, c, COL, cc, code, 2.0 * burst)
-            # read/write direction changes between neighbours on the bus
-            nw = CK[q + 1] & 1
-            if nw != w:
-                acc[A_RW if w == 0 else A_WR] += 1.0
-            if q > 0:
-                pw = CK[q - 1] & 1
-                if pw != w:
-                    acc[A_RW if pw == 0 else A_WR] += 1.0
-                if pw != nw:
-                    acc[A_RW if pw == 0 else A_WR] -= 1.0
-        if cc > CF[c, F_LAST]:
-            CF[c, F_LAST] = cc
-        if w and cc > CF[c, F_LAST_WRITE]:
-            CF[c, F_LAST_WRITE] = cc
-        BF[b, B_COL] = cc
-        if cc + after_col > BF[b, B_PRE_MIN]:
-            BF[b, B_PRE_MIN] = cc + after_col
-        if close_page:
-            sh = BF[b, B_PRE_MIN]
-            if BF[b, B_ACT] + ras > sh:
-                sh = BF[b, B_ACT] + ras
-            BF[b, B_CLOSE] = sh
-            pre_ready = sh + rp
-        BF[b, B_PRE_READY] = pre_ready
-        acc[A_KIND + kind] += 1.0
-        if first_cc >= 0.0:
-            acc[A_REF_DELAY] += cc - first_cc
-        out[k] = cc
-        b0 = p if kind == CONFLICT else (a if kind == MISS else cc)
-        if b0 < begin:
-            begin = b0
-        d0 = cc + lat
-        if d0 < first:
-            first = d0
-        if d0 + burst > last:
-            last = d0 + burst
-        # the data bus is busy [d0, d0 + burst]: join the channel's last interval if they touch
-        m = TN[c, N_IV]
-        if m > 0 and IV[c, m - 1, 0] <= d0 <= IV[c, m - 1, 1] + 1e-9:
-            if d0 + burst > IV[c, m - 1, 1]:
-                IV[c, m - 1, 1] = d0 + burst
-        else:
-            IV[c, m, 0] = d0
-            IV[c, m, 1] = d0 + burst
-            TN[c, N_IV] = m + 1
-    busy[c] += (i1 - i0) * burst
-    acc[A_WRITE_BURSTS if w else A_READ_BURSTS] += i1 - i0
-    return begin, first, last
+            agg[c, 0] = begin
+            agg[c, 1] = first + ctrl
+            agg[c, 2] = last + ctrl
+            agg[c, 3] = i1 - i0
 
 
 # ---------------------------------------------------------------- queue slots
@@ -1067,7 +1118,6 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     # queue at its data, the slot at handover), so with no more fetch slots than queue
     # entries the queue can never be the one that waits: it is not kept then.
     chq = gdepth > depth
-    ctrl = P[P_CTRL]
     out = np.empty(n)
     nc = TN.shape[0]
     agg = np.empty((nc, 4))         # per channel: start, first data, last data, bursts
@@ -1075,21 +1125,12 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     agg[:, 1] = np.inf
     agg[:, 2] = -np.inf
     agg[:, 3] = 0.0
-    if room_time(RX, RT, n) <= now and _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI, FF,
-                                                chq):
-        i = 0
-        while i < n:
-            c = ch[i]
-            j = i
-            while j < n and ch[j] == c:
-                j += 1
-            begin, first, last = place_bursts(gb, row, i, j, c, 0, now, out, P, groups, banks, close_page,
-                                              open_row, BF, TL, TK, TG, TN, CF, acc, LOG, NI, IV, busy)
-            agg[c, 0] = begin
-            agg[c, 1] = first + ctrl
-            agg[c, 2] = last + ctrl
-            agg[c, 3] = j - i
-            i = j
+    in_one_go = room_time(RX, RT, n) <= now and _all_fit(ch, n, now, depth, rq, H, TN, CF, gdepth, FS, FI,
+                                                         FF, chq)
+    place_bursts(gb, row, ch, pos, 0, n, 0, now, out, agg, not in_one_go, P, groups, banks, close_page,
+                 open_row, BF, TL, TK, TG, TN, CF, acc, LOG, NI, IV, busy, H, FS, FI, FF, RX, RT, depth, rq,
+                 gdepth, stream, chq)
+    if in_one_go:
         k = 0
         while k < n:                         # in address order, run by run
             e = _run_end(ch, pos, k, n)
@@ -1097,32 +1138,6 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
                            chq)
             k = e
         acc[A_REQUESTS] += n / rq
-    else:
-        k = 0
-        while k < n:
-            c = ch[pos[k]]
-            e = _run_end(ch, pos, k, n)
-            while k < e:
-                take = _to_request(CF[c, F_ENTERED], rq, e - k)
-                amount = take / rq
-                t = level_time(H, TN, CF, c, now, CF[c, F_ENTERED] + amount - depth) if chq else now
-                tg = fslots_level_time(FS, FI, FF, now, FF[1] + amount - gdepth)
-                if tg > t:
-                    t = tg
-                tr = room_time(RX, RT, k + take)
-                if tr > t:
-                    t = tr
-                s0 = pos[k]
-                begin, first, last = place_bursts(gb, row, s0, s0 + take, c, 0, t, out, P, groups, banks,
-                                                  close_page, open_row, BF, TL, TK, TG, TN, CF, acc, LOG,
-                                                  NI, IV, busy)
-                _book_requests(out, s0, s0 + take, c, rq, P, H, TN, CF, FS, FI, FF, stream, chq)
-                acc[A_REQUESTS] += amount
-                agg[c, 0] = min(agg[c, 0], begin)
-                agg[c, 1] = min(agg[c, 1], first + ctrl)
-                agg[c, 2] = max(agg[c, 2], last + ctrl)
-                agg[c, 3] += take
-                k += take
     t_start = times[0]
     t_first = times[1]
     t_done = times[2]
@@ -1163,10 +1178,14 @@ def serve_writes(gb, row, c, t, out, groups, banks, close_page, P, open_row, BF,
         return -1
     if TN[c, N_IV] + m > IV.shape[1]:
         return -1
-    if not _fits(np.full(m, c, dtype=np.int64), CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
+    ch = np.full(m, c, dtype=np.int64)
+    if not _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
         return -1
-    place_bursts(gb, row, 0, m, c, 1, t, out, P, groups, banks, close_page, open_row, BF, TL, TK, TG, TN,
-                 CF, acc, LOG, NI, IV, busy)
+    none_i = np.zeros(1, dtype=np.int64)
+    none_f = np.zeros(1)
+    place_bursts(gb, row, ch, ch, 0, m, 1, t, out, np.empty((TN.shape[0], 4)), False, P, groups, banks,
+                 close_page, open_row, BF, TL, TK, TG, TN, CF, acc, LOG, NI, IV, busy, H, np.zeros((1, 3)),
+                 none_i, none_f, none_f, none_f, 1, 1, 1, 0, False)
     return 1
 
 
