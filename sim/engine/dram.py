@@ -410,12 +410,7 @@ class ChannelPool:
     def _make_room(self, rows):
         """Grow the tables that lack room for ``rows`` more bursts (one share) per channel."""
         self.outstanding.make_room(rows)
-        p, n, q = self.FI
-        if p:                                   # drop completions counted already
-            self.FS[:n - p] = self.FS[p:n]
-            if q < p:
-                q, self.FF[5] = p, self.FF[0]
-            self.FI[:] = (0, n - p, q - p)
+        T.fslots_compact(self.FS, self.FI, self.FF)
         if self.FI[1] + rows + 1 > len(self.FS):
             self.FS = _grown(self.FS, self.FI[1] + rows + 1, axis=0)
         self.H = self.outstanding.H

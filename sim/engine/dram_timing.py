@@ -98,9 +98,10 @@ N_COL, N_ACT, N_COL_GAPS, N_ACT_GAPS, N_HEAP, N_IV = range(6)
 N_COUNTS = 6
 # per-channel times: last column, last write column, time bursts were last taken in; the
 # read queue's completions counted so far, the ramp being counted (start, done, amount),
-# and the requests entered so far
-F_LAST, F_LAST_WRITE, F_TAKEN, F_REL, F_RAMP_START, F_RAMP_DONE, F_RAMP_AMOUNT, F_ENTERED = range(8)
-N_CHANNEL = 8
+# the requests entered so far, and whether the last column command dropped from the timeline
+# was a write, plus one (0: none dropped; a command placed before all kept ones follows it)
+F_LAST, F_LAST_WRITE, F_TAKEN, F_REL, F_RAMP_START, F_RAMP_DONE, F_RAMP_AMOUNT, F_ENTERED, F_DROPPED = range(9)
+N_CHANNEL = 9
 # NI: share records, command-log rows, logging on
 I_RECORDS, I_LOG, I_LOGGING = range(3)
 
@@ -396,7 +397,7 @@ def act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, P):
 
 
 @_compile
-def _room(TL, TK, TG, TN, c, w, m, keep_from):
+def _room(TL, TK, TG, TN, CF, c, w, m, keep_from):
     """Room for ``m`` more entries in channel ``c``'s timeline ``w``, dropping those before
     ``keep_from``. False when even then it would be more than half full (the caller grows it)."""
     cap = TL.shape[2]
@@ -406,6 +407,8 @@ def _room(TL, TK, TG, TN, c, w, m, keep_from):
     T = TL[c, w]
     K = TK[c, w]
     d = _lower(T, n, keep_from)
+    if w == COL and d > 0:
+        CF[c, F_DROPPED] = (K[d - 1] & 1) + 1
     for j in range(n - d):
         T[j] = T[d + j]
         K[j] = K[d + j]
@@ -430,8 +433,8 @@ def compact(TL, TK, TG, TN, CF, P):
     """Drop from every timeline what no later burst can reach (kept: from the time bursts were
     last taken in, minus the longest spacing rule)."""
     for c in range(TL.shape[0]):
-        _room(TL, TK, TG, TN, c, COL, TL.shape[2] + 1, CF[c, F_TAKEN] - P[P_COL_REACH])
-        _room(TL, TK, TG, TN, c, ACT, TL.shape[2] + 1, CF[c, F_TAKEN] - P[P_ACT_REACH])
+        _room(TL, TK, TG, TN, CF, c, COL, TL.shape[2] + 1, CF[c, F_TAKEN] - P[P_COL_REACH])
+        _room(TL, TK, TG, TN, CF, c, ACT, TL.shape[2] + 1, CF[c, F_TAKEN] - P[P_ACT_REACH])
 
 
 @_compile
@@ -692,12 +695,14 @@ def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, grou
                 _log(LOG, NI, cc, c, bank, CMD_WR if w else CMD_RD, r)
             n = TN[c, N_COL]
             if n == 0 or cc >= TL[c, COL, n - 1]:             # appended (the common case)
+                # read/write direction changes between neighbours on the bus
+                pw = int(CF[c, F_DROPPED]) - 1
                 if n > 0:
                     if cc - TL[c, COL, n - 1] >= 2.0 * burst:
                         _gap_add(TG, TN, c, COL, TL[c, COL, n - 1], cc)
                     pw = TK[c, COL, n - 1] & 1
-                    if pw != w:
-                        acc[A_RW if pw == 0 else A_WR] += 1.0
+                if pw >= 0 and pw != w:
+                    acc[A_RW if pw == 0 else A_WR] += 1.0
                 TL[c, COL, n] = cc
                 TK[c, COL, n] = code
                 TN[c, N_COL] = n + 1
@@ -707,8 +712,8 @@ def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, grou
                 nw = TK[c, COL, q + 1] & 1
                 if nw != w:
                     acc[A_RW if w == 0 else A_WR] += 1.0
-                if q > 0:
-                    pw = TK[c, COL, q - 1] & 1
+                pw = TK[c, COL, q - 1] & 1 if q > 0 else int(CF[c, F_DROPPED]) - 1
+                if pw >= 0:
                     if pw != w:
                         acc[A_RW if pw == 0 else A_WR] += 1.0
                     if pw != nw:
@@ -910,6 +915,26 @@ def fslots_add(FS, FI, FF, start, done, amount):
 
 
 @_inline
+def fslots_compact(FS, FI, FF):
+    """Drop the fetch slots' completions counted already (the table's rows before ``FI[0]``)."""
+    p = FI[0]
+    if p == 0:
+        return
+    n = FI[1]
+    for j in range(n - p):
+        FS[j, 0] = FS[p + j, 0]
+        FS[j, 1] = FS[p + j, 1]
+        FS[j, 2] = FS[p + j, 2]
+    q = FI[2]
+    if q < p:
+        q = p
+        FF[5] = FF[0]
+    FI[0] = 0
+    FI[1] = n - p
+    FI[2] = q - p
+
+
+@_inline
 def fslots_level_time(FS, FI, FF, now, level):
     """Earliest time from ``now`` at which the slots' completions reach ``level`` requests
     (a level beyond every completion entered is taken as reached now)."""
@@ -993,7 +1018,7 @@ def _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
         for w in range(2):
             if TN[c, w] + m > cap or TN[c, N_COL_GAPS + w] + m > cap:
                 keep = CF[c, F_TAKEN] - (P[P_COL_REACH] if w == COL else P[P_ACT_REACH])
-                if not _room(TL, TK, TG, TN, c, w, m, keep):
+                if not _room(TL, TK, TG, TN, CF, c, w, m, keep):
                     return False
         i = j
     return True
@@ -1112,6 +1137,8 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     channels served, or -1 without changing any timing state if a table is full.
     """
     n = len(ch)
+    if FI[1] + n + 1 > FS.shape[0]:
+        fslots_compact(FS, FI, FF)
     if not _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P) or FI[1] + n + 1 > FS.shape[0]:
         return -1
     # A request is in its channel's queue no longer than in a fetch slot (it leaves the
