@@ -26,12 +26,42 @@ from .model.dense import dense_macs
 from .model.energy import energy_section
 
 
+class IntervalLogs:
+    """A run's interval logs as arrays, made into the lists of :attr:`Result.intervals` only
+    when someone reads them (a long run logs millions: most callers never look)."""
+
+    def __init__(self, states: dict, pool):
+        self.units = {name: [np.array(a) if isinstance(a, np.ndarray) else a for a in st.interval_arrays()]
+                      for name, st in states.items()}
+        self.bus = [np.array(iv) for iv in pool.busy_arrays()]
+
+    def lists(self) -> dict:
+        out = {}
+        for name, (t0, t1, code, keys) in self.units.items():
+            out[name] = [[a, b, *keys[c]] for a, b, c in zip(t0.tolist(), t1.tolist(), code.tolist())]
+        out["dram"] = [iv.tolist() for iv in self.bus]
+        return out
+
+
 class Result:
     """One run's measurements. ``to_dict()`` gives the result document."""
 
-    def __init__(self, doc: dict, intervals: dict | None = None):
+    def __init__(self, doc: dict, intervals: dict | IntervalLogs | None = None):
         self._doc = doc
-        self.intervals = intervals or {}
+        self._intervals: dict | IntervalLogs = intervals or {}
+
+    @property
+    def intervals(self) -> dict:
+        """Per unit, the state intervals ``[[t0, t1, state, cause], ...]``; per DRAM channel,
+        the data bus's busy ``[[begin, end], ...]`` (empty unless a timeline was kept)."""
+        iv = self._intervals
+        if isinstance(iv, IntervalLogs):
+            iv = self._intervals = iv.lists()
+        return iv
+
+    @intervals.setter
+    def intervals(self, value: dict | None) -> None:
+        self._intervals = value or {}
 
     def to_dict(self) -> dict:
         return copy.deepcopy(self._doc)
@@ -252,10 +282,7 @@ def build_result(stats):
     doc["verdict"] = classify(doc)
     doc["energy"] = energy_section(arch, doc, trace)
     doc["area"] = area_section(arch)
-    intervals = {}
-    if stats.timeline:   # lists for the timeline export only: a long run has millions
-        intervals = {name: st.intervals for name, st in states.items()}
-        intervals["dram"] = pool.busy_intervals
+    intervals = IntervalLogs(states, pool) if stats.timeline else None
     return Result(_round(doc), intervals)
 
 
