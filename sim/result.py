@@ -208,13 +208,15 @@ def build_result(stats):
     units["dram"] = _dram_states(pool, states["fetch"], end, stats.folded)
     units = {k: units[k] for k in UNIT_ORDER if k in units}
 
-    # per step / layer / stage cycles: a step lasts from the previous step's end to its own;
-    # the last also carries the run's tail (writes still reaching memory), so they sum to it
+    # per step / layer / stage cycles: what a step added to the run, from the latest end of the
+    # steps listed before it to its own (none if it ended earlier: requests decoded together
+    # overlap); the last also carries the run's tail (writes still reaching memory), so they
+    # sum to the run's cycles
     per_step = []
     prev = 0.0
     for t in step_times:
-        per_step.append(t - prev)
-        prev = t
+        per_step.append(t - prev if t > prev else 0.0)
+        prev = max(prev, t)
     if per_step:
         per_step[-1] += end - prev
     per_layer, per_stage = {}, {}

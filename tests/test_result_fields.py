@@ -89,3 +89,14 @@ def test_build_and_engine_settings_recorded():
     assert doc["simulator"]["build"] == build_id() and doc["simulator"]["build"].startswith(sim.__version__ + "+")
     assert doc["engine"] == {"grain_rows": 256, "seed": 3}
     assert doc["trace"]["head_dims"] == [64]
+
+
+def test_step_layer_and_stage_cycles_add_up_and_are_never_negative():
+    """Steps of requests decoded together overlap, and one may end before a step listed
+    before it: each step counts what it added to the run (arithmetic: the increments of
+    the latest end so far are >= 0 and sum to the run's end; so do layers and stages)."""
+    doc = sim.simulate("arch_configs/server.yaml", "traces/demo_gqa_batch.yaml", keep_intervals=False).to_dict()
+    steps = doc["per_step_cycles"]
+    assert min(steps) >= 0.0
+    for part in (steps, list(doc["per_layer_cycles"].values()), list(doc["per_stage_cycles"].values())):
+        assert doc["cycles"] - 1 < sum(part) <= doc["cycles"] + 1e-6   # cycles: the end, rounded up
