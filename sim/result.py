@@ -279,6 +279,8 @@ def build_result(stats):
         "bounds": bounds,
     }
     # bits fetched per key element: the MSB plane always, the LSB plane where it was refetched
+    # writes still reaching memory after the last step ended: part of the run, no step's work
+    dram["write_tail_cycles"] = end - max(step_times) if step_times else 0.0
     dram["effective_key_bits"] = (p.k_msb_bits * (planes["K"] + planes.get("KL", 0)) / planes["K"]
                                   if planes.get("K") else None)
     doc["verdict"] = classify(doc)
@@ -336,6 +338,8 @@ def format_summary(result):
     lines.append(f"  memory    {show(dr['bytes'] - written, 'bytes')} fetched ({show(dr['fetched_over_compulsory'], 'speedup')} "
                  f"compulsory) in {show(d['fetch']['requests'], 'requests')}, "
                  + (f"{show(written, 'bytes')} written, " if written else "")
+                 + (f"the last {show(dr['write_tail_cycles'], 'cycles')} only writes, "
+                    if dr.get("write_tail_cycles") else "")
                  + f"{fm.value(dr['achieved_gbps'], 'bandwidth')} of {show(dr['peak_gbps'], 'bandwidth')}"
                  + (f"; {show(dr['effective_key_bits'], 'bits')} per key element"
                     if dr.get("effective_key_bits") else ""))

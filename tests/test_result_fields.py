@@ -100,3 +100,14 @@ def test_step_layer_and_stage_cycles_add_up_and_are_never_negative():
     assert min(steps) >= 0.0
     for part in (steps, list(doc["per_layer_cycles"].values()), list(doc["per_stage_cycles"].values())):
         assert doc["cycles"] - 1 < sum(part) <= doc["cycles"] + 1e-6   # cycles: the end, rounded up
+
+
+def test_write_tail_is_the_run_after_the_last_step():
+    """A run ends when its last write is in memory: the write tail is the run's end less the
+    last step's end (arithmetic on the per-step figures: steps sum to the run, so the tail is
+    at most the last step's share), zero for a trace without writes."""
+    doc = sim.simulate("arch_configs/memory/ddr4_3200.yaml", "traces/demo_gqa_batch.yaml",
+                       keep_intervals=False).to_dict()
+    tail = doc["dram"]["write_tail_cycles"]
+    assert doc["dram"]["write_bytes"] > 0 and 0 < tail <= doc["per_step_cycles"][-1]
+    assert run("traces/demo_decode.yaml")["dram"]["write_tail_cycles"] == 0.0
