@@ -68,7 +68,7 @@ def decoder_case(family, folder, prompt=512, generate=64):
     import numpy as np
 
     from sim.trace.decoder import Decoder
-    from sim.trace.format import save_trace
+    from sim.trace.files import save_trace
     from sim.trace.generation import capture_decoder
 
     t1 = time.perf_counter()

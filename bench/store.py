@@ -291,7 +291,7 @@ def real_sweep_doc_bytes():
     import yaml
 
     from sim.sweep import run_sweep
-    from sim.trace.format import save_trace
+    from sim.trace.files import save_trace
     from sim.trace.synth import synth_trace
 
     with tempfile.TemporaryDirectory() as d:

@@ -58,7 +58,7 @@ SLOPE_CASES = {f"prompt{k}k-1L": dict(prompt_tokens=k * 1024, decode_steps=0, sh
 def run_case(name):
     """One case in this process; prints a JSON line of figures."""
     sys.path.insert(0, ROOT)
-    from sim.trace.format import load_trace, save_trace
+    from sim.trace.files import load_trace, save_trace
     from sim.trace.synth import synth_trace
 
     t0 = time.perf_counter()

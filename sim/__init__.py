@@ -19,7 +19,8 @@ from typing import TYPE_CHECKING, Any, Mapping, Union  # noqa: E402
 
 from .arch import Arch, load_arch  # noqa: E402
 from .errors import ConfigError, InputError, SimulationStalled, TraceError  # noqa: E402
-from .trace.format import Trace, load_trace  # noqa: E402
+from .trace.files import load_trace  # noqa: E402
+from .trace.format import Trace  # noqa: E402
 
 if TYPE_CHECKING:
     from .result import Result

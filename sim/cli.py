@@ -145,7 +145,7 @@ def _cmd_run(args):
     from . import simulate
     from .outputs import OutputPlan, write_atomic
     from .result import format_summary
-    from .trace.format import load_trace
+    from .trace.files import load_trace
 
     plan = OutputPlan(force=args.force)
     arch_path = _config_path(args.arch)
@@ -421,7 +421,7 @@ def _add_trace_inspect(s):
 
 
 def _cmd_trace_info(args):
-    from .trace.format import load_trace
+    from .trace.files import load_trace
 
     trace = load_trace(args.trace)
     sm = trace.summary()
@@ -463,7 +463,7 @@ def _cmd_trace_info(args):
 
 
 def _cmd_trace_check(args):
-    from .trace.format import load_trace
+    from .trace.files import load_trace
 
     trace = load_trace(args.trace)
     sm = trace.summary()
@@ -523,7 +523,7 @@ MAX_SYNTH_KEY_ROWS = 50_000_000   # kept-key positions a synthetic trace may lis
 
 def _cmd_trace_synth(args):
     from .outputs import OutputPlan
-    from .trace.format import save_trace
+    from .trace.files import save_trace
     from .trace.synth import synth_trace
 
     def numbers(option, text, kind=float):

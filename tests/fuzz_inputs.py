@@ -339,7 +339,7 @@ def case_trace_yaml(rng, folder):
 
 def _npz_members(folder):
     """The members of a small valid .npz trace, written by the package itself."""
-    from sim.trace.format import load_trace, save_trace
+    from sim.trace.files import load_trace, save_trace
 
     p = os.path.join(folder, "base.npz")
     save_trace(load_trace(repo("traces", "demo_decode.yaml")), p)

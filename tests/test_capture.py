@@ -12,7 +12,7 @@ import pytest
 from sim.cli import main
 from sim.trace.capture import capture, capture_ids, read_text
 from sim.trace.encoder import Encoder, EncoderConfig, ModelError, _expected_shapes
-from sim.trace.format import load_trace
+from sim.trace.files import load_trace
 from sim.trace.policies import load_policy
 from sim.trace.recorder import Recorder
 

@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 from helpers_decoder import make_decoder
 from sim.cli import main
 from sim.trace.decoder import Decoder
-from sim.trace.format import load_trace
+from sim.trace.files import load_trace
 from sim.trace.generation import capture_decoder, compare, run
 from sim.trace.policies import load_policy
 

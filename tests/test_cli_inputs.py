@@ -10,7 +10,8 @@ import pytest
 import yaml
 
 from sim.cli import main
-from sim.trace.format import _to_arrays, load_trace
+from sim.trace.files import load_trace
+from sim.trace.npz import to_arrays
 from sim.trace.synth import synth_trace
 
 HERE = os.path.dirname(os.path.abspath(__file__))
@@ -159,7 +160,7 @@ def test_unknown_trace_version(tmp_path, capsys):
 
 
 def test_bad_npz_trace(tmp_path, capsys):
-    arrays = _to_arrays(load_trace(repo("traces", "synth_prefill.npz")))
+    arrays = to_arrays(load_trace(repo("traces", "synth_prefill.npz")))
     arrays["heads_off"] = arrays["heads_off"][:-1]
     p = str(tmp_path / "bad.npz")
     np.savez(p, **arrays)

@@ -14,7 +14,7 @@ import pytest
 import sim
 from sim.engine.addrmap import LAYOUTS, PLANES, AddressMap
 from sim.errors import ConfigError
-from sim.trace.format import load_trace
+from sim.trace.files import load_trace
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 MID = os.path.join(ROOT, "arch_configs", "mid.yaml")

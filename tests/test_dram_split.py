@@ -122,7 +122,7 @@ def test_request_slots_free_a_place_when_any_request_completes():
 def test_row_hits_first_and_close_page_run_in_the_engine():
     """The engine drops a transaction's burst list once submitted; a share held for a later
     row-hits-first decision must still count its bytes (same bytes as first come first served)."""
-    from sim.trace.format import load_trace
+    from sim.trace.files import load_trace
 
     tr = load_trace(os.path.join(ROOT, "traces", "demo_prefill.yaml"))
     base = _arch("mid.yaml")

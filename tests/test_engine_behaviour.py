@@ -14,7 +14,8 @@ import pytest
 import sim
 from sim.engine import program, topk
 from sim.errors import ConfigError, SimulationStalled
-from sim.trace.format import Trace, load_trace, make_step, new_header, validate
+from sim.trace.format import Trace, make_step, new_header, validate
+from sim.trace.files import load_trace
 from sim.trace.synth import synth_trace
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))

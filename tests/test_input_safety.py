@@ -18,7 +18,7 @@ import pytest
 import yaml
 
 from sim.cli import main
-from sim.trace.format import load_trace, save_trace
+from sim.trace.files import load_trace, save_trace
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 MID = os.path.join(ROOT, "arch_configs", "mid.yaml")

@@ -15,7 +15,7 @@ import sim
 from sim.cli import main
 from sim.report import sensitivity as S
 from sim.report.inputs import Run, label_runs
-from sim.trace.format import save_trace
+from sim.trace.files import save_trace
 from sim.trace.synth import synth_trace
 
 

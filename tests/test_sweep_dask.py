@@ -13,7 +13,7 @@ import yaml
 
 from sim.sweep import open_store, run_sweep
 from sim.sweep.store import dumps
-from sim.trace.format import save_trace
+from sim.trace.files import save_trace
 from sim.trace.synth import synth_trace
 
 distributed = pytest.importorskip("distributed")   # the sweep extra; CI installs it

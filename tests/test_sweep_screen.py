@@ -23,7 +23,7 @@ from sim.model.bounds import closed_form
 from sim.sweep import objectives as obj
 from sim.sweep import open_store, run_sweep
 from sim.sweep.worker import build_id
-from sim.trace.format import load_trace, save_trace
+from sim.trace.files import load_trace, save_trace
 from sim.trace.synth import synth_trace
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))

@@ -15,7 +15,7 @@ import yaml
 
 from sim.cli import main
 from sim.sweep import SweepError, load_spec, make_plan, run_sweep
-from sim.trace.format import save_trace
+from sim.trace.files import save_trace
 from sim.trace.synth import synth_trace
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))

@@ -29,7 +29,7 @@ import yaml
 import sim
 import sim.sweep.worker as worker
 from sim.sweep import open_store, run_sweep
-from sim.trace.format import save_trace
+from sim.trace.files import save_trace
 from sim.trace.synth import synth_trace
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))

@@ -26,7 +26,7 @@ from sim.cli import main  # noqa: E402
 from sim.sweep import open_store, run_sweep  # noqa: E402
 from sim.sweep.backends import TLSFiles  # noqa: E402
 from sim.sweep.store import dumps  # noqa: E402
-from sim.trace.format import save_trace  # noqa: E402
+from sim.trace.files import save_trace  # noqa: E402
 from sim.trace.synth import synth_trace  # noqa: E402
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))

@@ -11,7 +11,7 @@ from hypothesis import strategies as st
 from scipy import stats
 
 from sim.errors import TraceError
-from sim.trace.format import load_trace, save_trace
+from sim.trace.files import load_trace, save_trace
 from sim.trace.synth import synth_trace
 
 HERE = os.path.dirname(os.path.abspath(__file__))

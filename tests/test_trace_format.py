@@ -10,8 +10,9 @@ import pytest
 import yaml
 
 from sim.errors import TraceError
-from sim.trace.format import (FORMAT_VERSION, Trace, _to_arrays, load_trace, make_step, new_header,
-                              save_trace)
+from sim.trace.format import FORMAT_VERSION, Trace, make_step, new_header
+from sim.trace.files import load_trace, save_trace
+from sim.trace.npz import to_arrays
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 TRACES = os.path.join(os.path.dirname(HERE), "traces")
@@ -136,7 +137,7 @@ class _Boom:
 
 
 def test_pickled_npz_is_refused_without_unpickling(tmp_path):
-    arrays = _to_arrays(load_trace(bundled("synth_prefill.npz")))
+    arrays = to_arrays(load_trace(bundled("synth_prefill.npz")))
     marker = tmp_path / "unpickled"
     _Boom.marker = str(marker)
     arrays["kept_v"] = np.array([_Boom()] * len(arrays["kept_v"]), dtype=object)
@@ -170,7 +171,7 @@ def test_unknown_version_is_refused_in_yaml(tmp_path, version):
 
 
 def test_unknown_version_is_refused_in_npz(tmp_path):
-    arrays = _to_arrays(load_trace(bundled("synth_prefill.npz")))
+    arrays = to_arrays(load_trace(bundled("synth_prefill.npz")))
     hdr = json.loads(arrays["header"].tobytes())
     hdr["version"] = 99
     arrays["header"] = np.frombuffer(json.dumps(hdr).encode(), dtype=np.uint8)
@@ -263,7 +264,7 @@ def test_per_head_lengths_must_agree(tmp_path, step, key, value, field):
 
 
 def test_npz_head_arrays_that_disagree_are_refused(tmp_path):
-    arrays = _to_arrays(load_trace(bundled("synth_prefill.npz")))
+    arrays = to_arrays(load_trace(bundled("synth_prefill.npz")))
     arrays["kept_v"] = arrays["kept_v"][:-1]
     p = tmp_path / "short.npz"
     np.savez(p, **arrays)
@@ -274,7 +275,7 @@ def test_npz_head_arrays_that_disagree_are_refused(tmp_path):
 
 
 def test_npz_offsets_that_overrun_are_refused(tmp_path):
-    arrays = _to_arrays(load_trace(bundled("synth_decode.npz")))
+    arrays = to_arrays(load_trace(bundled("synth_decode.npz")))
     arrays["kept_v_idx_off"] = arrays["kept_v_idx_off"] + 5
     p = tmp_path / "off.npz"
     np.savez(p, **arrays)
@@ -284,7 +285,7 @@ def test_npz_offsets_that_overrun_are_refused(tmp_path):
 
 
 def test_npz_float_indices_are_refused(tmp_path):
-    arrays = _to_arrays(load_trace(bundled("synth_prefill.npz")))
+    arrays = to_arrays(load_trace(bundled("synth_prefill.npz")))
     arrays["kept_k"] = arrays["kept_k"].astype(np.float64) + 0.5
     p = tmp_path / "float.npz"
     np.savez(p, **arrays)
@@ -356,7 +357,7 @@ def test_missing_steps(tmp_path):
 
 
 def test_missing_npz_array(tmp_path):
-    arrays = _to_arrays(load_trace(bundled("synth_prefill.npz")))
+    arrays = to_arrays(load_trace(bundled("synth_prefill.npz")))
     del arrays["lsb_rows"]
     p = tmp_path / "missing.npz"
     np.savez(p, **arrays)

@@ -14,8 +14,8 @@ import pytest
 import yaml
 
 from sim.errors import TraceError
-from sim.trace.format import (FORMAT_VERSION, Trace, load_trace, make_step, new_header, save_trace,
-                              validate)
+from sim.trace.format import FORMAT_VERSION, Trace, make_step, new_header, validate
+from sim.trace.files import load_trace, save_trace
 from sim.trace.npz import to_arrays
 from sim.trace.synth import synth_trace
 

@@ -45,7 +45,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import sim
-from sim.trace.format import Trace, load_trace, make_step, new_header, validate
+from sim.trace.format import Trace, make_step, new_header, validate
+from sim.trace.files import load_trace
 from sim.trace.synth import synth_trace
 
 HERE = os.path.dirname(os.path.abspath(__file__))

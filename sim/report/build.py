@@ -391,7 +391,7 @@ def replay_intervals(run):
     """
     from ..arch import load_arch
     from .. import simulate
-    from ..trace.format import load_trace
+    from ..trace.files import load_trace
 
     path = run.trace_path
     if not path or not os.path.exists(path):

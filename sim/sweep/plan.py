@@ -15,7 +15,7 @@ import json
 
 from ..arch import _set_path, load_arch
 from ..errors import ConfigError
-from ..trace.format import load_trace
+from ..trace.files import load_trace
 from . import constraints as cons
 from .spec import MAX_POINTS, SweepError
 from .worker import build_id

@@ -26,7 +26,7 @@ _traces = OrderedDict()
 
 
 def _trace(path, digest):
-    from ..trace.format import load_trace
+    from ..trace.files import load_trace
 
     tr = _traces.get(digest)
     if tr is None:

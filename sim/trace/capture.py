@@ -96,7 +96,7 @@ def _run(encoder, ids, special, policy, strength):
 def capture(encoder, text, policy, name=None, text_source="<text>", policy_source=None):
     """Capture ``text`` through ``encoder`` under ``policy``; returns a :class:`Capture`.
 
-    Nothing is written; call :func:`sim.trace.format.save_trace` on
+    Nothing is written; call :func:`sim.trace.files.save_trace` on
     ``result.trace`` (atomic) or use :func:`capture_to_file`.
     """
     policy = load_policy(policy).check_layers(encoder.config.layers, encoder.config.heads).check_encoder()
@@ -194,7 +194,7 @@ def capture_to_file(text_path, policy_path, out_path, encoder=None, name=None):
         name = os.path.splitext(os.path.basename(os.fspath(out_path)))[0]
     result = capture(encoder, text, policy, name=name, text_source=os.fspath(text_path),
                      policy_source=os.fspath(policy_path))
-    from .format import save_trace
+    from .files import save_trace
     save_trace(result.trace, out_path)
     return result
 

@@ -321,7 +321,7 @@ def _decode_summary(r, policy, strength, context):
 def capture_decoder_to_file(model, text_path, policy_path, generate, out_path, name=None):
     """Read the text and the policy, capture, and write the trace atomically;
     every input is checked before anything is written."""
-    from .format import save_trace
+    from .files import save_trace
 
     policy = load_policy(policy_path)
     text = read_text(text_path)

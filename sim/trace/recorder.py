@@ -36,7 +36,8 @@ import math
 
 import numpy as np
 
-from .format import Trace, make_step, new_header, save_trace
+from .format import Trace, make_step, new_header
+from .files import save_trace
 from .policies import (DENSE, effective_key_bits, head_importance, keep_count, load_policy,
                        quant_step, quantize_uniform, softmax, split_planes, msb_reconstruct,
                        token_importance, topk_sorted)
