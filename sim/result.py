@@ -27,8 +27,9 @@ from .model.energy import energy_section
 
 
 class IntervalLogs:
-    """A run's interval logs as arrays, made into the lists of :attr:`Result.intervals` only
-    when someone reads them (a long run logs millions: most callers never look)."""
+    """A run's interval logs as arrays (each unit's :meth:`~sim.engine.stats.UnitState.interval_arrays`,
+    the pool's :meth:`~sim.engine.dram.ChannelPool.busy_arrays`), made into the lists of
+    :attr:`Result.intervals` only when someone reads them (a long run logs millions)."""
 
     def __init__(self, states: dict, pool):
         self.units = {name: [np.array(a) if isinstance(a, np.ndarray) else a for a in st.interval_arrays()]
@@ -217,8 +218,9 @@ def build_result(stats):
     for t in step_times:
         per_step.append(t - prev if t > prev else 0.0)
         prev = max(prev, t)
+    last_step_end = prev
     if per_step:
-        per_step[-1] += end - prev
+        per_step[-1] += end - last_step_end
     per_layer, per_stage = {}, {}
     for s, dur in zip(trace.steps, per_step):
         per_layer[str(s.layer)] = per_layer.get(str(s.layer), 0.0) + dur
@@ -278,9 +280,9 @@ def build_result(stats):
         },
         "bounds": bounds,
     }
-    # bits fetched per key element: the MSB plane always, the LSB plane where it was refetched
     # writes still reaching memory after the last step ended: part of the run, no step's work
-    dram["write_tail_cycles"] = end - max(step_times) if step_times else 0.0
+    dram["write_tail_cycles"] = end - last_step_end if step_times else 0.0
+    # bits fetched per key element: the MSB plane always, the LSB plane where it was refetched
     dram["effective_key_bits"] = (p.k_msb_bits * (planes["K"] + planes.get("KL", 0)) / planes["K"]
                                   if planes.get("K") else None)
     doc["verdict"] = classify(doc)

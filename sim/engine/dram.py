@@ -80,7 +80,7 @@ in), with the transaction's log marked ``memory_queue``, ``memory_latency``,
 ``memory_transfer`` (non-decreasing) and ``txn.mem_times`` set to the same
 three times before the event fires, at which moment ``txn.on_timed(txn)`` is
 called when set (the fetch unit streams the data to its consumer from there);
-``report(total_cycles)`` for the result's ``dram`` section; ``busy_intervals``
+``report(total_cycles)`` for the result's ``dram`` section; ``busy_arrays()``
 per channel (merged data-bus busy intervals); ``share_records()``.
 
 Simplifications, on purpose: no command-bus contention (commands of different
@@ -484,12 +484,6 @@ class ChannelPool:
                 iv = _merged(iv)
             out.append(iv)
         return out
-
-    @property
-    def busy_intervals(self):
-        """Per channel, the merged data-bus busy intervals ``[[begin, end], ...]``, in time order
-        (for a timeline: lists, about ten times the memory of :meth:`busy_arrays`)."""
-        return [iv.tolist() for iv in self.busy_arrays()]
 
     @property
     def requests(self):

@@ -56,12 +56,6 @@ class UnitState:
         ends.append(t1)
         self._code.append(code)
 
-    @property
-    def intervals(self):
-        """The log as ``[[t0, t1, state, cause], ...]`` (made on each call: for export)."""
-        keys = self._keys
-        return [[a, b, *keys[c]] for a, b, c in zip(self._t0, self._t1, self._code)]
-
     def interval_arrays(self):
         """The log as numpy arrays ``(t0, t1, code)`` and the ``(state, cause)`` of each code."""
         return (np.frombuffer(self._t0, dtype=float) if self._t0 else np.zeros(0),
