@@ -1,15 +1,16 @@
-"""What a run will cost before it starts: address space, transactions, memory.
+"""What a run will cost before it starts: address space and memory.
 
 :func:`check_run` is called by :func:`sim.simulate` after the config and the
 trace are loaded and before the engine builds anything. It refuses, with the
 estimate, a pair whose DRAM address map would not fit 62 bits or whose run
-would log more than the machine has memory for. The program is made step by
-step (a long step a few query blocks at a time), so what grows with the run is
-its logs: per transaction, the channel pool's share records and bus intervals,
-the fetch unit's state log and the occupancy log (``BYTES_PER_TXN``, measured).
-The transaction count is an upper estimate from the tiling rule's own formulas
-(query blocks x chunks per K/V group, K, V and LSB planes; the causal triangle,
-the window), not a run.
+would need more memory than the machine has. A run's logs do not grow with its
+transactions (the per-transaction logs are summed or written out as the run
+goes, see :mod:`sim.engine.spill`); what grows is the plan of a step, made
+whole before the step's first transaction (about ``PLAN_BYTES_PER_TXN`` per
+transaction of that step, measured), and the plans kept for reuse (at most
+``SHAPE_CACHE_CHUNKS`` chunks). The transaction count is an upper estimate
+from the tiling rule's own formulas (query blocks x chunks per K/V group, K, V
+and LSB planes; the causal triangle, the window), not a run.
 """
 
 from __future__ import annotations
@@ -22,13 +23,12 @@ import numpy as np
 from .errors import InputError
 
 ADDRESS_BITS = 62
-# peak RSS above the loaded baseline and the trace per transaction: about 0.25 KB on the
-# 131072-token decode of bench/trace_long.py (914 MiB peak, trace 176 MiB, 3.17 million
-# transactions: the pool's growing tables and the run's logs, the program being made step by
-# step); about 0.37 KB on one layer of a causal 32k prefill on mid (778 MiB, 1.61 million);
-# counted at 1 KB, as the tables grow by doubling and shorter runs carry more per transaction
-BYTES_PER_TXN = 1024
-MAX_TXNS = 50_000_000
+# a step's plan in memory per transaction it will issue: 115-182 bytes measured (tracemalloc)
+# on causal prefill steps of 2k-16k tokens on edge, mid and server; counted high
+PLAN_BYTES_PER_TXN = 256
+# what does not grow with the run: the logs' in-memory parts, the pool's tables, the result's
+# temporaries (a 16k-token causal prefill on mid: about 60 MiB above the loaded baseline)
+FIXED_BYTES = 256 * 2**20
 
 
 class RunTooLarge(InputError):
@@ -59,10 +59,15 @@ def address_span(arch, trace) -> int:
 
 def transactions(arch, trace, grain_rows=None) -> int:
     """Upper estimate of the transactions the engine issues for the trace."""
+    return sum(step_transactions(arch, trace, grain_rows))
+
+
+def step_transactions(arch, trace, grain_rows=None) -> list[int]:
+    """Upper estimate of the transactions the engine issues for each step of the trace."""
     from .engine.tiling import chunk_rows, query_block_rows
 
     grain = grain_rows or arch.engine.grain_rows
-    total = 0
+    out = []
     lsb = arch.precision.k_lsb_bits > 0
     for s in trace.steps:
         d = s.head_dim
@@ -79,8 +84,8 @@ def transactions(arch, trace, grain_rows=None) -> int:
         rounding = 2 * nqb if s.causal else 0      # a partly seen chunk per plane and block
         # the LSB recompute: a KL chunk and its MSB chunk again, per block
         per_group = math.ceil(blocks * (k + v)) + rounding + nqb + (2 * k * nqb if lsb and int(s.lsb_rows.max()) else 0)
-        total += groups * per_group
-    return total
+        out.append(groups * per_group)
+    return out
 
 
 def check_run(arch, trace, grain_rows=None) -> None:
@@ -91,12 +96,15 @@ def check_run(arch, trace, grain_rows=None) -> None:
                           f"the trace's K/V regions at head_dim {max(s.head_dim for s in trace.steps)} would span "
                           f"about 2**{span.bit_length() - 1} bytes of DRAM addresses; the address map holds "
                           f"2**{ADDRESS_BITS}")
-    n = transactions(arch, trace, grain_rows)
-    need = n * BYTES_PER_TXN
+    from .engine.program import SHAPE_CACHE_CHUNKS
+
+    per_step = step_transactions(arch, trace, grain_rows)
+    largest = max(per_step)
+    need = FIXED_BYTES + PLAN_BYTES_PER_TXN * (largest + min(sum(per_step), SHAPE_CACHE_CHUNKS))
     mem = physical_memory()
-    limit = min(MAX_TXNS, mem // BYTES_PER_TXN // 2) if mem else MAX_TXNS
-    if n > limit:
+    if mem and need > mem // 2:
         raise RunTooLarge(trace.source, "steps", len(trace.steps),
-                          f"this run would hold about {n:,} transactions (~{need / 2**30:,.1f} GiB of memory"
-                          + (f" of this machine's {mem / 2**30:,.0f} GiB" if mem else "")
-                          + f"); expected at most {limit:,}: raise engine.grain_rows or the buffers, or cut the trace")
+                          f"its largest step would issue about {largest:,} transactions, and its plan "
+                          f"with the plans kept for reuse would take about {need / 2**30:,.1f} GiB of memory, "
+                          f"more than half of this machine's {mem / 2**30:,.0f} GiB: raise engine.grain_rows "
+                          f"or buffers.query_kib, or cut the trace")

@@ -18,7 +18,7 @@ from . import __version__
 from . import formats as fm
 from .build import build_id
 from .columns import UNIT_ORDER, result_frame, unit_frame
-from .engine.stats import busy_curve
+from .engine.stats import StallSplit, busy_curve
 from .limits import classify, cause_text, verdict_of
 from .model.area import area_section
 from .model.bounds import bounds_from_counts
@@ -122,27 +122,18 @@ def _round(x, nd=12):
     return x
 
 
-_BLOCK = 1 << 16       # fetch intervals classified at a time
-
-
 def _dram_states(pool, fetch_state, end, folded=None):
     """Classify the pool's non-busy channel time by what the fetch unit was doing.
 
     A channel with nothing to move is starved for the same reason the fetch
     unit was not issuing (a full buffer, a dependency...). Averaged over
-    channels, so fractions stay per unit and sum to 1. ``folded``: the bus time
-    the pool handed over during the run (:class:`~sim.engine.stats.BusyFold`).
+    channels, so fractions stay per unit and sum to 1. ``folded``: the part
+    summed during the run (:class:`~sim.engine.stats.BusyFold`); the fetch
+    intervals still logged are summed here, in the same blocks.
     """
     n = pool.n
     a, b, raw_all, fetch_keys = fetch_state.interval_arrays()
-    # one code per distinct (state, cause) of the fetch unit, then its class here
-    classes = {}
-    class_of = np.empty(len(fetch_keys), dtype=np.intp)
-    for code, (state, cause) in enumerate(fetch_keys):
-        key = (("idle", None) if state == "idle" else
-               ("starved", "fetch_issue") if state == "busy" else ("starved", cause or "fetch"))
-        class_of[code] = classes.setdefault(key, len(classes))
-    keys = list(classes)
+    split = folded.split if folded is not None else StallSplit(n)
     # each channel's busy time as a cumulative curve: busy cycles before any instant
     busy_total = folded.total if folded is not None else 0.0
     curves = []
@@ -152,36 +143,11 @@ def _dram_states(pool, fetch_state, end, folded=None):
         xs, ys = busy_curve(np.clip(busy, 0, end))
         curves.append((xs, ys))
         busy_total += float(ys[-1])
-
-    def free_in(u0, u1, taken=None):
-        """Channel cycles not busy within each ``[u0, u1)`` (``taken``: busy time handed over)."""
-        busy_in = np.zeros(len(u0)) if taken is None else taken
-        for xs, ys in curves:
-            busy_in += np.interp(u1, xs, ys) - np.interp(u0, xs, ys)
-        return np.maximum((u1 - u0) * n - busy_in, 0.0)
-
-    # the fetch unit's intervals (those before the end) a block at a time, so a long run's
-    # temporaries stay small; sums per class in time order (bincount adds in input order)
-    sums = np.zeros(len(keys))
-    first = np.full(len(keys), len(a), dtype=np.int64)
-    last_end = 0.0
-    for lo in range(0, len(a), _BLOCK):
-        u0 = a[lo:lo + _BLOCK]
-        u1 = np.minimum(b[lo:lo + _BLOCK], end)
-        kept = np.flatnonzero(u1 > u0)
-        if not len(kept):
-            continue
-        last_end = float(b[lo + kept[-1]])
-        cls = class_of[raw_all[lo:lo + _BLOCK][kept]]
-        taken = folded.busy_within(lo, lo + len(u0))[kept] if folded is not None else None
-        sums += np.bincount(cls, weights=free_in(u0[kept], u1[kept], taken), minlength=len(keys))
-        labels, at = np.unique(cls, return_index=True)
-        first[labels] = np.minimum(first[labels], kept[at] + lo)
-    # classes in order of first use; after the fetch unit's last interval: nothing left to fetch
-    used = np.flatnonzero(first < len(a))
-    sums = sums.tolist()
-    totals = {keys[k]: sums[k] for k in used[np.argsort(first[used])].tolist()}
-    tail = free_in(np.array([last_end]), np.array([max(end, last_end)]))
+    split.add_log(a, b, raw_all, fetch_keys, end, folded.busy_within if folded is not None else None, curves)
+    # after the fetch unit's last interval: nothing left to fetch
+    totals = split.totals()
+    last_end = split.last_end
+    tail = split.free_in(np.array([last_end]), np.array([max(end, last_end)]), None, curves)
     totals[("idle", None)] = totals.get(("idle", None), 0.0) + float(tail[0])
     scale = n * end if end else 1.0
     frac = {"busy": busy_total / scale if end else 0.0, "starved": 0.0, "blocked": 0.0, "idle": 0.0}

@@ -58,11 +58,11 @@ def test_dram_stall_classification_does_not_depend_on_its_block_size(monkeypatch
     """The pool's non-busy time is classified a block of fetch intervals at a time (so a
     long run's temporaries stay small); blocks of 3 give the fractions of one block, to
     the rounding of a sum taken in pieces (arithmetic: a sum does not depend on grouping)."""
-    import sim.result as result_mod
+    import sim.engine.stats as stats_mod
 
     arch, trace = sim.load_arch("arch_configs/mid.yaml"), sim.load_trace("traces/synth_decode.npz")
     whole = sim.simulate(arch, trace).to_dict()["units"]["dram"]
-    monkeypatch.setattr(result_mod, "_BLOCK", 3)
+    monkeypatch.setattr(stats_mod, "STALL_BLOCK", 3)
     blocks = sim.simulate(arch, trace).to_dict()["units"]["dram"]
     assert set(blocks["stalls"]) == set(whole["stalls"]) and list(blocks["stalls"])[:1] == list(whole["stalls"])[:1]
     for state in ("busy", "starved", "blocked", "idle"):

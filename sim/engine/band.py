@@ -165,8 +165,14 @@ class _ValuePlan:
         self.cap = chunk_cap(arch, "V")
         self.sets = [self._positions(span) for _r0, _lo, _hi, span in ranges]
         self.memo = {}          # first key -> V chunks of streams from it (see plan_block)
-        union = [s for s in self.sets if len(s)]
-        gp.v_positions = np.unique(np.concatenate(union)) if union else keys[:0]
+        if gp.select:
+            union = [s for s in self.sets if len(s)]
+            gp.v_positions = np.unique(np.concatenate(union)) if union else keys[:0]
+        else:   # each block's values are a slice of the (sorted) keys: mark the slices, copy none
+            seen = np.zeros(len(keys), dtype=bool)
+            for _r0, _lo, _hi, (a, b) in ranges:
+                seen[a:b] = True
+            gp.v_positions = keys[seen]
         gp.v_bytes = _bytes(amap, layer, "V", gp.kv, gp.v_positions)
         gp.v_resident = len(ranges) > 1 and gp.v_bytes <= self.half
         if gp.v_resident:

@@ -82,7 +82,8 @@ def _run(arch, trace, grain_rows, seed, keep_intervals):
     states = {n: UnitState(env, n, keep_intervals or n == "fetch") for n in names}
     fetch_stats = dict.fromkeys(("bytes", "transactions", "requests") + PLANE_KEYS, 0)
     # without a timeline the pool hands over its final bus intervals instead of keeping them all
-    folded = None if keep_intervals else BusyFold(pool, states["fetch"])
+    readers = [states[n] for n in names if n.startswith("dot")]   # see through the fetch unit
+    folded = None if keep_intervals else BusyFold(pool, states["fetch"], readers)
     pool.on_full = folded
     router = _amap_router(amaps, trace)
     fetch = FetchUnit(env, prog.fetch, pool, router, arch, states["fetch"], fetch_stats)

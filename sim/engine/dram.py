@@ -93,7 +93,6 @@ the fixed-latency model moves writes on its bus like reads and takes them in
 when their bus slot starts.
 """
 
-from array import array
 from collections import deque
 
 import numpy as np
@@ -103,6 +102,7 @@ from . import dram_timing as T
 from .addrmap import BurstDecoder
 from .dram_timing import (B_ACT, B_CLOSE, B_COL, B_PRE_MIN, B_PRE_READY, B_REF_OFF, decode_sorted,
                           serve_addresses, serve_and_book, serve_fixed)
+from .spill import LatencyLog, OccupancyLog
 
 OCCUPANCY_BINS = 32
 # the fetch unit's streams, one per buffer: data is handed over in order within each
@@ -328,10 +328,9 @@ class ChannelPool:
         self.write_end = 0.0                             # when the last write data fixed so far leaves the bus
         self.wait_total = 0.0
         self.latency_total = 0.0
-        self.latencies = array("d")                  # per read: submit to last data (8 bytes each)
-        # live occupancy: transactions submitted and not yet complete
-        self._occ_t = array("d")                    # when a transaction arrived or left, and
-        self._occ_d = array("b")                    # +1 / -1: compact, a long run logs millions
+        self.latencies = LatencyLog()                # per read: submit to last data
+        self._occ = OccupancyLog()                   # live occupancy: arrivals and departures
+        self._occ_limit = self._occ.keep             # entries at which it writes out the past
         self.interleave = d.interleave_bytes
         if self.model == "fixed-latency":
             self.submit = self._submit_fixed
@@ -849,8 +848,9 @@ class ChannelPool:
         if txn.on_timed is not None:   # the fetch unit streams data from here
             txn.on_timed(txn)
             if ev is None:             # and waits on no event of ours: leave at t_done, no timer
-                self._occ_t.append(t_done)
-                self._occ_d.append(-1)
+                occ = self._occ
+                occ.t.append(t_done)
+                occ.d.append(-1)
                 return None
         if ev is None:
             out = env.timeout(t_done - now)
@@ -863,37 +863,32 @@ class ChannelPool:
     @property
     def in_flight(self):
         """Transactions in the pool now: submitted, and their data not all back."""
-        t = np.frombuffer(self._occ_t, dtype=float)
-        d = np.frombuffer(self._occ_d, dtype=np.int8)
-        return int(d[t <= self.env.now].sum())
+        return self._occ.in_flight(self.env.now)
 
     def _arrive(self, now):
-        self._occ_t.append(now)
-        self._occ_d.append(1)
+        occ = self._occ
+        occ.t.append(now)
+        occ.d.append(1)
+        if len(occ.t) >= self._occ_limit:
+            occ.spill(now)
+            # what is still in flight stays; do not spill again before the log has grown
+            self._occ_limit = max(occ.keep, 2 * len(occ.t))
 
     def _left(self, _ev):
-        self._occ_t.append(self.env.now)
-        self._occ_d.append(-1)
+        occ = self._occ
+        occ.t.append(self.env.now)
+        occ.d.append(-1)
 
     def occupancy(self, total_cycles, bins=OCCUPANCY_BINS):
         """Time-average transactions in the pool: overall, per time bin, and the peak."""
-        if not self._occ_t or total_cycles <= 0:
+        got = self._occ.curve(total_cycles, bins) if total_cycles > 0 else None
+        if got is None:
             return {"bins": [0.0] * bins, "bin_cycles": total_cycles / bins if bins else 0.0,
                     "mean": 0.0, "max": 0}
-        times = np.frombuffer(self._occ_t, dtype=float)
-        steps = np.frombuffer(self._occ_d, dtype=np.int8)
-        order = np.lexsort((steps, times))   # in time order, a departure before an arrival at one instant
-        t = times[order]
-        level = np.cumsum(steps[order].astype(float))
-        edges = np.linspace(0.0, total_cycles, bins + 1)
-        # integral of the step function up to each edge
-        seg_t = np.append(t, max(total_cycles, t[-1]))
-        area = np.concatenate(([0.0], np.cumsum(level * np.diff(seg_t))))
-        knots = np.concatenate((t, [seg_t[-1]]))
-        at = np.interp(edges, knots, area, left=0.0)
+        at, edges, peak = got
         per_bin = np.diff(at) / np.diff(edges)
         return {"bins": per_bin.tolist(), "bin_cycles": float(edges[1] - edges[0]),
-                "mean": float(at[-1] / total_cycles), "max": int(level.max())}
+                "mean": float(at[-1] / total_cycles), "max": int(peak)}
 
     def share_records(self):
         """Per channel share: channel, arrival, start, first data, done, bursts (numpy)."""
@@ -911,7 +906,6 @@ class ChannelPool:
         """The result document's ``dram`` section (before the engine adds peaks)."""
         seconds = total_cycles / (self.arch.clock_ghz * 1e9) if total_cycles else 0.0
         util = (self.busy_cycles / total_cycles).tolist() if total_cycles else [0.0] * self.n
-        lat = np.frombuffer(self.latencies, dtype=float) if self.latencies else np.zeros(1)
         reads = self.txns - self.write_txns
         achieved = (self.bytes / seconds / 1e9) if seconds else 0.0
         out = {
@@ -926,7 +920,7 @@ class ChannelPool:
             "channel_utilization": util,
             "mean_queue_cycles": self.wait_total / reads if reads else 0.0,
             "mean_access_cycles": self.latency_total / reads if reads else 0.0,
-            "p95_access_cycles": float(np.percentile(lat, 95)),
+            "p95_access_cycles": self.latencies.percentile(95),
             "queue_occupancy": self.occupancy(total_cycles),
             "read_bytes": int(self.bytes - self.write_bytes),
             "write_bytes": int(self.write_bytes),

@@ -105,7 +105,7 @@ def probe_point(arch, pattern, load, requests=2000, seed=0, stride=None, write_s
     env.run()
     span = env.now - t_first
     rep = pool.report(env.now)
-    lat = np.asarray(pool.latencies) / arch.clock_ghz
+    lat = pool.latencies.all() / arch.clock_ghz
     delivered = pool.bytes / span * arch.clock_ghz if span > 0 else 0.0
     offered = load * arch.peak_gbps
     arrival_span = float(gaps[1:].sum())

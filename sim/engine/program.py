@@ -64,6 +64,8 @@ class Program:
 
 
 SHAPE_CACHE = 64   # step plans kept for reuse (the layers of a decode token share one)
+# and at most this many chunks planned in them: a long prefill's plan holds millions
+SHAPE_CACHE_CHUNKS = 1 << 21
 # query blocks made at a time: a long prefill step (thousands of blocks) is made as the
 # units reach it, not all at once, so memory follows the blocks in flight
 BLOCKS_PER_MAKE = 64
@@ -142,6 +144,8 @@ class _StepShape:
         self.softmax_elements = sum(b.bp.elements + b.bp.lsb_elements for b in self.blocks)
         self.value_selections = sum(b.bp.rows * len(b.pruned) for b in self.blocks)
         self.last_read = self._last_reads() if len(self.blocks) > BLOCKS_PER_MAKE else None
+        self.chunks = sum(len(b.bp.k_chunks) + len(b.bp.v_chunks) + len(b.bp.lsb_chunks)
+                          + len(b.bp.lsb_msb_chunks) for b in self.blocks)
 
     def _last_reads(self):
         """(plane, group, chunk) -> the last block (index in ``blocks``) that reads that
@@ -208,6 +212,7 @@ class ProgramBuilder:
         self.grain_rows, self.rng = grain_rows, rng
         self.prog = Program(arch.dot.arrays == "shared", len(trace.steps), self._more, env)
         self.shapes = {}
+        self.cached_chunks = 0    # chunks planned in the cached shapes
         self.desc = 0   # fetch descriptor: one plane of one head group for one query block
         self.layers = max(s.layer for s in trace.steps) + 1
         self.next_of = _next_of_request(trace.steps)
@@ -264,10 +269,15 @@ class ProgramBuilder:
         key = _shape_key(step, amap, layer)
         shape = self.shapes.get(key)
         if shape is None:
-            if len(self.shapes) >= SHAPE_CACHE:   # a long decode plans a new shape per token
-                self.shapes.pop(next(iter(self.shapes)))
             q_room = self.buffers["query"].capacity / 2
-            shape = self.shapes[key] = _StepShape(self.arch, amap, step, layer, self.grain_rows, q_room)
+            shape = _StepShape(self.arch, amap, step, layer, self.grain_rows, q_room)
+            # a long decode plans a new shape per token; oldest out first
+            while self.shapes and (len(self.shapes) >= SHAPE_CACHE
+                                   or self.cached_chunks + shape.chunks > SHAPE_CACHE_CHUNKS):
+                self.cached_chunks -= self.shapes.pop(next(iter(self.shapes))).chunks
+            if shape.chunks <= SHAPE_CACHE_CHUNKS:
+                self.shapes[key] = shape
+                self.cached_chunks += shape.chunks
         return shape
 
     # ------------------------------------------------------------------ a step

@@ -63,6 +63,12 @@ class UnitState:
                 np.frombuffer(self._code, dtype=np.int32) if self._code else np.zeros(0, dtype=np.int32),
                 list(self._keys))
 
+    def drop_first(self, n):
+        """Forget the first ``n`` logged intervals (summed elsewhere; nothing asks for them)."""
+        del self._t0[:n]
+        del self._t1[:n]
+        del self._code[:n]
+
     def _close(self, t):
         since = self.since
         if t <= since:
@@ -207,23 +213,27 @@ class UnitState:
 
 
 class BusyFold:
-    """The channel pool's data-bus busy time inside each of the fetch unit's logged intervals,
-    taken from the pool as it becomes final, so that a long run need not keep every bus
-    interval (the memory's stall split, :func:`sim.result._dram_states`, adds what the pool
-    still holds at the end).
+    """The memory's stall split, kept up to date during a run without a timeline, so that a
+    long run holds neither every data-bus interval nor every fetch interval.
 
     Called by the pool when its interval table is full: everything before the earlier of the
     pool's :meth:`~sim.engine.dram.ChannelPool.final_time` and the end of the fetch unit's
     last logged interval is taken (:meth:`~sim.engine.dram.ChannelPool.take_busy`) and added,
-    per fetch interval, to :attr:`busy_in`; :attr:`total` counts it all.
+    per fetch interval, to :attr:`busy_in`; :attr:`total` counts it all. Then whole blocks of
+    fetch intervals whose bus time is final, and that end before any array began its current
+    wait (so :meth:`UnitState.explain` will not be asked about them), are summed into
+    :attr:`split` and dropped from the fetch unit's log. :func:`sim.result._dram_states`
+    sums the rest at the end, in the same blocks, so the sums are those of one pass.
     """
 
-    def __init__(self, pool, fetch_state):
+    def __init__(self, pool, fetch_state, readers=()):
         self.pool = pool
         self.fetch = fetch_state
-        self.busy_in = np.zeros(1024)    # per logged fetch interval, in log order
+        self.readers = list(readers)     # units that read the fetch log through explain()
+        self.busy_in = np.zeros(1024)    # per fetch interval still logged, in log order
         self.total = 0.0                 # busy channel cycles taken, over all channels
         self.upto = -np.inf              # taken up to here
+        self.split = StallSplit(pool.n)
 
     def __call__(self):
         a, b, _codes, _keys = self.fetch.interval_arrays()
@@ -245,14 +255,102 @@ class BusyFold:
             if hi > lo:
                 self.busy_in[lo:hi] += np.interp(b[lo:hi], xs, ys) - np.interp(a[lo:hi], xs, ys)
         self.upto = h
+        del a, b, _codes    # views of the log, which _fold may shorten
+        self._fold()
+
+    def _fold(self):
+        horizon = min([self.upto] + [s.since for s in self.readers])
+        a, b, codes, keys = self.fetch.interval_arrays()
+        n = 0
+        # a block's last interval must not be the log's last, which may still grow
+        while len(b) - n > STALL_BLOCK and b[n + STALL_BLOCK - 1] <= horizon:
+            self.split.add_block(a[n:n + STALL_BLOCK], b[n:n + STALL_BLOCK], codes[n:n + STALL_BLOCK], keys,
+                                 np.inf, self.busy_in[n:n + STALL_BLOCK].copy())
+            n += STALL_BLOCK
+        if n:
+            del a, b, codes
+            self.fetch.drop_first(n)
+            self.busy_in[:-n] = self.busy_in[n:]
+            self.busy_in[-n:] = 0.0
 
     def busy_within(self, lo, hi):
-        """Busy time taken within fetch intervals ``lo .. hi-1`` (a new array; zero for those
-        logged after the last hand-over)."""
+        """Busy time taken within the logged fetch intervals ``lo .. hi-1`` (a new array; zero
+        for those logged after the last hand-over)."""
         out = np.zeros(hi - lo)
         got = self.busy_in[lo:hi]
         out[:len(got)] = got
         return out
+
+
+STALL_BLOCK = 1 << 16       # fetch intervals summed at a time (during the run and at its end)
+
+
+class StallSplit:
+    """The channel pool's time not moving data, summed by what the fetch unit was doing.
+
+    A channel with nothing to move is starved for the same reason the fetch unit was not
+    issuing (a full buffer, a dependency...): each fetch interval ``[a, b)`` contributes the
+    channel cycles in it that no data bus was busy, to the class of its state and cause.
+    Intervals are added a block at a time, in log order; :attr:`first` keeps the index of
+    each class's first interval, so classes can be listed in order of first use.
+    """
+
+    def __init__(self, channels):
+        self.n = channels
+        self.sums = {}         # (state, cause) -> channel cycles not busy
+        self.first = {}        # (state, cause) -> index of its first interval
+        self.count = 0         # intervals added so far
+        self.last_end = 0.0    # end of the last interval added that lay before the run's end
+
+    @staticmethod
+    def classify(state, cause):
+        return (("idle", None) if state == "idle" else
+                ("starved", "fetch_issue") if state == "busy" else ("starved", cause or "fetch"))
+
+    def free_in(self, u0, u1, taken=None, curves=()):
+        """Channel cycles not busy within each ``[u0, u1)``: ``taken`` is the busy time already
+        known per interval, ``curves`` the channels' busy curves (:func:`busy_curve`) for the rest."""
+        busy_in = np.zeros(len(u0)) if taken is None else taken
+        for xs, ys in curves:
+            busy_in += np.interp(u1, xs, ys) - np.interp(u0, xs, ys)
+        return np.maximum((u1 - u0) * self.n - busy_in, 0.0)
+
+    def add_block(self, a, b, codes, keys, end, taken=None, curves=()):
+        """Add the next intervals ``[a, b)`` (codes into ``keys``, the ``(state, cause)`` of each
+        code), clipped to the run's ``end``."""
+        lo = self.count
+        self.count += len(a)
+        u1 = np.minimum(b, end)
+        kept = np.flatnonzero(u1 > a)
+        if not len(kept):
+            return
+        self.last_end = float(b[kept[-1]])
+        classes = {}
+        class_of = np.empty(len(keys), dtype=np.intp)
+        for code, key in enumerate(keys):
+            class_of[code] = classes.setdefault(self.classify(*key), len(classes))
+        cls = class_of[codes[kept]]
+        sums = np.bincount(cls, weights=self.free_in(a[kept], u1[kept], None if taken is None else taken[kept],
+                                                    curves), minlength=len(classes))
+        labels, at = np.unique(cls, return_index=True)
+        where = dict(zip(labels.tolist(), (kept[at] + lo).tolist()))
+        for key, k in classes.items():
+            self.sums[key] = self.sums.get(key, 0.0) + float(sums[k])
+            if k in where and key not in self.first:
+                self.first[key] = where[k]
+
+    def add_log(self, a, b, codes, keys, end, taken_of=None, curves=()):
+        """Add intervals a block at a time (a long run's temporaries stay small; the blocks
+        are those a fold during the run takes). ``taken_of(lo, hi)``: busy time already known
+        in intervals ``lo .. hi-1`` of these."""
+        for lo in range(0, len(a), STALL_BLOCK):
+            hi = min(lo + STALL_BLOCK, len(a))
+            self.add_block(a[lo:hi], b[lo:hi], codes[lo:hi], keys, end,
+                           None if taken_of is None else taken_of(lo, hi), curves)
+
+    def totals(self):
+        """Channel cycles per class, in order of first use (classes never used left out)."""
+        return {key: self.sums[key] for key in sorted(self.first, key=self.first.get)}
 
 
 def busy_curve(busy):

@@ -1,0 +1,129 @@
+"""A run's memory does not grow with its transactions: the logs that did are written out
+or summed as the run goes, and the figures read from them do not change.
+
+References: NumPy's ``percentile`` (linear method) for the latency percentile; the
+integral of a step function (occupancy = time-average of transactions present, the
+quantity of Little's law, L = lambda W; Little, Operations Research 9(3), 1961) for the
+occupancy curve, integrated here by a plain loop over the sorted events.
+"""
+
+import numpy as np
+import pytest
+
+import sim
+from sim.engine import dram as dram_mod
+from sim.engine import spill
+from sim.engine import stats as stats_mod
+from sim.trace.synth import synth_trace
+
+
+@pytest.mark.parametrize("n,keep,seed", [(1, 1, 0), (2, 1, 1), (1000, 7, 2), (5000, 1000, 3), (20001, 512, 4)])
+def test_latency_percentile_written_out_equals_numpy_percentile(n, keep, seed, monkeypatch):
+    """Source: numpy.percentile (linear). Values with many ties (latencies repeat) and a
+    spread; with the log written out every ``keep`` entries and gathering forced to narrow."""
+    monkeypatch.setattr(spill, "_GATHER", 50)
+    rng = np.random.default_rng(seed)
+    vals = np.where(rng.random(n) < 0.5, rng.integers(20, 40, n).astype(float), rng.gamma(2.0, 30.0, n))
+    log = spill.LatencyLog(keep=keep)
+    for v in vals.tolist():
+        log.append(v)
+    assert len(log) == n
+    assert (log._file is not None) == (n >= keep)
+    for q in (0, 5, 50, 95, 99.9, 100):
+        assert log.percentile(q) == np.percentile(vals, q)
+    assert np.array_equal(log.all(), vals)
+
+
+def _occupancy_by_hand(events, total, bins):
+    """Time-average level per bin of [0, total) of the step function that the events
+    (time, +1/-1) make; at one instant departures count before arrivals."""
+    events = sorted(events, key=lambda e: (e[0], e[1]))
+    width = total / bins
+    area = [0.0] * bins
+    level, peak = 0, 0
+    for (t, d), nxt in zip(events, events[1:] + [(max(total, events[-1][0]), 0)]):
+        level += d
+        peak = max(peak, level)
+        a, b = t, nxt[0]
+        for k in range(bins):          # the part of [a, b) inside bin k
+            lo, hi = max(a, k * width), min(b, (k + 1) * width)
+            if hi > lo:
+                area[k] += level * (hi - lo)
+    return [x / width for x in area], sum(area) / total, peak
+
+
+@pytest.mark.parametrize("keep,seed", [(3, 0), (16, 1), (10_000, 2)])
+def test_occupancy_written_out_equals_the_step_function_integral(keep, seed):
+    """Source: integral of a step function (Little 1961's L, time-average number present).
+    Transactions arrive at the present and leave later, as in the pool; the log writes out
+    the past every ``keep`` entries. Exact equality with the log kept whole in memory."""
+    rng = np.random.default_rng(seed)
+    whole, parts = spill.OccupancyLog(keep=1 << 30), spill.OccupancyLog(keep=keep)
+    events, now, pending = [], 0.0, []
+    for _ in range(400):
+        now += float(rng.choice([0.0, 1.0, rng.exponential(3.0)]))
+        for log in (whole, parts):
+            for t in [t for t in pending if t <= now]:
+                log.t.append(t)
+                log.d.append(-1)
+        events += [(t, -1) for t in pending if t <= now]
+        pending = [t for t in pending if t > now]
+        for log in (whole, parts):
+            log.t.append(now)
+            log.d.append(1)
+            if len(log) >= log.keep:
+                log.spill(now)
+        events.append((now, 1))
+        pending.append(now + float(rng.choice([0.0, 2.0, rng.exponential(10.0)])))
+    for log in (whole, parts):
+        for t in pending:
+            log.t.append(t)
+            log.d.append(-1)
+    events += [(t, -1) for t in pending]
+    total = now * 0.9                      # the curve's end may fall before the last event
+    bins = 8
+    by_hand, mean, peak = _occupancy_by_hand(events, total, bins)
+    at, edges, got_peak = parts.curve(total, bins)
+    assert (parts._file is not None) == (keep < 400)
+    assert np.diff(at) / np.diff(edges) == pytest.approx(by_hand, rel=1e-9, abs=1e-9)
+    assert at[-1] / total == pytest.approx(mean, rel=1e-9)
+    assert got_peak == peak
+    at0, _, peak0 = whole.curve(total, bins)
+    assert at.tolist() == at0.tolist() and got_peak == peak0   # the same sums, in the same order
+    assert parts.in_flight(now) == whole.in_flight(now) == sum(d for t, d in events if t <= now)
+
+
+def test_a_long_run_sums_its_logs_as_it_goes_and_reports_the_same(monkeypatch):
+    """With small blocks, the fetch unit's log is summed and dropped during the run and the
+    pool's latency and occupancy logs are written out; the document equals that of the same
+    run with every log kept whole (the same sums in the same order), and the fetch log held
+    at the end is a fraction of the intervals the run logged."""
+    monkeypatch.setattr(dram_mod, "FOLD_INTERVALS", 256)
+    monkeypatch.setattr(stats_mod, "STALL_BLOCK", 64)
+    arch = sim.load_arch("arch_configs/mid.yaml")
+    trace = synth_trace(prompt_tokens=2048, decode_steps=4, shape="dec-8b", layers=1, causal=True, seed=1)
+
+    dropped, pools = [], []
+    real_drop = stats_mod.UnitState.drop_first
+    monkeypatch.setattr(stats_mod.UnitState, "drop_first", lambda self, n: (dropped.append(n), real_drop(self, n)))
+    real_init = dram_mod.ChannelPool.__init__
+    monkeypatch.setattr(dram_mod.ChannelPool, "__init__",
+                        lambda self, *a, **k: (real_init(self, *a, **k), pools.append(self))[0])
+    monkeypatch.setattr(spill.LatencyLog.__init__, "__defaults__", (100,))
+    monkeypatch.setattr(spill.OccupancyLog.__init__, "__defaults__", (100,))
+    folded = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+    pool = pools[-1]
+    assert pool.latencies._file is not None and pool._occ._file is not None
+    assert len(pool._occ) < 0.2 * 2 * pool.txns
+    logged = sum(dropped)
+    assert len(dropped) >= 3 and logged > 4 * pool.txns // 5
+
+    monkeypatch.setattr(stats_mod.BusyFold, "_fold", lambda self: None)
+    monkeypatch.setattr(spill.LatencyLog.__init__, "__defaults__", (1 << 30,))
+    monkeypatch.setattr(spill.OccupancyLog.__init__, "__defaults__", (1 << 30,))
+    whole = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+    assert pools[-1].latencies._file is None and pools[-1]._occ._file is None
+    for doc in (folded, whole):
+        for key in ("build", "wall", "wall_seconds"):
+            doc.pop(key, None)
+    assert folded == whole
