@@ -46,7 +46,7 @@ def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, **en
     arch = load_arch(arch)
     if not isinstance(trace, Trace):
         trace = load_trace(trace)
-    check_run(arch, trace, engine_options.get("grain_rows"))
+    check_run(arch, trace, engine_options.get("grain_rows"), timeline=keep_intervals)
     return build_result(run_datapath(arch, trace, keep_intervals=keep_intervals, **engine_options))
 
 

@@ -29,6 +29,10 @@ PLAN_BYTES_PER_TXN = 256
 # what does not grow with the run: the logs' in-memory parts, the pool's tables, the result's
 # temporaries (a 16k-token causal prefill on mid: about 60 MiB above the loaded baseline)
 FIXED_BYTES = 256 * 2**20
+# a run that keeps every unit's intervals for a timeline holds them all: 7.1 KB per transaction
+# measured on a causal 8k-token prefill on mid (107,072 transactions), 16.8 KB once the
+# interval lists a timeline export reads are made
+TIMELINE_BYTES_PER_TXN = 16 * 1024
 
 
 class RunTooLarge(InputError):
@@ -88,8 +92,9 @@ def step_transactions(arch, trace, grain_rows=None) -> list[int]:
     return out
 
 
-def check_run(arch, trace, grain_rows=None) -> None:
-    """Refuse (one line, with the estimate) a run that cannot fit; return quietly otherwise."""
+def check_run(arch, trace, grain_rows=None, timeline=False) -> None:
+    """Refuse (one line, with the estimate) a run that cannot fit; return quietly otherwise.
+    ``timeline``: the run keeps every unit's intervals (memory grows with its transactions)."""
     span = address_span(arch, trace)
     if span >= 1 << ADDRESS_BITS:
         raise RunTooLarge(trace.source, "kv_rows", max(s.kv_rows for s in trace.steps),
@@ -102,6 +107,14 @@ def check_run(arch, trace, grain_rows=None) -> None:
     largest = max(per_step)
     need = FIXED_BYTES + PLAN_BYTES_PER_TXN * (largest + min(sum(per_step), SHAPE_CACHE_CHUNKS))
     mem = physical_memory()
+    total = sum(per_step)
+    if mem and timeline and need + TIMELINE_BYTES_PER_TXN * total > mem // 2:
+        need += TIMELINE_BYTES_PER_TXN * total
+        raise RunTooLarge(trace.source, "steps", len(trace.steps),
+                          f"a timeline of this run would hold about {total:,} transactions' intervals, "
+                          f"about {need / 2**30:,.1f} GiB of memory, more than half of this machine's "
+                          f"{mem / 2**30:,.0f} GiB: run it without a timeline (no --timeline output; "
+                          f"keep_intervals=False), or cut the trace")
     if mem and need > mem // 2:
         raise RunTooLarge(trace.source, "steps", len(trace.steps),
                           f"its largest step would issue about {largest:,} transactions, and its plan "

@@ -127,3 +127,23 @@ def test_a_long_run_sums_its_logs_as_it_goes_and_reports_the_same(monkeypatch):
         for key in ("build", "wall", "wall_seconds"):
             doc.pop(key, None)
     assert folded == whole
+
+
+def test_the_up_front_check_counts_a_timeline_but_not_the_logs(monkeypatch):
+    """On a machine of 2 GiB (half of it the limit), a causal 8k-token prefill on mid
+    (about 115,000 transactions) fits without a timeline, whose logs do not grow, and is
+    refused with one line naming the way out when every interval is to be kept
+    (16 KiB per transaction measured with the timeline's lists; arithmetic)."""
+    from sim import budget
+    from sim.errors import InputError
+
+    monkeypatch.setattr(budget, "physical_memory", lambda: 2 * 2**30)
+    arch = sim.load_arch("arch_configs/mid.yaml")
+    trace = synth_trace(prompt_tokens=8192, decode_steps=0, shape="dec-8b", layers=1, causal=True, seed=1)
+    n = budget.transactions(arch, trace)
+    assert 2**30 < n * budget.TIMELINE_BYTES_PER_TXN
+    budget.check_run(arch, trace)                       # no timeline: quiet
+    with pytest.raises(InputError) as err:
+        sim.simulate(arch, trace, keep_intervals=True)  # refused before the run
+    msg = str(err.value)
+    assert "\n" not in msg and "without a timeline" in msg and f"{n:,}" in msg
