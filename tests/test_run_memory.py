@@ -93,14 +93,15 @@ def test_occupancy_written_out_equals_the_step_function_integral(keep, seed):
     assert parts.in_flight(now) == whole.in_flight(now) == sum(d for t, d in events if t <= now)
 
 
-def test_a_long_run_sums_its_logs_as_it_goes_and_reports_the_same(monkeypatch):
+@pytest.mark.parametrize("model", ["banked", "fixed-latency"])
+def test_a_long_run_sums_its_logs_as_it_goes_and_reports_the_same(monkeypatch, model):
     """With small blocks, the fetch unit's log is summed and dropped during the run and the
     pool's latency and occupancy logs are written out; the document equals that of the same
     run with every log kept whole (the same sums in the same order), and the fetch log held
     at the end is a fraction of the intervals the run logged."""
     monkeypatch.setattr(dram_mod, "FOLD_INTERVALS", 256)
     monkeypatch.setattr(stats_mod, "STALL_BLOCK", 64)
-    arch = sim.load_arch("arch_configs/mid.yaml")
+    arch = sim.load_arch("arch_configs/mid.yaml").with_overrides({"dram.model": model})
     trace = synth_trace(prompt_tokens=2048, decode_steps=4, shape="dec-8b", layers=1, causal=True, seed=1)
 
     dropped, pools = [], []

@@ -447,9 +447,10 @@ class ChannelPool:
 
     def final_time(self):
         """Before this time the data buses' busy intervals are final: no burst still to come
-        can be placed earlier (each channel places from the time it last took bursts in)."""
+        can be placed earlier (each channel places from the time it last took bursts in; the
+        fixed-latency bus places every burst from the present on)."""
         if self.model != "banked":
-            return -np.inf
+            return float(self.env.now)
         return float(self.CF[:, T.F_TAKEN].min())
 
     def take_busy(self, upto):
