@@ -104,10 +104,9 @@ def check_run(arch, trace, grain_rows=None, timeline=False) -> None:
     from .engine.program import SHAPE_CACHE_CHUNKS
 
     per_step = step_transactions(arch, trace, grain_rows)
-    largest = max(per_step)
-    need = FIXED_BYTES + PLAN_BYTES_PER_TXN * (largest + min(sum(per_step), SHAPE_CACHE_CHUNKS))
+    largest, total = max(per_step), sum(per_step)
+    need = FIXED_BYTES + PLAN_BYTES_PER_TXN * (largest + min(total, SHAPE_CACHE_CHUNKS))
     mem = physical_memory()
-    total = sum(per_step)
     if mem and timeline and need + TIMELINE_BYTES_PER_TXN * total > mem // 2:
         need += TIMELINE_BYTES_PER_TXN * total
         raise RunTooLarge(trace.source, "steps", len(trace.steps),

@@ -148,3 +148,30 @@ def test_the_up_front_check_counts_a_timeline_but_not_the_logs(monkeypatch):
         sim.simulate(arch, trace, keep_intervals=True)  # refused before the run
     msg = str(err.value)
     assert "\n" not in msg and "without a timeline" in msg and f"{n:,}" in msg
+
+
+def test_plans_kept_for_reuse_are_bounded_by_their_chunks(monkeypatch):
+    """Step plans are kept for reuse up to SHAPE_CACHE_CHUNKS planned chunks; a smaller bound
+    re-plans more often and gives the same document (a plan depends only on its step)."""
+    from sim.engine import program as program_mod
+
+    arch = sim.load_arch("arch_configs/mid.yaml")
+    trace = synth_trace(prompt_tokens=512, decode_steps=6, layers=3, heads=4, seed=2)
+    whole = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+    seen = []
+    real = program_mod.ProgramBuilder._shape
+
+    def shape(self, step, layer):
+        out = real(self, step, layer)
+        seen.append((self.cached_chunks, sum(s.chunks for s in self.shapes.values()), len(self.shapes)))
+        return out
+
+    monkeypatch.setattr(program_mod.ProgramBuilder, "_shape", shape)
+    monkeypatch.setattr(program_mod, "SHAPE_CACHE_CHUNKS", 40)
+    small = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+    assert all(cached == held <= 40 for cached, held, _n in seen)
+    assert max(n for _c, _h, n in seen) >= 1
+    for doc in (whole, small):
+        for key in ("build", "wall", "wall_seconds"):
+            doc.pop(key, None)
+    assert small == whole

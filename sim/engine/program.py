@@ -145,7 +145,8 @@ class _StepShape:
         self.value_selections = sum(b.bp.rows * len(b.pruned) for b in self.blocks)
         self.last_read = self._last_reads() if len(self.blocks) > BLOCKS_PER_MAKE else None
         self.chunks = sum(len(b.bp.k_chunks) + len(b.bp.v_chunks) + len(b.bp.lsb_chunks)
-                          + len(b.bp.lsb_msb_chunks) for b in self.blocks)
+                          + len(b.bp.lsb_msb_chunks) for b in self.blocks) + sum(
+            len(gp.k_chunks) + len(gp.v_chunks) + len(gp.kl_chunks) + len(gp.kl_msb_chunks) for gp in plan)
 
     def _last_reads(self):
         """(plane, group, chunk) -> the last block (index in ``blocks``) that reads that
@@ -271,11 +272,11 @@ class ProgramBuilder:
         if shape is None:
             q_room = self.buffers["query"].capacity / 2
             shape = _StepShape(self.arch, amap, step, layer, self.grain_rows, q_room)
-            # a long decode plans a new shape per token; oldest out first
-            while self.shapes and (len(self.shapes) >= SHAPE_CACHE
-                                   or self.cached_chunks + shape.chunks > SHAPE_CACHE_CHUNKS):
-                self.cached_chunks -= self.shapes.pop(next(iter(self.shapes))).chunks
             if shape.chunks <= SHAPE_CACHE_CHUNKS:
+                # a long decode plans a new shape per token; oldest out first
+                while self.shapes and (len(self.shapes) >= SHAPE_CACHE
+                                       or self.cached_chunks + shape.chunks > SHAPE_CACHE_CHUNKS):
+                    self.cached_chunks -= self.shapes.pop(next(iter(self.shapes))).chunks
                 self.shapes[key] = shape
                 self.cached_chunks += shape.chunks
         return shape
