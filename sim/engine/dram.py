@@ -330,7 +330,6 @@ class ChannelPool:
         self.latency_total = 0.0
         self.latencies = LatencyLog()                # per read: submit to last data
         self._occ = OccupancyLog()                   # live occupancy: arrivals and departures
-        self._occ_limit = self._occ.keep             # entries at which it writes out the past
         self.interleave = d.interleave_bytes
         if self.model == "fixed-latency":
             self.submit = self._submit_fixed
@@ -867,13 +866,7 @@ class ChannelPool:
         return self._occ.in_flight(self.env.now)
 
     def _arrive(self, now):
-        occ = self._occ
-        occ.t.append(now)
-        occ.d.append(1)
-        if len(occ.t) >= self._occ_limit:
-            occ.spill(now)
-            # what is still in flight stays; do not spill again before the log has grown
-            self._occ_limit = max(occ.keep, 2 * len(occ.t))
+        self._occ.arrive(now)
 
     def _left(self, _ev):
         occ = self._occ

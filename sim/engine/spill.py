@@ -102,8 +102,7 @@ class LatencyLog:
             if lo == hi:
                 return lo
             if inside <= _GATHER:
-                vals = np.concatenate([b[(b >= lo) & (b <= hi)] for b in self.blocks()])
-                return float(np.partition(vals, k - under)[k - under])
+                return self._gathered(lo, hi, k - under)
             edges = np.linspace(lo, hi, _PASS_BINS + 1)
             counts = np.zeros(_PASS_BINS, dtype=np.int64)
             for b in self.blocks():
@@ -114,9 +113,13 @@ class LatencyLog:
             new_lo = float(edges[i])
             new_hi = hi if i == _PASS_BINS - 1 else float(np.nextafter(edges[i + 1], -np.inf))
             if (new_lo, new_hi) == (lo, hi):       # cannot narrow (float spacing): gather
-                vals = np.concatenate([b[(b >= lo) & (b <= hi)] for b in self.blocks()])
-                return float(np.partition(vals, k - under)[k - under])
+                return self._gathered(lo, hi, k - under)
             lo, hi = new_lo, new_hi
+
+    def _gathered(self, lo, hi, k):
+        """The ``k``-th smallest of the entries in ``[lo, hi]``, gathered into memory."""
+        vals = np.concatenate([b[(b >= lo) & (b <= hi)] for b in self.blocks()])
+        return float(np.partition(vals, k)[k])
 
 
 class OccupancyLog:
@@ -131,10 +134,20 @@ class OccupancyLog:
         self.keep = keep
         self.t = array("d")          # when a transaction arrived or left, and
         self.d = array("b")          # +1 / -1: compact, a long run logs millions
+        self._limit = keep           # entries at which arrive() writes out the past
         self._file = None
 
     def __len__(self):
         return len(self.t)
+
+    def arrive(self, now):
+        """A transaction arrives ``now``; past ``keep`` entries the past is written out."""
+        self.t.append(now)
+        self.d.append(1)
+        if len(self.t) >= self._limit:
+            self.spill(now)
+            # what is still in flight stays; do not write out again before the log has grown
+            self._limit = max(self.keep, 2 * len(self.t))
 
     def spill(self, now):
         """Write out, in time order, the entries logged before ``now``."""
