@@ -103,7 +103,9 @@ def _short(value: Any, limit: int = 80) -> str:
     except Exception:  # a value whose repr fails still gets a one-line error
         text = f"<{type(value).__name__}>"
     if len(text) > limit:
-        text = text[: limit - 3] + "..."
+        # keep both ends: a long path's file name is at its end
+        head = (limit - 3) // 2
+        text = text[:head] + "..." + text[-(limit - 3 - head):]
     return text
 
 
