@@ -110,6 +110,13 @@ def _compile(fn):
     return _njit(cache=True, nogil=True)(fn) if JIT else fn
 
 
+def _leaf(fn):
+    """A loop that makes no arrays: compiled without reference counting, so passing it the
+    state arrays costs nothing per call (with counting, its calls inside the per-burst loop
+    spent as long counting references as placing commands)."""
+    return _njit(cache=True, nogil=True, _nrt=False)(fn) if JIT else fn
+
+
 def _inline(fn):
     """A small helper taking arrays, called inside search loops: compiled into its callers
     (a compiled call passing arrays costs reference counting each time)."""
@@ -118,7 +125,7 @@ def _inline(fn):
 
 # ---------------------------------------------------------------- refresh windows
 
-@_compile
+@_leaf
 def ref_after(off, period, dur, x):
     """Start of the first refresh window of a bank after time ``x`` (inf: no refresh)."""
     if dur <= 0.0:
@@ -128,7 +135,7 @@ def ref_after(off, period, dur, x):
     return off + (np.floor((x - off) / period) + 1.0) * period
 
 
-@_compile
+@_leaf
 def ref_clear(off, period, dur, x):
     """``x``, or the end of the bank's refresh window ``x`` falls in."""
     if dur <= 0.0 or x < off:
@@ -169,7 +176,7 @@ def _upper(a, n, x):
     return lo
 
 
-@_compile
+@_leaf
 def col_spacing(k1, k2, burst, ccd_l, rtw, w2r_s, w2r_l):
     """Least time from a column command of code ``k1`` to a later one of code ``k2``.
 
@@ -223,7 +230,7 @@ def _gap_add(TG, TN, c, w, s, e):
     TN[c, N_COL_GAPS + w] = k + 1
 
 
-@_compile
+@_leaf
 def _insert(TL, TK, TG, TN, c, w, x, k, width):
     """Insert ``(x, k)`` into channel ``c``'s timeline ``w`` and keep its list of gaps at
     least ``width`` wide (no narrower gap can hold a command). Returns the entry's index."""
@@ -300,7 +307,7 @@ def _col_fit(T, K, n, code, x, limit, reach, P):
     return x
 
 
-@_compile
+@_leaf
 def col_place(TL, TK, TG, TN, CF, c, code, x, P):
     """Earliest time >= ``x`` for a column command of ``code`` on channel ``c``'s bus, found
     gap by gap (:func:`place_bursts` handles the common case, after every command, itself).
@@ -320,7 +327,7 @@ def col_place(TL, TK, TG, TN, CF, c, code, x, P):
         x = y
 
 
-@_compile
+@_leaf
 def act_place(TL, TK, TG, TN, c, g, x, P):
     """Earliest activate time >= ``x`` for bank group ``g`` on channel ``c``.
 
@@ -381,7 +388,7 @@ def act_place(TL, TK, TG, TN, c, g, x, P):
         x = T[p]                            # no room before the next activate: try after it
 
 
-@_compile
+@_leaf
 def act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, P):
     """Earliest activate time >= ``a`` for bank group ``g`` of channel ``c`` that keeps the
     activation limits and falls outside the bank's refresh windows. Returns ``(time, faw)``."""
@@ -396,7 +403,7 @@ def act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, P):
         a = a3
 
 
-@_compile
+@_leaf
 def _room(TL, TK, TG, TN, CF, c, w, m, keep_from):
     """Room for ``m`` more entries in channel ``c``'s timeline ``w``, dropping those before
     ``keep_from``. False when even then it would be more than half full (the caller grows it)."""
@@ -428,7 +435,7 @@ def _room(TL, TK, TG, TN, CF, c, w, m, keep_from):
     return TN[c, w] + m <= cap // 2 and TN[c, N_COL_GAPS + w] + m <= cap // 2
 
 
-@_compile
+@_leaf
 def compact(TL, TK, TG, TN, CF, P):
     """Drop from every timeline what no later burst can reach (kept: from the time bursts were
     last taken in, minus the longest spacing rule)."""
@@ -437,7 +444,7 @@ def compact(TL, TK, TG, TN, CF, P):
         _room(TL, TK, TG, TN, CF, c, ACT, TL.shape[2] + 1, CF[c, F_TAKEN] - P[P_ACT_REACH])
 
 
-@_compile
+@_leaf
 def _log(LOG, NI, t, c, bank, kind, row):
     k = NI[I_LOG]
     LOG[k, 0] = t
@@ -450,7 +457,7 @@ def _log(LOG, NI, t, c, bank, kind, row):
 
 # ---------------------------------------------------------------- bursts
 
-@_compile
+@_leaf
 def _after_all(TL, TK, c, n, x, code, w, last_write, reach, burst, ccd_l, rtw, w2r_s, w2r_l):
     """Column time >= ``x`` after all ``n`` columns of a timeline with no usable gap after
     ``x``: only the rules with the commands just before count, and x only grows, so one
@@ -467,7 +474,7 @@ def _after_all(TL, TK, c, n, x, code, w, last_write, reach, burst, ccd_l, rtw, w
     return x
 
 
-@_compile
+@_leaf
 def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, groups, banks, close_page,
                  open_row, BF, TL, TK, TG, TN, CF, acc, LOG, NI, IV, busy, H, FS, FI, FF, RX, RT, depth,
                  rq, gdepth, stream, chq):
@@ -853,7 +860,7 @@ def level_time(H, TN, CF, c, now, level):
     return t if t > now else now
 
 
-@_compile
+@_leaf
 def slots_room_at(H, TN, CF, c, now, need, depth):
     """Earliest time from ``now`` at which ``need`` more requests (one at most) fit in ``c``'s queue."""
     return level_time(H, TN, CF, c, now, CF[c, F_ENTERED] + min(need, 1.0) - depth)
@@ -997,7 +1004,7 @@ def decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels):
     return ch, gb, row, pos
 
 
-@_compile
+@_leaf
 def _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
     """Whether every table has room for the batch (making room in the timelines)."""
     n = len(ch)
@@ -1216,7 +1223,7 @@ def serve_writes(gb, row, c, t, out, groups, banks, close_page, P, open_row, BF,
     return 1
 
 
-@_compile
+@_leaf
 def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, H, TN, CF, IV, busy, acc,
                 counts):
     """The fixed-latency model: each channel's bursts on one pipelined bus after the ones before.
