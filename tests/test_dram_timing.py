@@ -432,7 +432,8 @@ def drive(path=None):
         now += 37.0 * (k % 3)
         times = np.full(3, -np.inf)
         pos = np.arange(len(ch), dtype=np.int64)
-        assert T.serve_and_book(ch, gb, row, pos, now, now, times, *pool._state_args, 1, *pool._no_room) >= 0
+        assert T.serve_and_book(ch, gb, row, pos, now, now, times, *pool._state_args, 1, *pool._no_room,
+                                np.zeros(len(ch)), np.zeros((pool.n, 4))) >= 0
         out.append(times.copy())
     state = {name: getattr(pool, name) for name in STATE}
     state["times"] = np.array(out)

@@ -360,6 +360,7 @@ class ChannelPool:
         self.LOG = np.zeros((4096 if log_commands else 0, 5))
         # per-share records (channel, arrival, start, first data, done, bursts)
         self._times = np.zeros(3)
+        self._scratch(4096)
         self._no_room = (np.zeros(1), np.full(1, -np.inf))   # room_time: room from the start
         lut = self.decoder.lut
         self._lut = (lut[0], lut[2], self.decoder.low_bits, self.decoder.low_mask) if lut else None
@@ -761,8 +762,10 @@ class ChannelPool:
         tries = 0
         rx, rt = txn.room or self._no_room
         self._entries += 1
+        if len(b) > self._SF.shape[0]:
+            self._scratch(len(b))
         while serve_addresses(b, *self._lut_args, float(now), times, *self._state_args,
-                              _STREAM.get(txn.kind, 1), rx, rt) < 0:
+                              _STREAM.get(txn.kind, 1), rx, rt, self._SI, self._SF, self._AGG) < 0:
             _room_or_stall(tries, "banked serve")
             tries += 1
             self._make_room(len(b))
@@ -770,6 +773,14 @@ class ChannelPool:
             self.NI[T.I_RECORDS] = 0
         t_start, t_first, t_done = times.tolist()
         return self._finish(txn, now, t_start, t_first, t_done, None)
+
+    def _scratch(self, bursts):
+        """The read kernels' working arrays, for batches of up to ``bursts`` (made once and
+        grown, so a call allocates nothing)."""
+        cap = 1 << max(12, int(bursts - 1).bit_length())
+        self._SI = np.zeros((6, max(cap, self.n + 1)), dtype=np.int64)
+        self._SF = np.zeros(cap)
+        self._AGG = np.zeros((self.n, 4))
 
     def _bind(self):
         """The kernels' argument tuples: the state arrays, bound again when a table grows."""
@@ -800,9 +811,11 @@ class ChannelPool:
         times[1] = -np.inf
         times[2] = -np.inf if rec[4] == rec[0] else rec[4]
         self._entries += 1
+        if len(ch) > self._SF.shape[0]:
+            self._scratch(len(ch))
         for tries in range(MAX_ROOM_TRIES + 1):
             nch = serve_and_book(ch, gb, row, pos, float(now), float(rec[0]), times, *self._state_args,
-                                 rec[6], rx, rt)
+                                 rec[6], rx, rt, self._SF, self._AGG)
             if nch >= 0:
                 break
             _room_or_stall(tries, "banked commit")

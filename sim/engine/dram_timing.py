@@ -976,23 +976,26 @@ def fslots_level_time(FS, FI, FF, now, level):
 
 # ---------------------------------------------------------------- whole batches
 
-@_compile
-def decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels):
-    """Channel, global bank and row of burst addresses ``b``, stably sorted by channel, and
-    where each burst of ``b`` went in the sorted arrays."""
+@_leaf
+def decode_into(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels, SI):
+    """Channel, global bank and row of burst addresses ``b``, stably sorted by channel, into
+    rows 2-4 of the scratch ``SI`` (first ``len(b)`` columns), and where each burst of ``b``
+    went in the sorted arrays into row 5 (rows 0 and 1: counts and low bits)."""
     n = len(b)
-    cnt = np.zeros(channels + 1, dtype=np.int64)
-    low = np.empty(n, dtype=np.int64)
+    cnt = SI[0]
+    low = SI[1]
+    ch = SI[2]
+    gb = SI[3]
+    row = SI[4]
+    pos = SI[5]
+    for c in range(channels + 1):
+        cnt[c] = 0
     for i in range(n):
         x = b[i] // burst
         low[i] = x & low_mask
         cnt[lut_ch[low[i]] + 1] += 1
     for c in range(channels):
         cnt[c + 1] += cnt[c]
-    ch = np.empty(n, dtype=np.int64)
-    gb = np.empty(n, dtype=np.int64)
-    row = np.empty(n, dtype=np.int64)
-    pos = np.empty(n, dtype=np.int64)
     for i in range(n):
         c = lut_ch[low[i]]
         k = cnt[c]
@@ -1001,7 +1004,15 @@ def decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels):
         gb[k] = lut_gb[low[i]]
         row[k] = (b[i] // burst) >> low_bits
         pos[i] = k
-    return ch, gb, row, pos
+
+
+@_compile
+def decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels):
+    """:func:`decode_into` into new arrays: ``(channel, global bank, row, pos)``."""
+    n = len(b)
+    SI = np.empty((6, max(n, channels + 1)), dtype=np.int64)
+    decode_into(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels, SI)
+    return SI[2, :n].copy(), SI[3, :n].copy(), SI[4, :n].copy(), SI[5, :n].copy()
 
 
 @_leaf
@@ -1120,10 +1131,10 @@ def room_time(RX, RT, x):
     return RT[n - 1]
 
 
-@_compile
+@_leaf
 def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, banks, close_page, P,
                    open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth, FS, FI, FF,
-                   stream, RX, RT):
+                   stream, RX, RT, SF, AGG):
     """Queue, serve and book one batch of reads (sorted by channel; ``pos[k]``: where the
     batch's ``k``-th burst in address order is) arriving at ``now``.
 
@@ -1140,8 +1151,9 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     placed by :func:`place_bursts`; each share then enters the share records
     (``R`` rows: channel, arrival, start, first data, last data, bursts), the
     data-bus intervals (``IV``) and the busy cycles. ``times`` holds the batch's
-    start, first data and last data, raised here. Returns the number of
-    channels served, or -1 without changing any timing state if a table is full.
+    start, first data and last data, raised here. ``SF`` (at least as long as the batch)
+    and ``AGG`` (a row per channel) are scratch. Returns the number of channels served,
+    or -1 without changing any timing state if a table is full.
     """
     n = len(ch)
     if FI[1] + n + 1 > FS.shape[0]:
@@ -1152,9 +1164,9 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     # queue at its data, the slot at handover), so with no more fetch slots than queue
     # entries the queue can never be the one that waits: it is not kept then.
     chq = gdepth > depth
-    out = np.empty(n)
+    out = SF[:n]
     nc = TN.shape[0]
-    agg = np.empty((nc, 4))         # per channel: start, first data, last data, bursts
+    agg = AGG                       # per channel: start, first data, last data, bursts
     agg[:, 0] = np.inf
     agg[:, 1] = np.inf
     agg[:, 2] = -np.inf
@@ -1270,15 +1282,17 @@ def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, H, TN, C
     return 1, t_start, t_end
 
 
-@_compile
+@_leaf
 def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, depth, rq, groups, banks,
                     close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth,
-                    FS, FI, FF, stream, RX, RT):
-    """:func:`decode_sorted` then :func:`serve_and_book` for reads arriving now."""
-    ch, gb, row, pos = decode_sorted(b, burst, lut_ch, lut_gb, low_bits, low_mask, len(busy))
-    return serve_and_book(ch, gb, row, pos, now, now, times, depth, rq, groups, banks, close_page, P,
-                          open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth, FS,
-                          FI, FF, stream, RX, RT)
+                    FS, FI, FF, stream, RX, RT, SI, SF, AGG):
+    """:func:`decode_into` then :func:`serve_and_book` for reads arriving now; ``SI``, ``SF``
+    and ``AGG`` are scratch (columns at least ``len(b)``, and the channels plus one)."""
+    n = len(b)
+    decode_into(b, burst, lut_ch, lut_gb, low_bits, low_mask, len(busy), SI)
+    return serve_and_book(SI[2, :n], SI[3, :n], SI[4, :n], SI[5, :n], now, now, times, depth, rq, groups,
+                          banks, close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG,
+                          NI, gdepth, FS, FI, FF, stream, RX, RT, SF, AGG)
 
 
 # ---------------------------------------------------------------- compile once, load once
@@ -1287,8 +1301,8 @@ def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, de
 # made once per machine and loaded by every process before its first run.
 
 KERNELS = ("serve_addresses", "serve_and_book", "decode_sorted", "serve_writes", "compact", "serve_fixed")
-# kernels compiled together, each group under its own lock: serve_addresses calls the other two
-# of its group (compiling it compiles them); the groups share little, so processes starting on
+# kernels compiled together, each group under its own lock: serve_addresses calls
+# serve_and_book and the decoding decode_sorted wraps (compiling it compiles them); the groups share little, so processes starting on
 # an empty cache compile different groups side by side
 GROUPS = (("serve_addresses", "serve_and_book", "decode_sorted"), ("serve_writes",), ("compact",),
           ("serve_fixed",))
@@ -1309,9 +1323,11 @@ def signatures():
     # the fetch unit's request slots: gdepth, FS, FI, FF, the stream a batch belongs to, and
     # when its buffer has room for it (RX, RT)
     slots = (i, a(f, 2), a(i, 1), a(f, 1), i, a(f, 1), a(f, 1))
+    # scratch: the decoded batch (SI), burst times (SF), per-channel sums (AGG)
+    scratch = (a(f, 1), a(f, 2))
     return {
-        "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1)) + state + slots,
-        "serve_and_book": (a(i, 1), a(i, 1), a(i, 1), a(i, 1), f, f, a(f, 1)) + state + slots,
+        "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1)) + state + slots + (a(i, 2),) + scratch,
+        "serve_and_book": (a(i, 1), a(i, 1), a(i, 1), a(i, 1), f, f, a(f, 1)) + state + slots + scratch,
         "serve_writes": (a(i, 1), a(i, 1), i, f, a(f, 1)) + state[2:],
         "serve_fixed": (a(i, 1), i, f, a(f, 1), f, f, i, i, a(f, 3), a(i, 2), a(f, 2), a(f, 3), a(f, 1),
                         a(f, 1), a(i, 1)),
