@@ -441,7 +441,7 @@ class ChannelPool:
             t = self._room_t
             return t if t > now else now
         level = float(self.FF[1]) + need - self.fetch_depth
-        t = T.fslots_level_time(self.FS, self.FI, self.FF, float(now), level)
+        t = T.fslots_level_at(self.FS, self.FI, self.FF, float(now), level)
         self._room_key, self._room_t = (self._entries, need), t
         return t
 
@@ -666,8 +666,11 @@ class ChannelPool:
         gb = np.concatenate([p[0] for p in parts])
         row = np.concatenate([p[1] for p in parts])
         out = np.empty(count)
+        if count > self._SF.shape[0]:
+            self._scratch(count)
         for tries in range(MAX_ROOM_TRIES + 1):
-            if T.serve_writes(gb, row, c, float(t), out, *self._write_args) > 0:
+            if T.serve_writes(gb, row, c, float(t), out, *self._write_args, self._SI, self._AGG,
+                              *self._no_slots) > 0:
                 break
             _room_or_stall(tries, "write drain")
             self._make_room(count)
@@ -781,6 +784,8 @@ class ChannelPool:
         self._SI = np.zeros((6, max(cap, self.n + 1)), dtype=np.int64)
         self._SF = np.zeros(cap)
         self._AGG = np.zeros((self.n, 4))
+        # the fetch slots' arrays for writes, which take none (never read there)
+        self._no_slots = (np.zeros((1, 3)), np.zeros(1, dtype=np.int64), np.zeros(1))
 
     def _bind(self):
         """The kernels' argument tuples: the state arrays, bound again when a table grows."""

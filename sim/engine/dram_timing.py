@@ -977,6 +977,12 @@ def fslots_level_time(FS, FI, FF, now, level):
 # ---------------------------------------------------------------- whole batches
 
 @_leaf
+def fslots_level_at(FS, FI, FF, now, level):
+    """:func:`fslots_level_time` called from Python (a call that counts no references)."""
+    return fslots_level_time(FS, FI, FF, now, level)
+
+
+@_leaf
 def decode_into(b, burst, lut_ch, lut_gb, low_bits, low_mask, channels, SI):
     """Channel, global bank and row of burst addresses ``b``, stably sorted by channel, into
     rows 2-4 of the scratch ``SI`` (first ``len(b)`` columns), and where each burst of ``b``
@@ -1212,26 +1218,27 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     return nch
 
 
-@_compile
+@_leaf
 def serve_writes(gb, row, c, t, out, groups, banks, close_page, P, open_row, BF, TL, TK, TG, TN, CF, H,
-                 R, IV, busy, acc, LOG, NI):
+                 R, IV, busy, acc, LOG, NI, SI, AGG, FS0, FI0, FF0):
     """Drain write bursts ``gb``/``row`` (oldest first) of channel ``c``'s write queue from
     time ``t``: their commands are fixed like reads' (:func:`place_bursts`), with write
     timing (tCWL, tWR, tWTR, tRTW). ``out[k]`` is burst ``k``'s column command: when it
-    leaves the write queue. Returns 1, or -1 without changing anything if a table is full."""
+    leaves the write queue. ``SI`` and ``AGG`` are the pool's scratch (see
+    :func:`serve_addresses`); ``FS0``, ``FI0``, ``FF0`` stand in for the fetch slots, which
+    writes do not take. Returns 1, or -1 without changing anything if a table is full."""
     m = len(gb)
     if NI[I_LOGGING] > 0 and NI[I_LOG] + 3 * m > LOG.shape[0]:
         return -1
     if TN[c, N_IV] + m > IV.shape[1]:
         return -1
-    ch = np.full(m, c, dtype=np.int64)
+    ch = SI[2, :m]
+    for k in range(m):
+        ch[k] = c
     if not _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
         return -1
-    none_i = np.zeros(1, dtype=np.int64)
-    none_f = np.zeros(1)
-    place_bursts(gb, row, ch, ch, 0, m, 1, t, out, np.empty((TN.shape[0], 4)), False, P, groups, banks,
-                 close_page, open_row, BF, TL, TK, TG, TN, CF, acc, LOG, NI, IV, busy, H, np.zeros((1, 3)),
-                 none_i, none_f, none_f, none_f, 1, 1, 1, 0, False)
+    place_bursts(gb, row, ch, ch, 0, m, 1, t, out, AGG, False, P, groups, banks, close_page, open_row, BF,
+                 TL, TK, TG, TN, CF, acc, LOG, NI, IV, busy, H, FS0, FI0, FF0, FF0, FF0, 1, 1, 1, 0, False)
     return 1
 
 
@@ -1328,7 +1335,8 @@ def signatures():
     return {
         "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1)) + state + slots + (a(i, 2),) + scratch,
         "serve_and_book": (a(i, 1), a(i, 1), a(i, 1), a(i, 1), f, f, a(f, 1)) + state + slots + scratch,
-        "serve_writes": (a(i, 1), a(i, 1), i, f, a(f, 1)) + state[2:],
+        "serve_writes": (a(i, 1), a(i, 1), i, f, a(f, 1)) + state[2:] + (a(i, 2), a(f, 2), a(f, 2), a(i, 1),
+                                                                          a(f, 1)),
         "serve_fixed": (a(i, 1), i, f, a(f, 1), f, f, i, i, a(f, 3), a(i, 2), a(f, 2), a(f, 3), a(f, 1),
                         a(f, 1), a(i, 1)),
         "decode_sorted": (a(i, 1), i, a(i, 1), a(i, 1), i, i, i),
