@@ -360,8 +360,11 @@ class ChannelPool:
         self.LOG = np.zeros((4096 if log_commands else 0, 5))
         # per-share records (channel, arrival, start, first data, done, bursts)
         self._times = np.zeros(3)
+        self._SF = np.zeros(0)
         self._scratch(4096)
         self._no_room = (np.zeros(1), np.full(1, -np.inf))   # room_time: room from the start
+        # the fetch slots' arrays for writes, which take none (never read there)
+        self._no_slots = (np.zeros((1, 3)), np.zeros(1, dtype=np.int64), np.zeros(1))
         lut = self.decoder.lut
         self._lut = (lut[0], lut[2], self.decoder.low_bits, self.decoder.low_mask) if lut else None
         # write queues: bursts entered and drained so far, those waiting (oldest first), the
@@ -666,8 +669,7 @@ class ChannelPool:
         gb = np.concatenate([p[0] for p in parts])
         row = np.concatenate([p[1] for p in parts])
         out = np.empty(count)
-        if count > self._SF.shape[0]:
-            self._scratch(count)
+        self._scratch(count)
         for tries in range(MAX_ROOM_TRIES + 1):
             if T.serve_writes(gb, row, c, float(t), out, *self._write_args, self._SI, self._AGG,
                               *self._no_slots) > 0:
@@ -765,8 +767,7 @@ class ChannelPool:
         tries = 0
         rx, rt = txn.room or self._no_room
         self._entries += 1
-        if len(b) > self._SF.shape[0]:
-            self._scratch(len(b))
+        self._scratch(len(b))
         while serve_addresses(b, *self._lut_args, float(now), times, *self._state_args,
                               _STREAM.get(txn.kind, 1), rx, rt, self._SI, self._SF, self._AGG) < 0:
             _room_or_stall(tries, "banked serve")
@@ -778,14 +779,14 @@ class ChannelPool:
         return self._finish(txn, now, t_start, t_first, t_done, None)
 
     def _scratch(self, bursts):
-        """The read kernels' working arrays, for batches of up to ``bursts`` (made once and
-        grown, so a call allocates nothing)."""
+        """Make sure the kernels' working arrays (``_SI``, ``_SF``, ``_AGG``) hold a batch of
+        ``bursts``: made once and grown to the next power of two, so a call allocates nothing."""
+        if bursts <= self._SF.shape[0]:
+            return
         cap = 1 << max(12, int(bursts - 1).bit_length())
         self._SI = np.zeros((6, max(cap, self.n + 1)), dtype=np.int64)
         self._SF = np.zeros(cap)
         self._AGG = np.zeros((self.n, 4))
-        # the fetch slots' arrays for writes, which take none (never read there)
-        self._no_slots = (np.zeros((1, 3)), np.zeros(1, dtype=np.int64), np.zeros(1))
 
     def _bind(self):
         """The kernels' argument tuples: the state arrays, bound again when a table grows."""
@@ -816,8 +817,7 @@ class ChannelPool:
         times[1] = -np.inf
         times[2] = -np.inf if rec[4] == rec[0] else rec[4]
         self._entries += 1
-        if len(ch) > self._SF.shape[0]:
-            self._scratch(len(ch))
+        self._scratch(len(ch))
         for tries in range(MAX_ROOM_TRIES + 1):
             nch = serve_and_book(ch, gb, row, pos, float(now), float(rec[0]), times, *self._state_args,
                                  rec[6], rx, rt, self._SF, self._AGG)

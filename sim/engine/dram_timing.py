@@ -1309,8 +1309,9 @@ def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, de
 
 KERNELS = ("serve_addresses", "serve_and_book", "decode_sorted", "serve_writes", "compact", "serve_fixed")
 # kernels compiled together, each group under its own lock: serve_addresses calls
-# serve_and_book and the decoding decode_sorted wraps (compiling it compiles them); the groups share little, so processes starting on
-# an empty cache compile different groups side by side
+# serve_and_book and the decoding decode_sorted wraps (compiling it compiles them); the
+# groups share little, so processes starting on an empty cache compile different groups
+# side by side
 GROUPS = (("serve_addresses", "serve_and_book", "decode_sorted"), ("serve_writes",), ("compact",),
           ("serve_fixed",))
 
@@ -1333,10 +1334,12 @@ def signatures():
     # scratch: the decoded batch (SI), burst times (SF), per-channel sums (AGG)
     scratch = (a(f, 1), a(f, 2))
     return {
-        "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1)) + state + slots + (a(i, 2),) + scratch,
+        "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1)) + state + slots + (a(i, 2),)
+        + scratch,
         "serve_and_book": (a(i, 1), a(i, 1), a(i, 1), a(i, 1), f, f, a(f, 1)) + state + slots + scratch,
-        "serve_writes": (a(i, 1), a(i, 1), i, f, a(f, 1)) + state[2:] + (a(i, 2), a(f, 2), a(f, 2), a(i, 1),
-                                                                          a(f, 1)),
+        # the pool's SI and AGG, then stand-ins for the fetch slots (FS, FI, FF) writes do not take
+        "serve_writes": (a(i, 1), a(i, 1), i, f, a(f, 1)) + state[2:] + (a(i, 2), a(f, 2))
+        + (a(f, 2), a(i, 1), a(f, 1)),
         "serve_fixed": (a(i, 1), i, f, a(f, 1), f, f, i, i, a(f, 3), a(i, 2), a(f, 2), a(f, 3), a(f, 1),
                         a(f, 1), a(i, 1)),
         "decode_sorted": (a(i, 1), i, a(i, 1), a(i, 1), i, i, i),
