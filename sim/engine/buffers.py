@@ -112,17 +112,16 @@ class Buffer:
         if not self.ramps:
             return self.level
         held = self.level
-        keep = []
-        for r in self.ramps:
-            t0, t1, b = r
+        ended = False
+        for t0, t1, b in self.ramps:
             if now >= t1:
                 self.level -= b
                 held -= b
-            else:
-                if now > t0:
-                    held -= b * (now - t0) / (t1 - t0)
-                keep.append(r)
-        self.ramps = keep
+                ended = True
+            elif now > t0:
+                held -= b * (now - t0) / (t1 - t0)
+        if ended:   # most calls see no ramp end: the list is remade only when one has
+            self.ramps = [r for r in self.ramps if now < r[1]]
         return held
 
     def room(self):

@@ -306,7 +306,7 @@ class ChannelPool:
         # unit's own count of handed-over requests is the limit there, see fetch.py)
         self.fetch_depth = arch.fetch.inflight if d.scheduler != "row_hits_first" else 1 << 40
         self._entries = 0         # calls that entered requests into the fetch slots
-        self._room_key, self._room_t = None, 0.0
+        self._room_entries, self._room_need, self._room_t = -1, -1.0, 0.0   # the last answer
         self.IV = np.zeros((self.n, 1024, 2))            # data-bus busy intervals per channel
         self.on_full = None       # called when the intervals would outgrow FOLD_INTERVALS (see take_busy)
         self.busy_cycles = np.zeros(self.n)
@@ -440,12 +440,12 @@ class ChannelPool:
         the fetch unit's request slots."""
         if need > 1.0:
             need = 1.0
-        if self._room_key == (self._entries, need):   # nothing entered since: the same time holds
-            t = self._room_t
+        if self._room_entries == self._entries and self._room_need == need:
+            t = self._room_t           # nothing entered since: the same time holds
             return t if t > now else now
         level = float(self.FF[1]) + need - self.fetch_depth
         t = T.fslots_level_at(self.FS, self.FI, self.FF, float(now), level)
-        self._room_key, self._room_t = (self._entries, need), t
+        self._room_entries, self._room_need, self._room_t = self._entries, need, t
         return t
 
     def final_time(self):

@@ -192,6 +192,8 @@ class FetchUnit:
     # oldest pending transaction is part way at any instant.
     def retire(self):
         """Drop transactions fully handed over by now from the in-flight count."""
+        if not self.npending:
+            return
         now = self.env.now
         for st in self.streams.values():
             p = st.pending

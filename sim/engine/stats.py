@@ -42,8 +42,7 @@ class UnitState:
         self._codes = {}                   # (state, cause) -> code
         self._keys = []                    # code -> (state, cause)
 
-    def _log(self, t0, t1, state, cause):
-        key = (state, cause)
+    def _log(self, t0, t1, key):
         code = self._codes.get(key)
         if code is None:
             code = self._codes[key] = len(self._keys)
@@ -73,10 +72,10 @@ class UnitState:
         since = self.since
         if t <= since:
             return
-        state, cause = self.state, self.cause
-        self.totals[state, cause] += t - since
+        key = (self.state, self.cause)
+        self.totals[key] += t - since
         if self.keep_intervals:
-            self._log(since, t, state, cause)
+            self._log(since, t, key)
         self.since = t
 
     def set(self, state, cause=None):
@@ -186,9 +185,10 @@ class UnitState:
 
     def _starved(self, t0, t1, cause):
         """Log ``[t0, t1)`` as starved by ``cause`` (a piece of a wait, t0 < t1)."""
-        self.totals["starved", cause] += t1 - t0
+        key = ("starved", cause)
+        self.totals[key] += t1 - t0
         if self.keep_intervals:
-            self._log(t0, t1, "starved", cause)
+            self._log(t0, t1, key)
 
     def finish(self, t_end):
         """Close the log at the end of the run; the tail after the last busy is idle."""
