@@ -29,7 +29,8 @@ ArchLike = Union[Arch, str, "os.PathLike[str]", Mapping[str, Any]]
 TraceLike = Union[Trace, str, "os.PathLike[str]"]
 
 
-def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, **engine_options: Any) -> Result:
+def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, progress: Any = None,
+             **engine_options: Any) -> Result:
     """Replay ``trace`` on ``arch`` and return a :class:`sim.result.Result`.
 
     ``arch`` may be an Arch, a YAML path or a mapping; ``trace`` a Trace or a
@@ -37,7 +38,8 @@ def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, **en
     (``grain_rows``, ``seed``). ``keep_intervals=False`` skips the per-unit
     intervals a timeline needs (the document is the same). A run that would
     not fit the address map or the machine's memory is refused first
-    (:mod:`sim.budget`).
+    (:mod:`sim.budget`). ``progress``: a :class:`sim.engine.progress.RunProgress`
+    another thread may read while the run goes on (the CLI's progress line).
     """
     from .budget import check_run
     from .engine.datapath import run_datapath
@@ -47,7 +49,8 @@ def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, **en
     if not isinstance(trace, Trace):
         trace = load_trace(trace)
     check_run(arch, trace, engine_options.get("grain_rows"), timeline=keep_intervals)
-    return build_result(run_datapath(arch, trace, keep_intervals=keep_intervals, **engine_options))
+    return build_result(run_datapath(arch, trace, keep_intervals=keep_intervals, progress=progress,
+                                     **engine_options))
 
 
 def load_sweep(folder: str | os.PathLike, columns: list[str] | None = None,

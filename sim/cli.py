@@ -162,8 +162,13 @@ def _cmd_run(args):
         opts["grain_rows"] = args.grain_rows
     if args.seed is not None:
         opts["seed"] = args.seed
-    with _Ticker(args, "simulating"):
-        result = _located(arch, lambda: simulate(arch, trace, keep_intervals=bool(tl_out), **opts))
+    from .budget import transactions
+    from .engine.progress import RunProgress
+
+    progress = RunProgress()
+    with _Ticker(args, "simulating", progress, lambda: transactions(arch, trace, opts.get("grain_rows"))):
+        result = _located(arch, lambda: simulate(arch, trace, keep_intervals=bool(tl_out), progress=progress,
+                                                 **opts))
     summary_to = sys.stderr if json_out == "-" or tl_out == "-" else sys.stdout
     _say(args, format_summary(result), file=summary_to)
     if json_out:
@@ -252,24 +257,54 @@ def _parse_sets(items):
 
 
 class _Ticker:
-    """A progress bar on stderr for a call of unknown length: shown after a second, on a terminal."""
+    """Progress on stderr for a call that may take long: on a terminal a line kept up to date
+    from a second on; elsewhere (a log, a batch job) nothing unless ``progress`` is given,
+    and then a line every ``LOG_EVERY`` seconds.
 
-    def __init__(self, args, what):
+    ``progress`` (a :class:`sim.engine.progress.RunProgress`) and ``estimate`` (a callable
+    returning an upper estimate of the run's fetch transactions) turn the elapsed time into
+    steps and transactions done and an upper estimate of the time left."""
+
+    LOG_EVERY = 300.0
+
+    def __init__(self, args, what, progress=None, estimate=None):
         self.args, self.what = args, what
+        self.progress, self.estimate = progress, estimate
         self.bar = None
         self.timer = None
 
     def __enter__(self):
-        if getattr(self.args, "quiet", False) or not sys.stderr.isatty():
+        tty = sys.stderr.isatty()
+        if getattr(self.args, "quiet", False) or not (tty or self.progress is not None):
             return self
         import threading
+        import time
+
+        t0 = time.monotonic()
+
+        def line():
+            if self.progress is None:
+                return f"{self.what}: {_clock(time.monotonic() - t0)}"
+            if self.total is None:
+                try:
+                    self.total = self.estimate() if self.estimate is not None else 0
+                except Exception:   # an estimate is a nicety: the run itself reports bad input
+                    self.total = 0
+            return progress_text(self.what, self.progress.snapshot(), self.total, time.monotonic() - t0)
 
         def start():
+            if not tty:
+                while not self.done.wait(self.LOG_EVERY):
+                    print(line(), file=sys.stderr, flush=True)
+                return
             from tqdm import tqdm
-            self.bar = tqdm(desc=self.what, bar_format="{desc}: {elapsed}", file=sys.stderr, leave=False)
-            while not self.done.wait(0.5):
-                self.bar.refresh()
+            self.bar = tqdm(bar_format="{desc}", file=sys.stderr, leave=False)
+            while True:
+                self.bar.set_description_str(line())
+                if self.done.wait(0.5):
+                    break
 
+        self.total = None
         self.done = threading.Event()
         self.timer = threading.Timer(1.0, start)
         self.timer.daemon = True
@@ -283,6 +318,26 @@ class _Ticker:
             if self.bar is not None:
                 self.bar.close()
         return False
+
+
+def _clock(seconds):
+    s = int(seconds)
+    return f"{s // 3600}:{s // 60 % 60:02d}:{s % 60:02d}"
+
+
+def progress_text(what, snap, total, elapsed):
+    """One progress line: elapsed time, steps ended, transactions issued against the upper
+    estimate ``total``, and the time left at the rate so far (an upper estimate too; none
+    before the first transaction or once the estimate is passed)."""
+    if not snap.steps:
+        return f"{what}: {_clock(elapsed)}, setting up"
+    text = f"{what}: {_clock(elapsed)}, step {snap.steps_done:,} of {snap.steps:,} done, "
+    text += f"{snap.transactions:,} transactions"
+    if total > 0:
+        text += f" of at most about {total:,}"
+        if 0 < snap.transactions < total:
+            text += f", at most about {_clock(elapsed * (total - snap.transactions) / snap.transactions)} left"
+    return text
 
 
 # --------------------------------------------------------------------------

@@ -28,10 +28,11 @@ from .writeback import writeback_process
 PLANE_KEYS = ("bytes_Q", "bytes_K", "bytes_KL", "bytes_V")
 
 
-def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True):
+def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True, progress=None):
     """Replay ``trace`` on ``arch``; return the run's :class:`~sim.engine.stats.RunStats`.
 
     :func:`sim.result.build_result` turns them into the result document.
+    ``progress``: a :class:`~sim.engine.progress.RunProgress` to read while it runs.
     """
     # A run allocates hundreds of thousands of small objects that live until it
     # ends; the cyclic collector would walk them over and over (a third of the
@@ -39,7 +40,7 @@ def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True):
     was_enabled = gc.isenabled()
     gc.disable()
     try:
-        return _run(arch, trace, grain_rows, seed, keep_intervals)
+        return _run(arch, trace, grain_rows, seed, keep_intervals, progress)
     finally:
         if was_enabled:
             gc.enable()
@@ -67,7 +68,7 @@ def _address_maps(arch, trace):
     return {d: AddressMap(arch, layers, heads, max_rows, d) for d in dims}
 
 
-def _run(arch, trace, grain_rows, seed, keep_intervals):
+def _run(arch, trace, grain_rows, seed, keep_intervals, progress):
     grain_rows, seed = _engine_options(arch, grain_rows, seed)
     amaps = _address_maps(arch, trace)
     env = simpy.Environment()
@@ -89,6 +90,8 @@ def _run(arch, trace, grain_rows, seed, keep_intervals):
     fetch = FetchUnit(env, prog.fetch, pool, router, arch, states["fetch"], fetch_stats)
     procs = _start_units(env, arch, prog, fetch, states)
     writer = env.process(writeback_process(env, prog.writes, pool, router, arch.dram.burst_bytes))
+    if progress is not None:
+        progress.attach(env, prog.step_times, fetch_stats)
     env.run()
     step_times = prog.step_times
     if any(t is None for t in step_times) or any(p.is_alive for p in procs.values()) or writer.is_alive:
