@@ -45,6 +45,8 @@ def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, prog
     from .engine.datapath import run_datapath
     from .result import build_result
 
+    if progress is not None and not callable(getattr(progress, "attach", None)):
+        raise TypeError(f"progress: expected a sim.engine.progress.RunProgress or None, got {progress!r}")
     arch = load_arch(arch)
     if not isinstance(trace, Trace):
         trace = load_trace(trace)

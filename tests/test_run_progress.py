@@ -7,6 +7,8 @@ import re
 import threading
 import time
 
+import pytest
+
 import sim
 from sim.cli import _Ticker, main, progress_text
 from sim.engine.progress import RunProgress, Snapshot
@@ -50,6 +52,11 @@ def test_progress_does_not_change_the_result():
     for doc in (with_progress, without):
         doc["simulator"].pop("build", None)
     assert with_progress == without
+
+
+def test_progress_that_is_not_one_is_refused_before_the_run():
+    with pytest.raises(TypeError, match=r"progress: expected a sim.engine.progress.RunProgress or None, got 3"):
+        sim.simulate(MID, synth_trace(prompt_tokens=64, decode_steps=1, layers=1, heads=2), progress=3)
 
 
 def test_progress_text():
