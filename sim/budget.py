@@ -113,10 +113,10 @@ def check_run(arch, trace, grain_rows=None, timeline=False) -> None:
                           f"a timeline of this run would hold about {total:,} transactions' intervals, "
                           f"about {need / 2**30:,.1f} GiB of memory, more than half of this machine's "
                           f"{mem / 2**30:,.0f} GiB: run it without a timeline (no --timeline output; "
-                          f"keep_intervals=False), or cut the trace")
+                          f"keep_intervals=False), or cut the trace (attnsim trace cut)")
     if mem and need > mem // 2:
         raise RunTooLarge(trace.source, "steps", len(trace.steps),
                           f"its largest step would issue about {largest:,} transactions, and its plan "
                           f"with the plans kept for reuse would take about {need / 2**30:,.1f} GiB of memory, "
                           f"more than half of this machine's {mem / 2**30:,.0f} GiB: raise engine.grain_rows "
-                          f"or buffers.query_kib, or cut the trace")
+                          f"or buffers.query_kib, or cut the trace (attnsim trace cut)")

@@ -455,11 +455,12 @@ def _knob_entry(arch, path):
 
 
 def _add_trace(sub):
-    p = sub.add_parser("trace", help="attention traces: synthesize, capture, inspect, check")
-    s = p.add_subparsers(dest="trace_cmd", required=True, metavar="{info,check,synth,capture}")
+    p = sub.add_parser("trace", help="attention traces: synthesize, capture, inspect, check, cut")
+    s = p.add_subparsers(dest="trace_cmd", required=True, metavar="{info,check,synth,capture,cut}")
     _add_trace_inspect(s)
     _add_trace_synth(s)
     _add_trace_capture(s)
+    _add_trace_cut(s)
 
 
 def _add_trace_inspect(s):
@@ -491,6 +492,12 @@ def _cmd_trace_info(args):
         version += f", read as version {sm['version']}"
     _say(args, f"{args.trace}: {sm['name']} ({version})")
     _say(args, f"  made by    {prov.get('method')}" + (f" ({made})" if made else ""))
+    cut = prov.get("cut")
+    if isinstance(cut, dict):
+        tokens = cut.get("decode_tokens")
+        _say(args, f"  cut from   {cut.get('from')}: layers {cut.get('layers')}, requests {cut.get('requests')}, "
+                   + ("all decode tokens" if tokens is None else f"the first {tokens} decode tokens")
+                   + ("" if cut.get("prefill") else ", no prefill"))
     _say(args, f"  steps      {sm['steps']} ({sm['prefill_steps']} prefill, {sm['decode_steps']} decode) "
                f"over {sm['layers']} layers; {sm['head_steps']} head-steps")
     _say(args, f"  head_dim   {', '.join(map(str, sm['head_dims']))}; "
@@ -622,6 +629,51 @@ def _cmd_trace_synth(args):
     _say(args, f"{args.out}: {sm['steps']} steps ({sm['prefill_steps']} prefill, {sm['decode_steps']} decode, "
                f"{sm['requests']} request{'s' if sm['requests'] != 1 else ''}), "
                f"{sm['macs_qk'] + sm['macs_pv']:,} MACs, kept keys {sm['kept_key_fraction']:.1%}")
+    return 0
+
+
+def _add_trace_cut(s):
+    """`trace cut`."""
+    c = s.add_parser(
+        "cut", help="write some layers, requests or decode tokens of a trace as a trace of its own",
+        description="Write a part of a trace as a trace of its own: the steps of the layers and requests "
+                    "given (ids such as 0,2,5-7; default all), each request's first --tokens decode tokens "
+                    "(default all), and its prefill steps unless --no-prefill. Layers and requests are "
+                    "numbered again from 0; the header records the cut. For an answer from a trace too "
+                    "long to simulate whole: layers run one after another, so a run of some of them shows "
+                    "about that share of the whole.")
+    c.add_argument("trace", type=_PATH, help="attention trace (.npz or .yaml)")
+    c.add_argument("--out", required=True, metavar="T", type=_PATH, help="output trace (.npz or .yaml)")
+    c.add_argument("--layers", metavar="IDS", type=_text("layer ids"), help="layers to keep, e.g. 0 or 0,8,16-17")
+    c.add_argument("--requests", metavar="IDS", type=_text("request ids"), help="requests to keep")
+    c.add_argument("--tokens", type=_int_in(0, 1 << 20), metavar="N",
+                   help="decode tokens to keep per request (its first N)")
+    c.add_argument("--no-prefill", action="store_true", help="leave the prefill steps out")
+    _common(c)
+    c.set_defaults(handler=_cmd_trace_cut)
+
+
+def _cmd_trace_cut(args):
+    from .outputs import OutputPlan
+    from .trace.cut import cut_trace, parse_ids
+    from .trace.files import load_trace, save_trace
+
+    if not args.out.lower().endswith((".npz", ".yaml", ".yml")):
+        raise InputError("trace cut", "out", args.out, "expected a .npz or .yaml file name")
+    plan = OutputPlan(force=args.force)
+    plan.input("trace", args.trace)
+    plan.output("--out", args.out)
+    layers = None if args.layers is None else parse_ids(args.layers, "--layers")
+    requests = None if args.requests is None else parse_ids(args.requests, "--requests")
+    trace = load_trace(args.trace)
+    part = cut_trace(trace, layers=layers, requests=requests, decode_tokens=args.tokens,
+                     prefill=not args.no_prefill, source=f"trace cut {args.trace}")
+    _save_trace(save_trace, part, args.out)
+    sm, whole = part.summary(), trace.summary()
+    _say(args, f"{args.out}: {sm['steps']} of {whole['steps']} steps ({sm['prefill_steps']} prefill, "
+               f"{sm['decode_steps']} decode), {sm['layers']} of {whole['layers']} layers, "
+               f"{sm['requests']} of {whole['requests']} request{'s' if whole['requests'] != 1 else ''}, "
+               f"{sm['macs_qk'] + sm['macs_pv']:,} of {whole['macs_qk'] + whole['macs_pv']:,} MACs")
     return 0
 
 
