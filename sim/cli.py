@@ -606,14 +606,19 @@ def _cmd_trace_synth(args):
         from .trace.shapes import load_shape
         shape = load_shape(args.shape)
     layers = args.layers or (shape.layers if shape else 12)
-    # the key positions a dense trace of this shape lists, estimated before anything is allocated
+    heads = args.heads or (shape.heads if shape else 12)
+    # the key positions the trace will hold, estimated before anything is allocated: one list
+    # per request and layer, which every decode step of it views (so not steps x context); with
+    # value pruning a list per decode step and head as well
     tokens = args.prompt + args.decode
-    # (one kept-key list per step, shared by its heads: synth keeps no per-KV-head keys)
-    rows = layers * args.batch * ((0 if args.no_prefill else args.prompt) + args.decode * tokens)
+    rows = layers * args.batch * tokens
+    if args.value_keep < 1:
+        rows += math.ceil(layers * args.batch * heads * args.decode * tokens * args.value_keep)
     if rows > MAX_SYNTH_KEY_ROWS:
+        pruned = f", value pruning keeping {args.value_keep:g}" if args.value_keep < 1 else ""
         raise InputError("trace synth", "prompt", args.prompt,
                          f"a trace of {layers} layers x {args.batch} requests with "
-                         f"{args.prompt} prompt and {args.decode} decode tokens lists about {rows:,} key "
+                         f"{args.prompt} prompt and {args.decode} decode tokens{pruned} lists about {rows:,} key "
                          f"positions (~{rows * 8 / 2**30:.1f} GiB); expected at most {MAX_SYNTH_KEY_ROWS:,}")
     trace = synth_trace(prompt_tokens=args.prompt, decode_steps=args.decode, layers=args.layers,
                         heads=args.heads, head_dim=args.head_dim, kv_heads=args.kv_heads,

@@ -195,6 +195,20 @@ def test_bad_synth_arguments(tmp_path, capsys, argv, field):
     assert not out_path.exists()
 
 
+def test_synth_size_check_counts_the_rows_the_trace_holds(tmp_path, capsys):
+    # decode steps view one kept-key list per request and layer (sim.trace.synth): the README's
+    # 32k-token batch of four lists about 4 x 32 x 32,832 positions and is made; value pruning
+    # keeps a list per decode step and head, 32 x 32 x 64 x 32,832 x 0.5 here: refused up front
+    out_path = tmp_path / "t.npz"
+    code, _, err = run_cli(capsys, "trace", "synth", "--out", str(out_path), "--shape", "dec-8b",
+                           "--prompt", "32768", "--decode", "64", "--value-keep", "0.5")
+    assert code == 2 and "value pruning keeping 0.5 lists about 1,076,889,600 key positions" in one_error_line(err)
+    assert not out_path.exists()
+    code, out, _ = run_cli(capsys, "trace", "synth", "--out", str(out_path), "--shape", "dec-8b",
+                           "--prompt", "32768", "--decode", "64", "--causal", "--batch", "4")
+    assert code == 0 and "8320 steps" in out
+
+
 def test_synth_refuses_an_unknown_extension(tmp_path, capsys):
     code, _, err = run_cli(capsys, "trace", "synth", "--out", str(tmp_path / "t.csv"))
     assert code == 2
