@@ -7,7 +7,10 @@ shape `dec-8b`: 32 layers, 32 query heads, 8 KV heads, head width 128):
 
 * ``prompt32k``: causal prefill of a 32768-token prompt + 64 decode tokens;
 * ``decode128k``: 16 decode tokens on a 131072-token context (no prefill steps);
-* ``batch32``: a batch of 32 requests, 4096-token prompts (spread 0.5), 16 tokens.
+* ``batch32``: a batch of 32 requests, 4096-token prompts (spread 0.5), 16 tokens;
+* ``prompt32k-L0`` (``--engine --case prompt32k-L0`` only): the first of the 32 layers
+  of ``prompt32k`` (``sim.trace.cut``), on ``edge``, where the whole case is about
+  840 million transactions.
 
 With ``--engine`` each case is then simulated, each case x config in a fresh
 process that builds the trace and runs ``sim.simulate`` (``keep_intervals``
@@ -50,6 +53,9 @@ CASES = {
     "decode128k": dict(prompt_tokens=131072, decode_steps=16, shape="dec-8b", include_prefill=False),
     "batch32": dict(prompt_tokens=4096, decode_steps=16, shape="dec-8b", batch=32, causal=True),
 }
+# parts of a case (sim.trace.cut), simulated only: a run of one of a request's layers is about
+# that share of the whole (traces/README), for a config on which the whole takes too long
+CUT_CASES = {"prompt32k-L0": ("prompt32k", [0])}
 # one layer of the 8B-class shape, causal prefill only: the points of --slope
 SLOPE_CASES = {f"prompt{k}k-1L": dict(prompt_tokens=k * 1024, decode_steps=0, shape="dec-8b", layers=1,
                                        causal=True) for k in (8, 16, 32)}
@@ -81,7 +87,19 @@ def run_case(name):
                       "max_kv_rows": max(s.kv_rows for s in back.steps)}))
 
 
-ENGINE_ARCHS = {"prompt32k": ["edge", "mid", "server", "hbm2_stack"], "decode128k": ["mid"], "batch32": ["mid"]}
+ENGINE_ARCHS = {"prompt32k": ["edge", "mid", "server", "hbm2_stack"], "decode128k": ["mid"], "batch32": ["mid"],
+                "prompt32k-L0": ["edge"]}
+
+
+def engine_trace(name):
+    """The trace of case ``name`` (a part of one, for CUT_CASES)."""
+    from sim.trace.cut import cut_trace
+    from sim.trace.synth import synth_trace
+
+    if name in CUT_CASES:
+        base, layers = CUT_CASES[name]
+        return cut_trace(synth_trace(**CASES[base], seed=1), layers=layers)
+    return synth_trace(**(CASES.get(name) or SLOPE_CASES[name]), seed=1)
 
 
 def run_engine_case(name, arch_name, limit_gib, skip_budget=False):
@@ -97,7 +115,7 @@ def run_engine_case(name, arch_name, limit_gib, skip_budget=False):
     arch = sim.load_arch(config(arch_name))
     sim.simulate(arch, synth_trace(prompt_tokens=64, decode_steps=1, layers=1, heads=2))  # load the compiled loops
     t0 = time.perf_counter()
-    trace = synth_trace(**(CASES.get(name) or SLOPE_CASES[name]), seed=1)
+    trace = engine_trace(name)
     t1 = time.perf_counter()
     trace_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     if skip_budget:  # the engine itself, without sim.budget's estimate and refusal
@@ -174,7 +192,7 @@ def engine_table(names, archs, repeat, limit_gib, skip_budget):
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeat", type=int, default=3)
-    ap.add_argument("--case", choices=sorted(CASES), action="append")
+    ap.add_argument("--case", choices=sorted(CASES) + sorted(CUT_CASES), action="append")
     ap.add_argument("--engine", action="store_true", help="also simulate each case (see above)")
     ap.add_argument("--arch", action="append", help="bundled config for --engine (repeatable)")
     ap.add_argument("--skip-build", action="store_true", help="with --engine: skip the trace-building table")
@@ -197,7 +215,7 @@ def main():
         slope_table(args.arch, args.limit_gib)
         return
     if not (args.engine and args.skip_build):
-        build_table(args.case or list(CASES), args.repeat)
+        build_table([c for c in args.case or list(CASES) if c in CASES], args.repeat)
     if args.engine:
         engine_table(args.case or list(CASES), args.arch, args.repeat, args.limit_gib, args.skip_budget)
 
