@@ -15,6 +15,8 @@ the block sees; in prefill the block's visible keys are fetched and
 ``kept_v`` only bounds the products each row does.
 """
 
+from array import array
+
 import numpy as np
 
 from .tiling import BlockPlan, _bytes, _half, chunk_cap, even_pick, split
@@ -103,8 +105,10 @@ def plan_banded(arch, amap, step, layer, gp, idx, keys, blocks, cuts):
         bp = BlockPlan(b, q)
         bp.k_idx, bounds = _block_keys(amap, layer, gp, bp, keys, span, res_k, kc, arch, k_memo)
         scale = len(gp.heads) * step.head_dim
+        # per chunk, in typed arrays (8 bytes an entry, Python ints when read): a long causal
+        # step plans one entry per block and chunk, tens of millions on a small-buffer part
         per = [int(x) * scale for x in np.diff(seen_below(lo, hi, bounds))]
-        bp.qk_macs = per if bp.k_idx is None else [per[i] for i in bp.k_idx]
+        bp.qk_macs = array("q", per if bp.k_idx is None else [per[i] for i in bp.k_idx])
         bp.elements = len(gp.heads) * int((hi - lo).sum())
         _plan_lsb_rows(arch, amap, step, layer, gp, bp, keys, r0, lo, hi, flagged, klc, lsb_hull)
         vplan.plan_block(bp, lo, hi, span)
@@ -152,7 +156,7 @@ def _plan_lsb_rows(arch, amap, step, layer, gp, bp, keys, r0, lo, hi, flagged, k
     for h, first in starts.items():
         macs += np.diff(seen_below(lo[first:], hi[first:], bounds))
         bp.lsb_elements += int((hi[first:] - lo[first:]).sum())
-    bp.lsb_macs = [int(x) * d for x in macs]
+    bp.lsb_macs = array("q", [int(x) * d for x in macs])
 
 
 class _ValuePlan:
@@ -226,4 +230,4 @@ class _ValuePlan:
             if gp.select and int(use.max(initial=0)) < n_vis:
                 bp.pruned.append(h)
                 bp.value_comps += bp.rows * select_cost(n_vis, int(round(use.mean())) if len(use) else 0)
-        bp.pv_macs = [m * step.head_dim for m in _spread_total(total, weights)]
+        bp.pv_macs = array("q", [m * step.head_dim for m in _spread_total(total, weights)])

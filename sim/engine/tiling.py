@@ -48,6 +48,8 @@ bytes fetched against the compulsory bytes (every row once).
 """
 
 
+from array import array
+
 import numpy as np
 
 from ..errors import ConfigError
@@ -371,10 +373,11 @@ def plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts):
         bp.lsb = {h: rows[b] for h, rows in share.items() if rows[b]}
         if bp.lsb:
             _plan_lsb(arch, amap, layer, gp, bp, kept, klc)
-        bp.qk_macs = [bp.rows * c.rows * d * nq for c in k_chunks]
+        # per chunk, in typed arrays (8 bytes an entry): a long step plans one per block and chunk
+        bp.qk_macs = array("q", [bp.rows * c.rows * d * nq for c in k_chunks])
         lsb_src = gp.kl_chunks if gp.kl_resident else bp.lsb_chunks
-        bp.lsb_macs = [bp.lsb_rows * c.rows * d for c in lsb_src] if bp.lsb else []
-        bp.pv_macs = pv_macs(gp, v_chunks, bp.rows, d)
+        bp.lsb_macs = array("q", [bp.lsb_rows * c.rows * d for c in lsb_src] if bp.lsb else [])
+        bp.pv_macs = array("q", pv_macs(gp, v_chunks, bp.rows, d))
         bp.elements = bp.rows * nq * gp.n_kv
         bp.lsb_elements = bp.lsb_rows * gp.n_kv
         bp.pruned = pruned
