@@ -65,6 +65,14 @@ def test_cut_keeps_the_original_steps_with_layers_and_requests_numbered_again():
     assert whole.header["provenance"].get("cut") is None          # the original is untouched
 
 
+def test_ids_asked_in_any_order_keep_the_original_order():
+    whole = batch_trace()
+    a = cut_trace(whole, layers=[3, 1, 1], requests=[1, 0])
+    b = cut_trace(whole, layers=[1, 3])
+    assert a.digest() == b.digest()
+    assert a.header["provenance"]["cut"]["layers"] == "1,3"
+
+
 @pytest.mark.parametrize("ext", [".npz", ".yaml"])
 def test_a_cut_saves_and_loads_as_a_valid_trace(tmp_path, ext):
     part = cut_trace(batch_trace(), layers=[0, 2], prefill=False)

@@ -56,8 +56,10 @@ def _ranges(ids):
 
 
 def _check_ids(asked, have, field, source):
+    """The ids to keep, ascending (a part keeps the original order, however they were asked)."""
     if asked is None:
         return have
+    asked = sorted(set(int(x) for x in asked))
     missing = sorted(set(asked) - set(have))
     if missing:
         raise InputError(source, field, _ranges(missing), f"expected ids the trace has: {_ranges(have)}")
