@@ -598,8 +598,7 @@ def _cmd_trace_synth(args):
             raise InputError("trace synth", option, text, "expected at most one value per layer")
         return vals[0] if len(vals) == 1 else vals
 
-    if not args.out.lower().endswith((".npz", ".yaml", ".yml")):
-        raise InputError("trace synth", "out", args.out, "expected a .npz or .yaml file name")
+    _check_trace_out("trace synth", args.out)
     OutputPlan(force=args.force).output("--out", args.out)
     shape = None
     if args.shape is not None:
@@ -663,8 +662,7 @@ def _cmd_trace_cut(args):
     from .trace.cut import cut_trace, parse_ids
     from .trace.files import load_trace, save_trace
 
-    if not args.out.lower().endswith((".npz", ".yaml", ".yml")):
-        raise InputError("trace cut", "out", args.out, "expected a .npz or .yaml file name")
+    _check_trace_out("trace cut", args.out)
     plan = OutputPlan(force=args.force)
     plan.input("trace", args.trace)
     plan.output("--out", args.out)
@@ -680,6 +678,12 @@ def _cmd_trace_cut(args):
                f"{sm['requests']} of {whole['requests']} request{'s' if whole['requests'] != 1 else ''}, "
                f"{sm['macs_qk'] + sm['macs_pv']:,} of {whole['macs_qk'] + whole['macs_pv']:,} MACs")
     return 0
+
+
+def _check_trace_out(command, path):
+    """Refuse an output name the trace writer cannot pick a format for."""
+    if not path.lower().endswith((".npz", ".yaml", ".yml")):
+        raise InputError(command, "out", path, "expected a .npz or .yaml file name")
 
 
 def _save_trace(save, trace, path):
@@ -728,8 +732,7 @@ def _cmd_trace_capture(args):
     plan = OutputPlan(force=args.force)
     for opt in ("text", "policy", "weights", "tokenizer", "model_config", "model"):
         plan.input("--" + opt.replace("_", "-"), getattr(args, opt))
-    if not args.out.lower().endswith((".npz", ".yaml", ".yml")):
-        raise InputError("trace capture", "out", args.out, "expected a .npz or .yaml file name")
+    _check_trace_out("trace capture", args.out)
     plan.output("--out", args.out)
     load_policy(args.policy)  # a bad policy is refused before the model loads
     encoder = None
