@@ -175,3 +175,68 @@ def test_plans_kept_for_reuse_are_bounded_by_their_chunks(monkeypatch):
         for key in ("build", "wall", "wall_seconds"):
             doc.pop(key, None)
     assert small == whole
+
+
+@pytest.mark.parametrize("arch_name,kw", [
+    ("edge", dict(prompt_tokens=700, decode_steps=3, layers=2, heads=4, causal=True, token_keep=0.7,
+                  lsb_fraction=0.5)),
+    ("mid", dict(prompt_tokens=1500, decode_steps=2, shape="dec-1b", layers=1, causal=True, window=256,
+                 batch=2)),
+])
+def test_a_banded_step_planned_block_by_block_holds_a_few_blocks_and_gives_the_same_document(
+        arch_name, kw, monkeypatch):
+    """A consistency check, no outside source: a causal or windowed step whose blocks would
+    stream more than SHAPE_CACHE_CHUNKS chunks is planned block by block as it is made.
+    Forced here on every banded step (bound 0), and made 4 blocks at a time: the document is
+    the one of plans made whole, and the block plans alive at once stay a few (the blocks
+    made at a time, those awaiting p.V, and the one being planned), not the step's."""
+    import gc
+
+    from sim.engine import band as band_mod
+    from sim.engine import program as program_mod
+    from sim.engine.tiling import BlockPlan
+
+    arch = sim.load_arch(f"arch_configs/{arch_name}.yaml")
+    trace = synth_trace(**kw, seed=3)
+    monkeypatch.setattr(program_mod, "BLOCKS_PER_MAKE", 4)
+    whole = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+    planned, alive = [0], []
+    real = band_mod.BandPlanner.plan
+
+    def plan(self, b):
+        planned[0] += 1
+        if planned[0] % 8 == 0:
+            alive.append(sum(1 for o in gc.get_objects() if isinstance(o, BlockPlan)))
+        return real(self, b)
+
+    monkeypatch.setattr(band_mod.BandPlanner, "plan", plan)
+    monkeypatch.setattr(program_mod, "SHAPE_CACHE_CHUNKS", 0)
+    gc.collect()    # the plans of the run above
+    lazy = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+    assert planned[0] > 40
+    assert max(alive) <= 4 + arch.dot.lookahead + 2 < planned[0] // 4
+    for doc in (whole, lazy):
+        for key in ("build", "wall", "wall_seconds"):
+            doc.pop(key, None)
+    assert lazy == whole
+
+
+def test_the_up_front_check_lets_a_long_causal_step_through_as_it_is_planned_by_blocks(monkeypatch):
+    """A causal 32k-token prefill on edge is some 26 million transactions in one step of a
+    layer (arithmetic of the tiling rule: 16-row query blocks, each re-streaming the keys
+    it sees). Planned block by block, its plan does not grow with them, so on a machine
+    of 4 GiB it is not refused; a non-causal step of that size is still planned whole and
+    is refused, with one line that names the way out."""
+    from sim import budget
+    from sim.errors import InputError
+
+    monkeypatch.setattr(budget, "physical_memory", lambda: 4 * 2**30)
+    arch = sim.load_arch("arch_configs/edge.yaml")
+    causal = synth_trace(prompt_tokens=32768, decode_steps=0, shape="dec-8b", layers=1, causal=True, seed=1)
+    assert budget.transactions(arch, causal) * budget.PLAN_BYTES_PER_TXN > 4 * 2**30
+    budget.check_run(arch, causal)
+    plain = synth_trace(prompt_tokens=32768, decode_steps=0, shape="dec-8b", layers=1, seed=1)
+    with pytest.raises(InputError) as err:
+        budget.check_run(arch, plain)
+    msg = str(err.value)
+    assert "\n" not in msg and "planned whole" in msg and "attnsim trace cut" in msg

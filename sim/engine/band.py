@@ -77,86 +77,138 @@ def _spread_total(total, weights):
     return out
 
 
-def plan_banded(arch, amap, step, layer, gp, idx, keys, blocks, cuts):
-    """Plan one head group of a banded step: per block, the K chunks its rows see, the
-    LSB recompute of the step's last rows, the V rows, and the work of each operation."""
-    kc, vc, klc = cuts
-    ranges = []
-    r0 = 0
-    for q in blocks:
-        lo, hi = row_ranges(keys, q, step.causal, step.window)
-        ranges.append((r0, lo, hi, _span(lo, hi)))
-        r0 += len(q)
-    spans = [r[3] for r in ranges if r[3][1] > r[3][0]]
-    hull = (min(a for a, _b in spans), max(b for _a, b in spans)) if spans else (0, 0)
-    gp.n_kv = hull[1] - hull[0]
-    gp.k_bytes = _bytes(amap, layer, "K", gp.kv, keys[hull[0]:hull[1]])
-    lsb_on = arch.precision.k_lsb_bits > 0
-    flagged = {h: int(step.lsb_rows[j]) for h, j in zip(gp.heads, idx) if lsb_on and step.lsb_rows[j]}
-    gp.k_resident = (len(blocks) > 1 or bool(flagged)) and gp.k_bytes <= _half(arch, "K")
-    res_k = None
-    if gp.k_resident:
-        res_k = _cut(amap, layer, "K", gp.kv, keys[hull[0]:hull[1]], hull[0], kc, chunk_cap(arch, "K"))
-        gp.k_chunks = res_k[0]
-    vplan = _ValuePlan(arch, amap, step, layer, gp, idx, keys, ranges, vc)
-    lsb_hull = []
-    k_memo = {}          # first key -> the K chunks of streams from it, shared by blocks
-    for b, (q, (r0, lo, hi, span)) in enumerate(zip(blocks, ranges)):
-        bp = BlockPlan(b, q)
-        bp.k_idx, bounds = _block_keys(amap, layer, gp, bp, keys, span, res_k, kc, arch, k_memo)
+class BandPlanner:
+    """One head group of a banded step, its query blocks planned one at a time.
+
+    Made, it has set the group's residency, resident chunks and compulsory
+    bytes; :meth:`plan` gives block ``b``'s :class:`BlockPlan`, the same
+    whichever blocks were planned before. A long causal step on a small
+    buffer re-streams its keys for thousands of blocks: planned as the
+    engine reaches them, its plan in memory is a few blocks, not the step.
+    """
+
+    def __init__(self, arch, amap, step, layer, gp, idx, keys, blocks, cuts):
+        self.arch, self.amap, self.step, self.layer, self.gp = arch, amap, step, layer, gp
+        self.keys, self.blocks = keys, blocks
+        self.kc, vc, self.klc = cuts
+        self.ranges = []
+        r0 = 0
+        for q in blocks:
+            lo, hi = row_ranges(keys, q, step.causal, step.window)
+            self.ranges.append((r0, lo, hi, _span(lo, hi)))
+            r0 += len(q)
+        spans = [r[3] for r in self.ranges if r[3][1] > r[3][0]]
+        hull = (min(a for a, _b in spans), max(b for _a, b in spans)) if spans else (0, 0)
+        gp.n_kv = hull[1] - hull[0]
+        gp.k_bytes = _bytes(amap, layer, "K", gp.kv, keys[hull[0]:hull[1]])
+        lsb_on = arch.precision.k_lsb_bits > 0
+        self.flagged = {h: int(step.lsb_rows[j]) for h, j in zip(gp.heads, idx)
+                        if lsb_on and step.lsb_rows[j]}
+        gp.k_resident = (len(blocks) > 1 or bool(self.flagged)) and gp.k_bytes <= _half(arch, "K")
+        self.res_k = None
+        if gp.k_resident:
+            self.res_k = _cut(amap, layer, "K", gp.kv, keys[hull[0]:hull[1]], hull[0], self.kc,
+                              chunk_cap(arch, "K"))
+            gp.k_chunks = self.res_k[0]
+        self.vplan = _ValuePlan(arch, amap, step, layer, gp, idx, keys, self.ranges, vc)
+        self.k_memo = {}     # first key -> the K chunks of streams from it, shared by blocks
+        lsb_hull = [ab for ab in (self._lsb_span(b)[1] for b in range(len(blocks))) if ab]
+        if lsb_hull:
+            a, b = min(x for x, _y in lsb_hull), max(y for _x, y in lsb_hull)
+            gp.lsb_bytes = _bytes(amap, layer, "KL", gp.kv, keys[a:b])
+
+    def __len__(self):
+        return len(self.blocks)
+
+    def chunks_estimate(self):
+        """About how many chunks the group's blocks stream (their resident chunks aside)."""
+        n = 0
+        vc = self.vplan.vc
+        for b, (_r0, _lo, _hi, (a, e)) in enumerate(self.ranges):
+            if not self.gp.k_resident:
+                n += -(-(e - a) // self.kc)
+            if not self.gp.v_resident:
+                n += -(-len(self.vplan.sets[b]) // vc)
+        return n
+
+    def plan(self, b):
+        """Block ``b``'s chunks and the work of each of its operations."""
+        gp, step = self.gp, self.step
+        r0, lo, hi, span = self.ranges[b]
+        bp = BlockPlan(b, self.blocks[b])
+        bp.k_idx, bounds = self._block_keys(bp, span)
         scale = len(gp.heads) * step.head_dim
         # per chunk, in typed arrays (8 bytes an entry, Python ints when read): a long causal
         # step plans one entry per block and chunk, tens of millions on a small-buffer part
         per = [int(x) * scale for x in np.diff(seen_below(lo, hi, bounds))]
         bp.qk_macs = array("q", per if bp.k_idx is None else [per[i] for i in bp.k_idx])
         bp.elements = len(gp.heads) * int((hi - lo).sum())
-        _plan_lsb_rows(arch, amap, step, layer, gp, bp, keys, r0, lo, hi, flagged, klc, lsb_hull)
-        vplan.plan_block(bp, lo, hi, span)
-        gp.blocks.append(bp)
-    if lsb_hull:
-        a, b = min(x for x, _y in lsb_hull), max(y for _x, y in lsb_hull)
-        gp.lsb_bytes = _bytes(amap, layer, "KL", gp.kv, keys[a:b])
+        self._plan_lsb_rows(bp)
+        self.vplan.plan_block(bp, lo, hi, span)
+        return bp
 
+    def reads(self, b):
+        """``(K chunk indices, V chunk indices, recomputes)`` of block ``b`` among the group's
+        resident chunks (None for a plane that streams), without planning the block."""
+        span = self.ranges[b][3]
+        k_idx = _overlapping(self.res_k[1], *span) if self.gp.k_resident else None
+        v_idx = self.vplan.resident_idx(b) if self.gp.v_resident else None
+        return k_idx, v_idx, self._lsb_span(b)[1] is not None
 
-def _block_keys(amap, layer, gp, bp, keys, span, res_k, kc, arch, memo):
-    """The block's K chunks: the resident ones its span overlaps (returns their indices),
-    or its own cut of the keys its rows see. Returns ``(indices or None, bounds)``."""
-    a, b = span
-    if gp.k_resident:
-        bounds = res_k[1]
-        return _overlapping(bounds, a, b), bounds
-    bp.k_chunks, bounds = _cut(amap, layer, "K", gp.kv, keys[a:b], a, kc, chunk_cap(arch, "K"),
-                               memo.setdefault(a, {}))
-    return None, bounds
+    def forget_before(self, first_key):
+        """Drop the shared cuts of streams that begin before ``first_key`` (no block still
+        to plan begins there when blocks go in order of their query positions)."""
+        for memo in (self.k_memo, self.vplan.memo):
+            for a in [a for a in memo if a < first_key]:
+                del memo[a]
 
+    def _block_keys(self, bp, span):
+        """The block's K chunks: the resident ones its span overlaps (returns their indices),
+        or its own cut of the keys its rows see. Returns ``(indices or None, bounds)``."""
+        a, b = span
+        if self.gp.k_resident:
+            bounds = self.res_k[1]
+            return _overlapping(bounds, a, b), bounds
+        bp.k_chunks, bounds = _cut(self.amap, self.layer, "K", self.gp.kv, self.keys[a:b], a, self.kc,
+                                   chunk_cap(self.arch, "K"), self.k_memo.setdefault(a, {}))
+        return None, bounds
 
-def _plan_lsb_rows(arch, amap, step, layer, gp, bp, keys, r0, lo, hi, flagged, klc, lsb_hull):
-    """The recompute of the block's rows among the step's last flagged rows of each head."""
-    starts = {}
-    for h, m in flagged.items():
-        first = max(0, step.q_rows - m - r0)     # local index of the head's first flagged row
-        if first < bp.rows:
-            starts[h] = first
-            bp.lsb[h] = bp.rows - first
-    if not starts:
-        return
-    s0 = min(starts.values())
-    a, b = _span(lo[s0:], hi[s0:])
-    if b <= a:
-        bp.lsb = {}
-        return
-    lsb_hull.append((a, b))
-    pairs = split(amap, layer, ("KL", "K"), [(gp.kv, keys[a:b])], klc, chunk_cap(arch, "K") / 2)
-    bp.lsb_chunks = [c[0] for c in pairs]
-    if not gp.k_resident:
-        bp.lsb_msb_chunks = [c[1] for c in pairs]
-    bounds = a + np.concatenate([[0], np.cumsum([c.rows for c in bp.lsb_chunks])])
-    d = step.head_dim
-    macs = np.zeros(len(bp.lsb_chunks), dtype=np.int64)
-    for h, first in starts.items():
-        macs += np.diff(seen_below(lo[first:], hi[first:], bounds))
-        bp.lsb_elements += int((hi[first:] - lo[first:]).sum())
-    bp.lsb_macs = array("q", [int(x) * d for x in macs])
+    def _lsb_span(self, b):
+        """Block ``b``'s flagged rows: ``({head: first local row}, (first, end) key indices
+        they see)``; the span is None when the block recomputes nothing."""
+        r0, lo, hi, _span_ = self.ranges[b]
+        rows = len(self.blocks[b])
+        starts = {}
+        for h, m in self.flagged.items():
+            first = max(0, self.step.q_rows - m - r0)   # local index of the head's first flagged row
+            if first < rows:
+                starts[h] = first
+        if not starts:
+            return starts, None
+        s0 = min(starts.values())
+        a, e = _span(lo[s0:], hi[s0:])
+        return starts, ((a, e) if e > a else None)
+
+    def _plan_lsb_rows(self, bp):
+        """The recompute of the block's rows among the step's last flagged rows of each head."""
+        starts, ab = self._lsb_span(bp.block)
+        if ab is None:
+            return
+        _r0, lo, hi, _span_ = self.ranges[bp.block]
+        bp.lsb = {h: bp.rows - first for h, first in starts.items()}
+        a, b = ab
+        gp, amap, arch = self.gp, self.amap, self.arch
+        pairs = split(amap, self.layer, ("KL", "K"), [(gp.kv, self.keys[a:b])], self.klc,
+                      chunk_cap(arch, "K") / 2)
+        bp.lsb_chunks = [c[0] for c in pairs]
+        if not gp.k_resident:
+            bp.lsb_msb_chunks = [c[1] for c in pairs]
+        bounds = a + np.concatenate([[0], np.cumsum([c.rows for c in bp.lsb_chunks])])
+        macs = np.zeros(len(bp.lsb_chunks), dtype=np.int64)
+        for first in starts.values():
+            macs += np.diff(seen_below(lo[first:], hi[first:], bounds))
+            bp.lsb_elements += int((hi[first:] - lo[first:]).sum())
+        bp.lsb_macs = array("q", [int(x) * self.step.head_dim for x in macs])
 
 
 class _ValuePlan:
@@ -206,15 +258,23 @@ class _ValuePlan:
             return v_hi - v_lo
         return np.minimum(int(step.kept_v[j]), hi - lo)
 
+    def _resident_range(self, block):
+        """The index range of the resident V positions block ``block`` reads."""
+        mine = self.sets[block]
+        if not len(mine):
+            return 0, 0
+        return (int(np.searchsorted(self.gp.v_positions, mine[0])),
+                int(np.searchsorted(self.gp.v_positions, mine[-1], side="right")))
+
+    def resident_idx(self, block):
+        """Indices of the resident V chunks block ``block`` reads."""
+        return _overlapping(self.bounds, *self._resident_range(block))
+
     def plan_block(self, bp, lo, hi, span):
         gp, step = self.gp, self.step
         mine = self.sets[bp.block]
         if gp.v_resident:
-            if len(mine):
-                a = int(np.searchsorted(gp.v_positions, mine[0]))
-                b = int(np.searchsorted(gp.v_positions, mine[-1], side="right"))
-            else:
-                a = b = 0
+            a, b = self._resident_range(bp.block)
             bp.v_idx = _overlapping(self.bounds, a, b)
             weights = [min(b, self.bounds[i + 1]) - max(a, self.bounds[i]) for i in bp.v_idx]
         else:

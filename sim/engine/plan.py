@@ -6,15 +6,17 @@ the banded rule (:mod:`sim.engine.band`). Either way the result is one
 :class:`~sim.engine.tiling.GroupPlan` per K/V head, with its query blocks.
 """
 
-from .band import plan_banded
+from .band import BandPlanner
 from .tiling import GroupPlan, plan_plain_group, chunk_rows, query_block_rows
 
 
-def plan_step(arch, amap, step, grain_rows, layer=None):
+def plan_step(arch, amap, step, grain_rows, layer=None, lazy_over=None):
     """Cut one step into head-group plans (see the module docstring).
 
     ``layer``: the DRAM region the step's rows live in (default its layer; the
-    engine gives each request its own).
+    engine gives each request its own). ``lazy_over``: a banded step whose
+    blocks would stream more chunks than this is left to be planned block by
+    block (each group's ``band``, its ``blocks`` empty); None plans every step whole.
     """
     layer = step.layer if layer is None else layer
     d = step.head_dim
@@ -29,7 +31,7 @@ def plan_step(arch, amap, step, grain_rows, layer=None):
     cuts = (kc, vc, klc)
     heads = step.heads.tolist()
     keys_of = step.kv_keys()
-    groups = []
+    groups, bands = [], []
     for kv, idx in groups_of.items():
         idx = idx.tolist()
         gp = GroupPlan([heads[j] for j in idx], kv)
@@ -37,6 +39,12 @@ def plan_step(arch, amap, step, grain_rows, layer=None):
         if step.plain:
             plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts)
         else:
-            plan_banded(arch, amap, step, layer, gp, idx, keys_of[kv], blocks, cuts)
+            bands.append(BandPlanner(arch, amap, step, layer, gp, idx, keys_of[kv], blocks, cuts))
         groups.append(gp)
+    lazy = bands and lazy_over is not None and sum(b.chunks_estimate() for b in bands) > lazy_over
+    for band in bands:
+        if lazy:
+            band.gp.band = band
+        else:
+            band.gp.blocks = [band.plan(b) for b in range(len(band))]
     return groups

@@ -121,55 +121,116 @@ class _BlockShape:
         self.value_comps = bp.value_comps
 
 
+class _Totals:
+    """The work counts of a step's blocks, summed as they are planned."""
+
+    __slots__ = ("macs", "softmax_elements", "value_selections")
+
+    def __init__(self):
+        self.macs = {"qk": 0, "lsb": 0, "pv": 0}
+        self.softmax_elements = 0
+        self.value_selections = 0
+
+    def add(self, b):
+        self.macs["qk"] += sum(b.qk_macs)
+        self.macs["lsb"] += sum(b.lsb_macs)
+        self.macs["pv"] += sum(b.pv_macs)
+        self.softmax_elements += b.bp.elements + b.bp.lsb_elements
+        self.value_selections += b.bp.rows * len(b.pruned)
+
+
+class _LazyBlocks:
+    """The blocks of a step planned block by block (groups with a ``band``), in order:
+    each is planned when the builder first asks for it and not kept, so a long
+    step holds the plans of the blocks in flight, not all of them."""
+
+    def __init__(self, plan, totals):
+        self.plan, self.totals = plan, totals
+        self.where = [(gi, b) for gi, gp in enumerate(plan) for b in range(len(gp.band))]
+        self.next = 0
+
+    def __len__(self):
+        return len(self.where)
+
+    def __getitem__(self, j):
+        if j != self.next:
+            raise IndexError(f"blocks are planned in order: asked for {j}, next is {self.next}")
+        self.next += 1
+        gi, b = self.where[j]
+        band = self.plan[gi].band
+        if b == 0 and gi:
+            self.plan[gi - 1].band.forget_before(float("inf"))
+        band.forget_before(band.ranges[b][3][0])
+        shape = _BlockShape(gi, self.plan[gi], band.plan(b))
+        self.totals.add(shape)
+        return shape
+
+    def reads(self):
+        """Per block: ``(group index, group, K indices, V indices, recomputes)``."""
+        for gi, b in self.where:
+            gp = self.plan[gi]
+            yield (gi, gp, *gp.band.reads(b))
+
+
 class _StepShape:
     """A step's plan and the numbers the program derives from it, without simpy objects.
 
     Steps that plan alike share one (in decode every layer of a token usually
-    does), so each step only makes its own transactions and operations.
+    does), so each step only makes its own transactions and operations. A step
+    whose blocks stream more than ``SHAPE_CACHE_CHUNKS`` chunks is planned block
+    by block as it is made (:class:`_LazyBlocks`) and not kept for reuse; its
+    work counts are complete once its last block is made.
     """
 
     def __init__(self, arch, amap, step, layer, grain_rows, q_room):
-        self.plan = plan = plan_step(arch, amap, step, grain_rows, layer)
+        self.plan = plan = plan_step(arch, amap, step, grain_rows, layer, lazy_over=SHAPE_CACHE_CHUNKS)
+        self.lazy = any(gp.band is not None for gp in plan)
+        q_blocks = [gp.band.blocks if gp.band is not None else [bp.q_positions for bp in gp.blocks]
+                    for gp in plan]
         compulsory = 0
-        for gp in plan:  # every row once: what an infinite buffer would fetch
+        for gp, qs in zip(plan, q_blocks):  # every row once: what an infinite buffer would fetch
             compulsory += gp.k_bytes + gp.v_bytes + gp.lsb_bytes + amap.burst * sum(
-                amap.burst_count(layer, "Q", h, bp.q_positions) for bp in gp.blocks for h in gp.heads)
+                amap.burst_count(layer, "Q", h, q) for q in qs for h in gp.heads)
         self.compulsory_bytes = compulsory
-        self.shared_q = self._shared_query(amap, step, layer, q_room)
-        self.blocks = [_BlockShape(gi, gp, bp) for gi, gp in enumerate(plan) for bp in gp.blocks]
-        self.macs = {"qk": sum(sum(b.qk_macs) for b in self.blocks),
-                     "lsb": sum(sum(b.lsb_macs) for b in self.blocks),
-                     "pv": sum(sum(b.pv_macs) for b in self.blocks)}
-        self.mac_total = sum(self.macs.values())
-        self.softmax_elements = sum(b.bp.elements + b.bp.lsb_elements for b in self.blocks)
-        self.value_selections = sum(b.bp.rows * len(b.pruned) for b in self.blocks)
-        self.last_read = self._last_reads() if len(self.blocks) > BLOCKS_PER_MAKE else None
-        self.chunks = sum(len(b.bp.k_chunks) + len(b.bp.v_chunks) + len(b.bp.lsb_chunks)
-                          + len(b.bp.lsb_msb_chunks) for b in self.blocks) + sum(
-            len(gp.k_chunks) + len(gp.v_chunks) + len(gp.kl_chunks) + len(gp.kl_msb_chunks) for gp in plan)
+        self.shared_q = self._shared_query(amap, step, layer, q_room, q_blocks)
+        self.totals = _Totals()
+        if self.lazy:
+            self.blocks = _LazyBlocks(plan, self.totals)
+            reads = self.blocks.reads()
+            self.chunks = None      # not counted, never cached
+        else:
+            self.blocks = [_BlockShape(gi, gp, bp) for gi, gp in enumerate(plan) for bp in gp.blocks]
+            for b in self.blocks:
+                self.totals.add(b)
+            reads = ((b.gi, b.gp, b.bp.k_idx, b.bp.v_idx, bool(b.bp.lsb)) for b in self.blocks)
+            self.chunks = sum(len(b.bp.k_chunks) + len(b.bp.v_chunks) + len(b.bp.lsb_chunks)
+                              + len(b.bp.lsb_msb_chunks) for b in self.blocks) + sum(
+                len(gp.k_chunks) + len(gp.v_chunks) + len(gp.kl_chunks) + len(gp.kl_msb_chunks) for gp in plan)
+        self.last_read = self._last_reads(reads) if len(self.blocks) > BLOCKS_PER_MAKE else None
 
-    def _last_reads(self):
+    @staticmethod
+    def _last_reads(reads):
         """(plane, group, chunk) -> the last block (index in ``blocks``) that reads that
         resident chunk; ("KL", group) for the LSB plane, which every LSB block reads whole."""
         last = {}
-        for j, b in enumerate(self.blocks):
-            gp, bp = b.gp, b.bp
+        for j, (gi, gp, k_idx, v_idx, recomputes) in enumerate(reads):
             if gp.k_resident:
-                for i in bp.k_idx:
-                    last["K", b.gi, i] = j
-            if gp.kl_resident and bp.lsb:
-                last["KL", b.gi] = j
+                for i in k_idx:
+                    last["K", gi, i] = j
+            if gp.kl_resident and recomputes:
+                last["KL", gi] = j
             if gp.v_resident:
-                for i in bp.v_idx:
-                    last["V", b.gi, i] = j
+                for i in v_idx:
+                    last["V", gi, i] = j
         return last
 
-    def _shared_query(self, amap, step, layer, q_room):
+    @staticmethod
+    def _shared_query(amap, step, layer, q_room, q_blocks):
         """One query block per group: the step's whole query vector is one transaction
         (when it fits half the query buffer); else None."""
-        if not all(len(gp.blocks) == 1 for gp in self.plan):
+        if not all(len(qs) == 1 for qs in q_blocks):
             return None
-        q_rows = self.plan[0].blocks[0].q_positions
+        q_rows = q_blocks[0][0]
         heads = step.heads.tolist()
         if amap.burst * sum(amap.burst_count(layer, "Q", h, q_rows) for h in heads) > q_room:
             return None
@@ -272,7 +333,7 @@ class ProgramBuilder:
         if shape is None:
             q_room = self.buffers["query"].capacity / 2
             shape = _StepShape(self.arch, amap, step, layer, self.grain_rows, q_room)
-            if shape.chunks <= SHAPE_CACHE_CHUNKS:
+            if shape.chunks is not None and shape.chunks <= SHAPE_CACHE_CHUNKS:
                 # a long decode plans a new shape per token; oldest out first
                 while self.shapes and (len(self.shapes) >= SHAPE_CACHE
                                        or self.cached_chunks + shape.chunks > SHAPE_CACHE_CHUNKS):
@@ -322,14 +383,14 @@ class ProgramBuilder:
 
     def _count(self, st):
         prog, shape, d = self.prog, st.shape, st.step.head_dim
-        c = prog.counts
-        c["macs_qk"] += shape.macs["qk"]
-        c["macs_lsb"] += shape.macs["lsb"]
-        c["macs_pv"] += shape.macs["pv"]
-        c["softmax_elements"] += shape.softmax_elements
-        c["value_selections"] += shape.value_selections
+        c, tot = prog.counts, shape.totals
+        c["macs_qk"] += tot.macs["qk"]
+        c["macs_lsb"] += tot.macs["lsb"]
+        c["macs_pv"] += tot.macs["pv"]
+        c["softmax_elements"] += tot.softmax_elements
+        c["value_selections"] += tot.value_selections
         prog.compulsory_bytes += shape.compulsory_bytes
-        prog.macs_by_dim[d] = prog.macs_by_dim.get(d, 0) + shape.mac_total
+        prog.macs_by_dim[d] = prog.macs_by_dim.get(d, 0) + sum(tot.macs.values())
 
     # ------------------------------------------------------------- fetches
     def _fetch(self, st, kind, segments, rows, waits, head, block, skip=0):

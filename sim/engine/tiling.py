@@ -119,7 +119,7 @@ class GroupPlan:
 
     __slots__ = ("heads", "kv", "n_kv", "v_positions", "v_work", "select", "k_resident", "v_resident",
                  "k_chunks", "v_chunks", "blocks", "k_bytes", "v_bytes", "lsb_bytes", "kl_resident",
-                 "kl_chunks", "kl_msb_chunks")
+                 "kl_chunks", "kl_msb_chunks", "band")
 
     def __init__(self, heads, kv):
         self.heads = heads        # query head ids
@@ -135,6 +135,7 @@ class GroupPlan:
         self.kl_resident = False  # LSB plane fetched once and shared by the group's blocks
         self.kl_chunks = []       # resident LSB chunks
         self.kl_msb_chunks = []   # the MSB chunks they pair with (fetched per block unless K is resident)
+        self.band = None          # a banded group planned block by block: blocks stays empty
 
     def n_v(self, head):
         """V rows one query row of ``head`` multiplies."""
