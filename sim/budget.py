@@ -7,12 +7,13 @@ would need more memory than the machine has. A run's logs do not grow with its
 transactions (the per-transaction logs are summed or written out as the run
 goes, see :mod:`sim.engine.spill`); what grows is the plan of a step, made
 whole before the step's first transaction (about ``PLAN_BYTES_PER_TXN`` per
-transaction of that step, measured) unless it is a banded step (causal,
-windowed) of more than ``SHAPE_CACHE_CHUNKS`` chunks, planned block by block
-as the run reaches it; and the plans kept for reuse (at most
-``SHAPE_CACHE_CHUNKS`` chunks). The transaction count is an upper estimate
-from the tiling rule's own formulas (query blocks x chunks per K/V group, K, V
-and LSB planes; the causal triangle, the window), not a run.
+transaction of that step, measured) up to ``SHAPE_CACHE_CHUNKS`` chunks (a
+banded step -- causal, windowed -- of more is planned block by block as the
+run reaches it, and the blocks of any other step read one list of chunks),
+and the plans kept for reuse (at most ``SHAPE_CACHE_CHUNKS`` chunks). The
+transaction count is an upper estimate from the tiling rule's own formulas
+(query blocks x chunks per K/V group, K, V and LSB planes; the causal
+triangle, the window), not a run.
 """
 
 from __future__ import annotations
@@ -107,8 +108,9 @@ def check_run(arch, trace, grain_rows=None, timeline=False) -> None:
 
     per_step = step_transactions(arch, trace, grain_rows)
     total = sum(per_step)
-    # a banded step (causal, windowed) of more chunks than that is planned block by block
-    planned = max(n if s.plain else min(n, SHAPE_CACHE_CHUNKS) for s, n in zip(trace.steps, per_step))
+    # a banded step (causal, windowed) of more chunks than that is planned block by block, and
+    # the blocks of any other step share its chunk lists: no plan holds one entry per re-stream
+    planned = min(max(per_step), SHAPE_CACHE_CHUNKS)
     need = FIXED_BYTES + PLAN_BYTES_PER_TXN * (planned + min(total, SHAPE_CACHE_CHUNKS))
     mem = physical_memory()
     if mem and timeline and need + TIMELINE_BYTES_PER_TXN * total > mem // 2:
@@ -120,7 +122,7 @@ def check_run(arch, trace, grain_rows=None, timeline=False) -> None:
                           f"keep_intervals=False), or cut the trace (attnsim trace cut)")
     if mem and need > mem // 2:
         raise RunTooLarge(trace.source, "steps", len(trace.steps),
-                          f"its largest step planned whole would issue about {planned:,} transactions, and its plan "
+                          f"its largest step would issue about {max(per_step):,} transactions, and its plan "
                           f"with the plans kept for reuse would take about {need / 2**30:,.1f} GiB of memory, "
                           f"more than half of this machine's {mem / 2**30:,.0f} GiB: raise engine.grain_rows "
                           f"or buffers.query_kib, or cut the trace (attnsim trace cut)")

@@ -221,22 +221,49 @@ def test_a_banded_step_planned_block_by_block_holds_a_few_blocks_and_gives_the_s
     assert lazy == whole
 
 
-def test_the_up_front_check_lets_a_long_causal_step_through_as_it_is_planned_by_blocks(monkeypatch):
+def test_the_up_front_check_lets_long_steps_through_as_their_plans_do_not_hold_re_streams(monkeypatch):
     """A causal 32k-token prefill on edge is some 26 million transactions in one step of a
     layer (arithmetic of the tiling rule: 16-row query blocks, each re-streaming the keys
-    it sees). Planned block by block, its plan does not grow with them, so on a machine
-    of 4 GiB it is not refused; a non-causal step of that size is still planned whole and
-    is refused, with one line that names the way out."""
+    it sees), and a non-causal one more. Planned block by block (causal), or with every
+    block reading one list of chunks (non-causal), their plans do not grow with the
+    re-streams: on a machine of 4 GiB neither is refused. On one of 1 GiB what the run
+    needs anyway is refused, in one line that names the way out."""
     from sim import budget
     from sim.errors import InputError
 
     monkeypatch.setattr(budget, "physical_memory", lambda: 4 * 2**30)
     arch = sim.load_arch("arch_configs/edge.yaml")
-    causal = synth_trace(prompt_tokens=32768, decode_steps=0, shape="dec-8b", layers=1, causal=True, seed=1)
-    assert budget.transactions(arch, causal) * budget.PLAN_BYTES_PER_TXN > 4 * 2**30
-    budget.check_run(arch, causal)
-    plain = synth_trace(prompt_tokens=32768, decode_steps=0, shape="dec-8b", layers=1, seed=1)
+    for causal in (True, False):
+        trace = synth_trace(prompt_tokens=32768, decode_steps=0, shape="dec-8b", layers=1, causal=causal, seed=1)
+        assert budget.transactions(arch, trace) > 20_000_000
+        budget.check_run(arch, trace)
+    monkeypatch.setattr(budget, "physical_memory", lambda: 2**30)
     with pytest.raises(InputError) as err:
-        budget.check_run(arch, plain)
+        budget.check_run(arch, trace)
     msg = str(err.value)
-    assert "\n" not in msg and "planned whole" in msg and "attnsim trace cut" in msg
+    assert "\n" not in msg and "1 GiB" in msg and "attnsim trace cut" in msg
+
+
+def test_a_non_causal_plan_grows_with_blocks_and_chunks_not_their_product():
+    """Measured with tracemalloc (Python's own allocation tracer): doubling a non-causal
+    prefill doubles its query blocks and its key chunks, so the re-streams (blocks x
+    chunks) grow four times; the plan, whose blocks share their chunk lists and per-chunk
+    MACs, grows about twice."""
+    import tracemalloc
+
+    from sim.engine.addrmap import AddressMap
+    from sim.engine.plan import plan_step
+
+    arch = sim.load_arch("arch_configs/edge.yaml")
+    held = []
+    for n in (2048, 4096):
+        step = synth_trace(prompt_tokens=n, decode_steps=0, shape="dec-8b", layers=1, seed=1).steps[0]
+        amap = AddressMap(arch, 1, 32, step.kv_rows, step.head_dim)
+        tracemalloc.start()
+        plan = plan_step(arch, amap, step, arch.engine.grain_rows)
+        held.append(tracemalloc.get_traced_memory()[0])
+        tracemalloc.stop()
+        reads = sum(len(bp.k_chunks or bp.k_idx) for gp in plan for bp in gp.blocks)
+        del plan
+    assert reads > 100_000
+    assert held[1] < 2.3 * held[0]

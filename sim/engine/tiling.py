@@ -361,24 +361,37 @@ def plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts):
         gp.kl_msb_chunks = [c[1] for c in pairs]
     nq = len(gp.heads)
     pruned = gp.value_pruned_heads
+    k_idx, v_idx = list(range(len(k_chunks))), list(range(len(v_chunks)))
+    # every block reads the same chunks: blocks of as many rows share their per-chunk MACs
+    # (read only), so a long step's plan grows with its blocks and chunks, not their product
+    shared = {}
+
+    def per_chunk(key, make):
+        if key not in shared:
+            shared[key] = array("q", make())
+        return shared[key]
+
     for b, q in enumerate(blocks):
         bp = BlockPlan(b, q)
         if gp.k_resident:
-            bp.k_idx = list(range(len(k_chunks)))
+            bp.k_idx = k_idx
         else:
             bp.k_chunks = k_chunks
         if gp.v_resident:
-            bp.v_idx = list(range(len(v_chunks)))
+            bp.v_idx = v_idx
         else:
             bp.v_chunks = v_chunks
         bp.lsb = {h: rows[b] for h, rows in share.items() if rows[b]}
         if bp.lsb:
-            _plan_lsb(arch, amap, layer, gp, bp, kept, klc)
-        # per chunk, in typed arrays (8 bytes an entry): a long step plans one per block and chunk
-        bp.qk_macs = array("q", [bp.rows * c.rows * d * nq for c in k_chunks])
-        lsb_src = gp.kl_chunks if gp.kl_resident else bp.lsb_chunks
-        bp.lsb_macs = array("q", [bp.lsb_rows * c.rows * d for c in lsb_src] if bp.lsb else [])
-        bp.pv_macs = array("q", pv_macs(gp, v_chunks, bp.rows, d))
+            _plan_lsb(arch, amap, layer, gp, bp, kept, klc, shared)
+        bp.qk_macs = per_chunk(("qk", bp.rows), lambda: [bp.rows * c.rows * d * nq for c in k_chunks])
+        if bp.lsb:
+            lsb_src = gp.kl_chunks if gp.kl_resident else bp.lsb_chunks
+            bp.lsb_macs = per_chunk(("lsb", bp.lsb_rows, len(lsb_src)),
+                                    lambda: [bp.lsb_rows * c.rows * d for c in lsb_src])
+        else:
+            bp.lsb_macs = per_chunk(("lsb", 0, 0), list)
+        bp.pv_macs = per_chunk(("pv", bp.rows), lambda: pv_macs(gp, v_chunks, bp.rows, d))
         bp.elements = bp.rows * nq * gp.n_kv
         bp.lsb_elements = bp.lsb_rows * gp.n_kv
         bp.pruned = pruned
@@ -390,17 +403,20 @@ def plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts):
         gp.v_chunks = v_chunks
 
 
-def _plan_lsb(arch, amap, layer, gp, bp, kept, klc):
+def _plan_lsb(arch, amap, layer, gp, bp, kept, klc, shared):
     """The LSB recompute fetches of one block: its KL chunks (unless resident) and the MSB
-    chunks again when K is not resident (cut alike, so each KL chunk pairs with one)."""
+    chunks again when K is not resident (cut alike, so each KL chunk pairs with one).
+    Every block cuts the same rows: the lists are made once, in ``shared``."""
     if gp.kl_resident:
         if not gp.k_resident:
             bp.lsb_msb_chunks = gp.kl_msb_chunks
         return
-    pairs = split(amap, layer, ("KL", "K"), [(gp.kv, kept)], klc, chunk_cap(arch, "K") / 2)
-    bp.lsb_chunks = [c[0] for c in pairs]
+    if "lsb_cut" not in shared:
+        pairs = split(amap, layer, ("KL", "K"), [(gp.kv, kept)], klc, chunk_cap(arch, "K") / 2)
+        shared["lsb_cut"] = [c[0] for c in pairs], [c[1] for c in pairs]
+    bp.lsb_chunks, msb = shared["lsb_cut"]
     if not gp.k_resident:
-        bp.lsb_msb_chunks = [c[1] for c in pairs]
+        bp.lsb_msb_chunks = msb
 
 
 def spread(flagged, block_rows):
