@@ -1,8 +1,8 @@
 """A long step is made a few query blocks at a time, with the same result.
 
 Checks of our own engine (common practice, no source): the program builder
-makes a step with more than ``BLOCKS_PER_MAKE`` query blocks in parts as the
-units reach it, settling each transaction's last reader (the operation that
+makes a step of more than one query block in parts as the units reach it
+(``BLOCKS_PER_MAKE`` blocks, fewer past ``TXNS_PER_MAKE`` fetch transactions), settling each transaction's last reader (the operation that
 frees its buffer room) once no later block can read it. Made in parts, a run
 must give the very same document as made whole, and the operations waiting
 in the feeds must follow the parts, not the step.
@@ -52,12 +52,15 @@ CASES = [
 
 
 @pytest.mark.parametrize("name, over, kw", CASES, ids=[c[0] for c in CASES])
-@pytest.mark.parametrize("parts", [1, 3])
-def test_a_step_made_in_parts_gives_the_same_document(monkeypatch, name, over, kw, parts):
+@pytest.mark.parametrize("parts, txns", [(1, 4096), (3, 4096), (64, 5)])
+def test_a_step_made_in_parts_gives_the_same_document(monkeypatch, name, over, kw, parts, txns):
     arch = sim.load_arch(config(name)).with_overrides(over)
     trace = synth_trace(**kw)
+    monkeypatch.setattr(program, "BLOCKS_PER_MAKE", 10**9)
+    monkeypatch.setattr(program, "TXNS_PER_MAKE", 10**9)
     whole = document(arch, trace)
     monkeypatch.setattr(program, "BLOCKS_PER_MAKE", parts)
+    monkeypatch.setattr(program, "TXNS_PER_MAKE", txns)
     made = []
     real = program.ProgramBuilder._emit_blocks
     monkeypatch.setattr(program.ProgramBuilder, "_emit_blocks", lambda self, st: made.append(st.s) or real(self, st))
@@ -69,15 +72,17 @@ def test_operations_in_the_feeds_follow_the_parts(monkeypatch):
     """One causal 1,024-token prefill step on mid with small buffers (4-row query blocks, K and V
     streamed again for each): made whole, the fetch feed holds every transaction of the step
     at once; made 16 blocks at a time (of 256), a small share of them (causal: later parts
-    see more keys, so the last part is the largest)."""
+    see more keys, so the last part is the largest); made until 64 transactions are passed,
+    fewer again."""
     arch = sim.load_arch(config("mid")).with_overrides(
         {"buffers.query_kib": 4, "buffers.key_kib": 32, "buffers.value_kib": 32})
     trace = synth_trace(prompt_tokens=1024, decode_steps=0, layers=1, heads=4, kv_heads=1, head_dim=128,
                         causal=True, seed=1)
     peaks = {}
     real = program.ProgramBuilder._emit_blocks
-    for parts in (10**9, 16):
+    for parts, txns in ((10**9, 10**9), (16, 10**9), (10**9, 64)):
         monkeypatch.setattr(program, "BLOCKS_PER_MAKE", parts)
+        monkeypatch.setattr(program, "TXNS_PER_MAKE", txns)
         peak = [0]
 
         def emit(self, st, peak=peak):
@@ -86,8 +91,10 @@ def test_operations_in_the_feeds_follow_the_parts(monkeypatch):
 
         monkeypatch.setattr(program.ProgramBuilder, "_emit_blocks", emit)
         stats = run_datapath(arch, trace, keep_intervals=False)
-        peaks[parts] = (peak[0], stats.fetch_stats["transactions"])
-    whole, total = peaks[10**9]
-    part, total_parts = peaks[16]
-    assert total_parts == total and whole == total
+        peaks[parts, txns] = (peak[0], stats.fetch_stats["transactions"])
+    whole, total = peaks[10**9, 10**9]
+    part, total_parts = peaks[16, 10**9]
+    few, total_few = peaks[10**9, 64]
+    assert total_parts == total == total_few and whole == total
     assert part * 4 < total
+    assert 64 <= few < part / 2

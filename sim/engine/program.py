@@ -18,8 +18,9 @@ consistent order, with the events that connect them:
   tokens or heads; in decode without such a selection, cached K/V may stream
   in early, as far as the fetch unit's issue window lets them pass the query.
 
-A step of more than ``BLOCKS_PER_MAKE`` query blocks (a long prefill) is made
-in parts as the units reach it. A transaction's buffer room is freed by the
+A step of more than one query block is made in parts as the units reach it
+(``BLOCKS_PER_MAKE`` blocks, fewer once they pass ``TXNS_PER_MAKE`` fetch
+transactions). A transaction's buffer room is freed by the
 last operation that reads it; made in parts, that reader is settled once no
 block still to be made can read the transaction (a resident chunk's last
 reading block is known from the plan), so the program is the same either way.
@@ -69,6 +70,9 @@ SHAPE_CACHE_CHUNKS = 1 << 21
 # query blocks made at a time: a long prefill step (thousands of blocks) is made as the
 # units reach it, not all at once, so memory follows the blocks in flight
 BLOCKS_PER_MAKE = 64
+# and fewer once their fetch transactions pass this many: on a small buffer one block of a
+# long causal step re-streams thousands of chunks (about 1 KB each while in flight)
+TXNS_PER_MAKE = 4096
 
 
 def _next_of_request(steps):
@@ -206,7 +210,7 @@ class _StepShape:
             self.chunks = sum(len(b.bp.k_chunks) + len(b.bp.v_chunks) + len(b.bp.lsb_chunks)
                               + len(b.bp.lsb_msb_chunks) for b in self.blocks) + sum(
                 len(gp.k_chunks) + len(gp.v_chunks) + len(gp.kl_chunks) + len(gp.kl_msb_chunks) for gp in plan)
-        self.last_read = self._last_reads(reads) if len(self.blocks) > BLOCKS_PER_MAKE else None
+        self.last_read = self._last_reads(reads) if len(self.blocks) > 1 else None
 
     @staticmethod
     def _last_reads(reads):
@@ -276,6 +280,7 @@ class ProgramBuilder:
         self.shapes = {}
         self.cached_chunks = 0    # chunks planned in the cached shapes
         self.desc = 0   # fetch descriptor: one plane of one head group for one query block
+        self.fetches = 0   # fetch transactions made so far
         self.layers = max(s.layer for s in trace.steps) + 1
         self.next_of = _next_of_request(trace.steps)
         self.prev = {}  # request -> (its last step's end event, whether a selection ended it)
@@ -344,14 +349,20 @@ class ProgramBuilder:
 
     # ------------------------------------------------------------------ a step
     def _emit_blocks(self, st):
-        """Make the step's next blocks: all of them, or BLOCKS_PER_MAKE when it has more
-        (a transaction's last reader is then settled once no later block reads it)."""
+        """Make the step's next blocks: all of them, or up to BLOCKS_PER_MAKE and
+        TXNS_PER_MAKE fetch transactions when it has more than one (a transaction's last
+        reader is then settled once no later block reads it)."""
         lookahead = self.arch.dot.lookahead
         blocks = st.shape.blocks
-        first = st.next_block
-        end = len(blocks) if st.shape.last_read is None else min(len(blocks), first + BLOCKS_PER_MAKE)
-        for j in range(first, end):
-            b = blocks[j]
+        first = end = st.next_block
+        parts = st.shape.last_read is not None
+        made = self.fetches
+        while end < len(blocks):
+            if parts and end > first and (end - first >= BLOCKS_PER_MAKE
+                                          or self.fetches - made >= TXNS_PER_MAKE):
+                break
+            b = blocks[end]
+            end += 1
             q = self._query(st, b)
             kch = self._keys(st, b)
             sm1 = self._qk(st, b, q, kch)
@@ -405,6 +416,7 @@ class ProgramBuilder:
         if kind != "Q":   # the array starts on a chunk's first rows (streaming)
             t.pieces = rows
         self.prog.fetch.append(t)
+        self.fetches += 1
         return t
 
     def _chunks(self, st, kind, chunks, waits, b):
