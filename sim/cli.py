@@ -259,13 +259,15 @@ def _parse_sets(items):
 class _Ticker:
     """Progress on stderr for a call that may take long: on a terminal a line kept up to date
     from a second on; elsewhere (a log, a batch job) nothing unless ``progress`` is given,
-    and then a line every ``LOG_EVERY`` seconds.
+    and then a first line ``FIRST_LOG`` seconds after that (so a batch log tells soon how
+    long a long run may take) and one every ``LOG_EVERY`` seconds.
 
     ``progress`` (a :class:`sim.engine.progress.RunProgress`) and ``estimate`` (a callable
     returning an upper estimate of the run's fetch transactions) turn the elapsed time into
     steps and transactions done and an upper estimate of the time left."""
 
     LOG_EVERY = 300.0
+    FIRST_LOG = 10.0
 
     def __init__(self, args, what, progress=None, estimate=None):
         self.args, self.what = args, what
@@ -294,8 +296,10 @@ class _Ticker:
 
         def start():
             if not tty:
-                while not self.done.wait(self.LOG_EVERY):
+                wait = self.FIRST_LOG
+                while not self.done.wait(wait):
                     print(line(), file=sys.stderr, flush=True)
+                    wait = self.LOG_EVERY
                 return
             from tqdm import tqdm
             self.bar = tqdm(bar_format="{desc}", file=sys.stderr, leave=False)

@@ -74,6 +74,7 @@ def test_run_command_logs_progress_lines_when_not_on_a_terminal(tmp_path, capsys
     trace = tmp_path / "t.npz"
     save_trace(synth_trace(prompt_tokens=512, decode_steps=48, layers=8, heads=8, seed=1), str(trace))
     monkeypatch.setattr(_Ticker, "LOG_EVERY", 0.05)
+    monkeypatch.setattr(_Ticker, "FIRST_LOG", 0.05)
     assert main(["run", "--arch", MID, "--trace", str(trace)]) == 0
     err = capsys.readouterr().err
     lines = [ln for ln in err.splitlines() if ln.startswith("simulating: ")]
@@ -84,9 +85,22 @@ def test_run_command_logs_progress_lines_when_not_on_a_terminal(tmp_path, capsys
         assert pattern.match(ln), ln
 
 
+def test_a_log_gets_a_first_line_soon_then_one_per_period(tmp_path, capsys, monkeypatch):
+    """Not on a terminal: one line FIRST_LOG seconds in (here at once), the next only after
+    LOG_EVERY (here never, in a run of seconds)."""
+    trace = tmp_path / "t.npz"
+    save_trace(synth_trace(prompt_tokens=512, decode_steps=48, layers=8, heads=8, seed=1), str(trace))
+    monkeypatch.setattr(_Ticker, "FIRST_LOG", 0.0)
+    monkeypatch.setattr(_Ticker, "LOG_EVERY", 10**6)
+    assert main(["run", "--arch", MID, "--trace", str(trace)]) == 0
+    lines = [ln for ln in capsys.readouterr().err.splitlines() if ln.startswith("simulating: ")]
+    assert len(lines) == 1
+
+
 def test_quiet_run_prints_no_progress(tmp_path, capsys, monkeypatch):
     trace = tmp_path / "t.npz"
     save_trace(synth_trace(prompt_tokens=512, decode_steps=48, layers=8, heads=8, seed=1), str(trace))
     monkeypatch.setattr(_Ticker, "LOG_EVERY", 0.05)
+    monkeypatch.setattr(_Ticker, "FIRST_LOG", 0.05)
     assert main(["run", "--arch", MID, "--trace", str(trace), "--quiet"]) == 0
     assert "simulating" not in capsys.readouterr().err
