@@ -92,3 +92,30 @@ def test_shared_plans_build_the_same_program(monkeypatch, pruning):
     assert shared.counts == alone.counts
     assert shared.compulsory_bytes == alone.compulsory_bytes
     assert shared.macs_by_dim == alone.macs_by_dim
+
+
+@pytest.mark.parametrize("layout", LAYOUTS)
+def test_heads_with_the_same_rows_share_one_cut(layout):
+    # the planner cuts a step's heads once when they keep the same rows (split_rows): the
+    # chunks it gives another head must be those split() cuts for that head on its own
+    from sim.engine.tiling import split, split_rows
+
+    arch = sim.load_arch(MID).with_overrides({"dram.layout": layout, "precision.k_msb_bits": 3,
+                                              "precision.k_lsb_bits": 3})
+    amap = AddressMap(arch, 3, 4, 3000, 64)
+    rng = np.random.default_rng(5)
+
+    def view(out):
+        return [[(c.plane, c.skip, c.rows, [(h, np.asarray(p).tolist()) for h, p in c.segments]) for c in cut]
+                for cut in out]
+
+    for _ in range(10):
+        rows = np.sort(rng.choice(3000, size=int(rng.integers(1, 3000)), replace=False))
+        max_rows, max_bytes = int(rng.integers(8, 600)), float(rng.integers(256, 20000))
+        same_cut = {}
+        for planes in (("K",), ("KL", "K")):
+            for head in range(4):
+                got = split_rows(amap, 2, planes, head, rows, max_rows, max_bytes, same_cut)
+                alone = split(amap, 2, planes, [(head, rows)], max_rows, max_bytes)
+                assert view(got) == view(alone)
+        assert len(same_cut) == 2    # one cut per plane set, shared by the four heads

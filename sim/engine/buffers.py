@@ -167,6 +167,8 @@ class Buffer:
     def _grant(self, nbytes, room=None):
         self.level += nbytes
         self.granted = room
+        if self.level <= self.peak:   # held <= level: no new peak (occupied() can wait)
+            return
         held = self.occupied()
         if held > self.peak:   # a grant ahead counts rows not in yet: the buffer holds at most its size
             self.peak = min(held, self.capacity)

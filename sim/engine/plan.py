@@ -32,12 +32,13 @@ def plan_step(arch, amap, step, grain_rows, layer=None, lazy_over=None):
     heads = step.heads.tolist()
     keys_of = step.kv_keys()
     groups, bands = [], []
+    same_cut = {}   # the groups' cuts: heads that keep the same rows are cut alike
     for kv, idx in groups_of.items():
         idx = idx.tolist()
         gp = GroupPlan([heads[j] for j in idx], kv)
         gp.select = step.stage == "decode"
         if step.plain:
-            plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts)
+            plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts, same_cut)
         else:
             bands.append(BandPlanner(arch, amap, step, layer, gp, idx, keys_of[kv], blocks, cuts))
         groups.append(gp)

@@ -304,6 +304,30 @@ def split(amap, layer, planes, segments, max_rows, max_bytes, memo=None):
     return out
 
 
+def split_rows(amap, layer, planes, kv, positions, max_rows, max_bytes, same_cut):
+    """:func:`split` of one head's ``positions``, cut where an earlier call in ``same_cut``
+    (a dict) cut the same positions object for another head: where rows cost the same
+    bursts in every region (``amap.costs_anywhere``) the cut does not depend on the head,
+    and the heads of a step mostly keep the same rows."""
+    if not amap.costs_anywhere:
+        return split(amap, layer, planes, [(kv, positions)], max_rows, max_bytes)
+    key = (planes, id(positions), max_rows, max_bytes)
+    known = same_cut.get(key)
+    if known is None:
+        out = split(amap, layer, planes, [(kv, positions)], max_rows, max_bytes)
+        spans, lo = [], 0
+        for c in out:
+            spans.append((lo, lo + c[0].rows, c[0].skip))
+            lo += c[0].rows
+        same_cut[key] = (positions, spans)   # held, so the id stays this array's
+        return out
+    n, out = len(positions), []
+    for lo, hi, skip in known[1]:
+        segs = [(kv, positions if lo == 0 and hi == n else positions[lo:hi])]
+        out.append([Chunk(pl, segs, skip) for pl in planes])
+    return out
+
+
 def _row_bursts(amap, layer, plane, head, positions):
     """Per row of a sorted run: bursts it adds to the rows before it, and whether it
     shares its first burst with the row before (0 or 1)."""
@@ -328,9 +352,10 @@ def _bytes(amap, layer, plane, head, positions):
     return amap.burst_count(layer, plane, head, positions) * amap.burst
 
 
-def plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts):
+def plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts, same_cut):
     """A group of a step every query row of which sees every kept key: residency,
-    chunks, LSB rows spread over the blocks, and the work of each operation."""
+    chunks, LSB rows spread over the blocks, and the work of each operation.
+    ``same_cut``: the step's cuts so far (see :func:`split_rows`)."""
     kc, vc, klc = cuts
     kept, kv, d = step.kept_k, gp.kv, step.head_dim
     half_k, half_v = _half(arch, "K"), _half(arch, "V")
@@ -353,10 +378,11 @@ def plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts):
     # what resident K leaves of half the key buffer
     lsb_blocks = sum(1 for b in range(nqb) if any(rows[b] for rows in share.values()))
     gp.kl_resident = lsb_blocks > 1 and gp.lsb_bytes + (gp.k_bytes if gp.k_resident else 0) <= half_k
-    k_chunks = [c[0] for c in split(amap, layer, ("K",), [(kv, kept)], kc, chunk_cap(arch, "K"))]
-    v_chunks = [c[0] for c in split(amap, layer, ("V",), [(kv, gp.v_positions)], vc, chunk_cap(arch, "V"))]
+    k_chunks = [c[0] for c in split_rows(amap, layer, ("K",), kv, kept, kc, chunk_cap(arch, "K"), same_cut)]
+    v_chunks = [c[0] for c in split_rows(amap, layer, ("V",), kv, gp.v_positions, vc, chunk_cap(arch, "V"),
+                                         same_cut)]
     if gp.kl_resident:
-        pairs = split(amap, layer, ("KL", "K"), [(kv, kept)], klc, chunk_cap(arch, "K") / 2)
+        pairs = split_rows(amap, layer, ("KL", "K"), kv, kept, klc, chunk_cap(arch, "K") / 2, same_cut)
         gp.kl_chunks = [c[0] for c in pairs]
         gp.kl_msb_chunks = [c[1] for c in pairs]
     nq = len(gp.heads)
@@ -383,7 +409,7 @@ def plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts):
             bp.v_chunks = v_chunks
         bp.lsb = {h: rows[b] for h, rows in share.items() if rows[b]}
         if bp.lsb:
-            _plan_lsb(arch, amap, layer, gp, bp, kept, klc, shared)
+            _plan_lsb(arch, amap, layer, gp, bp, kept, klc, shared, same_cut)
         bp.qk_macs = per_chunk(("qk", bp.rows), lambda: [bp.rows * c.rows * d * nq for c in k_chunks])
         if bp.lsb:
             lsb_src = gp.kl_chunks if gp.kl_resident else bp.lsb_chunks
@@ -403,7 +429,7 @@ def plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts):
         gp.v_chunks = v_chunks
 
 
-def _plan_lsb(arch, amap, layer, gp, bp, kept, klc, shared):
+def _plan_lsb(arch, amap, layer, gp, bp, kept, klc, shared, same_cut):
     """The LSB recompute fetches of one block: its KL chunks (unless resident) and the MSB
     chunks again when K is not resident (cut alike, so each KL chunk pairs with one).
     Every block cuts the same rows: the lists are made once, in ``shared``."""
@@ -412,7 +438,7 @@ def _plan_lsb(arch, amap, layer, gp, bp, kept, klc, shared):
             bp.lsb_msb_chunks = gp.kl_msb_chunks
         return
     if "lsb_cut" not in shared:
-        pairs = split(amap, layer, ("KL", "K"), [(gp.kv, kept)], klc, chunk_cap(arch, "K") / 2)
+        pairs = split_rows(amap, layer, ("KL", "K"), gp.kv, kept, klc, chunk_cap(arch, "K") / 2, same_cut)
         shared["lsb_cut"] = [c[0] for c in pairs], [c[1] for c in pairs]
     bp.lsb_chunks, msb = shared["lsb_cut"]
     if not gp.k_resident:
