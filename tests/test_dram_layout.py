@@ -97,3 +97,25 @@ def test_unknown_layout_names_the_field():
     with pytest.raises(ConfigError) as err:
         sim.load_arch(MID).with_overrides({"dram.layout": "heads_mixed"})
     assert "dram.layout" in str(err.value)
+
+
+@pytest.mark.parametrize("layout", LAYOUTS)
+@pytest.mark.parametrize("k_bits", [4, 3])
+def test_many_heads_of_one_row_set_cost_each_heads_bursts(layout, k_bits):
+    """A query vector or a cache write reads or writes the same rows of many heads: the
+    bursts computed once and moved head by head are each head's own, in head order
+    (sorted and distinct where heads share a region)."""
+    amap = _amap(layout, **{"precision.k_msb_bits": k_bits, "precision.k_lsb_bits": k_bits})
+    rng = np.random.default_rng(7)
+    for _ in range(30):
+        rows = np.sort(rng.choice(ROWS, size=int(rng.integers(1, ROWS)), replace=False))
+        if rng.random() < 0.3:
+            rows = np.arange(int(rows[0]), int(rows[0]) + int(rng.integers(1, ROWS - rows[0] + 1)))
+        heads = sorted(rng.choice(HEADS, size=int(rng.integers(2, HEADS + 1)), replace=False).tolist())
+        for layer in range(LAYERS):
+            for plane in PLANES:
+                each = np.concatenate([amap.bursts(layer, plane, h, rows) for h in heads])
+                if layout == "heads_interleaved":
+                    each = np.unique(each)
+                got = amap.bursts_of_heads(layer, plane, heads, rows)
+                assert got.dtype == each.dtype and got.tolist() == each.tolist()

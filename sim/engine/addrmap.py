@@ -141,6 +141,18 @@ class AddressMap:
         np.not_equal(idx[1:], idx[:-1], out=keep[1:])
         return self.base(layer, plane, head) + idx[keep] * self.burst
 
+    def bursts_of_heads(self, layer, plane, heads, rows):
+        """Sorted bursts of the same ``rows`` of each of ``heads`` (given in head order).
+        Where regions start on burst boundaries and each head has its own, a head's bursts
+        are another's moved by the distance between their regions: computed once."""
+        if not self.heads_in_order:    # heads share a region: their bursts interleave
+            return np.unique(np.concatenate([self.bursts(layer, plane, h, rows) for h in heads]))
+        if not self.costs_anywhere:
+            return np.concatenate([self.bursts(layer, plane, h, rows) for h in heads])
+        rel = self.bursts(layer, plane, heads[0], rows) - self.base(layer, plane, heads[0])
+        bases = np.array([self.base(layer, plane, h) for h in heads], dtype=np.int64)
+        return (bases[:, None] + rel).ravel()
+
     def burst_count(self, layer, plane, head, rows):
         """Number of distinct bursts covering ``rows`` (cheap for contiguous rows)."""
         n = len(rows)

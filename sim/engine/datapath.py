@@ -151,6 +151,9 @@ class _amap_router:
         amap = self.single or self.amaps[self.dim_of_step[txn.step]]
         segs = txn.positions
         h, p = segs[0]
+        if len(segs) > 1 and not txn.skip and all(q is p for _h, q in segs):
+            # one row set for many heads (a step's query vector, its cache writes)
+            return amap.bursts_of_heads(txn.layer, txn.kind, [g for g, _q in segs], p)
         first = amap.bursts(txn.layer, txn.kind, h, p)
         if txn.skip:   # the chunk before it in the stream brought that burst
             first = first[txn.skip:]
