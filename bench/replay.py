@@ -4,8 +4,11 @@ Replays a synthetic 12-layer, 12-head, 512-token prefill plus decode steps on
 one config and prints wall seconds, transactions (tiles) per second, simulated
 cycles per wall second, and simpy's own bare event rate measured in the same
 run (a three-stage pipeline of 64-key tiles), then two scaling checks:
-doubling the decode steps, and a tenfold clock change, and how far the
-default grain's cycles are from a 64-row grain's (the grain is a speed knob).
+doubling the decode steps, and a tenfold clock change, the same trace with the
+steps' KV-cache and output writes, and how far the default grain's cycles are
+from a 64-row grain's (the grain is a speed knob). The base case reads only,
+as it did before traces carried writes, so its figures compare with those of
+earlier versions.
 
     python bench/replay.py [--arch arch_configs/mid.yaml] [--decode 128] [--repeat 3]
                            [--dram-model banked|fixed-latency]
@@ -95,17 +98,19 @@ def main():
     arch = sim.load_arch(args.arch)
     if args.dram_model:
         arch = arch.with_overrides({"dram.model": args.dram_model})
-    trace = synth_trace(prompt_tokens=512, decode_steps=args.decode, layers=12, heads=12, head_dim=64,
-                        seed=1)
+    # the base case reads only, as before traces carried writes, so its figures compare with
+    # those of earlier versions; the "writes" run adds the steps' cache writes
+    shape = dict(prompt_tokens=512, layers=12, heads=12, head_dim=64, seed=1)
+    trace = synth_trace(decode_steps=args.decode, writes=False, **shape)
     rate = bare_simpy_rate()
-    trace2 = synth_trace(prompt_tokens=512, decode_steps=2 * args.decode, layers=12, heads=12,
-                         head_dim=64, seed=1)
-    trace0 = synth_trace(prompt_tokens=512, decode_steps=0, layers=12, heads=12, head_dim=64, seed=1)
+    trace2 = synth_trace(decode_steps=2 * args.decode, writes=False, **shape)
+    trace0 = synth_trace(decode_steps=0, writes=False, **shape)
+    trace_w = synth_trace(decode_steps=args.decode, writes=True, **shape)
     fast = arch.with_overrides({"clock_ghz": arch.clock_ghz * 10})
     # the runs are interleaved, best of each kept: the machine's speed drifts, and
     # alternating keeps a slow spell from landing on one side of a comparison
     runs = {"base": (arch, trace), "prefill": (arch, trace0), "double": (arch, trace2),
-            "clock": (fast, trace)}
+            "clock": (fast, trace), "writes": (arch, trace_w)}
     best = dict.fromkeys(runs, None)
     docs = {}
     sim.simulate(arch, trace0)          # loads the compiled memory model once, outside the timing
@@ -126,6 +131,9 @@ def main():
           f"steps, {w2 - w0:.3f} s at {2 * args.decode} steps -> ratio {(w2 - w0) / (wall - w0):.2f} "
           f"(whole replay {w2 / wall:.2f}x)")
     print(f"  clock x10: {docs['clock']['cycles']:,} cycles, wall {w10:.3f} s ({(w10 - wall) / wall:+.1%} vs base)")
+    ww, dw = best["writes"], docs["writes"]
+    print(f"  with the cache writes: {dw['cycles']:,} cycles, {dw['dram']['write_bytes'] / 2 ** 20:.1f} MiB "
+          f"written, wall {ww:.3f} s ({(ww - wall) / wall:+.1%} vs base)")
     e1, e10 = count_events(arch, trace), count_events(fast, trace)
     print(f"  simpy events scheduled: {e1:,} at the base clock, {e10:,} at x10 ({(e10 - e1) / e1:+.2%})")
     t0 = time.perf_counter()
