@@ -75,18 +75,7 @@ class UnitState:
         key = (self.state, self.cause)
         self.totals[key] += t - since
         if self.keep_intervals:
-            # _log inlined: a unit closes an interval at nearly every event
-            code = self._codes.get(key)
-            if code is None:
-                code = self._codes[key] = len(self._keys)
-                self._keys.append(key)
-            ends = self._t1
-            if ends and ends[-1] == since and self._code[-1] == code:
-                ends[-1] = t
-            else:
-                self._t0.append(since)
-                ends.append(t)
-                self._code.append(code)
+            self._log(since, t, key)
         self.since = t
 
     def set(self, state, cause=None):
