@@ -188,7 +188,6 @@ class _StepShape:
 
     def __init__(self, arch, amap, step, layer, grain_rows, q_room):
         self.plan = plan = plan_step(arch, amap, step, grain_rows, layer, lazy_over=SHAPE_CACHE_CHUNKS)
-        self.lazy = any(gp.band is not None for gp in plan)
         q_blocks = [gp.band.blocks if gp.band is not None else [bp.q_positions for bp in gp.blocks]
                     for gp in plan]
         compulsory = 0
@@ -198,7 +197,7 @@ class _StepShape:
         self.compulsory_bytes = compulsory
         self.shared_q = self._shared_query(amap, step, layer, q_room, q_blocks)
         self.totals = _Totals()
-        if self.lazy:
+        if any(gp.band is not None for gp in plan):
             self.blocks = _LazyBlocks(plan, self.totals)
             reads = self.blocks.reads()
             self.chunks = None      # not counted, never cached
