@@ -18,6 +18,8 @@ import os
 import numpy as np
 import pytest
 import simpy
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 import sim
 from sim.engine import dram_timing as T
@@ -430,11 +432,13 @@ def drive(path=None):
     now = 0.0
     for k, (ch, gb, row) in enumerate(batches):
         now += 37.0 * (k % 3)
-        times = np.full(3, -np.inf)
+        times = np.full(4, -np.inf)
+        prof = np.zeros((2, T.PROFILE_POINTS))
         pos = np.arange(len(ch), dtype=np.int64)
-        assert T.serve_and_book(ch, gb, row, pos, now, now, times, *pool._state_args, 1, *pool._no_room,
-                                np.zeros(len(ch)), np.zeros((pool.n, 4))) >= 0
-        out.append(times.copy())
+        assert T.serve_and_book(ch, gb, row, pos, now, now, times, 1 + 5 * k, prof,
+                                *pool._state_args, 1, *pool._no_room, np.zeros(3 * len(ch)),
+                                np.zeros((pool.n, 4))) >= 0
+        out.append(np.concatenate([times, prof.ravel()]))
     state = {name: getattr(pool, name) for name in STATE}
     state["times"] = np.array(out)
     if path:
@@ -479,3 +483,47 @@ def test_same_bank_refresh_closes_one_bank_of_every_group_at_once():
     busy_elsewhere = [in_window(first[(int(b) + groups) % len(first)], period, length, t)
                       for t, _c, b, _k, _r in acts.tolist()]
     assert any(busy_elsewhere)
+
+
+def _profile_py():
+    """The profile loop as Python (numba's original function where it is compiled)."""
+    return getattr(T.arrival_profile, "py_func", T.arrival_profile)
+
+
+def _consume(on_chip, work):
+    """A consumer taking equal parts in order, each once on chip: the end of the last part
+    (the recursion end = max(end, on chip) + share, common practice, no source)."""
+    end = -np.inf
+    for t in on_chip:
+        end = max(end, t) + work / len(on_chip)
+    return end
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(data=st.data())
+def test_arrival_profile_gives_the_end_of_an_in_order_consumer(data):
+    """For any burst times, order and part count: the kept points' largest ``time + share
+    left x work`` equals the end an in-order consumer reaches, part by part, for any work;
+    when more points than the profile holds would be needed, it is never earlier."""
+    n = data.draw(st.integers(1, 80))
+    col = np.array(data.draw(st.lists(st.floats(0, 500, allow_nan=False), min_size=n, max_size=n)))
+    pos = np.array(data.draw(st.permutations(range(n))), dtype=np.int64)
+    parts = data.draw(st.integers(1, 100))
+    lag = data.draw(st.floats(0, 40, allow_nan=False))
+    prof = np.zeros((2, data.draw(st.sampled_from([2, 4, T.PROFILE_POINTS]))))
+    sf = np.zeros(3 * n)
+    sf[:n] = col
+    m = _profile_py()(sf[:n], pos, n, lag, parts, sf, prof)
+    g_n = min(parts, n)
+    # part g is on chip when its bursts (address order) and all earlier ones are
+    land = col[pos] + lag
+    on_chip = [land[:((g + 1) * n + g_n - 1) // g_n].max() for g in range(g_n)]
+    assert 1 <= m <= prof.shape[1]
+    assert prof[1, 0] == 1.0 and prof[0, m - 1] == max(on_chip)
+    for work in (0.0, 1.0, 37.5, 400.0, 1e5):
+        got = max(prof[0, i] + prof[1, i] * work for i in range(m))
+        want = _consume(on_chip, work)
+        if m < prof.shape[1]:
+            assert got == pytest.approx(want, rel=1e-12, abs=1e-9), (work, got, want)
+        else:
+            assert got >= want - 1e-9 * max(1.0, abs(want)), (work, got, want)

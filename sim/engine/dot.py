@@ -67,13 +67,13 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, produce
 
     For each op: wait for the first tile of each operand transaction (starved,
     charged to the stage that held it), then work for the throughput time
-    (busy). Operands stream: an op ends no earlier than each operand's last
-    tile plus that tile's share of the work, and the array waits for tiles in
-    between (starved on the memory transfer, or on the reorder stage when the
-    data had to wait for an earlier transaction). A streamed operand's buffer
-    room is freed as its rows are read (over the op); a query block at the
-    end. Then it hands the score block to the softmax unit (blocked while its
-    input queue is full).
+    (busy). Operands stream: an op ends no earlier than any part of an operand
+    is on chip plus the work left from that part on (its arrival profile,
+    ``txn.prof``), and the array waits for parts in between (starved on the
+    memory transfer, or on the reorder stage when the data had to wait for an
+    earlier transaction). A streamed operand's buffer room is freed as its rows
+    are read (over the op); a query block at the end. Then it hands the score
+    block to the softmax unit (blocked while its input queue is full).
     """
     rates = {}   # head_dim -> MACs per cycle
     set_state = state.set
@@ -105,8 +105,8 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, produce
         for txn in inputs:
             if txn.readers > 1:   # its own part of a shared transaction, needed whole
                 t = txn.hs + (txn.last - txn.hs) * (op.part + 1) / txn.readers + work
-            else:                 # streamed: the last rows, then their share of the work
-                t = txn.last + work / txn.pieces
+            else:                 # streamed: each part once on chip, then the work left from it
+                t = max([a + x * work for a, x in txn.prof])
             if t > end:
                 end, late = t, txn
         if late is None:

@@ -80,6 +80,8 @@ in), with the transaction's log marked ``memory_queue``, ``memory_latency``,
 ``memory_transfer`` (non-decreasing) and ``txn.mem_times`` set to the same
 three times before the event fires, at which moment ``txn.on_timed(txn)`` is
 called when set (the fetch unit streams the data to its consumer from there);
+``txn.prof``, when the pool timed the transaction's bursts in one batch, its
+arrival profile in address order (:func:`sim.engine.dram_timing.arrival_profile`);
 ``report(total_cycles)`` for the result's ``dram`` section; ``busy_arrays()``
 per channel (merged data-bus busy intervals); ``share_records()``.
 
@@ -359,7 +361,8 @@ class ChannelPool:
         self.TG = np.zeros((self.n, 2, 256, 2))
         self.LOG = np.zeros((4096 if log_commands else 0, 5))
         # per-share records (channel, arrival, start, first data, done, bursts)
-        self._times = np.zeros(3)
+        self._times = np.zeros(4)
+        self._prof = np.zeros((2, T.PROFILE_POINTS))   # the arrival profile of the batch served last
         self._SF = np.zeros(0)
         self._scratch(4096)
         self._no_room = (np.zeros(1), np.full(1, -np.inf))   # room_time: room from the start
@@ -528,7 +531,7 @@ class ChannelPool:
         rec = [now, 0, now, now, now, None, _STREAM.get(txn.kind, 1)]
         if not self.rows_first:
             rec[1] = -1                        # committed in one go
-            self._commit(rec, ch, gb, row, now, pos, txn.room)
+            txn.prof = self._commit(rec, ch, gb, row, now, pos, txn.room, txn.pieces)
             return self._finish(txn, now, rec[2], rec[3], rec[4], None)
         cnt = np.bincount(ch, minlength=self.n)
         chans = np.flatnonzero(cnt).tolist()
@@ -544,7 +547,7 @@ class ChannelPool:
                 keep = ~np.isin(ch, hold)
                 self._commit(rec, ch[keep], gb[keep], row[keep], now)
         else:
-            self._commit(rec, ch, gb, row, now, pos)
+            txn.prof = self._commit(rec, ch, gb, row, now, pos, parts=txn.pieces)
         if rec[1] == 0:
             return self._finish(txn, now, rec[2], rec[3], rec[4], None)
         ev = self.env.event()
@@ -768,24 +771,32 @@ class ChannelPool:
         rx, rt = txn.room or self._no_room
         self._entries += 1
         self._scratch(len(b))
-        while serve_addresses(b, *self._lut_args, float(now), times, *self._state_args,
-                              _STREAM.get(txn.kind, 1), rx, rt, self._SI, self._SF, self._AGG) < 0:
+        while serve_addresses(b, *self._lut_args, float(now), times, txn.pieces, self._prof,
+                              *self._state_args, _STREAM.get(txn.kind, 1), rx, rt, self._SI, self._SF,
+                              self._AGG) < 0:
             _room_or_stall(tries, "banked serve")
             tries += 1
             self._make_room(len(b))
         if not self.keep_records:
             self.NI[T.I_RECORDS] = 0
-        t_start, t_first, t_done = times.tolist()
+        t_start, t_first, t_done, points = times.tolist()
+        txn.prof = self._profile(points)
         return self._finish(txn, now, t_start, t_first, t_done, None)
+
+    def _profile(self, points):
+        """The arrival profile of the batch just served: ``[(on chip, share of the work left)]``
+        (:func:`sim.engine.dram_timing.arrival_profile`)."""
+        m = int(points)
+        return list(zip(self._prof[0, :m].tolist(), self._prof[1, :m].tolist()))
 
     def _scratch(self, bursts):
         """Make sure the kernels' working arrays (``_SI``, ``_SF``, ``_AGG``) hold a batch of
         ``bursts``: made once and grown to the next power of two, so a call allocates nothing."""
-        if bursts <= self._SF.shape[0]:
+        if 3 * bursts <= self._SF.shape[0]:
             return
         cap = 1 << max(12, int(bursts - 1).bit_length())
         self._SI = np.zeros((6, max(cap, self.n + 1)), dtype=np.int64)
-        self._SF = np.zeros(cap)
+        self._SF = np.zeros(3 * cap)   # burst times, then the arrival profile's working space
         self._AGG = np.zeros((self.n, 4))
 
     def _bind(self):
@@ -805,10 +816,12 @@ class ChannelPool:
         if self._lut is not None:
             self._lut_args = (self.burst,) + self._lut
 
-    def _commit(self, rec, ch, gb, row, now, pos=None, room=None):
+    def _commit(self, rec, ch, gb, row, now, pos=None, room=None, parts=1):
         """Fix the timing of one batch of bursts ``ch``/``gb``/``row`` (sorted by channel;
         ``pos``: where each burst in address order is, by default channel by channel;
-        ``room``: when its buffer has room for it, see :meth:`sim.engine.buffers.Buffer.reserve`)."""
+        ``room``: when its buffer has room for it, see :meth:`sim.engine.buffers.Buffer.reserve`).
+        Returns the batch's arrival profile for a consumer of ``parts`` parts (see
+        :meth:`_profile`)."""
         if pos is None:
             pos = np.arange(len(ch), dtype=np.int64)
         rx, rt = room or self._no_room
@@ -819,7 +832,8 @@ class ChannelPool:
         self._entries += 1
         self._scratch(len(ch))
         for tries in range(MAX_ROOM_TRIES + 1):
-            nch = serve_and_book(ch, gb, row, pos, float(now), float(rec[0]), times, *self._state_args,
+            nch = serve_and_book(ch, gb, row, pos, float(now), float(rec[0]), times, parts, self._prof,
+                                 *self._state_args,
                                  rec[6], rx, rt, self._SF, self._AGG)
             if nch >= 0:
                 break
@@ -829,7 +843,8 @@ class ChannelPool:
             self.NI[T.I_RECORDS] = 0
         if rec[1] > 0:
             rec[1] -= nch
-        rec[2], rec[3], rec[4] = times.tolist()
+        rec[2], rec[3], rec[4], points = times.tolist()
+        return self._profile(points)
 
     # ----------------------------------------------------------------- common
     def _finish(self, txn, t_submit, t_start, t_first, t_done, ev, nbursts=None, write=False):

@@ -1137,9 +1137,68 @@ def room_time(RX, RT, x):
     return RT[n - 1]
 
 
+PROFILE_POINTS = 16   # most points a batch's arrival profile keeps (see arrival_profile)
+
+
+@_inline
+def arrival_profile(out, pos, n, lag, parts, SF, prof):
+    """How a consumer reading a batch in address order sees it arrive; returns the points kept.
+
+    The batch is ``parts`` equal parts (one per burst at most) that a consumer uses one at
+    a time, in address order, as a reorder stage hands them over: part ``g`` is on chip
+    once its bursts and every earlier part's are (burst ``k`` in address order lands
+    ``lag`` after its column, ``out[pos[k]]``), and leaves ``(parts - g) / parts`` of the
+    consumer's work to do. So a consumer with work ``W`` ends no earlier than the largest
+    ``on_chip[g] + left[g] * W``. Only the parts that give that maximum for some
+    ``W >= 0`` are kept (the upper envelope of those lines): ``prof[0, :m]`` their times,
+    ``prof[1, :m]`` their shares left, the first part first and the last part last. When
+    more than ``prof.shape[1]`` parts would be kept, neighbours merge into a point with the
+    first one's share and the last one's time, which bounds them all: the end is never
+    early. ``SF[n:3n]`` is scratch.
+    """
+    g_n = parts if parts < n else n
+    if g_n < 1:
+        g_n = 1
+    xs = SF[n:2 * n]
+    ys = SF[2 * n:3 * n]
+    m = 0
+    a = -np.inf
+    k = 0
+    for g in range(g_n):
+        e = ((g + 1) * n + g_n - 1) // g_n
+        while k < e:
+            d = out[pos[k]] + lag
+            if d > a:
+                a = d
+            k += 1
+        if m > 0 and a <= ys[m - 1]:
+            continue      # no later than the part before it, and less work left: never the bound
+        x = (g_n - g) / g_n
+        # the point before is dropped when it lies on or below the chord from its own
+        # predecessor to this one (it is then never the maximum)
+        while m >= 2 and ((ys[m - 1] - ys[m - 2]) * (x - xs[m - 2])
+                          >= (a - ys[m - 2]) * (xs[m - 1] - xs[m - 2])):
+            m -= 1
+        xs[m] = x
+        ys[m] = a
+        m += 1
+    cap = prof.shape[1]
+    if m <= cap:
+        for i in range(m):
+            prof[0, i] = ys[i]
+            prof[1, i] = xs[i]
+        return m
+    for j in range(cap):        # point j bounds points lo .. hi-1 of the envelope
+        lo = j * m // cap
+        hi = (j + 1) * m // cap
+        prof[0, j] = ys[hi - 1]
+        prof[1, j] = xs[lo]
+    return cap
+
+
 @_leaf
-def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, banks, close_page, P,
-                   open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth, FS, FI, FF,
+def serve_and_book(ch, gb, row, pos, now, arrival, times, parts, prof, depth, rq, groups, banks, close_page,
+                   P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth, FS, FI, FF,
                    stream, RX, RT, SF, AGG):
     """Queue, serve and book one batch of reads (sorted by channel; ``pos[k]``: where the
     batch's ``k``-th burst in address order is) arriving at ``now``.
@@ -1157,7 +1216,9 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     placed by :func:`place_bursts`; each share then enters the share records
     (``R`` rows: channel, arrival, start, first data, last data, bursts), the
     data-bus intervals (``IV``) and the busy cycles. ``times`` holds the batch's
-    start, first data and last data, raised here. ``SF`` (at least as long as the batch)
+    start, first data and last data, raised here, then the number of points of its
+    arrival profile, written to ``prof`` for a consumer using ``parts`` parts of it one at
+    a time (:func:`arrival_profile`). ``SF`` (at least three times as long as the batch)
     and ``AGG`` (a row per channel) are scratch. Returns the number of channels served,
     or -1 without changing any timing state if a table is full.
     """
@@ -1215,6 +1276,7 @@ def serve_and_book(ch, gb, row, pos, now, arrival, times, depth, rq, groups, ban
     times[0] = t_start
     times[1] = t_first
     times[2] = t_done
+    times[3] = arrival_profile(out, pos, n, P[P_CL] + P[P_BURST] + P[P_CTRL], parts, SF, prof)
     return nch
 
 
@@ -1290,16 +1352,17 @@ def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, H, TN, C
 
 
 @_leaf
-def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, depth, rq, groups, banks,
-                    close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI, gdepth,
-                    FS, FI, FF, stream, RX, RT, SI, SF, AGG):
+def serve_addresses(b, burst, lut_ch, lut_gb, low_bits, low_mask, now, times, parts, prof, depth, rq, groups,
+                    banks, close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG, NI,
+                    gdepth, FS, FI, FF, stream, RX, RT, SI, SF, AGG):
     """:func:`decode_into` then :func:`serve_and_book` for reads arriving now; ``SI``, ``SF``
-    and ``AGG`` are scratch (columns at least ``len(b)``, and the channels plus one)."""
+    and ``AGG`` are scratch (``SI`` columns at least ``len(b)`` and the channels plus one,
+    ``SF`` three times ``len(b)``)."""
     n = len(b)
     decode_into(b, burst, lut_ch, lut_gb, low_bits, low_mask, len(busy), SI)
-    return serve_and_book(SI[2, :n], SI[3, :n], SI[4, :n], SI[5, :n], now, now, times, depth, rq, groups,
-                          banks, close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc, LOG,
-                          NI, gdepth, FS, FI, FF, stream, RX, RT, SF, AGG)
+    return serve_and_book(SI[2, :n], SI[3, :n], SI[4, :n], SI[5, :n], now, now, times, parts, prof, depth, rq,
+                          groups, banks, close_page, P, open_row, BF, TL, TK, TG, TN, CF, H, R, IV, busy, acc,
+                          LOG, NI, gdepth, FS, FI, FF, stream, RX, RT, SF, AGG)
 
 
 # ---------------------------------------------------------------- compile once, load once
@@ -1334,9 +1397,10 @@ def signatures():
     # scratch: the decoded batch (SI), burst times (SF), per-channel sums (AGG)
     scratch = (a(f, 1), a(f, 2))
     return {
-        "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1)) + state + slots + (a(i, 2),)
+        "serve_addresses": (a(i, 1), i, a(i, 1), a(i, 1), i, i, f, a(f, 1), i, a(f, 2)) + state + slots
+        + (a(i, 2),) + scratch,
+        "serve_and_book": (a(i, 1), a(i, 1), a(i, 1), a(i, 1), f, f, a(f, 1), i, a(f, 2)) + state + slots
         + scratch,
-        "serve_and_book": (a(i, 1), a(i, 1), a(i, 1), a(i, 1), f, f, a(f, 1)) + state + slots + scratch,
         # the pool's SI and AGG, then stand-ins for the fetch slots (FS, FI, FF) writes do not take
         "serve_writes": (a(i, 1), a(i, 1), i, f, a(f, 1)) + state[2:] + (a(i, 2), a(f, 2))
         + (a(f, 2), a(i, 1), a(f, 1)),

@@ -21,18 +21,18 @@ is strictly in order and waits for a dependency before it reserves room. When
 the window is full the unit is ``blocked`` on ``issue_window``.
 
 **Streaming.** A transaction's bursts arrive between the pool's first and
-last data; the unit hands data over in issue order (the reorder stage), so a
-transaction's data is handed over from ``max(its first tile on chip, the
-previous transaction fully handed over)`` to ``max(its last byte, the same)``.
-Its ``done`` event fires at the first of these and ``txn.last`` holds the
-second: a consumer starts on the first tile and finishes no earlier than the
-last tile's arrival plus that tile's service (see :mod:`sim.engine.dot`), so a
-coarse transaction keeps the overlap of fine ones. ``fetch.inflight`` bounds
-the requests issued and not yet handed over: a transaction may issue once its
-first request fits, and with the banked pool its further requests wait there,
-one by one, for slots (the pool keeps the count request by request, see
-:mod:`sim.engine.dram`), so a large transaction never has more requests out
-than small ones would. ``fetch.reorder_entries`` bounds the requests that have
+last data; the unit hands data over in issue order (the reorder stage), so
+each part of a transaction's arrival profile (``txn.prof``, from the pool) is
+handed over at ``max(the part on chip, the previous transaction fully handed
+over)``. Its ``done`` event fires when the first part is and ``txn.last``
+holds when the last is: a consumer starts on the first part and finishes no
+earlier than any part's handover plus the work left from it (see
+:mod:`sim.engine.dot`), so a coarse transaction keeps the overlap of fine
+ones. ``fetch.inflight`` bounds the requests issued and not yet handed over:
+a transaction may issue once its first request fits, and with the banked pool
+its further requests wait there, one by one, for slots (the pool keeps the
+count request by request, see :mod:`sim.engine.dram`), so a large transaction
+never has more requests out than small ones would. ``fetch.reorder_entries`` bounds the requests that have
 arrived but wait for an earlier transaction -- when it is full the unit stops
 issuing.
 
@@ -324,11 +324,18 @@ class FetchUnit:
         while u and u[0].timed:
             t = u.popleft()
             _, first, done = t.mem_times
-            a1 = first + (done - first) / t.pieces       # first piece on chip
-            h_first = max(a1, st.handed)
-            t.hs = max(first, st.handed)
-            st.handed = max(done, st.handed)
+            h = st.handed
+            prof = t.prof
+            if prof is None:   # timed as a whole (no profile): its data assumed to arrive evenly
+                prof = [(first + (done - first) / t.pieces, 1.0), (done, 1.0 / t.pieces)]
+            # a part is handed over once it is on chip and the transactions before it are
+            prof = [(a if a > h else h, x) for a, x in prof]
+            h_first = prof[0][0]
+            t.hs = max(first, h)
+            st.handed = max(done, h)
             t.last = st.handed
+            prof[-1] = (t.last, prof[-1][1])
+            t.prof = prof
             t.early = False
             heappush(self.arrivals, (done, t.order, t))
             t.log.append(("reorder", t.last))

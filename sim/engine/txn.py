@@ -15,7 +15,7 @@ class Txn:
     __slots__ = ("kind", "step", "head", "block", "rows", "nbytes", "bursts", "log", "done",
                  "buffer", "hold", "layer", "positions", "waits", "skip", "pieces", "last",
                  "mem_times", "on_timed", "timed", "nreq", "order", "end_pos", "wait_cause",
-                 "dep_cause", "hs", "early", "desc", "readers", "is_write", "room")
+                 "dep_cause", "hs", "early", "desc", "readers", "is_write", "room", "prof")
 
     def __init__(self, kind, step, head, block, rows, nbytes, t_created, creator):
         self.kind = kind          # 'Q', 'K', 'KL', 'V' (fetched) or 'S', 'P' (computed)
@@ -49,6 +49,7 @@ class Txn:
         self.readers = 1          # head groups each reading their own part of it (a shared query)
         self.is_write = False     # bursts written to memory (else read)
         self.room = None          # (bursts, times): when its buffer has room for them, if later
+        self.prof = None          # [(on chip, share of the work left)]: how its data arrives
 
     def mark(self, stage, t_end):
         """Record that the transaction spent time until ``t_end`` in ``stage``."""
