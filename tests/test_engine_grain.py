@@ -25,7 +25,7 @@ share no burst, so a coarse grain only saves events. Checked here:
   default grain within 5 % of those at 16 rows. This is where a coarse
   transaction once ran past the in-flight limit (51 % on 16 pseudo channels);
   what remains is the coarse chunks' buffer room (a chunk holds its room while
-  its data trickles in at the in-flight rate), up to about 2.6 %.
+  its data trickles in at the in-flight rate), up to about 3.3 %.
 
 * short least-significant-plane refetches on the server datapath (one transaction at the
   default grain spans every channel, and one busy channel used to hold back the whole
