@@ -784,10 +784,9 @@ class ChannelPool:
         return self._finish(txn, now, t_start, t_first, t_done, None)
 
     def _profile(self, points):
-        """The arrival profile of the batch just served: ``[(on chip, share of the work left)]``
+        """The arrival profile of the batch just served: ``[[on chip, share of the work left]]``
         (:func:`sim.engine.dram_timing.arrival_profile`)."""
-        m = int(points)
-        return list(zip(self._prof[0, :m].tolist(), self._prof[1, :m].tolist()))
+        return self._prof[:, :int(points)].T.tolist()
 
     def _scratch(self, bursts):
         """Make sure the kernels' working arrays (``_SI``, ``_SF``, ``_AGG``) hold a batch of

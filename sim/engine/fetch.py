@@ -327,15 +327,14 @@ class FetchUnit:
             h = st.handed
             prof = t.prof
             if prof is None:   # timed as a whole (no profile): its data assumed to arrive evenly
-                prof = [(first + (done - first) / t.pieces, 1.0), (done, 1.0 / t.pieces)]
-            # a part is handed over once it is on chip and the transactions before it are
-            prof = [(a if a > h else h, x) for a, x in prof]
+                prof = t.prof = [[first + (done - first) / t.pieces, 1.0], [done, 1.0 / t.pieces]]
+            if prof[0][0] < h:
+                # a part is handed over once it is on chip and the transactions before it are
+                prof = t.prof = [[a if a > h else h, x] for a, x in prof]
             h_first = prof[0][0]
             t.hs = max(first, h)
             st.handed = max(done, h)
-            t.last = st.handed
-            prof[-1] = (t.last, prof[-1][1])
-            t.prof = prof
+            t.last = prof[-1][0] = st.handed
             t.early = False
             heappush(self.arrivals, (done, t.order, t))
             t.log.append(("reorder", t.last))

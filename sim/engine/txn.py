@@ -49,7 +49,7 @@ class Txn:
         self.readers = 1          # head groups each reading their own part of it (a shared query)
         self.is_write = False     # bursts written to memory (else read)
         self.room = None          # (bursts, times): when its buffer has room for them, if later
-        self.prof = None          # [(on chip, share of the work left)]: how its data arrives
+        self.prof = None          # [[on chip, share of the work left]]: how its data arrives
 
     def mark(self, stage, t_end):
         """Record that the transaction spent time until ``t_end`` in ``stage``."""
