@@ -27,6 +27,10 @@ share no burst, so a coarse grain only saves events. Checked here:
   what remains is the coarse chunks' buffer room (a chunk holds its room while
   its data trickles in at the in-flight rate), up to about 3.3 %.
 
+* causal prompts whose K or V stay on chip for the step: the resident rows are
+  fetched by the query block that first sees them at any grain (a coarse chunk
+  once brought later blocks' rows with the first block: 2-3 % apart from 16 rows);
+  the same 2 %;
 * short least-significant-plane refetches on the server datapath (one transaction at the
   default grain spans every channel, and one busy channel used to hold back the whole
   transaction's first rows: 9.5 % apart from 16 rows): the same 2 %.
@@ -174,3 +178,15 @@ def test_a_transaction_across_channels_does_not_wait_for_its_slowest_channel_to_
     trace = synth_trace(prompt_tokens=64, decode_steps=0, layers=2, heads=4, head_dim=64, value_keep=0.7,
                         lsb_fraction=0.3, seed=seed, writes=False)
     _check_close(sim.load_arch(os.path.join(ROOT, "arch_configs", "server.yaml")), trace, f"lsb seed {seed}")
+
+
+@pytest.mark.parametrize("layers, writes", [(1, True), (2, False)])
+def test_resident_rows_of_a_causal_prompt_come_with_the_block_that_first_sees_them(layers, writes):
+    """In a causal prompt each query block sees more keys than the one before; rows that stay
+    on chip are fetched with the first block that reaches them, whatever the grain (small
+    query blocks on one HBM2 stack: 2.9 % and 3.5 % apart from 16 rows before)."""
+    arch = sim.load_arch(os.path.join(ROOT, "arch_configs", "hbm2_stack.yaml")).with_overrides(
+        {"buffers.value_kib": 64, "buffers.query_kib": 4, "dot.multipliers": 512})
+    trace = synth_trace(prompt_tokens=200, decode_steps=4, layers=layers, heads=4, head_dim=128, head_keep=0.75,
+                        causal=True, writes=writes, seed=21)
+    _check_close(arch, trace, f"causal, {layers} layers")

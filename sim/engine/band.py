@@ -47,12 +47,15 @@ def _span(lo, hi):
     return int(lo[seen].min()), int(hi[seen].max())
 
 
-def _cut(amap, layer, plane, kv, positions, start, max_rows, max_bytes, memo=None):
+def _cut(amap, layer, plane, kv, positions, start, max_rows, max_bytes, memo=None, ends=None):
     """Chunks of ``positions`` (key indices ``start`` on) and each chunk's index bounds
-    (``memo``: see :func:`sim.engine.tiling.split`)."""
+    (``memo``: see :func:`sim.engine.tiling.split`; ``ends``: key indices where the blocks
+    reading a resident plane stop, each the end of a chunk)."""
     if len(positions) == 0:
         return [], np.zeros(1, dtype=np.int64) + start
-    chunks = [c[0] for c in split(amap, layer, (plane,), [(kv, positions)], max_rows, max_bytes, memo)]
+    breaks = None if ends is None else np.unique(np.asarray(ends, dtype=np.int64) - start)
+    chunks = [c[0] for c in split(amap, layer, (plane,), [(kv, positions)], max_rows, max_bytes, memo,
+                                  breaks)]
     return chunks, start + np.concatenate([[0], np.cumsum([c.rows for c in chunks])])
 
 
@@ -107,8 +110,9 @@ class BandPlanner:
         gp.k_resident = (len(blocks) > 1 or bool(self.flagged)) and gp.k_bytes <= _half(arch, "K")
         self.res_k = None
         if gp.k_resident:
+            # blocks fetch the resident keys they are first to see: chunks end where a block's keys do
             self.res_k = _cut(amap, layer, "K", gp.kv, keys[hull[0]:hull[1]], hull[0], self.kc,
-                              chunk_cap(arch, "K"))
+                              chunk_cap(arch, "K"), ends=[sp[1] for sp in spans])
             gp.k_chunks = self.res_k[0]
         self.vplan = _ValuePlan(arch, amap, step, layer, gp, idx, keys, self.ranges, vc)
         self.k_memo = {}     # first key -> the K chunks of streams from it, shared by blocks
@@ -232,7 +236,9 @@ class _ValuePlan:
         gp.v_bytes = _bytes(amap, layer, "V", gp.kv, gp.v_positions)
         gp.v_resident = len(ranges) > 1 and gp.v_bytes <= self.half
         if gp.v_resident:
-            gp.v_chunks, self.bounds = _cut(amap, layer, "V", gp.kv, gp.v_positions, 0, vc, self.cap)
+            ends = [self._resident_range(b)[1] for b in range(len(ranges))]
+            gp.v_chunks, self.bounds = _cut(amap, layer, "V", gp.kv, gp.v_positions, 0, vc, self.cap,
+                                            ends=ends)
 
     def _positions(self, span):
         """V positions the block fetches: the union over the group's heads."""

@@ -251,11 +251,14 @@ def even_pick(rows, keep):
     return rows[np.unique(np.round(np.linspace(0, len(rows) - 1, keep)).astype(np.int64))]
 
 
-def split(amap, layer, planes, segments, max_rows, max_bytes, memo=None):
+def split(amap, layer, planes, segments, max_rows, max_bytes, memo=None, breaks=None):
     """Cut a stream of ``segments`` ``[(head, positions)]`` into chunks.
 
     Each chunk holds at most ``max_rows`` rows and ``max_bytes`` bytes and may
-    span heads. Bytes are counted in whole bursts of the widest of ``planes``
+    span heads; a chunk ends at each row index in ``breaks`` (sorted; a stream
+    read by blocks that reach different lengths of it is cut where each block's
+    reach ends, so no chunk brings rows before the block that first needs
+    them, at any grain). Bytes are counted in whole bursts of the widest of ``planes``
     (all planes get the same cut, so an LSB chunk pairs with its MSB chunk); a
     burst two neighbouring rows of one head share is counted, and fetched,
     once. Returns one list of Chunks (one per plane) per cut.
@@ -267,7 +270,10 @@ def split(amap, layer, planes, segments, max_rows, max_bytes, memo=None):
     """
     plane = max(planes, key=lambda p: amap.row_bytes[p])
     total = sum(len(p) for _h, p in segments)
-    if total <= max_rows and sum(_bytes(amap, layer, plane, h, p) for h, p in segments) <= max_bytes:
+    if breaks is not None:
+        breaks = breaks[(breaks > 0) & (breaks < total)]
+    if (total <= max_rows and (breaks is None or not len(breaks))
+            and sum(_bytes(amap, layer, plane, h, p) for h, p in segments) <= max_bytes):
         return [[Chunk(p, segments) for p in planes]]
     new, shared = [], []
     for h, p in segments:
@@ -287,6 +293,10 @@ def split(amap, layer, planes, segments, max_rows, max_bytes, memo=None):
         # rows i..j are new[i..j] (row i's shared burst came with the chunk before)
         j = int(np.searchsorted(cum, limit + cum[i] - new[i], side="right")) - 1
         j = max(i, min(j, i + max_rows - 1, total - 1))
+        if breaks is not None:
+            nb = int(np.searchsorted(breaks, i, side="right"))
+            if nb < len(breaks) and breaks[nb] - 1 < j:
+                j = int(breaks[nb]) - 1
         if memo is not None and (i, j) in memo:
             out.append(memo[i, j])
             i = j + 1
