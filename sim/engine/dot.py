@@ -29,7 +29,7 @@ class DotOp:
     """One operation on the array: q.K of a block, its LSB recompute, or p.V."""
 
     __slots__ = ("kind", "step", "head", "block", "macs", "head_dim", "inputs", "waits",
-                 "release", "out", "done", "score_rows", "score_cols", "part")
+                 "release", "out", "done", "score_rows", "score_cols", "part", "held")
 
     def __init__(self, kind, step, head, block, macs, head_dim):
         self.kind = kind        # 'qk', 'lsb' or 'pv'
@@ -46,6 +46,9 @@ class DotOp:
         self.score_rows = 0
         self.score_cols = 0
         self.part = None        # which part of a shared query transaction it reads (in order)
+        # an input the op before it in the same pass read into the array (the query block, for
+        # every key chunk after the first): not read from its buffer again
+        self.held = None
 
 
 def later(env, delay, event):
@@ -91,7 +94,8 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, produce
                 set_state("starved", cause)
                 yield ev
         for txn in inputs:
-            txn.buffer.note_read(txn.nbytes / txn.readers)
+            if txn is not op.held:
+                txn.buffer.note_read(txn.nbytes / txn.readers)
         macs = op.macs
         work = 0.0
         if macs > 0:

@@ -470,9 +470,11 @@ class ProgramBuilder:
         """q.K of a block over its key chunks; returns the softmax op it feeds."""
         s, d, bp = st.s, st.step.head_dim, b.bp
         # a block whose rows see no key (a window of pruned keys) still passes its rows on
-        for ch, macs in list(zip(kch, b.qk_macs)) or [(None, 0)]:
+        for i, (ch, macs) in enumerate(list(zip(kch, b.qk_macs)) or [(None, 0)]):
             op = dotmod.DotOp("qk", s, b.head, bp.block, macs, d)
             op.part = b.gi if q.readers > 1 else None
+            if i:
+                op.held = q
             st.reads(op, q, *(() if ch is None else (ch,)))
             self.prog.dot_qk.append(op)
         op.out = Txn("S", s, b.head, bp.block, b.score_rows, 0, 0.0, "dot")
@@ -506,6 +508,8 @@ class ProgramBuilder:
                 if first:
                     op.waits = [(sm1.done, "softmax")]
                     first = False
+                else:
+                    op.held = q
                 st.reads(op, q, kls[i])
                 if msb:
                     st.reads(op, again[i])
