@@ -25,8 +25,7 @@ share no burst, so a coarse grain only saves events. Checked here:
   default grain within 5 % of those at 16 rows. This is where a coarse
   transaction once ran past the in-flight limit (51 % on 16 pseudo channels);
   what remains is the coarse chunks' buffer room (a chunk holds its room while
-  its data trickles in at the in-flight rate), up to about 3.3 %.
-
+  its data trickles in at the in-flight rate), up to about 3.3 %;
 * causal prompts whose K or V stay on chip for the step: the resident rows are
   fetched by the query block that first sees them at any grain (a coarse chunk
   once brought later blocks' rows with the first block: 2-3 % apart from 16 rows);
@@ -35,8 +34,7 @@ share no burst, so a coarse grain only saves events. Checked here:
   verdict names both, whichever is a hair busier at a grain;
 * short least-significant-plane refetches on the server datapath (one transaction at the
   default grain spans every channel, and one busy channel used to hold back the whole
-  transaction's first rows: 9.5 % apart from 16 rows): the same 2 %.
-
+  transaction's first rows: 2.5 to 12 % apart from 16 rows): the same 2 %;
 * the energy: the query buffer's reads (a query block is read once per pass over
   its key chunks, however many chunks the grain cuts) are the same at the default
   grain and 16 rows, and the total energy within 0.1 % (the query reads once grew
@@ -212,6 +210,7 @@ def test_a_causal_prompt_on_separate_arrays_names_both_arrays_at_any_grain():
 
 @pytest.mark.parametrize("config", ["mid", "edge"])
 def test_buffer_reads_and_energy_do_not_depend_on_the_grain(config):
+    """The query buffer's reads and the energy they are priced into, at both grains."""
     arch = sim.load_arch(os.path.join(ROOT, "arch_configs", f"{config}.yaml"))
     trace = synth_trace(prompt_tokens=512, decode_steps=8, layers=2, heads=4, seed=1)
     docs = [sim.simulate(arch, trace, keep_intervals=False, grain_rows=g).to_dict()

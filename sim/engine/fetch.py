@@ -32,9 +32,9 @@ ones. ``fetch.inflight`` bounds the requests issued and not yet handed over:
 a transaction may issue once its first request fits, and with the banked pool
 its further requests wait there, one by one, for slots (the pool keeps the
 count request by request, see :mod:`sim.engine.dram`), so a large transaction
-never has more requests out than small ones would. ``fetch.reorder_entries`` bounds the requests that have
-arrived but wait for an earlier transaction -- when it is full the unit stops
-issuing.
+never has more requests out than small ones would. ``fetch.reorder_entries``
+bounds the requests that have arrived but wait for an earlier transaction --
+when it is full the unit stops issuing.
 
 **Descriptors.** Once the unit has begun issuing a descriptor (one plane of one
 head group for one query block), it issues that descriptor's ready chunks
