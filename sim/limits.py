@@ -182,14 +182,13 @@ def classify(doc):
         k2 = memory_kind if k2 == "memory" else k2
         r2 = r2 if r2 is not None else g2["top"]
         close = {"limit": k2, "resource": r2, "label": label(k2, r2), "share": g2["share"]}
-    if kind == "compute":
+    if kind == "compute" and resource == critical:
         # the other array about as busy (separate arrays; q.K and p.V of a causal prompt are
         # the same work) limits the run as much, though no stall of this one points at it
-        for other in ARRAYS:
-            busy = units[other]["busy"] if other != critical and other in units else -1.0
-            if g["share"] - busy <= CLOSE_SHARE and (close is None or busy > close["share"]):
-                close = {"limit": "compute", "resource": other, "label": label("compute", other),
-                         "share": busy}
+        other = next((u for u in ARRAYS if u != critical and u in units), None)
+        busy = units[other]["busy"] if other else -1.0
+        if g["share"] - busy <= CLOSE_SHARE and (close is None or busy > close["share"]):
+            close = {"limit": "compute", "resource": other, "label": label("compute", other), "share": busy}
     lanes = lane_figures(doc)
     busiest = max(units, key=lambda k: units[k]["busy"])
     ranked = sorted(((w, k) for k, w in shares.items()), reverse=True)
