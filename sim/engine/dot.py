@@ -83,11 +83,16 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, produce
     for op in ops:
         inputs = op.inputs
         for txn in inputs:
-            ev = txn.done
-            if not ev.processed:
-                t0 = env.now
+            t0 = env.now
+            if txn.ready is None:         # not timed yet: the fetch unit fires ``done`` then
+                if txn.done is None:
+                    txn.done = env.event()
                 set_state("starved", "fetch")
-                yield ev
+                yield txn.done
+                state.charge_wait(t0, txn, producer=producer)
+            elif txn.ready > t0:
+                set_state("starved", "fetch")
+                yield env.timeout(txn.ready - t0)
                 state.charge_wait(t0, txn, producer=producer)
         for ev, cause in op.waits:
             if not ev.processed:

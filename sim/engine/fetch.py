@@ -120,7 +120,17 @@ class FetchUnit:
     def _timer(self, ev):
         if ev is self.timer:
             self.timer = None
-        self.poke()
+        self.resume(ev)
+
+    def resume(self, _ev):
+        """Callback of an event the unit may be waiting for (its timer, buffer room): like
+        :meth:`poke`, but the unit runs as part of that event instead of through a second one."""
+        w = self.wake
+        if not w.triggered:
+            w._ok, w._value = True, None
+            callbacks, w.callbacks = w.callbacks, None
+            for cb in callbacks:
+                cb(w)
 
     # ----------------------------------------------------------- the program
     def unissued(self):
@@ -338,7 +348,9 @@ class FetchUnit:
             t.early = False
             heappush(self.arrivals, (done, t.order, t))
             t.log.append(("reorder", t.last))
-            later(env, max(0.0, h_first - env.now), t.done)
+            t.ready = h_first
+            if t.done is not None:   # the consumer waits for it already
+                later(env, max(0.0, h_first - env.now), t.done)
         if not self.issuing:   # timed inside issue: the unit looks again right after
             self.poke()
 
@@ -405,7 +417,7 @@ def fetch_process(u):
             req = cur.buffer.reserve(cur.nbytes)
             if req is not None:
                 cur.log.append(("fetch", now))
-                req.callbacks.append(u.poke)
+                req.callbacks.append(u.resume)
             else:
                 u.room_ahead(cur, cur.buffer.room())
         # 3. room granted: ready to issue, or set aside until its dependency fires

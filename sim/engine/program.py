@@ -410,7 +410,6 @@ class ProgramBuilder:
         t.positions = segments
         t.buffer = self.buffers[{"Q": "query", "V": "value"}.get(kind, "key")]
         t.waits = waits
-        t.done = self.env.event()
         t.skip = skip
         if kind != "Q":   # the array starts on a chunk's first rows (streaming)
             t.pieces = rows

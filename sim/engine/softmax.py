@@ -52,8 +52,10 @@ class ScoreQueue:
     def put(self, txn):
         """None if stored now, else an event fired once there is room."""
         if self.getter is not None:
+            # the waiting consumer resumes when the block is out of the array's pipeline
             ev, self.getter = self.getter, None
-            ev.succeed(txn)
+            ev._ok, ev._value = True, txn
+            self.env.schedule(ev, delay=max(0.0, txn.log[-1][1] - self.env.now))
             return None
         if len(self.items) < self.capacity:
             self.items.append(txn)

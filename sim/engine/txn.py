@@ -15,7 +15,7 @@ class Txn:
     __slots__ = ("kind", "step", "head", "block", "rows", "nbytes", "bursts", "log", "done",
                  "buffer", "hold", "layer", "positions", "waits", "skip", "pieces", "last",
                  "mem_times", "on_timed", "timed", "nreq", "order", "end_pos", "wait_cause",
-                 "dep_cause", "hs", "early", "desc", "readers", "is_write", "room", "prof")
+                 "dep_cause", "hs", "early", "desc", "readers", "is_write", "room", "prof", "ready")
 
     def __init__(self, kind, step, head, block, rows, nbytes, t_created, creator):
         self.kind = kind          # 'Q', 'K', 'KL', 'V' (fetched) or 'S', 'P' (computed)
@@ -26,7 +26,8 @@ class Txn:
         self.nbytes = nbytes      # bytes moved from memory (burst-rounded)
         self.bursts = None        # burst addresses, set by the fetch unit
         self.log = [(creator, t_created)]
-        self.done = None          # simpy event: (first piece of) data in place for the consumer
+        self.done = None          # simpy event a consumer waits on for ``ready`` (made when one does)
+        self.ready = None         # when its first piece is in place for the consumer, once timed
         self.buffer = None        # name of the on-chip buffer holding it
         self.hold = 0             # bytes reserved in that buffer
         self.layer = 0            # layer whose DRAM region holds the rows
