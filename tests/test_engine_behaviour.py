@@ -13,6 +13,7 @@ import pytest
 
 import sim
 from sim.engine import program, topk
+from sim.engine.due import Due
 from sim.errors import ConfigError, SimulationStalled
 from sim.trace.format import Trace, make_step, new_header, validate
 from sim.trace.files import load_trace
@@ -116,8 +117,8 @@ def test_lost_dependency_raises_instead_of_hanging(monkeypatch):
     def broken(self, *args, **kwargs):
         txn = real(self, *args, **kwargs)
         made.append(txn)
-        if len(made) == 4:   # the fourth fetch waits for an event nothing fires
-            txn.waits = list(txn.waits) + [(self.env.event(), "never")]
+        if len(made) == 4:   # the fourth fetch waits for a result nothing produces
+            txn.waits = list(txn.waits) + [(Due(self.env), "never")]
         return txn
 
     monkeypatch.setattr(program.ProgramBuilder, "_fetch", broken)

@@ -39,30 +39,16 @@ class DotOp:
         self.macs = macs
         self.head_dim = head_dim
         self.inputs = []        # fetched transactions it reads
-        self.waits = ()         # (event, cause) it must see fired first
+        self.waits = ()         # (Due, cause) it must see out first
         self.release = ()       # transactions whose buffer room it frees
         self.out = None         # score transaction for the softmax unit
-        self.done = None        # event fired when its result is out
+        self.done = None        # when its result is out (a Due)
         self.score_rows = 0
         self.score_cols = 0
         self.part = None        # which part of a shared query transaction it reads (in order)
         # an input the op before it in the same pass read into the array (the query block, for
         # every key chunk after the first): not read from its buffer again
         self.held = None
-
-
-def later(env, delay, event):
-    """Fire ``event`` ``delay`` cycles from now (pipeline latency).
-
-    Schedules the event itself, as ``simpy.Timeout`` does, instead of a
-    second timeout event that would then trigger it.
-    """
-    if delay <= 0:
-        event.succeed()
-    else:
-        event._ok = True
-        event._value = None
-        env.schedule(event, delay=delay)
 
 
 def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, producer=None):
@@ -94,10 +80,10 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, produce
                 set_state("starved", "fetch")
                 yield env.timeout(txn.ready - t0)
                 state.charge_wait(t0, txn, producer=producer)
-        for ev, cause in op.waits:
-            if not ev.processed:
+        for due, cause in op.waits:
+            if not due.processed:
                 set_state("starved", cause)
-                yield ev
+                yield due.event()
         for txn in inputs:
             if txn is not op.held:
                 txn.buffer.note_read(txn.nbytes / txn.readers)
@@ -140,6 +126,6 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, produce
                 set_state("blocked", "softmax_input_full")
                 yield req
         if op.done is not None:
-            later(env, pipeline, op.done)
+            op.done.fire(pipeline)
         set_state("starved", None)
     set_state("idle")

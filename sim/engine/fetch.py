@@ -51,7 +51,7 @@ from operator import attrgetter
 import numpy as np
 
 from .buffers import ramp_time
-from .dot import later
+from .due import later
 
 _ORDER = attrgetter("order")
 
@@ -172,9 +172,9 @@ class FetchUnit:
         txn.dep_cause = cause
         txn.log.append(("fetch", now))
         self.aside.append(txn)
-        for ev, _c in txn.waits:
-            if not ev.processed:
-                ev.callbacks.append(self._fired)
+        for due, _c in txn.waits:
+            if not due.processed:
+                due.event().callbacks.append(self._fired)
 
     def _fired(self, _ev):
         """A dependency of a set-aside transaction fired."""
@@ -407,11 +407,11 @@ def fetch_process(u):
             cur.wait_cause = None
             if strict and not all(ev.processed for ev, _c in cur.waits):
                 # strictly in order: wait for the dependency before reserving room
-                for ev, cause in cur.waits:
-                    if not ev.processed:
+                for due, cause in cur.waits:
+                    if not due.processed:
                         cur.log.append(("fetch", env.now))
                         state.set("starved", cause)
-                        yield ev
+                        yield due.event()
                         cur.log.append((cause, env.now))
                 now = env.now
             req = cur.buffer.reserve(cur.nbytes)

@@ -3,7 +3,7 @@
 For every step the tiling rule (:mod:`sim.engine.tiling`) gives head groups,
 query blocks and chunks; this module turns them into fetch transactions,
 dot-array operations, softmax blocks and top-k selections, all in one
-consistent order, with the events that connect them:
+consistent order, with the times that connect them (:class:`sim.engine.due.Due`):
 
 * per step, the query blocks of all head groups in sequence; the array runs
   ``q.K(i)``, then the p.V of the block ``dot.lookahead`` blocks before it,
@@ -25,7 +25,7 @@ last operation that reads it; made in parts, that reader is settled once no
 block still to be made can read the transaction (a resident chunk's last
 reading block is known from the plan), so the program is the same either way.
 
-Nothing here runs simpy processes: it only creates the events they share.
+Nothing here runs simpy processes: it only creates what they share.
 """
 
 from collections import deque
@@ -35,6 +35,7 @@ import numpy as np
 from . import dot as dotmod
 from . import softmax as smmod
 from . import topk as tkmod
+from .due import Due
 from .feed import Feed
 from .plan import plan_step
 from .tiling import pair_unit_rows, pair_units, selects_next
@@ -51,7 +52,7 @@ class Program:
         self.dot_pv = self.dot_qk if shared_array else Feed(more)
         self.softmax = Feed(more)
         self.topk = Feed(more, env)        # sparse: taken with Feed.take
-        self.writes = Feed(more, env)      # (step's end event, its write transactions)
+        self.writes = Feed(more, env)      # (step's end, a Due, and its write transactions)
         self.step_times = [None] * n_steps
         self.counts = {"macs_qk": 0, "macs_lsb": 0, "macs_pv": 0, "softmax_elements": 0,
                        "topk_comparisons": 0.0, "topk_selections": 0, "value_selections": 0}
@@ -282,7 +283,7 @@ class ProgramBuilder:
         self.fetches = 0   # fetch transactions made so far
         self.layers = max(s.layer for s in trace.steps) + 1
         self.next_of = _next_of_request(trace.steps)
-        self.prev = {}  # request -> (its last step's end event, whether a selection ended it)
+        self.prev = {}  # request -> (its last step's end, whether a selection ended it)
         self.made = 0   # steps begun so far
         self.current = None   # the step being made, while it has blocks left
 
@@ -326,7 +327,7 @@ class ProgramBuilder:
         done, selected = self._select_next(st, None if nxt is None else steps[nxt])
         self.prev[st.step.request] = (done, selected)
         times, env = self.prog.step_times, self.env
-        done.callbacks.append(lambda _e, i=s: times.__setitem__(i, env.now))
+        done.event().callbacks.append(lambda _e, i=s: times.__setitem__(i, env.now))
         self._writes(st, done)
         self.prog.made(self.made == len(steps))
 
@@ -478,7 +479,7 @@ class ProgramBuilder:
             self.prog.dot_qk.append(op)
         op.out = Txn("S", s, b.head, bp.block, b.score_rows, 0, 0.0, "dot")
         sm = smmod.SoftmaxOp(s, b.head, bp.block, b.score_rows, _cols(bp.elements, b.score_rows))
-        sm.done = self.env.event()
+        sm.done = Due(self.env)
         self.prog.softmax.append(sm)
         return sm
 
@@ -518,7 +519,7 @@ class ProgramBuilder:
         op.out = Txn("S", s, b.head, bp.block, bp.lsb_rows, 0, 0.0, "dot")
         sm = smmod.SoftmaxOp(s, b.head, bp.block, bp.lsb_rows, _cols(bp.lsb_elements, bp.lsb_rows),
                              second=True)
-        sm.done = self.env.event()
+        sm.done = Due(self.env)
         self.prog.softmax.append(sm)
         return sm
 
@@ -528,7 +529,7 @@ class ProgramBuilder:
             return None
         op = tkmod.TopkOp("value", st.s, b.head, st.step.n_kept_k, len(b.pruned), b.value_comps)
         op.waits.append((final_sm.done, "softmax"))
-        op.done = self.env.event()
+        op.done = Due(self.env)
         self.prog.topk.append(op)
         self.prog.counts["topk_comparisons"] += b.value_comps
         return op
@@ -548,13 +549,13 @@ class ProgramBuilder:
             if ch is not None:
                 st.reads(op, ch)
             self.prog.dot_pv.append(op)
-        op.done = self.env.event()
+        op.done = Due(self.env)
         st.last_pv_done = op.done
 
     # ---------------------------------------------------- between layers
     def _select_next(self, st, nxt):
         """After the layer, the selector picks the next layer's tokens and heads (cascade
-        pruning). Returns (the event that ends the step, whether a selection ran)."""
+        pruning). Returns (the Due that ends the step, whether a selection ran)."""
         step, s = st.step, st.s
         if not selects_next(step, nxt):
             return st.last_pv_done, False
@@ -566,7 +567,7 @@ class ProgramBuilder:
                 continue
             op = tkmod.TopkOp(kind, s, -1, n, keep, tkmod.selection_comparisons(scores, n, keep, self.rng))
             op.waits.append((st.last_pv_done, "dot"))
-            op.done = self.env.event()
+            op.done = Due(self.env)
             self.prog.topk.append(op)
             self.prog.counts["topk_comparisons"] += op.comparisons
             self.prog.counts["topk_selections"] += 1

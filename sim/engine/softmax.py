@@ -30,7 +30,7 @@ class SoftmaxOp:
         self.rows = rows
         self.cols = cols
         self.second = second    # recompute after the LSB plane arrived
-        self.done = None        # event: probabilities ready
+        self.done = None        # when the probabilities are out (a Due)
 
 
 class ScoreQueue:
@@ -79,7 +79,6 @@ class ScoreQueue:
 
 def softmax_process(env, ops, lanes, latency, state, queue):
     """Run ``ops`` in order, taking each op's score block from ``queue``."""
-    from .dot import later
 
     set_state = state.set
     for op in ops:
@@ -97,6 +96,6 @@ def softmax_process(env, ops, lanes, latency, state, queue):
             state.charge_wait(t0, txn, before="dot")
         set_state("busy")
         yield env.timeout(service_cycles(op.rows * op.cols, lanes))
-        later(env, latency, op.done)
+        op.done.fire(latency)
         set_state("starved", None)
     set_state("idle")

@@ -101,13 +101,12 @@ class TopkOp:
         self.n = n
         self.keep = keep
         self.comparisons = comparisons
-        self.waits = []           # (event, cause)
-        self.done = None
+        self.waits = []           # (Due, cause)
+        self.done = None          # when the selection is out (a Due)
 
 
 def topk_process(env, ops, comparators, latency, state):
     """Run selections in order."""
-    from .dot import later
 
     while True:
         op = ops.take()
@@ -117,16 +116,16 @@ def topk_process(env, ops, comparators, latency, state):
         if op is None:
             break
         # the time spent waiting for the step to be made belongs to what the op waits for
-        first = next((cause for ev, cause in op.waits if not ev.processed), None)
+        first = next((cause for due, cause in op.waits if not due.processed), None)
         if first is not None:
             state.relabel("starved", first)
-        for ev, cause in op.waits:
-            if not ev.processed:
+        for due, cause in op.waits:
+            if not due.processed:
                 state.set("starved", cause)
-                yield ev
+                yield due.event()
         state.set("busy")
         yield env.timeout(service_cycles(op.comparisons, comparators))
-        later(env, latency, op.done)
+        op.done.fire(latency)
         state.set("starved", None)
     state.relabel("idle", None)     # the unit had nothing left since its last selection
     state.set("idle")

@@ -32,7 +32,7 @@ class Txn:
         self.hold = 0             # bytes reserved in that buffer
         self.layer = 0            # layer whose DRAM region holds the rows
         self.positions = None     # row positions to fetch (numpy), fetched kinds only
-        self.waits = ()           # (event, cause) to see fired before issue
+        self.waits = ()           # (Due, cause) to see out before issue
         self.skip = 0             # leading bursts the previous chunk of its stream brought
         self.pieces = 1           # tiles a consumer can start on one by one (streaming)
         self.last = None          # when its last piece is available (``done``: the first)

@@ -13,7 +13,7 @@ from .feed import WAIT
 
 
 def writeback_process(env, writes, pool, router, burst):
-    """Post each ``(end event, write transactions)`` of ``writes`` once its step has ended."""
+    """Post each ``(end, write transactions)`` of ``writes`` once its step has ended (``end``: a Due)."""
     while True:
         item = writes.take()
         if item is WAIT:
@@ -23,7 +23,7 @@ def writeback_process(env, writes, pool, router, burst):
             return
         done, txns = item
         if not done.processed:
-            yield done
+            yield done.event()
         for txn in txns:
             txn.bursts = router.bursts_for(txn)
             txn.nbytes = len(txn.bursts) * burst
