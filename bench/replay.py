@@ -10,19 +10,33 @@ from a 64-row grain's (the grain is a speed knob). The base case reads only,
 as it did before traces carried writes, so its figures compare with those of
 earlier versions.
 
+``--against REV`` instead times the base case on this checkout and on
+revision REV (exported with ``git archive``; its compiled loops are built there
+first, which takes a minute) in one process, runs alternated for ``--rounds``
+rounds, and prints each round's ratio, their median and the ratio of the best
+runs. On a machine whose speed drifts by more than the change being measured,
+runs one after the other (or in separate processes) cannot tell a few percent
+apart; alternating in one process lets the drift fall on both sides alike.
+
     python bench/replay.py [--arch arch_configs/mid.yaml] [--decode 128] [--repeat 3]
                            [--dram-model banked|fixed-latency]
+    python bench/replay.py --against REV [--rounds 10]
 """
 
 import argparse
+import importlib
+import importlib.util
 import os
+import shutil
+import statistics
 import sys
 import time
 
 import simpy
 
 HERE = os.path.dirname(os.path.abspath(__file__))
-sys.path.insert(0, os.path.dirname(HERE))
+ROOT = os.path.dirname(HERE)
+sys.path.insert(0, ROOT)
 
 import sim  # noqa: E402
 from sim.trace.synth import synth_trace  # noqa: E402
@@ -86,6 +100,50 @@ def timed_replay(arch, trace, repeat):
     return best, result.to_dict()
 
 
+def _package(root, name):
+    """The ``sim`` package under ``root``, imported as ``name`` (so two versions live side by side)."""
+    spec = importlib.util.spec_from_file_location(name, os.path.join(root, "sim", "__init__.py"),
+                                                  submodule_search_locations=[os.path.join(root, "sim")])
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[name] = module
+    spec.loader.exec_module(module)
+    return module
+
+
+def against(rev, arch_path, decode, rounds):
+    """The base case on this checkout (A) and on ``rev`` (B), alternated in one process."""
+    from dram_bench import export   # noqa: E402 - the sibling benchmark's git-archive export
+
+    folder = export(rev)
+    try:
+        sides = {}
+        for tag, pkg in (("A", sim), ("B", _package(folder, "sim_against"))):
+            root = ROOT if tag == "A" else folder
+            synth = importlib.import_module(pkg.__name__ + ".trace.synth").synth_trace
+            arch = pkg.load_arch(os.path.join(root, os.path.relpath(arch_path, ROOT)))
+            shape = dict(prompt_tokens=512, layers=12, heads=12, head_dim=64, seed=1)
+            kw = {"writes": False} if "writes" in synth.__code__.co_varnames else {}
+            pkg.simulate(arch, synth(decode_steps=0, **shape, **kw))   # loads (or builds) its compiled loops
+            sides[tag] = (pkg, arch, synth(decode_steps=decode, **shape, **kw))
+        times, cycles = {"A": [], "B": []}, {}
+        print(f"base case, this checkout (A) against {rev} (B), CPU s, {rounds} rounds alternated in one process")
+        for r in range(rounds):
+            for tag in ("AB" if r % 2 == 0 else "BA"):
+                pkg, arch, trace = sides[tag]
+                t0 = time.process_time()
+                cycles[tag] = pkg.simulate(arch, trace).to_dict()["cycles"]
+                times[tag].append(time.process_time() - t0)
+            print(f"  round {r + 1:2d}: A {times['A'][-1]:7.3f}  B {times['B'][-1]:7.3f}  "
+                  f"A/B {times['A'][-1] / times['B'][-1]:.3f}", flush=True)
+        print(f"  cycles: A {cycles['A']:,}, B {cycles['B']:,}")
+        ratios = [a / b for a, b in zip(times["A"], times["B"])]
+        print(f"  A/B median {statistics.median(ratios):.3f} (from {min(ratios):.3f} to {max(ratios):.3f}); "
+              f"best A {min(times['A']):.3f} s, best B {min(times['B']):.3f} s, "
+              f"ratio {min(times['A']) / min(times['B']):.3f}")
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--arch", default=os.path.join(os.path.dirname(HERE), "arch_configs", "mid.yaml"))
@@ -93,7 +151,12 @@ def main():
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--dram-model", choices=["banked", "fixed-latency"], default=None,
                     help="override dram.model of the config")
+    ap.add_argument("--against", metavar="REV", help="time the base case against revision REV (see above)")
+    ap.add_argument("--rounds", type=int, default=10, help="rounds of --against")
     args = ap.parse_args()
+    if args.against:
+        against(args.against, os.path.abspath(args.arch), args.decode, args.rounds)
+        return
 
     arch = sim.load_arch(args.arch)
     if args.dram_model:
