@@ -130,7 +130,7 @@ def _stalled(env, arch, trace, fetch, states, procs, step_times):
     wait, on what, and what the oldest unissued fetch waits for."""
     stuck = [f"{n}: {st.state}" + (f" ({st.cause})" if st.cause else "")
              for n, st in states.items() if procs[n].is_alive]
-    held = next(((t, c) for t in fetch.unissued() for ev, c in t.waits if not ev.processed), None)
+    held = next(((t, c) for t in fetch.unissued() for due, c in t.waits if not due.processed), None)
     why = (f"; the oldest unissued fetch ({held[0].kind} of step {held[0].step}) waits for {held[1]}"
            if held else "")
     done = sum(t is not None for t in step_times)

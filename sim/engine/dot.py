@@ -70,15 +70,15 @@ def dot_process(env, ops, multipliers, lanes, pipeline, state, sm_queue, produce
         inputs = op.inputs
         for txn in inputs:
             t0 = env.now
-            if txn.ready is None:         # not timed yet: the fetch unit fires ``done`` then
-                if txn.done is None:
-                    txn.done = env.event()
+            ready = txn.ready
+            if ready is None or ready > t0:
                 set_state("starved", "fetch")
-                yield txn.done
-                state.charge_wait(t0, txn, producer=producer)
-            elif txn.ready > t0:
-                set_state("starved", "fetch")
-                yield env.timeout(txn.ready - t0)
+                if ready is None:         # not timed yet: the fetch unit fires ``done`` then
+                    if txn.done is None:
+                        txn.done = env.event()
+                    yield txn.done
+                else:
+                    yield env.timeout(ready - t0)
                 state.charge_wait(t0, txn, producer=producer)
         for due, cause in op.waits:
             if not due.processed:

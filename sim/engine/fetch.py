@@ -168,7 +168,7 @@ class FetchUnit:
         return 0
 
     def set_aside(self, txn, now):
-        cause = next(c for ev, c in txn.waits if not ev.processed)
+        cause = next(c for due, c in txn.waits if not due.processed)
         txn.dep_cause = cause
         txn.log.append(("fetch", now))
         self.aside.append(txn)
@@ -188,7 +188,7 @@ class FetchUnit:
         self.fired = False
         keep = []
         for t in self.aside:
-            if all(ev.processed for ev, _c in t.waits):
+            if all(due.processed for due, _c in t.waits):
                 t.log.append((t.dep_cause, now))
                 insort(self.ready, t, key=_ORDER)
             else:
@@ -405,7 +405,7 @@ def fetch_process(u):
         if cur is None and nxt is not None and u.window_open(nxt) and not (strict and u.ready):
             cur, nxt = nxt, u.take()
             cur.wait_cause = None
-            if strict and not all(ev.processed for ev, _c in cur.waits):
+            if strict and not all(due.processed for due, _c in cur.waits):
                 # strictly in order: wait for the dependency before reserving room
                 for due, cause in cur.waits:
                     if not due.processed:
@@ -428,7 +428,7 @@ def fetch_process(u):
             txn, cur, req = cur, None, None
             u.walked += txn.nreq
             txn.end_pos = u.walked
-            if all(ev.processed for ev, _c in txn.waits):
+            if all(due.processed for due, _c in txn.waits):
                 insort(u.ready, txn, key=_ORDER)
             else:
                 u.set_aside(txn, now)

@@ -79,7 +79,6 @@ class ScoreQueue:
 
 def softmax_process(env, ops, lanes, latency, state, queue):
     """Run ``ops`` in order, taking each op's score block from ``queue``."""
-
     set_state = state.set
     for op in ops:
         t0 = env.now

@@ -107,7 +107,6 @@ class TopkOp:
 
 def topk_process(env, ops, comparators, latency, state):
     """Run selections in order."""
-
     while True:
         op = ops.take()
         if op is WAIT:          # the step is not made yet: its selections cannot have started
