@@ -112,7 +112,7 @@ def _package(root, name):
 
 def against(rev, arch_path, decode, rounds):
     """The base case on this checkout (A) and on ``rev`` (B), alternated in one process."""
-    from dram_bench import export   # noqa: E402 - the sibling benchmark's git-archive export
+    from dram_bench import export   # the sibling benchmark's git-archive export
 
     folder = export(rev)
     try:

@@ -35,7 +35,7 @@ class Txn:
         self.waits = ()           # (Due, cause) to see out before issue
         self.skip = 0             # leading bursts the previous chunk of its stream brought
         self.pieces = 1           # tiles a consumer can start on one by one (streaming)
-        self.last = None          # when its last piece is available (``done``: the first)
+        self.last = None          # when its last piece is available (``ready``: the first)
         self.mem_times = None     # (start, first data, last data) once the pool has timed it
         self.on_timed = None      # called with the txn when ``mem_times`` is set
         self.timed = False
