@@ -24,8 +24,9 @@ the window is full the unit is ``blocked`` on ``issue_window``.
 last data; the unit hands data over in issue order (the reorder stage), so
 each part of a transaction's arrival profile (``txn.prof``, from the pool) is
 handed over at ``max(the part on chip, the previous transaction fully handed
-over)``. Its ``done`` event fires when the first part is and ``txn.last``
-holds when the last is: a consumer starts on the first part and finishes no
+over)``. ``txn.ready`` holds when the first part is (and its ``done`` event,
+made only if a consumer waits before then, fires then) and ``txn.last`` when
+the last is: a consumer starts on the first part and finishes no
 earlier than any part's handover plus the work left from it (see
 :mod:`sim.engine.dot`), so a coarse transaction keeps the overlap of fine
 ones. ``fetch.inflight`` bounds the requests issued and not yet handed over:
