@@ -57,14 +57,16 @@ def start(root, decode, arch_path, out_file):
            sys.executable, os.path.abspath(__file__), "--child", root, "--decode", str(decode),
            "--arch", arch_path]
     env = dict(os.environ, PYTHONPATH=root)
-    return subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, env=env)
+    return subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
 
 
 def finish(proc, out_file):
     """Wait for a count; returns (cycles, transactions, instructions, split by object)."""
-    out, _ = proc.communicate()
-    if proc.returncode != 0:
-        raise SystemExit(f"callgrind run failed (exit {proc.returncode})")
+    out, err = proc.communicate()
+    if proc.returncode != 0 or "RESULT" not in out:
+        # valgrind's own lines start with ==pid==; the replay's error is among the others
+        said = [line for line in err.splitlines() if line.strip() and not line.startswith("==")]
+        raise SystemExit(f"callgrind run failed (exit {proc.returncode}): {said[-1] if said else 'no message'}")
     cycles, txns = (int(x) for x in out.split("RESULT", 1)[1].split()[:2])
     total = None
     with open(out_file) as f:
