@@ -10,17 +10,17 @@ callback to run then.
 """
 
 
-def later(env, delay, event):
-    """Fire ``event`` ``delay`` cycles from now (pipeline latency).
+def later(env, delay, event, value=None):
+    """Fire ``event`` with ``value`` ``delay`` cycles from now (pipeline latency).
 
     Schedules the event itself, as ``simpy.Timeout`` does, instead of a
     second timeout event that would then trigger it.
     """
     if delay <= 0:
-        event.succeed()
+        event.succeed(value)
     else:
         event._ok = True
-        event._value = None
+        event._value = value
         env.schedule(event, delay=delay)
 
 

@@ -8,6 +8,8 @@ appears ``latency_cycles`` after the unit is done with a block.
 
 from collections import deque
 
+from .due import later
+
 PASSES = 2  # max pass, then exp/sum/normalize pass
 
 
@@ -54,8 +56,7 @@ class ScoreQueue:
         if self.getter is not None:
             # the waiting consumer resumes when the block is out of the array's pipeline
             ev, self.getter = self.getter, None
-            ev._ok, ev._value = True, txn
-            self.env.schedule(ev, delay=max(0.0, txn.log[-1][1] - self.env.now))
+            later(self.env, txn.log[-1][1] - self.env.now, ev, txn)
             return None
         if len(self.items) < self.capacity:
             self.items.append(txn)
