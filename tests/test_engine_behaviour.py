@@ -127,6 +127,32 @@ def test_lost_dependency_raises_instead_of_hanging(monkeypatch):
         sim.simulate(_mid(), tr)
 
 
+# a case random testing found: the unit timed its wait for the oldest ready transaction
+# while a later one (of the descriptor under way, needing more slots) was the one to go
+_SPUN = dict(prompt_tokens=187, decode_steps=3, layers=2, heads=2, kv_heads=1, batch=3, token_keep=0.7,
+             value_keep=0.5, head_dim=64, seed=0)
+
+
+def _edge(**over):
+    return sim.load_arch(os.path.join(CONFIGS, "edge.yaml")).with_overrides(over)
+
+
+def test_fetch_waits_for_the_room_of_the_transaction_it_issues_next():
+    """The wait for request slots is timed for the transaction that goes next (before the
+    fix this run spun a nanosecond at a time for ever)."""
+    doc = sim.simulate(_edge(**{"engine.grain_rows": 16}), synth_trace(**_SPUN), keep_intervals=False).to_dict()
+    assert doc["cycles"] > 0 and doc["fetch"]["transactions"] > 0
+
+
+def test_a_fetch_unit_that_spins_raises_instead_of_hanging(monkeypatch):
+    """A wait timed wrong (room said to be there when it is not) must end in SimulationStalled,
+    not in a run that never ends."""
+    from sim.engine import fetch
+    monkeypatch.setattr(fetch.FetchUnit, "when_room", lambda self, txn: self.env.now)
+    with pytest.raises(SimulationStalled, match="still blocked by inflight_limit .*edge.yaml"):
+        sim.simulate(_edge(), synth_trace(**_SPUN), keep_intervals=False)
+
+
 def test_value_pruning_waits_for_topk_and_fetches_fewer_values():
     dense = _trace([make_step(0, "decode", 64, 4, 1, 2048)], "dense")
     pruned = _trace([make_step(0, "decode", 64, 4, 1, 2048, kept_v=256)], "pruned")

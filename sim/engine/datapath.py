@@ -92,7 +92,10 @@ def _run(arch, trace, grain_rows, seed, keep_intervals, progress):
     writer = env.process(writeback_process(env, prog.writes, pool, router, arch.dram.burst_bytes))
     if progress is not None:
         progress.attach(env, prog.step_times, fetch_stats)
-    env.run()
+    try:
+        env.run()
+    except SimulationStalled as e:   # raised by a unit, which does not know the inputs
+        raise SimulationStalled(f"{e} (arch {arch.source}, trace {trace.source})") from None
     step_times = prog.step_times
     if any(t is None for t in step_times) or any(p.is_alive for p in procs.values()) or writer.is_alive:
         raise _stalled(env, arch, trace, fetch, states, procs, step_times)

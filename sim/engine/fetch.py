@@ -51,8 +51,13 @@ from operator import attrgetter
 
 import numpy as np
 
+from ..errors import SimulationStalled
 from .buffers import ramp_time
 from .due import later
+
+# Re-checks in a row that find the unit still blocked when its room was due: past this
+# many the engine is at fault (it would spin a nanosecond at a time for ever).
+NUDGE_LIMIT = 100_000
 
 _ORDER = attrgetter("order")
 
@@ -98,6 +103,7 @@ class FetchUnit:
         self.issue_free = 0.0       # the request port is busy issuing until then
         self.desc_now = -1          # the descriptor issued last
         self.fired = False          # a set-aside transaction's dependency fired since the last look
+        self.nudges = 0             # re-checks in a row that found room due and none there
         self.issuing = False        # inside pool.submit
         self.wake = env.event()
         self.timer = None           # the pending re-evaluation timer, and its time
@@ -358,7 +364,7 @@ class FetchUnit:
     def why(self, cur, more):
         """(state, cause) while nothing can move."""
         if self.ready:
-            return "blocked", self.ready[0].wait_cause
+            return "blocked", self.ready[self.next_ready()].wait_cause
         if cur is not None:
             return "blocked", f"{cur.buffer.name}_buffer_full"
         if more is not None and not self.window_open(more):
@@ -439,11 +445,25 @@ def fetch_process(u):
         # 4. nothing can move now: say why and wait for something to change
         state.set(*u.why(cur, nxt))
         if u.ready and u.npending:
-            t = u.when_room(u.ready[0]) if u.ready[0].wait_cause == "inflight_limit" else u.next_handover()
+            # the transaction that goes next, not the oldest: a descriptor under way goes first,
+            # and a smaller one's room can come earlier than its own (a timer that found the
+            # unit blocked again would then come back every nanosecond for ever)
+            head = u.ready[u.next_ready()]
+            t = u.when_room(head) if head.wait_cause == "inflight_limit" else u.next_handover()
             if t is not None:   # else the pool pokes when it times the transaction on the way
-                # blocked now, so room comes later: a ramp a rounding error long must not
-                # bring the unit back at the same instant forever
-                u.poke_at(t if t > now else now + 1e-9)
+                if t > now:
+                    u.nudges = 0
+                else:
+                    # blocked now, so room comes later: a ramp a rounding error long must not
+                    # bring the unit back at the same instant forever
+                    t = now + 1e-9
+                    u.nudges += 1
+                    if u.nudges > NUDGE_LIMIT:
+                        raise SimulationStalled(
+                            f"no progress at cycle {now:.0f}: the fetch unit found its next "
+                            f"transaction ({head.kind} of step {head.step}) still blocked by "
+                            f"{head.wait_cause} {NUDGE_LIMIT:,} times when room was due")
+                u.poke_at(t)
         if not u.wake.triggered:
             yield u.wake
         u.wake = env.event()
