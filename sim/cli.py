@@ -310,7 +310,8 @@ class _Ticker:
 
         self.total = None
         self.done = threading.Event()
-        self.timer = threading.Timer(1.0, start)
+        # a bar from a second on (a short run shows none); a log counts FIRST_LOG from now
+        self.timer = threading.Timer(1.0 if tty else 0.0, start)
         self.timer.daemon = True
         self.timer.start()
         return self
