@@ -1,0 +1,186 @@
+"""Replay thousands of random valid workloads; every run must end, and end right.
+
+    python bench/engine_fuzz.py                      # 2,000 cases, 2 worker processes
+    python bench/engine_fuzz.py --cases 500 --timeout 60 --jobs 2 --seed 0
+    python bench/engine_fuzz.py --replay '{"seed": 0, "case": 17}'   # one case again, in this process
+
+The suite's property tests draw a few dozen cases each; this draws thousands,
+from a wider space: a random version-2 trace (prefill and decode, grouped K/V
+heads, batches, causal prefill, windows, cache writes, token/head/value
+pruning, least-significant-plane flags) on a random datapath (a bundled config,
+or ``mid`` with its clock, channels, array, buffers, softmax width, issue window
+and grain redrawn). Each case runs in a worker with an alarm after
+``--timeout`` s. Outcomes:
+
+* ``ok``: the run ended and passed every check below;
+* ``hang``: the alarm rang (a run that never ends is an engine fault; the
+  engine's own no-progress checks should have raised first);
+* ``stalled``: ``SimulationStalled`` (the engine gave up: also a fault, on
+  valid input);
+* ``error``: any other exception;
+* ``wrong_work``, ``below_floor``: the checks failed.
+
+The checks are those of ``tests/test_workload_v2_reference.py``, whose brute
+force reads only the trace's fields (no call into the engine's planning code):
+the reported q.K, LSB-recompute and p.V MACs and softmax elements equal the
+trace's work; DRAM reads are at least the bytes that must be read; cycles are
+at least the roofline bound (Williams, Waterman and Patterson, CACM 2009),
+max(work / peak compute, bytes / peak bandwidth). A failing case prints the
+line that replays it. The contract: every case ``ok``.
+"""
+
+import argparse
+import collections
+import json
+import multiprocessing as mp
+import os
+import random
+import signal
+import sys
+import time
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+ROOT = os.path.dirname(HERE)
+sys.path[:0] = [ROOT, os.path.join(ROOT, "tests")]   # this checkout's package, not an installed one
+
+import sim  # noqa: E402
+from sim.errors import SimulationStalled  # noqa: E402
+from sim.trace.synth import synth_trace  # noqa: E402
+from test_workload_v2_reference import step_demand  # noqa: E402
+
+CONFIGS = os.path.join(ROOT, "arch_configs")
+BUNDLED = ("edge", "mid", "server", "hbm2_stack")
+
+
+class _Alarm(Exception):
+    pass
+
+
+def _ring(*_):
+    raise _Alarm()
+
+
+def draw(seed, case):
+    """The case numbered ``case`` of the stream ``seed``: (config name, overrides, synth
+    arguments). The same pair always gives the same case."""
+    r = random.Random(f"{seed}:{case}")
+    name = r.choice(BUNDLED + ("mid",) * 4)
+    over = {"engine.grain_rows": r.choice([16, 64, 256, 1024]),
+            "fetch.issue_window": r.choice([0, 1, 3, 8, 32])}
+    if name == "mid" and r.random() < 0.8:
+        lanes = r.choice([16, 32, 64])
+        over.update({
+            "clock_ghz": r.choice([0.5, 1.0, 2.0]),
+            "dram.channels": r.choice([1, 2, 4, 8]),
+            "dram.channel_gbps": r.choice([8.5, 12.8, 25.6, 32.0]),
+            "dot.lanes": lanes,
+            "dot.multipliers": lanes * r.choice([2, 4, 16, 32]),
+            "dot.arrays": r.choice(["shared", "separate"]),
+            "dot.tile_rows": 16,
+            "buffers.query_kib": r.choice([1, 2, 4, 64]),
+            "buffers.key_kib": r.choice([4, 8, 16, 32, 256]),
+            "buffers.value_kib": r.choice([4, 8, 16, 32, 256]),
+            "softmax.lanes": r.choice([4, 16, 64]),
+        })
+    heads = r.choice([1, 2, 4, 6, 8])
+    shape = dict(
+        prompt_tokens=r.choice([8, 16, 70, 200, 333]), decode_steps=r.randint(0, 4),
+        layers=r.randint(1, 2), heads=heads,
+        kv_heads=r.choice([k for k in (1, 2, 4, heads) if heads % k == 0]),
+        head_dim=r.choice([32, 64, 128]), batch=r.randint(1, 3),
+        causal=r.random() < 0.5, window=r.choice([0, 0, 1, 8, 50]), writes=r.random() < 0.5,
+        token_keep=r.choice([1.0, 0.7, 0.3]), head_keep=r.choice([1.0, 0.5]),
+        value_keep=r.choice([1.0, 0.4]), lsb_fraction=r.choice([0.0, 0.3, 1.0]),
+        lsb_fraction_rows=r.choice([0.2, 1.0]), seed=r.randint(0, 9))
+    return name, over, shape
+
+
+def check(doc, trace):
+    """The outcome of a finished run: ``ok`` or what it got wrong."""
+    cfg = doc["arch"]["config"]
+    qk = lsb = pv = softmax = 0
+    need = 0.0
+    for s in trace.steps:
+        a, b, c, e, n = step_demand(s, cfg["precision"])
+        qk, lsb, pv, softmax, need = qk + a, lsb + b, pv + c, softmax + e, need + n
+    got = doc["compute"]
+    if (got["macs_qk"], got["macs_lsb_recompute"], got["macs_pv"], got["softmax_elements"]) != (qk, lsb, pv, softmax):
+        return "wrong_work", (f"MACs/softmax {got['macs_qk']}/{got['macs_lsb_recompute']}/{got['macs_pv']}/"
+                              f"{got['softmax_elements']}, trace asks {qk}/{lsb}/{pv}/{softmax}")
+    m = cfg["dot"]["multipliers"]
+    if cfg["dot"]["arrays"] == "separate":
+        dot_floor = max((qk + lsb) / (m // 2), pv / (m // 2))
+    else:
+        dot_floor = (qk + lsb + pv) / m
+    bytes_per_cycle = cfg["dram"]["channels"] * cfg["dram"]["channel_gbps"] / cfg["clock_ghz"]
+    floor = max(dot_floor, softmax / cfg["softmax"]["lanes"], need / bytes_per_cycle)
+    if doc["dram"]["read_bytes"] < need:
+        return "below_floor", f"read {doc['dram']['read_bytes']} bytes, must read {need:.0f}"
+    if doc["cycles"] < floor * (1 - 1e-9):
+        return "below_floor", f"{doc['cycles']} cycles, roofline bound {floor:.0f}"
+    return "ok", ""
+
+
+def run_case(seed, case, timeout):
+    """(case, outcome, detail, seconds) of one case, in this process."""
+    name, over, shape = draw(seed, case)
+    t0 = time.perf_counter()
+    old = signal.signal(signal.SIGALRM, _ring)
+    signal.alarm(timeout)
+    try:
+        trace = synth_trace(**shape)
+        arch = sim.load_arch(os.path.join(CONFIGS, f"{name}.yaml")).with_overrides(over)
+        doc = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+        signal.alarm(0)
+        outcome, detail = check(doc, trace)
+    except _Alarm:
+        outcome, detail = "hang", f"no end after {timeout} s"
+    except SimulationStalled as e:
+        outcome, detail = "stalled", str(e)
+    except Exception as e:   # noqa: BLE001 -- any other fault is an outcome to report
+        outcome, detail = "error", f"{type(e).__name__}: {e}"
+    finally:
+        signal.alarm(0)
+        signal.signal(signal.SIGALRM, old)
+    return case, outcome, detail, time.perf_counter() - t0
+
+
+def _work(args):
+    return run_case(*args)
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--cases", type=int, default=2000)
+    ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--timeout", type=int, default=60, help="seconds a case may take")
+    ap.add_argument("--jobs", type=int, default=2)
+    ap.add_argument("--replay", help='one case again: \'{"seed": S, "case": N}\'')
+    args = ap.parse_args()
+    if args.replay:
+        r = json.loads(args.replay)
+        print(draw(r["seed"], r["case"]))
+        print(run_case(r["seed"], r["case"], args.timeout)[1:])
+        return 0
+    t0 = time.perf_counter()
+    counts = collections.Counter()
+    slow = []
+    jobs = [(args.seed, i, args.timeout) for i in range(args.cases)]
+    with mp.get_context("fork").Pool(args.jobs, maxtasksperchild=200) as pool:
+        for case, outcome, detail, secs in pool.imap_unordered(_work, jobs):
+            counts[outcome] += 1
+            slow.append((secs, case))
+            if outcome != "ok":
+                print(f"{outcome}: {detail}\n  replay: python bench/engine_fuzz.py --replay "
+                      f"'{{\"seed\": {args.seed}, \"case\": {case}}}'", flush=True)
+    wall = time.perf_counter() - t0
+    slow.sort(reverse=True)
+    print(f"{args.cases} cases (seed {args.seed}) on {args.jobs} processes in {wall:.0f} s; "
+          f"slowest cases {', '.join(f'{c} ({s:.1f} s)' for s, c in slow[:3])}")
+    for outcome in ("ok", "hang", "stalled", "error", "wrong_work", "below_floor"):
+        print(f"  {outcome:12s} {counts[outcome]:6d}")
+    return 0 if counts["ok"] == args.cases else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())
