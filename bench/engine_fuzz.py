@@ -2,6 +2,7 @@
 
     python bench/engine_fuzz.py                      # 2,000 cases, 2 worker processes
     python bench/engine_fuzz.py --cases 500 --timeout 60 --jobs 2 --seed 0
+    python bench/engine_fuzz.py --grain              # and each case again at 16 rows: the grain is a speed knob
     python bench/engine_fuzz.py --replay '{"seed": 0, "case": 17}'   # one case again, in this process
 
 The suite's property tests draw a few dozen cases each; this draws thousands,
@@ -18,7 +19,10 @@ and grain redrawn). Each case runs in a worker with an alarm after
 * ``stalled``: ``SimulationStalled`` (the engine gave up: also a fault, on
   valid input);
 * ``error``: any other exception;
-* ``wrong_work``, ``below_floor``: the checks failed.
+* ``wrong_work``, ``below_floor``: the checks failed;
+* ``grain_moves`` (``--grain`` only): the case at its drawn grain (256 rows at
+  least) and at 16 rows differ by more than 2 % in cycles or 2 points in a
+  unit's busy fraction, the tolerance of the grain issue's own checks.
 
 The checks are those of ``tests/test_workload_v2_reference.py``, whose brute
 force reads only the trace's fields (no call into the engine's planning code):
@@ -26,7 +30,8 @@ the reported q.K, LSB-recompute and p.V MACs and softmax elements equal the
 trace's work; DRAM reads are at least the bytes that must be read; cycles are
 at least the roofline bound (Williams, Waterman and Patterson, CACM 2009),
 max(work / peak compute, bytes / peak bandwidth). A failing case prints the
-line that replays it. The contract: every case ``ok``.
+line that replays it. The contract: every case ``ok``; with ``--grain`` the
+closing note of the stop that added it lists what a 2,000-case run still finds.
 """
 
 import argparse
@@ -50,6 +55,7 @@ from test_workload_v2_reference import step_demand  # noqa: E402
 
 CONFIGS = os.path.join(ROOT, "arch_configs")
 BUNDLED = ("edge", "mid", "server", "hbm2_stack")
+FINE, GRAIN_TOL, GRAIN_POINTS = 16, 0.02, 2.0   # issue's grain check: 16 rows, 2 %, 2 points
 
 
 class _Alarm(Exception):
@@ -121,9 +127,25 @@ def check(doc, trace):
     return "ok", ""
 
 
-def run_case(seed, case, timeout):
-    """(case, outcome, detail, seconds) of one case, in this process."""
+def grain_check(doc, fine):
+    """The grain is a speed knob: cycles within GRAIN_TOL of the fine grain's, each unit's
+    busy fraction within GRAIN_POINTS points."""
+    a, b = doc["cycles"], fine["cycles"]
+    if abs(a - b) > GRAIN_TOL * b:
+        return "grain_moves", f"cycles {a} at grain {doc['engine']['grain_rows']}, {b} at {FINE} rows ({(a - b) / b:+.1%})"
+    for unit, u in doc["units"].items():
+        d = u["busy"] - fine["units"][unit]["busy"]
+        if abs(d) > GRAIN_POINTS / 100:
+            return "grain_moves", f"{unit} busy {u['busy']:.3f} against {fine['units'][unit]['busy']:.3f} at {FINE} rows"
+    return "ok", ""
+
+
+def run_case(seed, case, timeout, grain=False):
+    """(case, outcome, detail, seconds) of one case, in this process; with ``grain``, the
+    case at its drawn grain (at least 256 rows) against FINE rows."""
     name, over, shape = draw(seed, case)
+    if grain:
+        over["engine.grain_rows"] = max(256, over["engine.grain_rows"])
     t0 = time.perf_counter()
     old = signal.signal(signal.SIGALRM, _ring)
     signal.alarm(timeout)
@@ -131,8 +153,11 @@ def run_case(seed, case, timeout):
         trace = synth_trace(**shape)
         arch = sim.load_arch(os.path.join(CONFIGS, f"{name}.yaml")).with_overrides(over)
         doc = sim.simulate(arch, trace, keep_intervals=False).to_dict()
-        signal.alarm(0)
         outcome, detail = check(doc, trace)
+        if grain and outcome == "ok":
+            fine = sim.simulate(arch.with_overrides({"engine.grain_rows": FINE}), trace, keep_intervals=False).to_dict()
+            outcome, detail = grain_check(doc, fine)
+        signal.alarm(0)
     except _Alarm:
         outcome, detail = "hang", f"no end after {timeout} s"
     except SimulationStalled as e:
@@ -155,29 +180,31 @@ def main():
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--timeout", type=int, default=60, help="seconds a case may take")
     ap.add_argument("--jobs", type=int, default=2)
+    ap.add_argument("--grain", action="store_true",
+                    help=f"also run each case at {FINE} rows: cycles within 2 %%, busy within 2 points")
     ap.add_argument("--replay", help='one case again: \'{"seed": S, "case": N}\'')
     args = ap.parse_args()
     if args.replay:
         r = json.loads(args.replay)
         print(draw(r["seed"], r["case"]))
-        print(run_case(r["seed"], r["case"], args.timeout)[1:])
+        print(run_case(r["seed"], r["case"], args.timeout, args.grain)[1:])
         return 0
     t0 = time.perf_counter()
     counts = collections.Counter()
     slow = []
-    jobs = [(args.seed, i, args.timeout) for i in range(args.cases)]
+    jobs = [(args.seed, i, args.timeout, args.grain) for i in range(args.cases)]
     with mp.get_context("fork").Pool(args.jobs, maxtasksperchild=200) as pool:
         for case, outcome, detail, secs in pool.imap_unordered(_work, jobs):
             counts[outcome] += 1
             slow.append((secs, case))
             if outcome != "ok":
-                print(f"{outcome}: {detail}\n  replay: python bench/engine_fuzz.py --replay "
-                      f"'{{\"seed\": {args.seed}, \"case\": {case}}}'", flush=True)
+                print(f"{outcome}: {detail}\n  replay: python bench/engine_fuzz.py{' --grain' * args.grain} "
+                      f"--replay '{{\"seed\": {args.seed}, \"case\": {case}}}'", flush=True)
     wall = time.perf_counter() - t0
     slow.sort(reverse=True)
     print(f"{args.cases} cases (seed {args.seed}) on {args.jobs} processes in {wall:.0f} s; "
           f"slowest cases {', '.join(f'{c} ({s:.1f} s)' for s, c in slow[:3])}")
-    for outcome in ("ok", "hang", "stalled", "error", "wrong_work", "below_floor"):
+    for outcome in ("ok", "hang", "stalled", "error", "wrong_work", "below_floor") + ("grain_moves",) * args.grain:
         print(f"  {outcome:12s} {counts[outcome]:6d}")
     return 0 if counts["ok"] == args.cases else 1
 
