@@ -30,8 +30,8 @@ the reported q.K, LSB-recompute and p.V MACs and softmax elements equal the
 trace's work; DRAM reads are at least the bytes that must be read; cycles are
 at least the roofline bound (Williams, Waterman and Patterson, CACM 2009),
 max(work / peak compute, bytes / peak bandwidth). A failing case prints the
-line that replays it. The contract: every case ``ok``; with ``--grain`` the
-closing note of the stop that added it lists what a 2,000-case run still finds.
+line that replays it. The contract: every case ``ok``; with ``--grain``,
+DEVELOPERS.md says what a run still finds and why.
 """
 
 import argparse
