@@ -19,7 +19,7 @@ and grain redrawn). Each case runs in a worker with an alarm after
 * ``stalled``: ``SimulationStalled`` (the engine gave up: also a fault, on
   valid input);
 * ``error``: any other exception;
-* ``wrong_work``, ``below_floor``: the checks failed;
+* ``wrong_work``, ``below_floor``, ``bad_states``: the checks failed;
 * ``grain_moves`` (``--grain`` only): the case at its drawn grain (256 rows at
   least) and at 16 rows differ by more than 2 % in cycles or 2 points in a
   unit's busy fraction, the tolerance of the grain issue's own checks.
@@ -29,9 +29,11 @@ force reads only the trace's fields (no call into the engine's planning code):
 the reported q.K, LSB-recompute and p.V MACs and softmax elements equal the
 trace's work; DRAM reads are at least the bytes that must be read; cycles are
 at least the roofline bound (Williams, Waterman and Patterson, CACM 2009),
-max(work / peak compute, bytes / peak bandwidth). A failing case prints the
-line that replays it. The contract: every case ``ok``; with ``--grain``,
-DEVELOPERS.md says what a run still finds and why.
+max(work / peak compute, bytes / peak bandwidth), and at least the result's own
+roofline bound; each unit's busy, starved, blocked and idle fractions sum to one
+and its stall causes to starved plus blocked (common practice, no source). A
+failing case prints the line that replays it. The contract: every case
+``ok``; with ``--grain``, DEVELOPERS.md says what a run still finds and why.
 """
 
 import argparse
@@ -124,6 +126,15 @@ def check(doc, trace):
         return "below_floor", f"read {doc['dram']['read_bytes']} bytes, must read {need:.0f}"
     if doc["cycles"] < floor * (1 - 1e-9):
         return "below_floor", f"{doc['cycles']} cycles, roofline bound {floor:.0f}"
+    own = doc["bounds"]["roofline_cycles"]
+    if doc["cycles"] < own * (1 - 1e-9):
+        return "below_floor", f"{doc['cycles']} cycles, the result's own roofline bound {own:.0f}"
+    for unit, u in doc["units"].items():
+        total = u["busy"] + u["starved"] + u["blocked"] + u["idle"]
+        stalls = sum(u["stalls"].values())
+        if abs(total - 1) > 1e-6 or abs(stalls - u["starved"] - u["blocked"]) > 1e-6 or min(u["stalls"].values(), default=0) < -1e-12:
+            return "bad_states", (f"{unit}: busy+starved+blocked+idle = {total:.9f}, stalls sum to {stalls:.9f} "
+                                  f"against starved+blocked {u['starved'] + u['blocked']:.9f}")
     return "ok", ""
 
 
@@ -204,7 +215,7 @@ def main():
     slow.sort(reverse=True)
     print(f"{args.cases} cases (seed {args.seed}) on {args.jobs} processes in {wall:.0f} s; "
           f"slowest cases {', '.join(f'{c} ({s:.1f} s)' for s, c in slow[:3])}")
-    for outcome in ("ok", "hang", "stalled", "error", "wrong_work", "below_floor") + ("grain_moves",) * args.grain:
+    for outcome in ("ok", "hang", "stalled", "error", "wrong_work", "below_floor", "bad_states") + ("grain_moves",) * args.grain:
         print(f"  {outcome:12s} {counts[outcome]:6d}")
     return 0 if counts["ok"] == args.cases else 1
 
