@@ -55,8 +55,8 @@ from ..errors import SimulationStalled
 from .buffers import ramp_time
 from .due import later
 
-# Re-checks in a row that find the unit still blocked when its room was due: past this
-# many the engine is at fault (it would spin a nanosecond at a time for ever).
+# Re-checks without an issue between them that find the unit still blocked when its room
+# was due: past this many the engine is at fault (it would spin a nanosecond at a time for ever).
 NUDGE_LIMIT = 100_000
 
 _ORDER = attrgetter("order")
@@ -103,7 +103,7 @@ class FetchUnit:
         self.issue_free = 0.0       # the request port is busy issuing until then
         self.desc_now = -1          # the descriptor issued last
         self.fired = False          # a set-aside transaction's dependency fired since the last look
-        self.nudges = 0             # re-checks in a row that found room due and none there
+        self.nudges = 0             # re-checks since the last issue that found room due and none there
         self.issuing = False        # inside pool.submit
         self.wake = env.event()
         self.timer = None           # the pending re-evaluation timer, and its time
@@ -302,6 +302,7 @@ class FetchUnit:
 
     def issue(self, txn, cause):
         now = self.env.now
+        self.nudges = 0   # progress: the spin count starts again
         txn.log.append((cause, now))
         if txn.room is not None:
             # its first burst waits for room in the pool: say so in its log
