@@ -9,11 +9,14 @@ The suite's property tests draw a few dozen cases each; this draws thousands,
 from a wider space: a random version-2 trace (prefill and decode, grouped K/V
 heads, batches, causal prefill, windows, cache writes, token/head/value
 pruning, least-significant-plane flags) on a random datapath (a bundled config,
-or ``mid`` with its clock, channels, array, buffers, softmax width, issue window
-and grain redrawn). Each case runs in a worker with an alarm after
+or ``mid`` with its clock, channels, array, buffers, softmax width, fetch limits,
+issue window and grain redrawn, and half the time its memory model, scheduler,
+page policy, layout, steering and write queue). Each case runs in a worker with an alarm after
 ``--timeout`` s. Outcomes:
 
 * ``ok``: the run ended and passed every check below;
+* ``refused``: the config's checks refused the drawn knobs (not a fault of the
+  engine: the draw should not make such combinations);
 * ``hang``: the alarm rang (a run that never ends is an engine fault; the
   engine's own no-progress checks should have raised first);
 * ``stalled``: ``SimulationStalled`` (the engine gave up: also a fault, on
@@ -51,7 +54,7 @@ ROOT = os.path.dirname(HERE)
 sys.path[:0] = [ROOT, os.path.join(ROOT, "tests")]   # this checkout's package, not an installed one
 
 import sim  # noqa: E402
-from sim.errors import SimulationStalled  # noqa: E402
+from sim.errors import InputError, SimulationStalled  # noqa: E402
 from sim.trace.synth import synth_trace  # noqa: E402
 from test_workload_v2_reference import step_demand  # noqa: E402
 
@@ -89,7 +92,21 @@ def draw(seed, case):
             "buffers.key_kib": r.choice([4, 8, 16, 32, 256]),
             "buffers.value_kib": r.choice([4, 8, 16, 32, 256]),
             "softmax.lanes": r.choice([4, 16, 64]),
+            "dot.lookahead": r.choice([1, 4, 16]),
+            "fetch.request_bytes": r.choice([256, 1024, 4096]),
+            "fetch.inflight": r.choice([4, 32, 128]),
+            "fetch.reorder_entries": r.choice([2, 16, 64]),
+            "dram.queue_depth": r.choice([4, 32]),
         })
+        if r.random() < 0.5:   # the memory model's policies
+            over.update({
+                "dram.model": r.choice(["banked"] * 4 + ["fixed-latency"]),
+                "dram.scheduler": r.choice(["fcfs", "row_hits_first"]),
+                "dram.page_policy": r.choice(["open", "close"]),
+                "dram.layout": r.choice(["head_regions", "head_planes", "heads_interleaved"]),
+                "dram.steering": r.choice(["address"] * 3 + ["first_free"]),
+                "dram.write_queue": r.choice([8, 64]),
+            })
     heads = r.choice([1, 2, 4, 6, 8])
     shape = dict(
         prompt_tokens=r.choice([8, 16, 70, 200, 333]), decode_steps=r.randint(0, 4),
@@ -173,6 +190,8 @@ def run_case(seed, case, timeout, grain=False):
         outcome, detail = "hang", f"no end after {timeout} s"
     except SimulationStalled as e:
         outcome, detail = "stalled", str(e)
+    except InputError as e:   # a drawn combination the config's checks refuse: the draw's fault
+        outcome, detail = "refused", str(e)
     except Exception as e:   # noqa: BLE001 -- any other fault is an outcome to report
         outcome, detail = "error", f"{type(e).__name__}: {e}"
     finally:
@@ -215,9 +234,9 @@ def main():
     slow.sort(reverse=True)
     print(f"{args.cases} cases (seed {args.seed}) on {args.jobs} processes in {wall:.0f} s; "
           f"slowest cases {', '.join(f'{c} ({s:.1f} s)' for s, c in slow[:3])}")
-    for outcome in ("ok", "hang", "stalled", "error", "wrong_work", "below_floor", "bad_states") + ("grain_moves",) * args.grain:
+    for outcome in ("ok", "refused", "hang", "stalled", "error", "wrong_work", "below_floor", "bad_states") + ("grain_moves",) * args.grain:
         print(f"  {outcome:12s} {counts[outcome]:6d}")
-    return 0 if counts["ok"] == args.cases else 1
+    return 0 if counts["ok"] + counts["refused"] == args.cases else 1
 
 
 if __name__ == "__main__":
