@@ -156,7 +156,8 @@ SCHEMA = {
         # Banked model (sim/engine/dram.py). Defaults are an HBM2 channel in legacy
         # mode, values from memory; sourced presets: arch_configs/memory/*.yaml.
         "model": Field("choice", "banked", "banked: banks, rows and refresh; fixed-latency: a pipelined "
-                       "bus with dram.latency_ns per access", choices=["banked", "fixed-latency"]),
+                       "bus with dram.latency_ns per access, timing each transaction as a whole (so "
+                       "its answers move with engine.grain_rows)", choices=["banked", "fixed-latency"]),
         "bus_bits": Field("int", 128, "data-bus width of one channel in bits"),
         "banks": Field("int", 16, "banks per channel (all bank groups together)"),
         "bank_groups": Field("int", 4, "bank groups per channel; back-to-back columns in one group "
@@ -218,8 +219,9 @@ SCHEMA = {
                         "rows, whole bursts each); see sim/engine/addrmap.py",
                         choices=["head_regions", "head_planes", "heads_interleaved"]),
         "steering": Field("choice", "address", "address: bursts go to the channel their address "
-                          "names; first_free: a whole transaction goes to the channel that frees "
-                          "first (one shared queue, for queueing checks)",
+                          "names; first_free: a whole transaction (engine.grain_rows rows at most) "
+                          "goes to the channel that frees first (one shared queue, for queueing "
+                          "checks; its answers move with the grain)",
                           choices=["address", "first_free"]),
     },
     "fetch": {
