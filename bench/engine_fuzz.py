@@ -56,7 +56,7 @@ sys.path[:0] = [ROOT, os.path.join(ROOT, "tests")]   # this checkout's package, 
 import sim  # noqa: E402
 from sim.errors import InputError, SimulationStalled  # noqa: E402
 from sim.trace.synth import synth_trace  # noqa: E402
-from test_workload_v2_reference import step_demand  # noqa: E402
+from test_workload_v2_reference import roofline  # noqa: E402
 
 CONFIGS = os.path.join(ROOT, "arch_configs")
 BUNDLED = ("edge", "mid", "server", "hbm2_stack")
@@ -122,23 +122,11 @@ def draw(seed, case):
 
 def check(doc, trace):
     """The outcome of a finished run: ``ok`` or what it got wrong."""
-    cfg = doc["arch"]["config"]
-    qk = lsb = pv = softmax = 0
-    need = 0.0
-    for s in trace.steps:
-        a, b, c, e, n = step_demand(s, cfg["precision"])
-        qk, lsb, pv, softmax, need = qk + a, lsb + b, pv + c, softmax + e, need + n
+    (qk, lsb, pv, softmax, need), floor = roofline(trace, doc["arch"]["config"])
     got = doc["compute"]
     if (got["macs_qk"], got["macs_lsb_recompute"], got["macs_pv"], got["softmax_elements"]) != (qk, lsb, pv, softmax):
         return "wrong_work", (f"MACs/softmax {got['macs_qk']}/{got['macs_lsb_recompute']}/{got['macs_pv']}/"
                               f"{got['softmax_elements']}, trace asks {qk}/{lsb}/{pv}/{softmax}")
-    m = cfg["dot"]["multipliers"]
-    if cfg["dot"]["arrays"] == "separate":
-        dot_floor = max((qk + lsb) / (m // 2), pv / (m // 2))
-    else:
-        dot_floor = (qk + lsb + pv) / m
-    bytes_per_cycle = cfg["dram"]["channels"] * cfg["dram"]["channel_gbps"] / cfg["clock_ghz"]
-    floor = max(dot_floor, softmax / cfg["softmax"]["lanes"], need / bytes_per_cycle)
     if doc["dram"]["read_bytes"] < need:
         return "below_floor", f"read {doc['dram']['read_bytes']} bytes, must read {need:.0f}"
     if doc["cycles"] < floor * (1 - 1e-9):

@@ -353,7 +353,18 @@ def test_no_v2_run_beats_its_roofline_and_work_is_exact(case):
     over, trace = case
     arch = sim.load_arch(config("mid")).with_overrides(over)
     doc = run(arch, trace)
-    cfg = doc["arch"]["config"]
+    (qk, lsb, pv, softmax, need), floor = roofline(trace, doc["arch"]["config"])
+    c = doc["compute"]
+    assert (c["macs_qk"], c["macs_lsb_recompute"], c["macs_pv"]) == (qk, lsb, pv)
+    assert c["softmax_elements"] == softmax
+    assert doc["dram"]["read_bytes"] >= need
+    assert doc["cycles"] >= floor * (1 - 1e-9)
+
+
+def roofline(trace, cfg):
+    """((q.K, LSB, p.V MACs, softmax elements, bytes that must be read), the roofline bound
+    in cycles) of ``trace`` on the config document ``cfg``, by :func:`step_demand`. Also
+    used by ``bench/engine_fuzz.py``."""
     qk = lsb = pv = softmax = 0
     need = 0.0
     for s in trace.steps:
@@ -366,11 +377,7 @@ def test_no_v2_run_beats_its_roofline_and_work_is_exact(case):
         dot_floor = (qk + lsb + pv) / m
     compute = max(dot_floor, softmax / cfg["softmax"]["lanes"])
     bytes_per_cycle = cfg["dram"]["channels"] * cfg["dram"]["channel_gbps"] / cfg["clock_ghz"]
-    c = doc["compute"]
-    assert (c["macs_qk"], c["macs_lsb_recompute"], c["macs_pv"]) == (qk, lsb, pv)
-    assert c["softmax_elements"] == softmax
-    assert doc["dram"]["read_bytes"] >= need
-    assert doc["cycles"] >= max(compute, need / bytes_per_cycle) * (1 - 1e-9)
+    return (qk, lsb, pv, softmax, need), max(compute, need / bytes_per_cycle)
 
 
 # --------------------------------------------------------------------------
