@@ -11,8 +11,8 @@ heads, batches, causal prefill, windows, cache writes, token/head/value
 pruning, least-significant-plane flags) on a random datapath (a bundled config,
 or ``mid`` with its clock, channels, array, buffers, softmax width, fetch limits,
 issue window and grain redrawn, and half the time its memory model, scheduler,
-page policy, layout, steering and write queue). Each case runs in a worker with an alarm after
-``--timeout`` s. Outcomes:
+page policy, layout, steering and write queue). Each case runs in a worker
+with an alarm after ``--timeout`` s. Outcomes:
 
 * ``ok``: the run ended and passed every check below;
 * ``refused``: the config's checks refused the drawn knobs (not a fault of the
@@ -137,7 +137,8 @@ def check(doc, trace):
     for unit, u in doc["units"].items():
         total = u["busy"] + u["starved"] + u["blocked"] + u["idle"]
         stalls = sum(u["stalls"].values())
-        if abs(total - 1) > 1e-6 or abs(stalls - u["starved"] - u["blocked"]) > 1e-6 or min(u["stalls"].values(), default=0) < -1e-12:
+        negative = min(u["stalls"].values(), default=0) < -1e-12
+        if abs(total - 1) > 1e-6 or abs(stalls - u["starved"] - u["blocked"]) > 1e-6 or negative:
             return "bad_states", (f"{unit}: busy+starved+blocked+idle = {total:.9f}, stalls sum to {stalls:.9f} "
                                   f"against starved+blocked {u['starved'] + u['blocked']:.9f}")
     return "ok", ""
@@ -148,7 +149,8 @@ def grain_check(doc, fine):
     busy fraction within GRAIN_POINTS points."""
     a, b = doc["cycles"], fine["cycles"]
     if abs(a - b) > GRAIN_TOL * b:
-        return "grain_moves", f"cycles {a} at grain {doc['engine']['grain_rows']}, {b} at {FINE} rows ({(a - b) / b:+.1%})"
+        return "grain_moves", (f"cycles {a} at grain {doc['engine']['grain_rows']}, {b} at {FINE} rows "
+                               f"({(a - b) / b:+.1%})")
     for unit, u in doc["units"].items():
         d = u["busy"] - fine["units"][unit]["busy"]
         if abs(d) > GRAIN_POINTS / 100:
@@ -211,18 +213,31 @@ def main():
     counts = collections.Counter()
     slow = []
     jobs = [(args.seed, i, args.timeout, args.grain) for i in range(args.cases)]
+    replay = f"python bench/engine_fuzz.py{' --grain' * args.grain} --replay"
     with mp.get_context("fork").Pool(args.jobs, maxtasksperchild=200) as pool:
-        for case, outcome, detail, secs in pool.imap_unordered(_work, jobs):
+        results = pool.imap_unordered(_work, jobs)
+        for _ in jobs:
+            try:
+                # the alarm interrupts Python code only: a worker stuck in a compiled loop
+                # answers nothing, and the cases not done count as hangs
+                case, outcome, detail, secs = results.next(timeout=2 * args.timeout + 30)
+            except mp.TimeoutError:
+                left = args.cases - sum(counts.values())
+                counts["hang"] += left
+                print(f"hang: no worker answered for {2 * args.timeout + 30} s; {left} cases not done", flush=True)
+                pool.terminate()
+                break
             counts[outcome] += 1
             slow.append((secs, case))
             if outcome != "ok":
-                print(f"{outcome}: {detail}\n  replay: python bench/engine_fuzz.py{' --grain' * args.grain} "
-                      f"--replay '{{\"seed\": {args.seed}, \"case\": {case}}}'", flush=True)
+                print(f"{outcome}: {detail}\n  replay: {replay} '{{\"seed\": {args.seed}, \"case\": {case}}}'",
+                      flush=True)
     wall = time.perf_counter() - t0
     slow.sort(reverse=True)
     print(f"{args.cases} cases (seed {args.seed}) on {args.jobs} processes in {wall:.0f} s; "
           f"slowest cases {', '.join(f'{c} ({s:.1f} s)' for s, c in slow[:3])}")
-    for outcome in ("ok", "refused", "hang", "stalled", "error", "wrong_work", "below_floor", "bad_states") + ("grain_moves",) * args.grain:
+    outcomes = ("ok", "refused", "hang", "stalled", "error", "wrong_work", "below_floor", "bad_states")
+    for outcome in outcomes + ("grain_moves",) * args.grain:
         print(f"  {outcome:12s} {counts[outcome]:6d}")
     return 0 if counts["ok"] + counts["refused"] == args.cases else 1
 
