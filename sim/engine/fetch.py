@@ -362,10 +362,10 @@ class FetchUnit:
         if not self.issuing:   # timed inside issue: the unit looks again right after
             self.poke()
 
-    def why(self, cur, more):
-        """(state, cause) while nothing can move."""
-        if self.ready:
-            return "blocked", self.ready[self.next_ready()].wait_cause
+    def why(self, cur, more, head):
+        """(state, cause) while nothing can move (``head``: the ready transaction to go next)."""
+        if head is not None:
+            return "blocked", head.wait_cause
         if cur is not None:
             return "blocked", f"{cur.buffer.name}_buffer_full"
         if more is not None and not self.window_open(more):
@@ -444,17 +444,15 @@ def fetch_process(u):
         if cur is None and nxt is None and not u.aside and not u.ready:
             break
         # 4. nothing can move now: say why and wait for something to change
-        state.set(*u.why(cur, nxt))
-        if u.ready and u.npending:
-            # the transaction that goes next, not the oldest: a descriptor under way goes first,
-            # and a smaller one's room can come earlier than its own (a timer that found the
-            # unit blocked again would then come back every nanosecond for ever)
-            head = u.ready[u.next_ready()]
+        # the transaction that goes next, not the oldest: a descriptor under way goes first,
+        # and a smaller one's room can come earlier than its own (a timer that found the unit
+        # blocked again would then come back every nanosecond for ever)
+        head = u.ready[u.next_ready()] if u.ready else None
+        state.set(*u.why(cur, nxt, head))
+        if head is not None and u.npending:
             t = u.when_room(head) if head.wait_cause == "inflight_limit" else u.next_handover()
             if t is not None:   # else the pool pokes when it times the transaction on the way
-                if t > now:
-                    u.nudges = 0
-                else:
+                if t <= now:
                     # blocked now, so room comes later: a ramp a rounding error long must not
                     # bring the unit back at the same instant forever
                     t = now + 1e-9
