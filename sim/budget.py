@@ -81,8 +81,9 @@ def step_transactions(arch, trace, grain_rows=None) -> list[int]:
         groups = len(np.unique(s.kv_heads))        # a K/V head's rows are fetched once for its group
         group = -(-s.n_heads // groups)
         nqb = math.ceil(s.q_rows / query_block_rows(arch, d, s.q_rows, group))
-        kc = chunk_rows(arch, "K", d, grain)
-        vc = chunk_rows(arch, "V", d, grain)
+        # several blocks may stream K and V again, in smaller chunks (tiling.chunk_cap)
+        kc = chunk_rows(arch, "K", d, grain, nqb > 1)
+        vc = chunk_rows(arch, "V", d, grain, nqb > 1)
         keys = s.n_kept_k if not s.window else min(s.n_kept_k, s.window + s.q_rows)
         k = math.ceil(keys / kc)
         v = math.ceil(min(int(s.kept_v.max()), keys) / vc)

@@ -116,6 +116,8 @@ class BandPlanner:
             gp.k_chunks = self.res_k[0]
         self.vplan = _ValuePlan(arch, amap, step, layer, gp, idx, keys, self.ranges, vc)
         self.k_memo = {}     # first key -> the K chunks of streams from it, shared by blocks
+        # streamed keys, when several blocks stream them, go through the buffer as through a ring
+        self.k_stream_cap = chunk_cap(arch, "K", len(blocks) > 1)
         lsb_hull = [ab for ab in (self._lsb_span(b)[1] for b in range(len(blocks))) if ab]
         if lsb_hull:
             a, b = min(x for x, _y in lsb_hull), max(y for _x, y in lsb_hull)
@@ -174,7 +176,7 @@ class BandPlanner:
             bounds = self.res_k[1]
             return _overlapping(bounds, a, b), bounds
         bp.k_chunks, bounds = _cut(self.amap, self.layer, "K", self.gp.kv, self.keys[a:b], a, self.kc,
-                                   chunk_cap(self.arch, "K"), self.k_memo.setdefault(a, {}))
+                                   self.k_stream_cap, self.k_memo.setdefault(a, {}))
         return None, bounds
 
     def _lsb_span(self, b):
@@ -224,6 +226,8 @@ class _ValuePlan:
         self.half = _half(arch, "V")
         self.cap = chunk_cap(arch, "V")
         self.sets = [self._positions(span) for _r0, _lo, _hi, span in ranges]
+        # streamed rows, when several blocks stream them, go through the buffer as through a ring
+        self.stream_cap = chunk_cap(arch, "V", len(ranges) > 1)
         self.memo = {}          # first key -> V chunks of streams from it (see plan_block)
         if gp.select:
             union = [s for s in self.sets if len(s)]
@@ -286,7 +290,7 @@ class _ValuePlan:
         else:
             # in prefill a block's V rows are the keys it sees: streams from one key share chunks
             memo = None if gp.select else self.memo.setdefault(span[0], {})
-            bp.v_chunks, _b = _cut(self.amap, self.layer, "V", gp.kv, mine, 0, self.vc, self.cap, memo)
+            bp.v_chunks, _b = _cut(self.amap, self.layer, "V", gp.kv, mine, 0, self.vc, self.stream_cap, memo)
             weights = [c.rows for c in bp.v_chunks]
         n_vis = span[1] - span[0]
         total = 0

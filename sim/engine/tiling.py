@@ -184,7 +184,11 @@ def _half(arch, plane):
 # on grouped-query decode); an eighth keeps that within about 1 %. Where the memory pool lets
 # each request of a chunk in only once the buffer has room for it (:func:`room_by_request`),
 # a chunk holds no room early and may take half its buffer (the other half is the next
-# group's, see above).
+# group's, see above) -- unless every query block streams the plane again: a chunk is granted
+# only when room for all of it is free or being freed by a reader under way, so a half-buffer
+# chunk of such a stream waited while fine ones took the room already free (measured: 12 % on
+# a memory-bound 16 KiB buffer case); those planes go through their buffer as through a ring,
+# in eighths.
 CHUNK_SHARE = 8
 CHUNK_SHARE_BY_REQUEST = 2
 
@@ -195,21 +199,23 @@ def room_by_request(arch):
     return arch.dram.model == "banked" and arch.dram.scheduler != "row_hits_first"
 
 
-def chunk_cap(arch, plane):
+def chunk_cap(arch, plane, streamed=False):
     """Bytes a chunk of ``plane`` may take: :data:`CHUNK_SHARE` of its buffer, or
-    :data:`CHUNK_SHARE_BY_REQUEST` where room comes request by request."""
-    share = CHUNK_SHARE_BY_REQUEST if room_by_request(arch) else CHUNK_SHARE
+    :data:`CHUNK_SHARE_BY_REQUEST` where room comes request by request and the plane is not
+    ``streamed`` again by every query block of its group."""
+    share = CHUNK_SHARE_BY_REQUEST if room_by_request(arch) and not streamed else CHUNK_SHARE
     return 2 * _half(arch, plane) / share
 
 
-def _room_rows(arch, plane, head_dim):
+def _room_rows(arch, plane, head_dim, streamed=False):
     """Contiguous rows of ``plane`` whose burst-rounded size fits a chunk's share of its buffer."""
     # a run of rows may straddle a burst at each end
-    return max(1, int((chunk_cap(arch, plane) - 2 * arch.dram.burst_bytes) // row_bytes(arch, plane, head_dim)))
+    cap = chunk_cap(arch, plane, streamed)
+    return max(1, int((cap - 2 * arch.dram.burst_bytes) // row_bytes(arch, plane, head_dim)))
 
 
-def chunk_rows(arch, plane, head_dim, grain_rows):
-    return max(1, min(grain_rows, _room_rows(arch, plane, head_dim)))
+def chunk_rows(arch, plane, head_dim, grain_rows, streamed=False):
+    return max(1, min(grain_rows, _room_rows(arch, plane, head_dim, streamed)))
 
 
 def pair_unit_rows(arch, head_dim):
@@ -388,9 +394,11 @@ def plan_plain_group(arch, amap, step, layer, gp, idx, blocks, cuts, same_cut):
     # what resident K leaves of half the key buffer
     lsb_blocks = sum(1 for b in range(nqb) if any(rows[b] for rows in share.values()))
     gp.kl_resident = lsb_blocks > 1 and gp.lsb_bytes + (gp.k_bytes if gp.k_resident else 0) <= half_k
-    k_chunks = [c[0] for c in split_rows(amap, layer, ("K",), kv, kept, kc, chunk_cap(arch, "K"), same_cut)]
-    v_chunks = [c[0] for c in split_rows(amap, layer, ("V",), kv, gp.v_positions, vc, chunk_cap(arch, "V"),
-                                         same_cut)]
+    # a plane every block streams again goes through its buffer as through a ring
+    k_chunks = [c[0] for c in split_rows(amap, layer, ("K",), kv, kept, kc,
+                                         chunk_cap(arch, "K", nqb > 1 and not gp.k_resident), same_cut)]
+    v_chunks = [c[0] for c in split_rows(amap, layer, ("V",), kv, gp.v_positions, vc,
+                                         chunk_cap(arch, "V", nqb > 1 and not gp.v_resident), same_cut)]
     if gp.kl_resident:
         pairs = split_rows(amap, layer, ("KL", "K"), kv, kept, klc, chunk_cap(arch, "K") / 2, same_cut)
         gp.kl_chunks = [c[0] for c in pairs]
