@@ -22,7 +22,8 @@ with an alarm after ``--timeout`` s. Outcomes:
 * ``stalled``: ``SimulationStalled`` (the engine gave up: also a fault, on
   valid input);
 * ``error``: any other exception;
-* ``wrong_work``, ``below_floor``, ``bad_states``: the checks failed;
+* ``wrong_work``, ``below_floor``, ``bad_states``, ``bad_estimate``: the checks
+  failed;
 * ``grain_moves`` (``--grain`` only): the case at its drawn grain (256 rows at
   least) and at 16 rows differ by more than 2 % in cycles or 2 points in a
   unit's busy fraction, the tolerance of the grain issue's own checks.
@@ -34,7 +35,8 @@ trace's work; DRAM reads are at least the bytes that must be read; cycles are
 at least the roofline bound (Williams, Waterman and Patterson, CACM 2009),
 max(work / peak compute, bytes / peak bandwidth), and at least the result's own
 roofline bound; each unit's busy, starved, blocked and idle fractions sum to one
-and its stall causes to starved plus blocked (common practice, no source). A
+and its stall causes to starved plus blocked (common practice, no source); the
+run budget's upper estimate of the transactions (``sim.budget``) is not exceeded. A
 failing case prints the line that replays it. The contract: every case
 ``ok``; with ``--grain``, DEVELOPERS.md says what a run still finds and why.
 """
@@ -54,6 +56,7 @@ ROOT = os.path.dirname(HERE)
 sys.path[:0] = [ROOT, os.path.join(ROOT, "tests")]   # this checkout's package, not an installed one
 
 import sim  # noqa: E402
+from sim import budget  # noqa: E402
 from sim.errors import InputError, SimulationStalled  # noqa: E402
 from sim.trace.synth import synth_trace  # noqa: E402
 from test_workload_v2_reference import roofline  # noqa: E402
@@ -120,7 +123,7 @@ def draw(seed, case):
     return name, over, shape
 
 
-def check(doc, trace):
+def check(doc, trace, arch):
     """The outcome of a finished run: ``ok`` or what it got wrong."""
     (qk, lsb, pv, softmax, need), floor = roofline(trace, doc["arch"]["config"])
     got = doc["compute"]
@@ -131,6 +134,10 @@ def check(doc, trace):
         return "below_floor", f"read {doc['dram']['read_bytes']} bytes, must read {need:.0f}"
     if doc["cycles"] < floor * (1 - 1e-9):
         return "below_floor", f"{doc['cycles']} cycles, roofline bound {floor:.0f}"
+    estimate = budget.transactions(arch, trace)
+    if doc["fetch"]["transactions"] > estimate:
+        return "bad_estimate", (f"{doc['fetch']['transactions']} transactions issued, the run budget's upper "
+                                f"estimate {estimate}")
     own = doc["bounds"]["roofline_cycles"]
     if doc["cycles"] < own * (1 - 1e-9):
         return "below_floor", f"{doc['cycles']} cycles, the result's own roofline bound {own:.0f}"
@@ -171,7 +178,7 @@ def run_case(seed, case, timeout, grain=False):
         trace = synth_trace(**shape)
         arch = sim.load_arch(os.path.join(CONFIGS, f"{name}.yaml")).with_overrides(over)
         doc = sim.simulate(arch, trace, keep_intervals=False).to_dict()
-        outcome, detail = check(doc, trace)
+        outcome, detail = check(doc, trace, arch)
         if grain and outcome == "ok":
             fine = sim.simulate(arch.with_overrides({"engine.grain_rows": FINE}), trace, keep_intervals=False).to_dict()
             outcome, detail = grain_check(doc, fine)
@@ -236,7 +243,8 @@ def main():
     slow.sort(reverse=True)
     print(f"{args.cases} cases (seed {args.seed}) on {args.jobs} processes in {wall:.0f} s; "
           f"slowest cases {', '.join(f'{c} ({s:.1f} s)' for s, c in slow[:3])}")
-    outcomes = ("ok", "refused", "hang", "stalled", "error", "wrong_work", "below_floor", "bad_states")
+    outcomes = ("ok", "refused", "hang", "stalled", "error", "wrong_work", "below_floor", "bad_states",
+                "bad_estimate")
     for outcome in outcomes + ("grain_moves",) * args.grain:
         print(f"  {outcome:12s} {counts[outcome]:6d}")
     return 0 if counts["ok"] + counts["refused"] == args.cases else 1

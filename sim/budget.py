@@ -86,12 +86,14 @@ def step_transactions(arch, trace, grain_rows=None) -> list[int]:
         vc = chunk_rows(arch, "V", d, grain, nqb > 1)
         keys = s.n_kept_k if not s.window else min(s.n_kept_k, s.window + s.q_rows)
         k = math.ceil(keys / kc)
-        v = math.ceil(min(int(s.kept_v.max()), keys) / vc)
+        # value pruning keeps rows per query head: a group fetches the union of its heads' rows
+        v = math.ceil(min(group * int(s.kept_v.max()), keys) / vc)
         # causal: block b sees about (b + 1) / nqb of the keys
         blocks = (nqb + 1) / 2 if s.causal else nqb
-        rounding = 2 * nqb if s.causal else 0      # a partly seen chunk per plane and block
-        # the LSB recompute: a KL chunk and its MSB chunk again, per block
-        per_group = math.ceil(blocks * (k + v)) + rounding + nqb + (2 * k * nqb if lsb and int(s.lsb_rows.max()) else 0)
+        rounding = 2 * nqb if s.causal or s.window else 0      # a partly seen chunk per plane and block
+        # the LSB recompute: a KL chunk and its MSB chunk again, per block, each cut at half
+        # a K chunk's bytes (tiling.pair_unit_rows)
+        per_group = math.ceil(blocks * (k + v)) + rounding + nqb + (4 * k * nqb if lsb and int(s.lsb_rows.max()) else 0)
         out.append(groups * per_group)
     return out
 
