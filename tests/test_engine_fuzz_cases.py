@@ -6,7 +6,8 @@ checking the same contract on a wide spread of version-2 traces and datapaths
 work, reads at least the bytes that must be read and is not faster than the
 roofline bound (Williams, Waterman and Patterson, CACM 2009), computed by the
 brute force of ``tests/test_workload_v2_reference.py``; state fractions add up
-(common practice, no source).
+and the run budget's upper estimate of the transactions holds (common practice,
+no source).
 """
 
 import importlib.util
