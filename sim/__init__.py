@@ -12,47 +12,15 @@ store -> report.
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
+import os
+from typing import Any
 
-import os  # noqa: E402
-from typing import TYPE_CHECKING, Any, Mapping, Union  # noqa: E402
-
-from .arch import Arch, load_arch  # noqa: E402
-from .errors import ConfigError, InputError, SimulationStalled, TraceError  # noqa: E402
-from .trace.files import load_trace  # noqa: E402
-from .trace.format import Trace  # noqa: E402
-
-if TYPE_CHECKING:
-    from .result import Result
-
-ArchLike = Union[Arch, str, "os.PathLike[str]", Mapping[str, Any]]
-TraceLike = Union[Trace, str, "os.PathLike[str]"]
-
-
-def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, progress: Any = None,
-             **engine_options: Any) -> Result:
-    """Replay ``trace`` on ``arch`` and return a :class:`sim.result.Result`.
-
-    ``arch`` may be an Arch, a YAML path or a mapping; ``trace`` a Trace or a
-    path. ``engine_options`` override the config's ``engine`` section
-    (``grain_rows``, ``seed``). ``keep_intervals=False`` skips the per-unit
-    intervals a timeline needs (the document is the same). A run that would
-    not fit the address map or the machine's memory is refused first
-    (:mod:`sim.budget`). ``progress``: a :class:`sim.engine.progress.RunProgress`
-    another thread may read while the run goes on (the CLI's progress line).
-    """
-    from .budget import check_run
-    from .engine.datapath import run_datapath
-    from .result import build_result
-
-    if progress is not None and not callable(getattr(progress, "attach", None)):
-        raise TypeError(f"progress: expected a sim.engine.progress.RunProgress or None, got {progress!r}")
-    arch = load_arch(arch)
-    if not isinstance(trace, Trace):
-        trace = load_trace(trace)
-    check_run(arch, trace, engine_options.get("grain_rows"), timeline=keep_intervals)
-    return build_result(run_datapath(arch, trace, keep_intervals=keep_intervals, progress=progress,
-                                     **engine_options))
+from .arch import Arch, load_arch
+from .errors import ConfigError, InputError, SimulationStalled, TraceError
+from .run import ArchLike, TraceLike, simulate
+from .trace.files import load_trace
+from .trace.format import Trace
+from .version import __version__
 
 
 def load_sweep(folder: str | os.PathLike, columns: list[str] | None = None,
@@ -73,5 +41,5 @@ def open_sweep(folder: str | os.PathLike) -> Any:
     return _open(folder)
 
 
-__all__ = ["Arch", "ConfigError", "InputError", "SimulationStalled", "Trace", "TraceError",
-           "load_arch", "load_sweep", "load_trace", "open_sweep", "simulate", "__version__"]
+__all__ = ["Arch", "ArchLike", "ConfigError", "InputError", "SimulationStalled", "Trace", "TraceError",
+           "TraceLike", "load_arch", "load_sweep", "load_trace", "open_sweep", "simulate", "__version__"]

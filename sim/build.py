@@ -9,12 +9,12 @@ different code apart even when the version number is the same.
 import hashlib
 import os
 
-from . import __version__
+from .version import __version__
 
 _build = None
 
 # The code a result depends on (the sweep, report and CLI code do not change results).
-_BUILD_PARTS = ("__init__.py", "arch.py", "result.py", "limits.py", "errors.py", "engine", "model",
+_BUILD_PARTS = ("__init__.py", "run.py", "version.py", "arch.py", "result.py", "limits.py", "errors.py", "engine", "model",
                 os.path.join("trace", "format.py"), os.path.join("trace", "step.py"),
                 os.path.join("trace", "npz.py"))
 

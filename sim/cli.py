@@ -21,7 +21,7 @@ import os
 import re
 import sys
 
-from . import __version__
+from .version import __version__
 from .errors import InputError, OptionError, SimulationStalled
 
 EXIT_INPUT = 2
@@ -142,7 +142,7 @@ def _add_run(sub):
 def _cmd_run(args):
     import json
 
-    from . import simulate
+    from .run import simulate
     from .outputs import OutputPlan, write_atomic
     from .result import format_summary
     from .trace.files import load_trace

@@ -64,8 +64,9 @@ def _one(job):
     config_path, trace_name, trace_path = job
     t0 = time.perf_counter()
     try:
-        from . import load_arch, load_trace
-        from . import simulate
+        from .arch import load_arch
+        from .run import simulate
+        from .trace.files import load_trace
 
         trace = load_trace(trace_path) if trace_path else _synth(trace_name)
         res = simulate(load_arch(config_path), trace, keep_intervals=True)

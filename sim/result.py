@@ -14,7 +14,7 @@ import math
 
 import numpy as np
 
-from . import __version__
+from .version import __version__
 from . import formats as fm
 from .build import build_id
 from .columns import UNIT_ORDER, result_frame, unit_frame

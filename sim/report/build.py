@@ -26,7 +26,7 @@ import numpy as np
 
 matplotlib.use("Agg")  # noqa: E402  (no display; before anything touches pyplot)
 
-from .. import __version__  # noqa: E402
+from ..version import __version__  # noqa: E402
 from .. import formats as fm  # noqa: E402
 from . import figures as F  # noqa: E402
 from .inputs import ReportError, group_key, label_runs  # noqa: E402
@@ -390,7 +390,7 @@ def replay_intervals(run):
     compares with the document), or None when it matched.
     """
     from ..arch import load_arch
-    from .. import simulate
+    from ..run import simulate
     from ..trace.files import load_trace
 
     path = run.trace_path

@@ -18,7 +18,7 @@ points are not recorded; a run without screening runs them.
 import collections
 import math
 
-from .. import __version__
+from ..version import __version__
 from . import objectives as obj
 from .backends import TLSFiles, make_backend
 from .plan import make_plan

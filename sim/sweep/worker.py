@@ -91,7 +91,7 @@ def _one_thread():
 
 def _simulate(config, trace):
     from ..arch import load_arch
-    from .. import simulate
+    from ..run import simulate
 
     # no per-unit intervals: the document is the same without them, and a point needs only the document
     return simulate(load_arch(config, source="sweep point"), trace, keep_intervals=False).to_dict()

@@ -1,0 +1,47 @@
+"""One run: a config and a trace through the engine into a result document.
+
+The first step of the data flow (config + trace -> engine -> stats -> result),
+kept below the sweep, report and CLI code that call it, so none of them needs
+the package's face (``sim/__init__.py``) to run a point.
+"""
+
+from __future__ import annotations
+
+import os
+from typing import TYPE_CHECKING, Any, Mapping, Union
+
+from .arch import Arch, load_arch
+from .trace.files import load_trace
+from .trace.format import Trace
+
+if TYPE_CHECKING:
+    from .result import Result
+
+ArchLike = Union[Arch, str, "os.PathLike[str]", Mapping[str, Any]]
+TraceLike = Union[Trace, str, "os.PathLike[str]"]
+
+
+def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, progress: Any = None,
+             **engine_options: Any) -> Result:
+    """Replay ``trace`` on ``arch`` and return a :class:`sim.result.Result`.
+
+    ``arch`` may be an Arch, a YAML path or a mapping; ``trace`` a Trace or a
+    path. ``engine_options`` override the config's ``engine`` section
+    (``grain_rows``, ``seed``). ``keep_intervals=False`` skips the per-unit
+    intervals a timeline needs (the document is the same). A run that would
+    not fit the address map or the machine's memory is refused first
+    (:mod:`sim.budget`). ``progress``: a :class:`sim.engine.progress.RunProgress`
+    another thread may read while the run goes on (the CLI's progress line).
+    """
+    from .budget import check_run
+    from .engine.datapath import run_datapath
+    from .result import build_result
+
+    if progress is not None and not callable(getattr(progress, "attach", None)):
+        raise TypeError(f"progress: expected a sim.engine.progress.RunProgress or None, got {progress!r}")
+    arch = load_arch(arch)
+    if not isinstance(trace, Trace):
+        trace = load_trace(trace)
+    check_run(arch, trace, engine_options.get("grain_rows"), timeline=keep_intervals)
+    return build_result(run_datapath(arch, trace, keep_intervals=keep_intervals, progress=progress,
+                                     **engine_options))
