@@ -270,7 +270,7 @@ SCHEMA = {
         "grain_rows": Field("int", 1024, "most key/value rows one simulated transaction carries"),
         "seed": Field("int", 0, "seed of the generator behind data-dependent choices", minimum=0),
     },
-    # Cost models (sim/model/energy.py, sim/model/area.py): a preset plus overrides.
+    # Cost models (sim/costs/energy.py, sim/costs/area.py): a preset plus overrides.
     "energy": {
         "preset": Field("str", "horowitz45", "energy-per-operation preset: a bundled name or a YAML path"),
         "dram_interface": Field("str", "auto", "which dram_pj_per_bit entry prices DRAM traffic; auto: "
@@ -713,8 +713,8 @@ def _unknown_keys(source, unknown, origins):
 
 
 def _check_cost_models(d, source):
-    """The energy and area sections against their presets (sim/model has no simpy)."""
-    from .model import area, energy
+    """The energy and area sections against their presets (sim/costs runs nothing)."""
+    from .costs import area, energy
     energy.check_config(d, source)
     area.check_config(d, source)
 

@@ -14,8 +14,8 @@ from .version import __version__
 _build = None
 
 # The code a result depends on (the sweep, report and CLI code do not change results).
-_BUILD_PARTS = ("__init__.py", "run.py", "version.py", "arch.py", "result.py", "limits.py", "errors.py", "engine", "model",
-                os.path.join("trace", "format.py"), os.path.join("trace", "step.py"),
+_BUILD_PARTS = ("__init__.py", "run.py", "version.py", "arch.py", "result.py", "limits.py", "errors.py",
+                "engine", "model", "costs", os.path.join("trace", "format.py"), os.path.join("trace", "step.py"),
                 os.path.join("trace", "npz.py"))
 
 

@@ -18,12 +18,12 @@ from .version import __version__
 from . import formats as fm
 from .build import build_id
 from .columns import UNIT_ORDER, result_frame, unit_frame
+from .costs.area import area_section
+from .costs.energy import energy_section
 from .engine.stats import StallSplit, busy_curve
 from .limits import classify, cause_text, verdict_of
-from .model.area import area_section
 from .model.bounds import bounds_from_counts
 from .model.dense import dense_macs
-from .model.energy import energy_section
 
 
 class IntervalLogs:

@@ -317,7 +317,7 @@ def case_extends(rng, folder):
 
 def case_preset(rng, folder):
     kind = rng.choice(["energy", "area"])
-    with open(repo("sim", "model", "presets", f"{kind}_{'horowitz45' if kind == 'energy' else 'proxy45'}.yaml"),
+    with open(repo("sim", "costs", "presets", f"{kind}_{'horowitz45' if kind == 'energy' else 'proxy45'}.yaml"),
               encoding="utf-8") as fh:
         doc = yaml.safe_load(fh)
     pp, must, note = _yaml_case(rng, folder, "preset.yaml", doc, skip=("origin", "description", "source",

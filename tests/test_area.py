@@ -15,7 +15,7 @@ from sim.errors import ConfigError
 
 
 def preset():
-    text = importlib.resources.files("sim.model.presets").joinpath("area_proxy45.yaml").read_text()
+    text = importlib.resources.files("sim.costs.presets").joinpath("area_proxy45.yaml").read_text()
     raw = yaml.safe_load(text)
     return {g: {k: e["value"] for k, e in v.items()} for g, v in raw.items() if isinstance(v, dict)}
 
@@ -23,7 +23,7 @@ def preset():
 def test_shared_array_by_hand():
     """mid: 1024 multipliers sized for the widest operand (16-bit probability), 32-bit accumulators."""
     a = sim.load_arch("arch_configs/mid.yaml")
-    from sim.model.area import area_section
+    from sim.costs.area import area_section
     area = area_section(a)
     p = preset()
     d = a.to_dict()
@@ -46,7 +46,7 @@ def test_shared_array_by_hand():
 
 def test_separate_arrays_split_by_operand_width():
     """server: half the multipliers see q.K (8-bit), half p.V (16-bit)."""
-    from sim.model.area import area_section
+    from sim.costs.area import area_section
     a = sim.load_arch("arch_configs/server.yaml")
     p = preset()
     half = a.dot.multipliers // 2
@@ -61,7 +61,7 @@ def test_in_the_result_document_and_overridable():
     assert doc["area"]["total_mm2"] > 0
     p = preset()
     cheap = base.with_overrides({"area.overrides": {"sram.um2_per_kib": p["sram"]["um2_per_kib"] / 2}})
-    from sim.model.area import area_section
+    from sim.costs.area import area_section
     a2 = area_section(cheap)
     kib = sum(base.to_dict()["buffers"][f"{n}_kib"] for n in ("query", "key", "value"))
     assert doc["area"]["total_mm2"] - a2["total_mm2"] == pytest.approx(kib * p["sram"]["um2_per_kib"] / 2 / 1e6)
@@ -69,7 +69,7 @@ def test_in_the_result_document_and_overridable():
 
 
 def test_more_multipliers_more_area():
-    from sim.model.area import area_section
+    from sim.costs.area import area_section
     a = sim.load_arch("arch_configs/mid.yaml")
     b = a.with_overrides({"dot.multipliers": 2 * a.dot.multipliers})
     assert area_section(b)["units_mm2"]["dot"] == pytest.approx(2 * area_section(a)["units_mm2"]["dot"])

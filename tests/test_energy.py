@@ -22,8 +22,8 @@ import yaml
 
 import sim
 from sim.errors import ConfigError
-from sim.model import energy as E
-from sim.model import presets
+from sim.costs import energy as E
+from sim.costs import presets
 
 # Horowitz, ISSCC 2014 (45 nm)
 H_INT8_MULT, H_INT32_MULT, H_FP16_MULT = 0.2, 3.1, 1.1
@@ -34,7 +34,7 @@ H_DRAM_64B_MID_PJ = (1300.0 + 2600.0) / 2  # midpoint of 1.3-2.6 nJ per 64-bit a
 
 def preset_values(name):
     """A bundled preset file as plain numbers, ``{group: {entry: value}}``."""
-    text = importlib.resources.files("sim.model.presets").joinpath(name).read_text()
+    text = importlib.resources.files("sim.costs.presets").joinpath(name).read_text()
     raw = yaml.safe_load(text)
     return {g: {k: e["value"] for k, e in v.items()} for g, v in raw.items() if isinstance(v, dict)}
 

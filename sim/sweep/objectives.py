@@ -34,7 +34,7 @@ def _get(doc, *keys):
 def _energy_floor(cf, c):
     """Energy no run of config ``c`` can go below (see the module docstring)."""
     try:
-        from ..model import energy as en
+        from ..costs import energy as en
     except ImportError:
         return 0.0
     table = en.resolve_table(c)
@@ -50,7 +50,7 @@ def _energy_floor(cf, c):
 def _area_exact(cf, c):
     """The area proxy depends on the config alone: its exact value."""
     try:
-        from ..model.area import area_section
+        from ..costs.area import area_section
     except ImportError:
         return 0.0
     return area_section(c)["total_mm2"]

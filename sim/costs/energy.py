@@ -26,7 +26,7 @@ Dynamic energy -- operations the run performed, and the clock:
   top-k), ``clock.pj_per_mm2_busy_cycle`` x the unit's area proxy; an idle
   or waiting unit is taken to be clock-gated.
 
-Static energy -- leakage: every unit's area proxy (``sim.model.area``) times
+Static energy -- leakage: every unit's area proxy (``sim.costs.area``) times
 the preset's leakage density (``leakage_mw_per_mm2``: logic or SRAM) times the
 run's time. Nothing is power-gated, so a larger datapath leaks more for as
 long as the run lasts: a bigger array that finishes sooner can win or lose.
