@@ -10,8 +10,8 @@ import textwrap
 import pytest
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-PUBLIC = ["sim/__init__.py", "sim/arch.py", "sim/errors.py", "sim/yamlio.py", "sim/outputs.py",
-          "sim/bundled.py", "sim/budget.py", "sim/result.py", "sim/trace/format.py", "sim/sweep/__init__.py"]
+PUBLIC = ["sim/__init__.py", "sim/run.py", "sim/arch.py", "sim/errors.py", "sim/yamlio.py",
+          "sim/outputs.py", "sim/bundled.py", "sim/budget.py", "sim/result.py", "sim/trace/format.py", "sim/sweep/__init__.py"]
 
 pytest.importorskip("mypy", reason="the test extra installs mypy")
 
