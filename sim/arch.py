@@ -156,8 +156,7 @@ SCHEMA = {
         # Banked model (sim/engine/dram.py). Defaults are an HBM2 channel in legacy
         # mode, values from memory; sourced presets: arch_configs/memory/*.yaml.
         "model": Field("choice", "banked", "banked: banks, rows and refresh; fixed-latency: a pipelined "
-                       "bus with dram.latency_ns per access, timing each transaction as a whole (so "
-                       "its answers move with engine.grain_rows)", choices=["banked", "fixed-latency"]),
+                       "bus with dram.latency_ns per access, no banks", choices=["banked", "fixed-latency"]),
         "bus_bits": Field("int", 128, "data-bus width of one channel in bits"),
         "banks": Field("int", 16, "banks per channel (all bank groups together)"),
         "bank_groups": Field("int", 4, "bank groups per channel; back-to-back columns in one group "

@@ -64,7 +64,10 @@ is decided later). Row hits first itself reorders whole shares, so a finer
 grain gives it more to reorder.
 
 ``fixed-latency`` is the first, simple model: one pipelined bus per channel,
-a fixed ``dram.latency_ns`` per access, no banks.
+a fixed ``dram.latency_ns`` per access, no banks. Its requests enter the
+channel queues and the fetch slots a request at a time as the banked pool's do,
+and a transaction's bursts give it an arrival profile, so its answers do not
+depend on the grain either.
 
 How time is computed: a transaction's bursts are decoded to channel, bank and
 row and sorted by channel, one *share* per channel; a compiled loop
@@ -314,7 +317,8 @@ class ChannelPool:
         self.busy_cycles = np.zeros(self.n)
         self.acc = np.zeros(T.N_ACC)                     # counters, see dram_timing.A_*
         self._counts = np.zeros(self.n, dtype=np.int64)
-        self.R = np.zeros((1024, 6))                     # share records (banked)
+        # share records (banked): channel, arrival, start, first data, done, bursts
+        self.R = np.zeros((1024, 6))
         self.keep_records = keep_records                 # else R is rewritten by each call
         # per-channel counts and times, shared with the read queue (see dram_timing.N_*, F_*)
         self.TN = self.outstanding.TN
@@ -333,8 +337,14 @@ class ChannelPool:
         self.latencies = LatencyLog()                # per read: submit to last data
         self._occ = OccupancyLog()                   # live occupancy: arrivals and departures
         self.interleave = d.interleave_bytes
+        # a served batch's start, first and last data and profile points; the profile; scratch
+        self._times = np.zeros(4)
+        self._prof = np.zeros((2, T.PROFILE_POINTS))   # the arrival profile of the batch served last
+        self._SF = np.zeros(0)
+        self._scratch(4096)
         if self.model == "fixed-latency":
             self.submit = self._submit_fixed
+            self.slot_room_at = self._slot_room_at
             self._bind()
             return
         self.banks = d.banks
@@ -360,11 +370,6 @@ class ChannelPool:
         self.TK = np.zeros((self.n, 2, 256), dtype=np.int64)
         self.TG = np.zeros((self.n, 2, 256, 2))
         self.LOG = np.zeros((4096 if log_commands else 0, 5))
-        # per-share records (channel, arrival, start, first data, done, bursts)
-        self._times = np.zeros(4)
-        self._prof = np.zeros((2, T.PROFILE_POINTS))   # the arrival profile of the batch served last
-        self._SF = np.zeros(0)
-        self._scratch(4096)
         self._no_room = (np.zeros(1), np.full(1, -np.inf))   # room_time: room from the start
         # the fetch slots' arrays for writes, which take none (never read there)
         self._no_slots = (np.zeros((1, 3)), np.zeros(1, dtype=np.int64), np.zeros(1))
@@ -398,18 +403,24 @@ class ChannelPool:
         """Serve ``txn.bursts`` on the fixed-latency model."""
         now = self.env.now
         self._arrive(now)
+        b = txn.bursts
+        if len(b) == 0:
+            return self._finish(txn, now, now, now, now, None)
+        times = self._times
+        self._entries += 1
+        self._scratch(len(b))
         for tries in range(MAX_ROOM_TRIES + 1):
-            ok, t_start, t_end = serve_fixed(txn.bursts, self.interleave, float(now), self.free_at,
-                                             *self._fixed_args)
-            if ok > 0:
+            if serve_fixed(b, self.interleave, float(now), self.free_at, *self._fixed_args, times, txn.pieces,
+                           self._prof, self._SF, self._SI[0], self._AGG, self.fetch_depth, self.FS, self.FI,
+                           self.FF, -1 if txn.is_write else _STREAM.get(txn.kind, 1)) > 0:
                 break
             _room_or_stall(tries, "fixed-latency serve")
-            self._make_room(1)
+            self._make_room(2 * len(b))
+        t_start, t_first, t_done, points = times.tolist()
         if txn.is_write:                    # posted: taken in when its bus slot starts
-            self.write_end = max(self.write_end, t_end)
+            self.write_end = max(self.write_end, t_done - self.t_lat)
             return self._finish(txn, now, t_start, t_start, t_start, None, write=True)
-        t_first = t_start + self.t_lat
-        t_done = max(t_end, t_start) + self.t_lat
+        txn.prof = self._profile(points)
         return self._finish(txn, now, t_start, t_first, t_done, None)
 
     def _make_room(self, rows):

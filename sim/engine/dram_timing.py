@@ -1306,32 +1306,54 @@ def serve_writes(gb, row, c, t, out, groups, banks, close_page, P, open_row, BF,
 
 @_leaf
 def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, H, TN, CF, IV, busy, acc,
-                counts):
+                counts, times, parts, prof, SF, SI, AGG, gdepth, FS, FI, FF, stream):
     """The fixed-latency model: each channel's bursts on one pipelined bus after the ones before.
 
-    Returns ``(status, start, end)``: -1 without touching anything if a table
-    is full, else 1 with the latest start and bus end over the channels.
+    The batch goes in address order a request at a time, each once its channel's queue
+    (``depth`` requests) and, for a read, the fetch unit's request slots (``gdepth`` over all
+    channels, freed in order per stream as in :func:`_book_requests`; ``stream`` -1: a write,
+    which takes none) have room for it, as the same bytes cut into small batches would; a
+    burst's data is on chip ``t_lat`` after its bus slot. ``times`` gets the latest start and
+    first data over the channels, the last data, then the number of points of the batch's
+    arrival profile (:func:`arrival_profile`, in ``prof``, for a consumer of ``parts`` parts).
+    ``SF`` (three times the batch), ``SI`` (a row of the batch) and ``AGG`` (a row per
+    channel) are scratch. Returns 1, or -1 without touching anything if a table is full.
     """
+    n = len(b)
     nch = len(free_at)
     for c in range(nch):
         counts[c] = 0
-    for i in range(len(b)):
+    for i in range(n):
         counts[(b[i] // interleave) % nch] += 1
+    if FI[1] + n + 1 > FS.shape[0]:
+        fslots_compact(FS, FI, FF)
+    if FI[1] + n + 1 > FS.shape[0]:
+        return -1
     for c in range(nch):
-        if counts[c] and (TN[c, N_HEAP] + PIECES + 1 > H.shape[1] or TN[c, N_IV] + 1 > IV.shape[1]):
-            return -1, 0.0, 0.0
-    t_start = now
-    t_end = now
+        # a request, or the part of one in a run of the channel's bursts, at most a burst each:
+        # a queue entry or two (slots_add), a bus interval
+        if counts[c] and (TN[c, N_HEAP] + 2 * counts[c] > H.shape[1]
+                          or TN[c, N_IV] + counts[c] > IV.shape[1]):
+            return -1
+    out = SF[:n]
+    order = SI[:n]
+    agg_start = AGG[:, 0]
     for c in range(nch):
-        nb = counts[c]
-        if nb == 0:
-            continue
-        nreq = nb / rq
-        start = free_at[c] if free_at[c] > now else now
-        room = slots_room_at(H, TN, CF, c, now, nreq, depth)
-        if room > start:  # wait until enough queued requests have completed
-            start = room
-        end = start + nb * t_burst
+        agg_start[c] = np.inf
+    k = 0
+    while k < n:                                # in address order, a request at a time
+        c = (b[k] // interleave) % nch
+        e = k + 1
+        while e < n and (b[e] // interleave) % nch == c:
+            e += 1
+        take = _to_request(CF[c, F_ENTERED], rq, e - k)
+        t = level_time(H, TN, CF, c, now, CF[c, F_ENTERED] + take / rq - depth)
+        if stream >= 0:
+            tg = fslots_level_time(FS, FI, FF, now, FF[1] + take / rq - gdepth)
+            if tg > t:
+                t = tg
+        start = free_at[c] if free_at[c] > t else t
+        end = start + take * t_burst
         free_at[c] = end
         m = TN[c, N_IV]
         if m > 0 and IV[c, m - 1, 1] >= start:
@@ -1342,13 +1364,41 @@ def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, H, TN, C
             IV[c, m, 1] = end
             TN[c, N_IV] = m + 1
         busy[c] += end - start
-        slots_add(H, TN, CF, c, start + t_lat, end + t_lat, nreq)
-        acc[A_REQUESTS] += nreq
-        if start > t_start:
-            t_start = start
-        if end > t_end:
-            t_end = end
-    return 1, t_start, t_end
+        lo = start + t_burst + t_lat
+        hi = end + t_lat
+        slots_add(H, TN, CF, c, lo, hi, take / rq)
+        if stream >= 0:
+            last = FF[2 + stream]        # fetch slots free in order within a stream
+            if lo < last:
+                lo = last
+            if hi < last:
+                hi = last
+            FF[2 + stream] = hi
+            fslots_add(FS, FI, FF, lo, hi, take / rq)
+        for j in range(take):
+            out[k + j] = start + (j + 1) * t_burst + t_lat
+            order[k + j] = k + j
+        if start < agg_start[c]:
+            agg_start[c] = start
+        k += take
+    acc[A_REQUESTS] += n / rq
+    t_start = -np.inf
+    t_first = -np.inf
+    t_done = -np.inf
+    for c in range(nch):
+        if counts[c] == 0:
+            continue
+        if agg_start[c] > t_start:
+            t_start = agg_start[c]
+        if agg_start[c] + t_burst + t_lat > t_first:
+            t_first = agg_start[c] + t_burst + t_lat
+        if free_at[c] + t_lat > t_done:
+            t_done = free_at[c] + t_lat
+    times[0] = t_start
+    times[1] = t_first
+    times[2] = t_done
+    times[3] = arrival_profile(out, order, n, 0.0, parts, SF, prof)
+    return 1
 
 
 @_leaf
@@ -1404,8 +1454,11 @@ def signatures():
         # the pool's SI and AGG, then stand-ins for the fetch slots (FS, FI, FF) writes do not take
         "serve_writes": (a(i, 1), a(i, 1), i, f, a(f, 1)) + state[2:] + (a(i, 2), a(f, 2))
         + (a(f, 2), a(i, 1), a(f, 1)),
+        # ... counts, then times, parts, the arrival profile, scratch (SF, a row of SI, AGG) and the
+        # fetch slots (gdepth, FS, FI, FF, stream)
         "serve_fixed": (a(i, 1), i, f, a(f, 1), f, f, i, i, a(f, 3), a(i, 2), a(f, 2), a(f, 3), a(f, 1),
-                        a(f, 1), a(i, 1)),
+                        a(f, 1), a(i, 1), a(f, 1), i, a(f, 2), a(f, 1), a(i, 1), a(f, 2), i, a(f, 2),
+                        a(i, 1), a(f, 1), i),
         "decode_sorted": (a(i, 1), i, a(i, 1), a(i, 1), i, i, i),
         "compact": (a(f, 3), a(i, 3), a(f, 4), a(i, 2), a(f, 2), a(f, 1)),
     }
