@@ -10,7 +10,7 @@ shape `dec-8b`: 32 layers, 32 query heads, 8 KV heads, head width 128):
 * ``batch32``: a batch of 32 requests, 4096-token prompts (spread 0.5), 16 tokens;
 * ``prompt32k-L0`` (``--engine --case prompt32k-L0`` only): the first of the 32 layers
   of ``prompt32k`` (``sim.trace.cut``), on ``edge``, where the whole case is about
-  840 million transactions.
+  3.5 billion transactions (the run budget's upper estimate).
 
 With ``--engine`` each case is then simulated, each case x config in a fresh
 process that builds the trace and runs ``sim.simulate`` (``keep_intervals``
