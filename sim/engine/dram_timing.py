@@ -922,6 +922,20 @@ def fslots_add(FS, FI, FF, start, done, amount):
 
 
 @_inline
+def fslots_book(FS, FI, FF, stream, start, done, amount):
+    """``amount`` requests of ``stream`` (a buffer: query, key, value) take fetch slots that
+    free from ``start`` to ``done``, and none before the last slot of the same stream
+    (data is handed over in order)."""
+    last = FF[2 + stream]
+    if start < last:
+        start = last
+    if done < last:
+        done = last
+    FF[2 + stream] = done
+    fslots_add(FS, FI, FF, start, done, amount)
+
+
+@_inline
 def fslots_compact(FS, FI, FF):
     """Drop the fetch slots' completions counted already (the table's rows before ``FI[0]``)."""
     p = FI[0]
@@ -1084,13 +1098,7 @@ def _book_requests(out, s0, s1, c, rq, P, H, TN, CF, FS, FI, FF, stream, chq):
             slots_add(H, TN, CF, c, lo, hi, take / rq)
         else:
             CF[c, F_ENTERED] += take / rq
-        last = FF[2 + stream]
-        if lo < last:
-            lo = last
-        if hi < last:
-            hi = last
-        FF[2 + stream] = hi
-        fslots_add(FS, FI, FF, lo, hi, take / rq)
+        fslots_book(FS, FI, FF, stream, lo, hi, take / rq)
         k += take
 
 
@@ -1368,13 +1376,7 @@ def serve_fixed(b, interleave, now, free_at, t_burst, t_lat, depth, rq, H, TN, C
         hi = end + t_lat
         slots_add(H, TN, CF, c, lo, hi, take / rq)
         if stream >= 0:
-            last = FF[2 + stream]        # fetch slots free in order within a stream
-            if lo < last:
-                lo = last
-            if hi < last:
-                hi = last
-            FF[2 + stream] = hi
-            fslots_add(FS, FI, FF, lo, hi, take / rq)
+            fslots_book(FS, FI, FF, stream, lo, hi, take / rq)
         for j in range(take):
             out[k + j] = start + (j + 1) * t_burst + t_lat
             order[k + j] = k + j
