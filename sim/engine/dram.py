@@ -307,9 +307,11 @@ class ChannelPool:
         self.FF = np.full(6, -np.inf)
         self.FF[:2] = 0.0
         self.FF[5] = 0.0
-        # (row hits first commits a transaction's shares at different times: the fetch
-        # unit's own count of handed-over requests is the limit there, see fetch.py)
-        self.fetch_depth = arch.fetch.inflight if d.scheduler != "row_hits_first" else 1 << 40
+        # (the banked pool under row hits first commits a transaction's shares at different
+        # times: the fetch unit's own count of handed-over requests is the limit there, see
+        # fetch.py; the fixed-latency pool has no scheduler)
+        rows_first = d.scheduler == "row_hits_first" and self.model == "banked"
+        self.fetch_depth = arch.fetch.inflight if not rows_first else 1 << 40
         self._entries = 0         # calls that entered requests into the fetch slots
         self._room_entries, self._room_need, self._room_t = -1, -1.0, 0.0   # the last answer
         self.IV = np.zeros((self.n, 1024, 2))            # data-bus busy intervals per channel
