@@ -218,9 +218,9 @@ SCHEMA = {
                         "rows, whole bursts each); see sim/engine/addrmap.py",
                         choices=["head_regions", "head_planes", "heads_interleaved"]),
         "steering": Field("choice", "address", "address: bursts go to the channel their address "
-                          "names; first_free: a whole transaction (engine.grain_rows rows at most) "
-                          "goes to the channel that frees first (one shared queue, for queueing "
-                          "checks; its answers move with the grain)",
+                          "names; first_free: each request (fetch.request_bytes of one fetch, in "
+                          "order) goes to the channel whose data bus frees first (one shared "
+                          "queue in front of the channels)",
                           choices=["address", "first_free"]),
     },
     "fetch": {

@@ -1,8 +1,9 @@
 """The banked channel pool against queueing theory.
 
-How the checks map onto the pool: with ``dram.steering: first_free`` a whole
-transaction goes to the channel whose data bus frees first, which is one
-shared FCFS queue in front of c servers. Every transaction reads bursts of
+How the checks map onto the pool: with ``dram.steering: first_free`` each
+request goes to the channel whose data bus frees first, which is one shared
+FCFS queue in front of c servers; requests here are larger than any
+transaction (``fetch.request_bytes`` 1 MiB), so a transaction is one customer. Every transaction reads bursts of
 one DRAM row that stays open (one bank, a 1 MiB row, refresh off), so its
 service time is exactly its burst count times the burst time (1 cycle here);
 the queueing delay is the time from arrival to its first column command.

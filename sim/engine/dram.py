@@ -356,6 +356,7 @@ class ChannelPool:
         self.close_page = d.page_policy == "close"
         self.rows_first = d.scheduler == "row_hits_first"
         self.first_free = d.steering == "first_free"
+        self._open_request = [(0, 0, 0)] * 3   # per stream, first_free: descriptor, channel, bursts left
         self.decoder = BurstDecoder(arch)
         nb = self.n * self.banks
         self.open_row = np.full(nb, -1, dtype=np.int64)      # -1: bank precharged
@@ -539,7 +540,7 @@ class ChannelPool:
             return self._submit_write(txn, b, now)
         if self._lut is not None and not (self.first_free or self.rows_first):
             return self._serve_now(txn, b, now)
-        ch, gb, row, pos = self._decode(b, now)
+        ch, gb, row, pos = self._decode(txn, b, now)
         # arrival, shares left, start, first data, done, event, stream
         rec = [now, 0, now, now, now, None, _STREAM.get(txn.kind, 1)]
         if not self.rows_first:
@@ -567,17 +568,17 @@ class ChannelPool:
         rec[5] = (txn, ev, len(b))
         return ev
 
-    def _decode(self, b, now):
-        """Channel, global bank and row of burst addresses ``b``, sorted by channel, and where
-        each burst of ``b`` went in the sorted arrays."""
+    def _decode(self, txn, b, now):
+        """Channel, global bank and row of burst addresses ``b`` (of ``txn``), sorted by
+        channel, and where each burst of ``b`` went in the sorted arrays."""
         if self.first_free:
-            c = self._first_free_channel(now)
+            ch = self._steer(txn, len(b), now)
             _, bank, row = self.decoder.decode(b)
-            return (np.full(len(b), c, dtype=np.int64), bank + c * self.banks, row,
-                    np.arange(len(b), dtype=np.int64))
-        if self._lut is not None:
+            gb = bank + ch * self.banks
+        elif self._lut is not None:
             return decode_sorted(b, self.burst, *self._lut, self.n)
-        ch, gb, row = self.decoder.decode_global(b)
+        else:
+            ch, gb, row = self.decoder.decode_global(b)
         pos = np.arange(len(b), dtype=np.int64)
         if self.n > 1:
             order = np.argsort(ch, kind="stable")
@@ -591,7 +592,7 @@ class ChannelPool:
         :meth:`_enter_writes`), after any share still entering there; the event fires when
         every share is in. A channel drains its oldest writes when the queue reaches the
         high mark, down to the low mark, and all of them once it has no read left to serve."""
-        ch, gb, row, _ = self._decode(b, now)
+        ch, gb, row, _ = self._decode(txn, b, now)
         cnt = np.bincount(ch, minlength=self.n)
         ends = np.cumsum(cnt)
         chans = np.flatnonzero(cnt).tolist()
@@ -727,9 +728,43 @@ class ChannelPool:
         self.acc_w[1] += 1                           # drains of an idle channel
         self._drain(c, waiting, self.env.now)
 
-    def _first_free_channel(self, now):
-        ready = np.maximum(self.CF[:, T.F_LAST] + self.tm.burst, now)
-        return int(np.argmin(ready))
+    def _steer(self, txn, n, now):
+        """Channel of each of the ``n`` bursts of ``txn`` (address order) under first_free
+        steering: a request at a time to the channel whose data bus frees first (of those
+        free now, the one free longest), counting the shares held for a row-hits-first
+        decision and the requests of this batch sent before it (a burst's bus time each).
+
+        A request is ``fetch.request_bytes`` of one fetch descriptor's bursts in order, cut
+        from the descriptor's start: a request one transaction leaves part way is finished
+        on its channel by the next transaction of the descriptor (in its stream), so the
+        cuts, and the channels, do not depend on the engine's grain. A transaction of no
+        descriptor (``desc`` 0: a cache write, a probe) is cut on its own."""
+        stream = _STREAM.get(txn.kind, 1)
+        carry = txn.desc and not txn.is_write
+        desc, c, left = self._open_request[stream] if carry else (0, 0, 0)
+        if desc != txn.desc:
+            left = 0
+        rq, tb = self.req_bursts, self.tm.burst
+        # when each channel's bus frees; among channels free now, the one free longest goes
+        # first, so the choice does not hang on when the batch is steered
+        last = (self.CF[:, T.F_LAST] + tb).tolist()
+        for j, held in enumerate(self.held):     # row_hits_first: shares not placed yet
+            if held:
+                last[j] = max(last[j], now) + sum(len(share[1]) for share in held) * tb
+        out = np.empty(n, dtype=np.int64)
+        k = 0
+        while k < n:
+            if left == 0:
+                c = min(range(self.n), key=lambda j: (max(last[j], now), last[j]))
+                left = rq
+            m = min(left, n - k)
+            out[k:k + m] = c
+            last[c] = max(last[c], now) + m * tb
+            left -= m
+            k += m
+        if carry:
+            self._open_request[stream] = (txn.desc, c, left)
+        return out
 
     def _arm(self, c):
         """Schedule channel ``c``'s next decision (row_hits_first)."""
