@@ -58,12 +58,13 @@ def ramp_time(now, amount, ramps):
             steps.append((t1, -rate, 0.0))
     steps.sort()
     t0, rate, done = now, 0.0, 0.0
+    want = amount * (1 - 1e-12)     # all of the ramps, summed in pieces, may come out a rounding short
     for t, d_rate, lump in steps:
         gain = rate * (t - t0)
-        if rate > 0 and done + gain >= amount:
-            return t0 + (amount - done) / rate
+        if rate > 0 and done + gain >= want:
+            return min(t0 + (amount - done) / rate, t)
         done += gain + lump
-        if done >= amount:
+        if done >= want:
             return t
         t0, rate = t, rate + d_rate
     return None
