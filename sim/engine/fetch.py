@@ -30,10 +30,10 @@ the last is: a consumer starts on the first part and finishes no
 earlier than any part's handover plus the work left from it (see
 :mod:`sim.engine.dot`), so a coarse transaction keeps the overlap of fine
 ones. ``fetch.inflight`` bounds the requests issued and not yet handed over:
-a transaction may issue once its first request fits, and with the banked pool
-its further requests wait there, one by one, for slots (the pool keeps the
-count request by request, see :mod:`sim.engine.dram`), so a large transaction
-never has more requests out than small ones would. ``fetch.reorder_entries``
+a transaction may issue once its first request fits, and its further requests
+wait in the pool, one by one, for slots (the pool keeps the count request by
+request, under either scheduler and model, see :mod:`sim.engine.dram`), so a
+large transaction never has more requests out than small ones would. ``fetch.reorder_entries``
 bounds the requests that have arrived but wait for an earlier transaction --
 when it is full the unit stops issuing.
 
@@ -52,7 +52,6 @@ from operator import attrgetter
 import numpy as np
 
 from ..errors import SimulationStalled
-from .buffers import ramp_time
 from .due import later
 
 # Re-checks without an issue between them that find the unit still blocked when its room
@@ -65,12 +64,11 @@ _ORDER = attrgetter("order")
 class _Stream:
     """The transactions issued into one buffer, handed over in issue order."""
 
-    __slots__ = ("pending", "untimed", "inflight", "handed")
+    __slots__ = ("pending", "untimed", "handed")
 
     def __init__(self):
         self.pending = deque()      # issued and not yet fully handed over
         self.untimed = deque()      # issued, waiting for the pool to say when data arrives
-        self.inflight = 0.0         # requests of ``pending``
         self.handed = 0.0           # when the last issued transaction is fully handed over
 
 
@@ -86,9 +84,8 @@ class FetchUnit:
         self.stats = stats
         f = arch.fetch
         self.window = f.issue_window
-        self.inflight_cap = f.inflight
-        # the banked pool counts the requests in flight one by one (its fetch slots)
-        self.slot_room_at = getattr(pool, "slot_room_at", None)
+        # the pool counts the requests in flight one by one (the fetch slots, fetch.inflight)
+        self.slot_room_at = pool.slot_room_at
         self.reorder_cap = f.reorder_entries
         self.req_bytes = f.request_bytes
         self.burst = arch.dram.burst_bytes
@@ -216,23 +213,9 @@ class FetchUnit:
             p = st.pending
             while p and p[0].last is not None and p[0].last <= now:
                 t = p.popleft()
-                st.inflight -= t.nreq
                 self.npending -= 1
                 if t.early:
                     self.early -= t.nreq
-
-    @staticmethod
-    def _handed(t, now):
-        """Requests of pending ``t`` handed over by ``now``."""
-        if t.last is None or now <= t.hs:
-            return 0.0
-        return t.nreq * (now - t.hs) / (t.last - t.hs)
-
-    def inflight_now(self):
-        """Requests issued and not yet handed over."""
-        now = self.env.now
-        return sum(st.inflight - (self._handed(st.pending[0], now) if st.pending else 0.0)
-                   for st in self.streams.values())
 
     def count_early(self):
         """Requests that have arrived whole but wait for an earlier transaction."""
@@ -248,38 +231,23 @@ class FetchUnit:
     def issue_block(self, txn):
         """Why ``txn`` cannot issue now (a blocked cause), or None."""
         if self.npending:
-            if self.slot_room_at is not None:
-                if self.slot_room_at(self.env.now, txn.nreq) > self.env.now:
-                    return "inflight_limit"
-            elif self.inflight_now() + min(txn.nreq, 1.0) > self.inflight_cap + 1e-6:
+            if self.slot_room_at(self.env.now, txn.nreq) > self.env.now:
                 return "inflight_limit"
             if self.count_early() >= self.reorder_cap:
                 return "reorder_full"
         return None
 
     def slots_hold(self, txn):
-        """When the pool's request slots (banked) let ``txn`` go, if that is after the request
-        port is free (else None): nothing but the unit's own issues changes when they free."""
-        if self.slot_room_at is None or not self.npending:
+        """When the pool's request slots let ``txn`` go, if that is after the request port is
+        free (else None): nothing but the unit's own issues changes when they free."""
+        if not self.npending:
             return None
         t = self.slot_room_at(self.env.now, txn.nreq)
         return t if t > self.issue_free else None
 
     def when_room(self, txn):
-        """Earliest time the in-flight count lets ``txn`` issue, or None if a
-        transaction on the way has not been timed yet (the pool pokes then)."""
-        now = self.env.now
-        if self.slot_room_at is not None:
-            return self.slot_room_at(now, txn.nreq)
-        excess = self.inflight_now() + min(txn.nreq, 1.0) - self.inflight_cap
-        ramps = []
-        for st in self.streams.values():
-            for t in st.pending:
-                if t.last is None:
-                    return None
-                ramps.append((t.hs, t.last, t.nreq - self._handed(t, max(now, t.hs))))
-        t = ramp_time(now, excess, ramps)
-        return now if t is None else t
+        """Earliest time the pool's request slots let ``txn`` issue."""
+        return self.slot_room_at(self.env.now, txn.nreq)
 
     def next_handover(self):
         """When the next pending transaction is fully handed over (None: one is untimed)."""
@@ -313,7 +281,6 @@ class FetchUnit:
         st = self.stream(txn)
         st.pending.append(txn)
         st.untimed.append(txn)
-        st.inflight += txn.nreq
         self.npending += 1
         txn.last = None
         txn.on_timed = self.timed
