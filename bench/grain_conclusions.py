@@ -1,0 +1,116 @@
+"""Does the simulation grain ever reverse a design comparison?
+
+    python bench/grain_conclusions.py                       # 1,000 comparisons, 2 processes
+    python bench/grain_conclusions.py --cases 200 --seed 14 --jobs 2
+
+The grain fuzz (``bench/engine_fuzz.py --grain``) counts runs whose cycles move
+by more than 2 % between a coarse grain and 16 rows. What an architect reads
+off the tool is a comparison: design B against design A on one workload. This
+draws the fuzz's random workload and datapath (``engine_fuzz.draw``) as A, and
+as B the same with one knob an architect would change (the multipliers, the
+key or value buffer, the channels or the softmax lanes, halved or doubled),
+runs both at the drawn grain (256 rows at least) and at 16 rows, and compares
+the speed-ups ``cycles(A) / cycles(B)``. A comparison is *reversed* when one
+grain says B is faster by more than ``--margin`` and the other says it is
+slower by more than that; printed: how many were reversed, how many changed
+side of the margin (one grain says a difference, the other says none), and the
+largest difference between the two grains' speed-ups. Refused knob values
+(a buffer too small for a tile) are skipped. Figures go in the notes, not in
+tests.
+"""
+
+import argparse
+import multiprocessing as mp
+import os
+import random
+import sys
+import time
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+ROOT = os.path.dirname(HERE)
+sys.path[:0] = [ROOT, HERE, os.path.join(ROOT, "tests")]
+
+import sim  # noqa: E402
+from engine_fuzz import CONFIGS, FINE, draw  # noqa: E402
+from sim.errors import InputError  # noqa: E402
+from sim.trace.synth import synth_trace  # noqa: E402
+
+KNOBS = ("dot.multipliers", "buffers.key_kib", "buffers.value_kib", "dram.channels", "softmax.lanes")
+
+
+def change(arch, seed, case):
+    """One knob of ``arch`` halved or doubled: ``(key, old, new)``."""
+    r = random.Random(f"change:{seed}:{case}")
+    key = r.choice(KNOBS)
+    section, name = key.split(".")
+    old = getattr(getattr(arch, section), name)
+    new = old * r.choice([0.5, 2])
+    return key, old, type(old)(new)
+
+
+def compare(seed, case):
+    """``(case, key, speed-up coarse, speed-up fine, grain)`` or ``(case, None, reason)``."""
+    name, over, shape = draw(seed, case)
+    over["engine.grain_rows"] = max(256, over["engine.grain_rows"])
+    try:
+        trace = synth_trace(**shape)
+        a = sim.load_arch(os.path.join(CONFIGS, f"{name}.yaml")).with_overrides(over)
+        key, _old, new = change(a, seed, case)
+        b = a.with_overrides({key: new})
+        cyc = {}
+        for label, arch in (("a", a), ("b", b)):
+            for g in (over["engine.grain_rows"], FINE):
+                cyc[label, g] = sim.simulate(arch.with_overrides({"engine.grain_rows": g}), trace,
+                                             keep_intervals=False).to_dict()["cycles"]
+    except InputError as e:
+        return case, None, str(e).splitlines()[0]
+    g = over["engine.grain_rows"]
+    return case, f"{key} -> {new}", cyc["a", g] / cyc["b", g], cyc["a", FINE] / cyc["b", FINE], g
+
+
+def _work(args):
+    return compare(*args)
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--cases", type=int, default=1000)
+    ap.add_argument("--seed", type=int, default=14)
+    ap.add_argument("--jobs", type=int, default=2)
+    ap.add_argument("--margin", type=float, default=0.02, help="a difference smaller than this is none")
+    args = ap.parse_args()
+    t0 = time.perf_counter()
+    m = args.margin
+    reversed_, sided, skipped, worst, done = [], [], 0, (0.0, None), 0
+    with mp.get_context("fork").Pool(args.jobs, maxtasksperchild=100) as pool:
+        for out in pool.imap_unordered(_work, [(args.seed, i) for i in range(args.cases)]):
+            if out[1] is None:
+                skipped += 1
+                continue
+            case, what, coarse, fine, g = out
+            done += 1
+            gap = abs(coarse - fine) / fine
+            if gap > worst[0]:
+                worst = (gap, out)
+            side_c = 0 if abs(coarse - 1) <= m else (1 if coarse > 1 else -1)
+            side_f = 0 if abs(fine - 1) <= m else (1 if fine > 1 else -1)
+            if side_c * side_f < 0:
+                reversed_.append(out)
+            elif side_c != side_f:
+                sided.append(out)
+    wall = time.perf_counter() - t0
+    print(f"{done} comparisons (seed {args.seed}, {skipped} refused knob values skipped) on {args.jobs} "
+          f"processes in {wall:.0f} s; margin {m:.0%}")
+    print(f"  reversed (one grain says faster, the other slower): {len(reversed_)}")
+    print(f"  across the margin (one grain says a difference, the other none): {len(sided)}")
+    gap, out = worst
+    if out is not None:
+        print(f"  largest gap between the grains' speed-ups: {gap:.2%} (case {out[0]}, {out[1]}: "
+              f"{out[2]:.4f} at {out[4]} rows, {out[3]:.4f} at {FINE})")
+    for out in reversed_ + sided:
+        print(f"  case {out[0]}: {out[1]}: speed-up {out[2]:.4f} at {out[4]} rows, {out[3]:.4f} at {FINE}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
