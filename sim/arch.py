@@ -194,6 +194,10 @@ SCHEMA = {
                              "(0: no refresh)", minimum=0),
         "t_refi_pb_ns": Field("float", 243.75, "interval between per-bank or same-bank refresh commands "
                               "of one channel, ns"),
+        "refresh_phase": Field("float", 0.0, "where the run starts in the refresh schedule: every "
+                               "refresh window moved later by this fraction of t_refi_ns (wrapping "
+                               "round); sweep it to see how much a short run depends on where the "
+                               "windows fall", minimum=0, maximum=1.0),
         "standard": Field("choice", "custom", "memory standard the timings follow; a named one allows only "
                           "its refresh modes and must give every timing the modes in use need",
                           choices=list(STANDARDS)),

@@ -49,17 +49,22 @@ def refresh_windows(arch):
     """Each bank's refresh windows ``(first starts, period, length)`` as the pool documents
     them: all-bank refresh, channels staggered evenly over one interval; per-bank refresh,
     a command every tREFIpb with bank b in turn b mod (tREFI / tREFIpb); same-bank, turn
-    b div bank_groups; channels staggered within one command interval."""
+    b div bank_groups; channels staggered within one command interval; all of it later by
+    ``refresh_phase`` of tREFI, modulo tREFI."""
     d, ghz = arch.dram, arch.clock_ghz
     refi = d.t_refi_ns * ghz
     ch = np.arange(d.channels) + 1
     if d.refresh == "all_bank":
-        return np.repeat(ch * refi / d.channels, d.banks), refi, d.t_rfc_ns * ghz
-    pb = d.t_refi_pb_ns * ghz
-    local = np.arange(d.banks)
-    turn = local % round(d.t_refi_ns / d.t_refi_pb_ns) if d.refresh == "per_bank" else local // d.bank_groups
-    first = (ch * pb / d.channels)[:, None] + turn[None, :] * pb
-    return first.reshape(-1), refi, d.t_rfc_pb_ns * ghz
+        first, length = np.repeat(ch * refi / d.channels, d.banks), d.t_rfc_ns * ghz
+    else:
+        pb = d.t_refi_pb_ns * ghz
+        local = np.arange(d.banks)
+        turn = local % round(d.t_refi_ns / d.t_refi_pb_ns) if d.refresh == "per_bank" else local // d.bank_groups
+        first, length = ((ch * pb / d.channels)[:, None] + turn[None, :] * pb).reshape(-1), d.t_rfc_pb_ns * ghz
+    # a later phase: the same windows, the run starting further into the schedule
+    first = np.array([f + d.refresh_phase * refi - (refi if f + d.refresh_phase * refi > refi else 0.0)
+                      for f in first])
+    return first, refi, length
 
 
 def in_window(first, period, length, x):
@@ -465,6 +470,36 @@ def test_compiled_loops_equal_plain_python(tmp_path):
     for name in STATE + ("times",):
         assert np.array_equal(got[name], want[name]), name
     assert got["acc"][T.A_REF_DELAY] > 0 and got["acc"][T.A_ACTS] > 0   # refresh and activates taken
+
+
+@pytest.mark.parametrize("name,mode", [("hbm2", "all_bank"), ("ddr4_3200", "all_bank"),
+                                       ("hbm3", "per_bank"), ("lpddr5x", "per_bank")])
+@pytest.mark.parametrize("phase", [0.37, 0.9])
+def test_a_later_refresh_phase_keeps_every_timing_rule(name, mode, phase):
+    """``dram.refresh_phase``: the same refresh schedule with the run starting further into
+    it. The pool's first windows are the documented ones moved by ``phase`` of tREFI, wrapped
+    into the first interval (as ``refresh_windows`` computes them on its own), and
+    hammering traffic keeps every rule against the moved windows (a command inside one is a
+    violation), with refresh delay seen."""
+    arch = preset(name, **{"dram.channels": 2, "fetch.request_bytes": arch_burst(name)})
+    arch = arch.with_overrides(dict(short_refresh(arch, mode), **{"dram.refresh_phase": phase}))
+    first, period, _length = refresh_windows(arch)
+    unmoved = refresh_windows(arch.with_overrides({"dram.refresh_phase": 0.0}))[0]
+    off = np.mod(first - unmoved - phase * period, period)
+    assert np.all(np.minimum(off, period - off) < 1e-6)      # moved by phase x tREFI, modulo tREFI
+    assert np.all((first > 0) & (first <= period + 1e-9))
+    pool, log = hammer(arch)
+    np.testing.assert_allclose(pool.BF[:, T.B_REF_OFF], first, rtol=1e-12)
+    assert check_protocol(log, arch) == []
+    assert pool.refresh_delay > 0
+
+
+def test_a_whole_refresh_interval_of_phase_is_no_change():
+    """Phase 1 is phase 0 one interval later: the same run."""
+    arch = preset("hbm2", **{"dram.channels": 2, "fetch.request_bytes": 64})
+    arch = arch.with_overrides(short_refresh(arch, "all_bank"))
+    logs = [hammer(arch.with_overrides({"dram.refresh_phase": p}))[1] for p in (0.0, 1.0)]
+    assert np.array_equal(logs[0], logs[1])
 
 
 def test_same_bank_refresh_closes_one_bank_of_every_group_at_once():

@@ -262,6 +262,7 @@ class Timing:
         self.refresh = d.refresh
         self.refi_pb = d.t_refi_pb_ns * ghz
         self.rfc_pb = d.t_rfc_pb_ns * ghz
+        self.phase = d.refresh_phase
         # banks per channel refreshed at different times: all at once, one command per
         # bank (or bank set) in turn, or one per bank index of a group (every group at once)
         self.turns = {"all_bank": 1, "per_bank": int(round(d.t_refi_ns / d.t_refi_pb_ns)),
@@ -295,15 +296,22 @@ class Timing:
         ``b`` of a channel in turn ``b mod turns`` (with fewer turns than banks, the
         banks of one turn refresh together); same-bank: turn ``b div bank_groups``,
         the same bank of every group at once. Channels are staggered within one
-        command interval.
+        command interval. ``dram.refresh_phase`` moves every window later by that
+        fraction of tREFI, a window pushed past the first interval coming round to
+        its start (the run begins at another point of the same schedule).
         """
         if self.refresh == "all_bank":
             chan = (np.arange(channels) + 1) * (self.refi / channels)
-            return np.repeat(chan, banks)
-        local = np.arange(banks)
-        turn = local % self.turns if self.refresh == "per_bank" else local // self.groups
-        chan = (np.arange(channels) + 1) * (self.refi_pb / channels)
-        return (chan[:, None] + turn[None, :] * self.refi_pb).reshape(-1)
+            first = np.repeat(chan, banks)
+        else:
+            local = np.arange(banks)
+            turn = local % self.turns if self.refresh == "per_bank" else local // self.groups
+            chan = (np.arange(channels) + 1) * (self.refi_pb / channels)
+            first = (chan[:, None] + turn[None, :] * self.refi_pb).reshape(-1)
+        if self.phase:
+            first = first + self.phase * self.refi
+            first[first > self.refi] -= self.refi
+        return first
 
 
 class ChannelPool:
