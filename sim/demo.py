@@ -22,6 +22,12 @@ CONFIGS = ("edge", "mid", "server", "hbm2_stack")
 TIMELINE_CONFIG = "mid"
 SENSITIVITY = "fastest"   # which runs the demo measures sensitivity for (see sim.report.sensitivity)
 REPORT_TITLE = "attnsim demo: bundled traces on bundled datapaths"
+# where each trace's fastest run is simulated again in the refresh schedule (dram.refresh_phase)
+PHASES = (0.25, 0.5, 0.75)
+PHASE_HEAD = ("Where a run starts in the DRAM refresh schedule is arbitrary (dram.refresh_phase). Each "
+              "trace's fastest datapath over phases " + ", ".join(f"{p:g}" for p in (0.0,) + PHASES) +
+              "; a difference between datapaths smaller than this spread may be where the refresh "
+              "windows fell")
 
 
 def repo_root():
@@ -129,8 +135,42 @@ def terminal_table(runs):
     return "\n".join(lines)
 
 
-def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=False, progress=False):
-    """Run the demo; return ``(runs, failed, out_dir, seconds)``: seconds of simulation, as the report states."""
+def refresh_phase_spread(jobs, results):
+    """Per trace, its fastest run's cycles at refresh phase 0 and at :data:`PHASES`:
+    ``[(trace, datapath, [cycles])]``. Where a run starts in the refresh schedule is
+    arbitrary; on a trace of about one refresh interval it moves the answer by more than
+    some differences between datapaths."""
+    from .arch import load_arch
+    from .run import simulate
+    from .trace.files import load_trace
+
+    best = {}
+    for (cfg, name, path), res in zip(jobs, results):
+        if res["ok"] and (name not in best or res["doc"]["seconds"] < best[name][2]["doc"]["seconds"]):
+            best[name] = (cfg, path, res)
+    out = []
+    for name, (cfg, path, res) in best.items():
+        arch = load_arch(cfg)
+        if arch.dram.model != "banked":
+            continue
+        trace = load_trace(path) if path else _synth(name)
+        cycles = [res["doc"]["cycles"]] + [
+            simulate(arch.with_overrides({"dram.refresh_phase": p}), trace, keep_intervals=False).to_dict()["cycles"]
+            for p in PHASES]
+        out.append((name, arch.name, cycles))
+    return out
+
+
+def phase_lines(spread):
+    """The refresh-phase spread in words, a line per trace (read under :data:`PHASE_HEAD`)."""
+    return [f"{name} on {cfg}: {min(c):,} to {max(c):,} cycles ({(max(c) - min(c)) / min(c):.1%} apart)"
+            for name, cfg, c in spread]
+
+
+def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=False, progress=False,
+             phase_notes=None):
+    """Run the demo; return ``(runs, failed, out_dir, seconds)``: seconds of simulation, as the report states.
+    ``phase_notes``: a list to receive the refresh-phase lines (:func:`phase_lines`)."""
     from .report.build import build_report
     from .report.inputs import ReportError, Run
 
@@ -159,6 +199,11 @@ def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=Fals
     sim_s = time.perf_counter() - t0
     if not runs:
         raise RuntimeError("every demo run failed: " + "; ".join(f["error"] for f in failed))
+    t1 = time.perf_counter()
+    phases = phase_lines(refresh_phase_spread(jobs, results))
+    phase_s = time.perf_counter() - t1
+    if phase_notes is not None:
+        phase_notes.extend(phases)
     # what to change, measured on the fastest datapath of each trace
     from .report import sensitivity as S
     from .report.inputs import label_runs
@@ -170,8 +215,10 @@ def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=Fals
     timeline = next((r for r in runs if r.doc["arch"]["name"] == TIMELINE_CONFIG), runs[0])
     build_report(runs, out_dir, failed=failed, force=True, timeline_run=timeline, title=REPORT_TITLE,
                  notes=[f"Traces: {kind} ({', '.join(n for n, _ in traces)}); datapaths: "
-                        f"{', '.join(configs)}. Simulation took {sim_s:.1f} s of wall time; the sensitivity "
-                        f"reruns ({SENSITIVITY} run of each trace) {sens_s:.1f} s."] + sens_notes,
+                        f"{', '.join(configs)}. Simulation took {sim_s:.1f} s of wall time; the refresh-phase "
+                        f"reruns {phase_s:.1f} s; the sensitivity reruns ({SENSITIVITY} run of each trace) "
+                        f"{sens_s:.1f} s."] + ([f"{PHASE_HEAD}: {'; '.join(phases)}."] if phases else [])
+                 + sens_notes,
                  inputs=[p or n for n, p in traces] + cfgs, sensitivity=table)
     return runs, failed, out_dir, sim_s
 
@@ -218,11 +265,16 @@ def main_demo(out_dir=None, force=False, quiet=False):
             print(text, file=sys.stderr)
 
     t0 = time.perf_counter()
+    phases = []
     runs, failed, out_dir, secs = run_demo(out_dir=out_dir, echo=notice, force=force,
-                                           progress=not quiet and sys.stderr.isatty())
+                                           progress=not quiet and sys.stderr.isatty(), phase_notes=phases)
     total = time.perf_counter() - t0
     if not quiet:
         print(terminal_table(runs))
+        if phases:
+            print(f"\n{PHASE_HEAD}:")
+            for ln in phases:
+                print(f"  {ln}")
     for f in failed:
         print(f"attnsim: demo run failed: {f['origin']}: {f['error']}", file=sys.stderr)
     rel = os.path.relpath(out_dir)

@@ -15,11 +15,14 @@ from sim import demo
 from sim.cli import build_parser
 
 
+PHASE_LINES = []   # the demo's refresh-phase lines, filled by the fixture
+
+
 @pytest.fixture(scope="module")
 def demo_run(tmp_path_factory):
     out = str(tmp_path_factory.mktemp("demo") / "demo")
     lines = []
-    runs, failed, out_dir, secs = demo.run_demo(out_dir=out, echo=lines.append)
+    runs, failed, out_dir, secs = demo.run_demo(out_dir=out, echo=lines.append, phase_notes=PHASE_LINES)
     return runs, failed, out_dir, lines
 
 
@@ -68,3 +71,29 @@ def test_report_written_and_complete(demo_run):
 def test_demo_takes_no_arguments():
     args = build_parser().parse_args(["demo"])
     assert args.handler.__name__ == "_cmd_demo"
+
+
+def test_refresh_phase_spread_is_the_runs_own(demo_run):
+    """Per trace, the demo says how far its fastest datapath moves with where the run starts
+    in the refresh schedule: the range is that run's cycles and the same run simulated again
+    at the other phases (here, on its own)."""
+    import re
+
+    import sim
+
+    runs, _f, out, _l = demo_run
+    phases = PHASE_LINES
+    kind, traces = demo.pick_traces(demo.repo_root())
+    assert len(phases) == len(traces)
+    line = phases[-1]
+    name, cfg, lo, hi = re.match(r"(\S+) on (\S+): ([\d,]+) to ([\d,]+) cycles", line).groups()
+    mine = [r for r in runs if r.doc["trace"]["name"] == name]
+    fastest = min(mine, key=lambda r: r.doc["seconds"])
+    assert fastest.doc["arch"]["name"] == cfg
+    arch = sim.load_arch(os.path.join(demo.repo_root(), "arch_configs", f"{cfg}.yaml"))
+    trace = sim.load_trace(dict(traces)[name]) if dict(traces)[name] else demo._synth(name)
+    cycles = [fastest.doc["cycles"]] + [sim.simulate(arch.with_overrides({"dram.refresh_phase": p}), trace,
+                                                     keep_intervals=False).to_dict()["cycles"]
+                                        for p in demo.PHASES]
+    assert (int(lo.replace(",", "")), int(hi.replace(",", ""))) == (min(cycles), max(cycles))
+    assert line in open(os.path.join(out, "report.md")).read()
