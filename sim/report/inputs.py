@@ -25,7 +25,9 @@ class Run:
 
     ``point`` holds a sweep point's axis values (empty for a plain result
     file); ``intervals`` the per-unit intervals when a run was simulated with
-    them at hand (the demo) or replayed for the timeline.
+    them at hand (the demo) or replayed for the timeline; ``phase_spread`` how far
+    apart its cycles come over refresh phases, when that was measured (the demo):
+    latencies closer than that are not told apart (:mod:`sim.report.verdict`).
     """
 
     def __init__(self, doc, origin, point=None, trace_path=None, intervals=None):
@@ -34,6 +36,7 @@ class Run:
         self.point = dict(point or {})
         self.trace_path = trace_path
         self.intervals = intervals
+        self.phase_spread = 0.0
         self.config_label = doc["arch"]["name"]
         self.trace_label = doc["trace"]["name"]
 

@@ -6,7 +6,10 @@ the roofline figure read), the roofline fraction, the measured sensitivity
 reruns when the report made them, and the energy section. Comparisons follow
 one rule: a run is "fastest" (or "least energy") only when it beats every
 other comparable run by more than :data:`TIE`; otherwise the runs within
-:data:`TIE` of the best are named as tied.
+:data:`TIE` of the best are named as tied. For latency the margin is wider where
+the runs' cycles were measured to move more than that with where they start in
+the DRAM refresh schedule (``Run.phase_spread``): a lead inside that spread may
+be where the refresh windows fell.
 """
 
 from .. import formats as fm
@@ -142,12 +145,21 @@ def write_verdict(run, peers=(), sensitivity=None):
     return " ".join(p for p in parts if p)
 
 
-def _ranked(runs, key):
-    """``(best, tied, ranked)``: runs sorted by ``key``; ``tied`` those within TIE of the best."""
+def _ranked(runs, key, tie=TIE):
+    """``(best, tied, ranked)``: runs sorted by ``key``; ``tied`` those within ``tie`` of the best."""
     ranked = sorted(runs, key=key)
     lo = key(ranked[0])
-    tied = [r for r in ranked if key(r) <= lo * (1 + TIE)]
+    tied = [r for r in ranked if key(r) <= lo * (1 + tie)]
     return ranked[0], tied, ranked
+
+
+def _latency_tie(runs):
+    """The margin under which latencies are tied: :data:`TIE`, or the runs' refresh-phase
+    spread where it is wider; and the words that say why."""
+    spread = max(getattr(r, "phase_spread", 0.0) for r in runs)
+    if spread <= TIE:
+        return TIE, ""
+    return spread, " (how far these runs move with where they start in the refresh schedule)"
 
 
 def _seconds(r):
@@ -164,10 +176,11 @@ def rank_text(run, peers):
     if not peers:
         return ""
     allr = [run] + peers
-    best, tied, ranked = _ranked(allr, _seconds)
+    tie, why = _latency_tie(allr)
+    best, tied, ranked = _ranked(allr, _seconds, tie)
     if run in tied and len(tied) > 1:
         others = [r.config_label for r in tied if r is not run]
-        return f"Tied within {TIE:.0%} for fastest with {', '.join(others)}."
+        return f"Tied within {tie:.0%}{why} for fastest with {', '.join(others)}."
     if run is best:
         second = ranked[1]
         return (f"Fastest of the {len(allr)} configs on {run.trace_label}, "
@@ -182,9 +195,10 @@ def group_summary(group):
     if len(group) < 2:
         return ""
     out = []
-    best, tied, ranked = _ranked(group, _seconds)
+    tie, why = _latency_tie(group)
+    best, tied, ranked = _ranked(group, _seconds, tie)
     if len(tied) > 1:
-        out.append(f"tied within {TIE:.0%} for fastest: {', '.join(r.config_label for r in tied)} "
+        out.append(f"tied within {tie:.0%}{why} for fastest: {', '.join(r.config_label for r in tied)} "
                    f"({fm.show(_seconds(best), 'latency')})")
     else:
         out.append(f"fastest {best.config_label} ({fm.show(_seconds(best), 'latency')}, "
