@@ -880,6 +880,10 @@ def _add_report(sub):
                         "(front) or fastest run, off; auto (default): all when within --sensitivity-limit")
     p.add_argument("--sensitivity-limit", type=_int_in(0, 10 ** 7), metavar="N",
                    help="most extra simulations sensitivity may start (default 240)")
+    p.add_argument("--refresh-phases", action="store_true",
+                   help="simulate each trace's two fastest runs again with the run starting 0.25, 0.5 and "
+                        "0.75 of a refresh interval later (dram.refresh_phase); a lead inside how far they "
+                        "move is reported as a tie")
     where = p.add_mutually_exclusive_group()
     where.add_argument("--jobs", type=_int_in(1, 1024), metavar="N",
                        help="local processes for the sensitivity reruns (default: every core)")
@@ -906,7 +910,8 @@ def _cmd_report(args):
                                            replay=not args.no_replay, title=args.title,
                                            sensitivity=args.sensitivity, sensitivity_limit=args.sensitivity_limit,
                                            jobs=args.jobs, cluster=args.cluster, workers=args.workers,
-                                           echo=lambda m: _say(args, f"attnsim: {m}", file=sys.stderr))
+                                           echo=lambda m: _say(args, f"attnsim: {m}", file=sys.stderr),
+                                           refresh_phases=args.refresh_phases)
     for w in manifest["warnings"]:
         _warn(args, w)
     for n in manifest["notes"]:

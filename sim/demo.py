@@ -22,10 +22,8 @@ CONFIGS = ("edge", "mid", "server", "hbm2_stack")
 TIMELINE_CONFIG = "mid"
 SENSITIVITY = "fastest"   # which runs the demo measures sensitivity for (see sim.report.sensitivity)
 REPORT_TITLE = "attnsim demo: bundled traces on bundled datapaths"
-# where each trace's fastest run is simulated again in the refresh schedule (dram.refresh_phase)
-PHASES = (0.25, 0.5, 0.75)
 PHASE_HEAD = ("Where a run starts in the DRAM refresh schedule is arbitrary (dram.refresh_phase). Each "
-              "trace's two fastest datapaths over phases " + ", ".join(f"{p:g}" for p in (0.0,) + PHASES) +
+              "trace's two fastest datapaths over phases 0, 0.25, 0.5, 0.75" +
               "; a lead smaller than their spread may be where the refresh windows fell, and the "
               "report calls such runs tied")
 
@@ -135,38 +133,11 @@ def terminal_table(runs):
     return "\n".join(lines)
 
 
-def refresh_phase_spread(jobs, results, leaders=2):
-    """Per trace, its ``leaders`` fastest runs' cycles at refresh phase 0 and at
-    :data:`PHASES`: ``[(trace, datapath, [cycles])]``. Where a run starts in the refresh
-    schedule is arbitrary; on a trace of about one refresh interval it moves the answer by
-    more than some differences between datapaths."""
-    from .arch import load_arch
-    from .run import simulate
-    from .trace.files import load_trace
-
-    by_trace = {}
-    for (cfg, name, path), res in zip(jobs, results):
-        if res["ok"]:
-            by_trace.setdefault(name, []).append((res["doc"]["seconds"], cfg, path, res))
-    out = []
-    for name, entries in by_trace.items():
-        trace = None
-        for _s, cfg, path, res in sorted(entries, key=lambda e: e[0])[:leaders]:
-            arch = load_arch(cfg)
-            if arch.dram.model != "banked":
-                continue
-            trace = trace or (load_trace(path) if path else _synth(name))
-            cycles = [res["doc"]["cycles"]] + [
-                simulate(arch.with_overrides({"dram.refresh_phase": p}), trace,
-                         keep_intervals=False).to_dict()["cycles"] for p in PHASES]
-            out.append((name, arch.name, cycles))
-    return out
-
-
-def phase_lines(spread):
-    """The refresh-phase spread in words, a line per trace (read under :data:`PHASE_HEAD`)."""
-    return [f"{name} on {cfg}: {min(c):,} to {max(c):,} cycles ({(max(c) - min(c)) / min(c):.1%} apart)"
-            for name, cfg, c in spread]
+def phase_lines(runs):
+    """The refresh-phase spread of the runs that have it, a line each (read under :data:`PHASE_HEAD`)."""
+    done = sorted((r for r in runs if r.phase_range), key=lambda r: (r.trace_label, r.doc["seconds"]))
+    return [f"{r.trace_label} on {r.config_label}: {r.phase_range[0]:,} to {r.phase_range[1]:,} cycles "
+            f"({r.phase_spread:.1%} apart)" for r in done]
 
 
 def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=False, progress=False,
@@ -201,20 +172,19 @@ def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=Fals
     sim_s = time.perf_counter() - t0
     if not runs:
         raise RuntimeError("every demo run failed: " + "; ".join(f["error"] for f in failed))
-    t1 = time.perf_counter()
-    spread = refresh_phase_spread(jobs, results)
-    phases = phase_lines(spread)
-    phase_s = time.perf_counter() - t1
-    moves = {(cfg, name): (max(c) - min(c)) / min(c) for name, cfg, c in spread}
-    for r in runs:
-        r.phase_spread = moves.get((r.doc["arch"]["name"], r.doc["trace"]["name"]), 0.0)
-    if phase_notes is not None:
-        phase_notes.extend(phases)
-    # what to change, measured on the fastest datapath of each trace
+    # where the runs start in the refresh schedule, for each trace's two fastest datapaths
+    from .report import phases as P
     from .report import sensitivity as S
     from .report.inputs import label_runs
 
     label_runs(runs)
+    t1 = time.perf_counter()
+    P.measure(runs, jobs=workers)
+    phases = phase_lines(runs)
+    phase_s = time.perf_counter() - t1
+    if phase_notes is not None:
+        phase_notes.extend(phases)
+    # what to change, measured on the fastest datapath of each trace
     t1 = time.perf_counter()
     table, sens_notes = S.measure(S.select(runs, SENSITIVITY), jobs=workers)
     sens_s = time.perf_counter() - t1

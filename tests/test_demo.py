@@ -13,6 +13,7 @@ import pytest
 
 from sim import demo
 from sim.cli import build_parser
+from sim.report.phases import PHASES
 
 
 PHASE_LINES = []   # the demo's refresh-phase lines, filled by the fixture
@@ -93,7 +94,7 @@ def test_refresh_phase_spread_is_the_runs_own(demo_run):
     trace = sim.load_trace(dict(traces)[name]) if dict(traces)[name] else demo._synth(name)
     cycles = [run.doc["cycles"]] + [sim.simulate(arch.with_overrides({"dram.refresh_phase": p}), trace,
                                                  keep_intervals=False).to_dict()["cycles"]
-                                    for p in demo.PHASES]
+                                    for p in PHASES]
     lo, hi = int(lo.replace(",", "")), int(hi.replace(",", ""))
     assert (lo, hi) == (min(cycles), max(cycles))
     assert run.phase_spread == (hi - lo) / lo

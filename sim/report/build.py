@@ -432,8 +432,10 @@ def attach_timeline(runs, path):
 
 def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=True, title=None,
                       sensitivity="auto", sensitivity_limit=None, jobs=None, cluster=None, workers=None,
-                      echo=None):
-    """``attnsim report``: load inputs, measure sensitivity, get one run's intervals, write the report.
+                      echo=None, refresh_phases=False):
+    """``attnsim report``: load inputs, measure sensitivity (and with ``refresh_phases`` each
+    trace's leading runs at other refresh phases, :mod:`.phases`), get one run's intervals,
+    write the report.
 
     Everything that can refuse (the output folder, a sensitivity request over
     its limit) is checked before any simulation starts.
@@ -452,6 +454,9 @@ def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=Tr
     if picked:
         table, more = S.measure(picked, jobs=jobs, cluster=cluster, workers=workers, echo=echo)
         notes += more
+    if refresh_phases:
+        from . import phases
+        notes += phases.measure(runs, jobs=jobs, cluster=cluster, workers=workers, echo=echo)
     timeline_run = None
     if timeline_path:
         timeline_run = attach_timeline(runs, timeline_path)

@@ -37,6 +37,7 @@ class Run:
         self.trace_path = trace_path
         self.intervals = intervals
         self.phase_spread = 0.0
+        self.phase_range = None     # (fewest, most) cycles over refresh phases, when measured
         self.config_label = doc["arch"]["name"]
         self.trace_label = doc["trace"]["name"]
 

@@ -213,11 +213,14 @@ class _Task:
         self.args = (variant.config, run.trace_path, run.digest)
 
 
-def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None):
+def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None, plan=None,
+            what="sensitivity"):
     """Simulate every valid variant of ``runs``; return ``{id(run): [row, ...]}`` and notes.
 
     A row: ``resource, direction, change, setting, path, old, new, status,
-    cycles, seconds, energy_pj, speedup, energy_ratio, error``.
+    cycles, seconds, energy_pj, speedup, energy_ratio, error``. ``plan``: what
+    variants a run gets (default :func:`plan_variants`; the refresh phases use
+    :func:`sim.report.phases.plan_phases`), ``what`` names them in notes.
     """
     from ..build import build_id
     from ..sweep.backends import make_backend
@@ -227,9 +230,9 @@ def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None
     for r in runs:
         why = replayable(r)
         if why:
-            notes.append(f"No sensitivity for {r.label}: {why}.")
+            notes.append(f"No {what} for {r.label}: {why}.")
             continue
-        plans[id(r)] = plan_variants(r)
+        plans[id(r)] = (plan or plan_variants)(r)
     todo = [v for vs in plans.values() for v in vs if v.config is not None]
     if not todo:
         return {}, notes
@@ -238,7 +241,7 @@ def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None
         backend = make_backend(jobs=jobs if jobs is not None else (1 if len(todo) < 4 else None),
                                cluster=cluster, workers=workers)
     if echo:
-        echo(f"sensitivity: {len(todo)} simulations for {len(plans)} run{'s' if len(plans) > 1 else ''} "
+        echo(f"{what}: {len(todo)} simulations for {len(plans)} run{'s' if len(plans) > 1 else ''} "
              f"on {backend.name}")
     t0 = time.perf_counter()
     mine = build_id()
@@ -261,17 +264,17 @@ def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None
         if own:
             backend.close()
     if echo:
-        echo(f"sensitivity: done in {time.perf_counter() - t0:.1f} s")
+        echo(f"{what}: done in {time.perf_counter() - t0:.1f} s")
     out = {}
     for key, vs in plans.items():
         base = vs[0]
         run = base.run
         if base.outcome is None:
-            notes.append(f"No sensitivity for {run.label}: its baseline rerun failed ({base.error}).")
+            notes.append(f"No {what} for {run.label}: its baseline rerun failed ({base.error}).")
             continue
         if base.outcome[0] != run.doc["cycles"]:
-            notes.append(f"Sensitivity of {run.label} is measured against a rerun of {base.outcome[0]:,} cycles "
-                         f"(the document says {run.doc['cycles']:,}: another build made it).")
+            notes.append(f"{what.capitalize()} of {run.label} is measured against a rerun of {base.outcome[0]:,} "
+                         f"cycles (the document says {run.doc['cycles']:,}: another build made it).")
         out[key] = [_row(v, base) for v in vs[1:]]
     return out, notes
 

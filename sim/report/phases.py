@@ -1,0 +1,74 @@
+"""Refresh phases: how far a run's answer moves with where it starts in the DRAM refresh schedule.
+
+Where a run starts in the refresh schedule is arbitrary. On a trace of a few
+refresh intervals one window more or less on a critical fetch can move the
+cycles by more than a design change does, so a report asked for it
+(``attnsim report --refresh-phases``) simulates each trace's two fastest runs
+again with ``dram.refresh_phase`` moved by 0.25, 0.5 and 0.75 of tREFI (through
+the same reruns as the sensitivity, :func:`sim.report.sensitivity.measure`),
+and sets each run's ``phase_range`` (its fewest and most cycles) and
+``phase_spread``: how far apart they come. The
+verdicts then call a latency lead inside that spread a tie
+(:mod:`sim.report.verdict`). Nothing here is estimated.
+"""
+
+import copy
+
+from .inputs import group_key
+from .sensitivity import Variant, _config_of
+
+PHASES = (0.25, 0.5, 0.75)
+LEADERS = 2          # runs per trace measured: the fastest and the one it is compared with
+RESOURCE = "refresh phase"
+
+
+def leaders(runs, n=LEADERS):
+    """Each trace's ``n`` fastest runs (in the order of ``runs``)."""
+    groups = {}
+    for r in runs:
+        groups.setdefault(group_key(r), []).append(r)
+    out = set()
+    for rr in groups.values():
+        out.update(id(r) for r in sorted(rr, key=lambda r: r.doc["seconds"])[:n])
+    return [r for r in runs if id(r) in out]
+
+
+def plan_phases(run):
+    """The run as recorded, then at each of :data:`PHASES` later in the refresh schedule
+    (none when its memory takes no refresh)."""
+    base = _config_of(run)
+    out = [Variant(run, "baseline", "as recorded")]
+    out[0].config = base
+    dram = base.get("dram", {})
+    if dram.get("model", "banked") != "banked":
+        return out
+    old = float(dram.get("refresh_phase", 0.0))
+    for p in PHASES:
+        v = Variant(run, RESOURCE, f"+{p:g}", "dram.refresh_phase", old, (old + p) % 1.0)
+        v.config = copy.deepcopy(base)
+        v.config.setdefault("dram", {})["refresh_phase"] = v.new
+        out.append(v)
+    return out
+
+
+def measure(runs, **backend):
+    """Measure the refresh-phase spread of each trace's leading runs; sets ``run.phase_spread``
+    and returns notes (one per run measured)."""
+    from . import sensitivity as S
+
+    picked = leaders(runs)
+    if not picked:
+        return []
+    table, notes = S.measure(picked, plan=plan_phases, what="refresh-phase reruns", **backend)
+    for r in picked:
+        rows = table.get(id(r))
+        cycles = [row["cycles"] for row in rows or () if row["cycles"] is not None]
+        if not cycles:
+            continue
+        cycles.append(round(rows[0]["cycles"] * rows[0]["speedup"]))   # the baseline rerun's
+        lo, hi = min(cycles), max(cycles)
+        r.phase_range, r.phase_spread = (lo, hi), (hi - lo) / lo
+        notes.append(f"Refresh phase: {r.label} takes {lo:,} to {hi:,} cycles with the run starting "
+                     f"0, 0.25, 0.5 and 0.75 of tREFI later in the refresh schedule ({r.phase_spread:.1%} "
+                     f"apart); a lead inside that is reported as a tie.")
+    return notes
