@@ -439,6 +439,28 @@ def test_a_lead_inside_the_refresh_phase_spread_is_a_tie():
         assert "Tied within" in write_verdict(r, runs) and "Fastest" not in write_verdict(r, runs)
 
 
+def test_a_measured_gain_inside_the_refresh_phase_spread_is_said_to_be():
+    """A latency-bound run on a short captured trace: 25 % more memory bandwidth measures a
+    gain that the run's own refresh-phase spread, measured here too, is larger than. The
+    verdict names the change and says the gain is inside the spread; without a measured
+    spread it names the gain alone."""
+    from sim.report.verdict import TIE, sensitivity_text
+
+    trace = "traces/captured_short_moderate.npz"
+    arch = sim.load_arch("arch_configs/server.yaml")
+    base = sim.simulate(arch, trace, keep_intervals=False).to_dict()["cycles"]
+    new = arch.dram.channel_gbps * 1.25
+    faster = sim.simulate(arch.with_overrides({"dram.channel_gbps": new}), trace, keep_intervals=False).to_dict()
+    cyc = [sim.simulate(arch.with_overrides({"dram.refresh_phase": p}), trace,
+                        keep_intervals=False).to_dict()["cycles"] for p in (0.0, 0.25, 0.5, 0.75)]
+    spread = (max(cyc) - min(cyc)) / min(cyc)
+    row = {"change": "more memory bandwidth", "setting": f"dram.channel_gbps {arch.dram.channel_gbps:g} -> {new:g}",
+           "speedup": base / faster["cycles"], "energy_ratio": None}
+    assert 1 + TIE < row["speedup"] <= 1 + spread      # the premise, as measured
+    assert f"inside the {spread:.0%} this run moves" in sensitivity_text([row], spread)
+    assert "inside the" not in sensitivity_text([row]) and "Measured best change" in sensitivity_text([row])
+
+
 def test_engine_settings_are_labelled_not_merged(tmp_path, capsys):
     """One config and trace simulated at two grains and two seeds: four labels, a warning, the settings listed."""
     paths = []

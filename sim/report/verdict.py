@@ -99,8 +99,9 @@ def roofline_text(doc):
     return f"It reaches {fm.pct(rf)} of its closed-form {bound}-bound roofline."
 
 
-def sensitivity_text(sens):
-    """The measured best change for one run, from its sensitivity rows (see :mod:`.sensitivity`)."""
+def sensitivity_text(sens, spread=0.0):
+    """The measured best change for one run, from its sensitivity rows (see :mod:`.sensitivity`);
+    ``spread``: the run's refresh-phase spread, when measured (a gain inside it is said to be)."""
     if not sens:
         return ""
     ok = [s for s in sens if s.get("speedup") is not None]
@@ -120,6 +121,9 @@ def sensitivity_text(sens):
             f"{fm.show(best['speedup'], 'speedup')} faster")
     if best.get("energy_ratio") is not None:
         text += f" at {fm.show(best['energy_ratio'], 'speedup')} the energy"
+    if spread > TIE and best["speedup"] <= 1 + spread:
+        text += (f", inside the {spread:.0%} this run moves with where it starts in the refresh schedule: "
+                 f"not a gain this trace can show")
     return text + "."
 
 
@@ -140,8 +144,8 @@ def energy_text(doc):
 def write_verdict(run, peers=(), sensitivity=None):
     """A short paragraph for ``run``; ``peers``: comparable runs; ``sensitivity``: its measured reruns."""
     d = run.doc
-    parts = [limit_text(d), close_text(d), roofline_text(d), sensitivity_text(sensitivity), rank_text(run, peers),
-             energy_text(d)]
+    parts = [limit_text(d), close_text(d), roofline_text(d),
+             sensitivity_text(sensitivity, getattr(run, "phase_spread", 0.0)), rank_text(run, peers), energy_text(d)]
     return " ".join(p for p in parts if p)
 
 
