@@ -26,8 +26,9 @@ class Run:
     ``point`` holds a sweep point's axis values (empty for a plain result
     file); ``intervals`` the per-unit intervals when a run was simulated with
     them at hand (the demo) or replayed for the timeline; ``phase_spread`` how far
-    apart its cycles come over refresh phases, when that was measured (the demo):
-    latencies closer than that are not told apart (:mod:`sim.report.verdict`).
+    apart its cycles come over refresh phases, when that was measured (the demo,
+    ``attnsim report --refresh-phases``: :mod:`sim.report.phases`): latencies closer than
+    that are not told apart (:mod:`sim.report.verdict`).
     """
 
     def __init__(self, doc, origin, point=None, trace_path=None, intervals=None):

@@ -61,11 +61,11 @@ def measure(runs, **backend):
         return []
     table, notes = S.measure(picked, plan=plan_phases, what="refresh-phase reruns", **backend)
     for r in picked:
-        rows = table.get(id(r))
-        cycles = [row["cycles"] for row in rows or () if row["cycles"] is not None]
-        if not cycles:
+        ok = [row for row in table.get(id(r), ()) if row["cycles"] is not None]
+        if not ok:
             continue
-        cycles.append(round(rows[0]["cycles"] * rows[0]["speedup"]))   # the baseline rerun's
+        # each row's speedup is the baseline rerun's cycles over its own: that gives the baseline's
+        cycles = [row["cycles"] for row in ok] + [round(ok[0]["cycles"] * ok[0]["speedup"])]
         lo, hi = min(cycles), max(cycles)
         r.phase_range, r.phase_spread = (lo, hi), (hi - lo) / lo
         notes.append(f"Refresh phase: {r.label} takes {lo:,} to {hi:,} cycles with the run starting "
