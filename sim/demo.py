@@ -17,13 +17,14 @@ import time
 import traceback
 
 from . import bundled
+from .report.phases import PHASES
 
 CONFIGS = ("edge", "mid", "server", "hbm2_stack")
 TIMELINE_CONFIG = "mid"
 SENSITIVITY = "fastest"   # which runs the demo measures sensitivity for (see sim.report.sensitivity)
 REPORT_TITLE = "attnsim demo: bundled traces on bundled datapaths"
 PHASE_HEAD = ("Where a run starts in the DRAM refresh schedule is arbitrary (dram.refresh_phase). Each "
-              "trace's two fastest datapaths over phases 0, 0.25, 0.5, 0.75" +
+              "trace's two fastest datapaths over phases " + ", ".join(f"{p:g}" for p in (0.0,) + PHASES) +
               "; a lead smaller than their spread may be where the refresh windows fell, and the "
               "report calls such runs tied")
 

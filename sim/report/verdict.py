@@ -145,7 +145,7 @@ def write_verdict(run, peers=(), sensitivity=None):
     """A short paragraph for ``run``; ``peers``: comparable runs; ``sensitivity``: its measured reruns."""
     d = run.doc
     parts = [limit_text(d), close_text(d), roofline_text(d),
-             sensitivity_text(sensitivity, getattr(run, "phase_spread", 0.0)), rank_text(run, peers), energy_text(d)]
+             sensitivity_text(sensitivity, run.phase_spread), rank_text(run, peers), energy_text(d)]
     return " ".join(p for p in parts if p)
 
 
@@ -160,7 +160,7 @@ def _ranked(runs, key, tie=TIE):
 def _latency_tie(runs):
     """The margin under which latencies are tied: :data:`TIE`, or the runs' refresh-phase
     spread where it is wider; and the words that say why."""
-    spread = max(getattr(r, "phase_spread", 0.0) for r in runs)
+    spread = max(r.phase_spread for r in runs)
     if spread <= TIE:
         return TIE, ""
     return spread, " (how far these runs move with where they start in the refresh schedule)"
