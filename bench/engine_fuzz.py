@@ -54,6 +54,8 @@ import signal
 import sys
 import time
 
+import yaml
+
 HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(HERE)
 sys.path[:0] = [ROOT, os.path.join(ROOT, "tests")]   # this checkout's package, not an installed one
@@ -183,10 +185,12 @@ def without_refresh(arch, trace):
     return SMOOTHED if outcome == "ok" else f"; without refresh too: {detail}"
 
 
-def run_case(seed, case, timeout, grain=False):
+def run_case(seed, case, timeout, grain=False, fixed=None):
     """(case, outcome, detail, seconds) of one case, in this process; with ``grain``, the
-    case at its drawn grain (at least 256 rows) against FINE rows."""
+    case at its drawn grain (at least 256 rows) against FINE rows; ``fixed``: config values
+    set in every case, over the drawn ones."""
     name, over, shape = draw(seed, case)
+    over.update(fixed or {})
     if grain:
         over["engine.grain_rows"] = max(256, over["engine.grain_rows"])
     t0 = time.perf_counter()
@@ -221,6 +225,14 @@ def _work(args):
     return run_case(*args)
 
 
+def _setting(text):
+    """``KEY=VALUE`` of ``--set``: the value read as YAML (a number, a word)."""
+    key, sep, value = text.partition("=")
+    if not sep or not key:
+        raise SystemExit(f"--set {text!r}: expected KEY=VALUE, e.g. dram.refresh_postpone=8")
+    return key, yaml.safe_load(value)
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--cases", type=int, default=2000)
@@ -230,18 +242,22 @@ def main():
     ap.add_argument("--grain", action="store_true",
                     help=f"also run each case at {FINE} rows: cycles within 2 %%, busy within 2 points")
     ap.add_argument("--replay", help='one case again: \'{"seed": S, "case": N}\'')
+    ap.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                    help="a config value every case takes, over the drawn one (e.g. dram.refresh_postpone=8)")
     args = ap.parse_args()
+    fixed = dict(_setting(s) for s in args.set)
     if args.replay:
         r = json.loads(args.replay)
         print(draw(r["seed"], r["case"]))
-        print(run_case(r["seed"], r["case"], args.timeout, args.grain)[1:])
+        print(run_case(r["seed"], r["case"], args.timeout, args.grain, fixed)[1:])
         return 0
     t0 = time.perf_counter()
     counts = collections.Counter()
     smoothed = 0
     slow = []
-    jobs = [(args.seed, i, args.timeout, args.grain) for i in range(args.cases)]
-    replay = f"python bench/engine_fuzz.py{' --grain' * args.grain} --replay"
+    jobs = [(args.seed, i, args.timeout, args.grain, fixed) for i in range(args.cases)]
+    sets = "".join(f" --set {s}" for s in args.set)
+    replay = f"python bench/engine_fuzz.py{' --grain' * args.grain}{sets} --replay"
     with mp.get_context("fork").Pool(args.jobs, maxtasksperchild=200) as pool:
         results = pool.imap_unordered(_work, jobs)
         for _ in jobs:

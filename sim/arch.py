@@ -198,6 +198,11 @@ SCHEMA = {
                                "refresh window moved later by this fraction of t_refi_ns (wrapping "
                                "round); sweep it to see how much a short run depends on where the "
                                "windows fall", minimum=0, maximum=1.0),
+        "refresh_postpone": Field("int", 0, "refresh commands the controller may owe: a refresh "
+                                  "falling due while a request of its banks waits is postponed, up to "
+                                  "this many, and the owed ones are issued back to back once those "
+                                  "banks have nothing waiting (0: every refresh when due)",
+                                  minimum=0, maximum=8),
         "standard": Field("choice", "custom", "memory standard the timings follow; a named one allows only "
                           "its refresh modes and must give every timing the modes in use need",
                           choices=list(STANDARDS)),

@@ -67,6 +67,21 @@ def refresh_windows(arch):
     return first, refi, length
 
 
+def refresh_domains(arch):
+    """Global index of the first bank of each bank's refresh domain, the banks one refresh
+    command closes: all banks of the channel (all-bank), the banks of one turn (per-bank),
+    one bank index of every group (same-bank)."""
+    d = arch.dram
+    local = np.arange(d.banks)
+    if d.refresh == "all_bank":
+        first = np.zeros(d.banks, dtype=int)
+    elif d.refresh == "per_bank":
+        first = local % round(d.t_refi_ns / d.t_refi_pb_ns)
+    else:
+        first = (local // d.bank_groups) * d.bank_groups
+    return np.concatenate([c * d.banks + first for c in range(d.channels)])
+
+
 def in_window(first, period, length, x):
     if length <= 0 or x < first:
         return False
@@ -89,6 +104,12 @@ class Reference:
         self.groups = arch.dram.bank_groups
         self.close_page = arch.dram.page_policy == "close"
         self.ref = refresh_windows(arch)
+        first, _period, length = self.ref
+        # refresh postponement: per domain the refresh due next, those owed, those issued
+        self.limit = arch.dram.refresh_postpone if length > 0 else 0
+        self.lead = refresh_domains(arch)
+        self.dom = {d: dict(due=first[d], owed=0, issued=[], last=-np.inf) for d in set(self.lead.tolist())}
+        self.postponed = self.caught_up = 0
         nb = arch.dram.channels * arch.dram.banks
         self.bank = [dict(row=-1, act=-np.inf, col=-np.inf, pre_min=-np.inf, close=np.inf, ready=0.0)
                      for _ in range(nb)]
@@ -113,10 +134,75 @@ class Reference:
                 return False
         return True
 
+    # ------------------------------------------------------------ refresh
+    def forced(self, st):
+        """Start of the refreshes that can no longer be postponed: periodic from there."""
+        return st["due"] + (self.limit - st["owed"]) * self.ref[1]
+
+    def in_refresh(self, b, x):
+        first, period, length = self.ref
+        if not self.limit:
+            return in_window(first[b], period, length, x)
+        st = self.dom[self.lead[b]]
+        return any(s <= x < s + length for s in st["issued"]) or in_window(self.forced(st), period, length, x)
+
+    def refresh_after(self, b, x):
+        """Start of the first refresh of bank ``b`` after ``x``."""
+        first, period, length = self.ref
+        if not self.limit:
+            return next_start(first[b], period, length, x)
+        st = self.dom[self.lead[b]]
+        return min([s for s in st["issued"] if s > x] + [next_start(self.forced(st), period, length, x)])
+
+    def refresh_ends(self, b, x0):
+        """Ends of the refresh windows an activate from ``x0`` may have to wait for."""
+        first, period, length = self.ref
+        base = first[b]
+        ends = set()
+        if self.limit:
+            st = self.dom[self.lead[b]]
+            base = self.forced(st)
+            ends = {s + length for s in st["issued"]}
+        k0 = max(0.0, np.floor((x0 - base) / period))
+        return ends | {base + (k0 + k) * period + length for k in range(4)}
+
+    def advance(self, lead, t0):
+        """The controller's refresh decisions before it sees a burst of the domain at ``t0``:
+        an owed refresh once nothing of the domain waits, a due one on time if nothing waits
+        then (or the limit is reached), postponed if something does."""
+        st, period, length = self.dom[lead], self.ref[1], self.ref[2]
+        while True:
+            end = st["issued"][-1] + length if st["issued"] else -np.inf
+            free = max(st["last"], end)
+            if st["owed"] > 0 and free < t0 and free <= st["due"]:
+                st["issued"].append(free)
+                st["owed"] -= 1
+                self.caught_up += 1
+            elif st["due"] < t0:
+                start = max(st["due"], end)
+                if st["owed"] < self.limit and (st["last"] > st["due"] or start >= t0):
+                    st["owed"] += 1
+                    self.postponed += 1
+                else:
+                    st["issued"].append(start)
+                st["due"] += period
+            else:
+                return
+
+    def waited(self, lead, cc):
+        """A burst got its column at ``cc``: refreshes due while it waited are postponed, and
+        none starts before its column's slot (one burst time) is over."""
+        st = self.dom[lead]
+        while st["owed"] < self.limit and cc >= st["due"]:
+            st["owed"] += 1
+            st["due"] += self.ref[1]
+            self.postponed += 1
+        st["last"] = max(st["last"], cc + self.t["burst"])
+
+    # ------------------------------------------------------------ commands
     def act_ok(self, c, g, x, b):
         t = self.t
-        first, period, length = self.ref
-        if in_window(first[b], period, length, x):
+        if self.in_refresh(b, x):
             return False
         for e, ge in self.acts[c]:
             r = t["t_rrd_l"] if ge == g else t["t_rrd_s"]
@@ -131,12 +217,10 @@ class Reference:
 
     def act_time(self, c, g, x0, b):
         t = self.t
-        first, period, length = self.ref
         cands = {x0}
         for e, _ in self.acts[c]:
             cands |= {e + t["t_rrd_s"], e + t["t_rrd_l"], e + t["t_faw"], e}
-        k0 = max(0.0, np.floor((x0 - first[b]) / period))
-        cands |= {first[b] + (k0 + k) * period + length for k in range(4)}
+        cands |= self.refresh_ends(b, x0)
         for x in sorted(v for v in cands if v >= x0):
             if self.act_ok(c, g, x, b):
                 return x
@@ -151,13 +235,15 @@ class Reference:
 
     def place(self, c, b, r, w, t0):
         t = self.t
-        first, period, length = self.ref
+        length = self.ref[2]
+        if self.limit:
+            self.advance(self.lead[b], t0)
         st = self.bank[b]
         g = b % self.groups
         code = 2 * g + w
         o, ready = st["row"], st["ready"]
         if o >= 0:
-            s = next_start(first[b], period, length, st["act"])
+            s = self.refresh_after(b, st["act"])
             if st["close"] <= t0 and st["close"] < s:
                 o = -1
             elif s <= t0:
@@ -172,7 +258,7 @@ class Reference:
                 else:
                     kind = T.CONFLICT
                     p = max(st["pre_min"], st["act"] + t["t_ras"], t0)
-                    s = next_start(first[b], period, length, st["act"])
+                    s = self.refresh_after(b, st["act"])
                     if s <= p:
                         o, ready = -1, max(ready, s + length)
                         continue
@@ -181,10 +267,12 @@ class Reference:
                 a = self.act_time(c, g, a0, b)
                 lo = a + t["t_rcd"]
             cc = self.col_time(c, code, max(lo, st["col"] + t["ccd_l"]))
-            s = next_start(first[b], period, length, a)
+            s = self.refresh_after(b, a)
             if cc < s:
                 break
             o, ready = -1, max(ready, s + length)
+        if self.limit:
+            self.waited(self.lead[b], cc)
         if kind != T.HIT:
             self.acts[c].append((a, g))
             st.update(act=a, row=r, pre_min=-np.inf)
@@ -273,11 +361,36 @@ def test_placement_equals_the_brute_force_reference(name, page, channels, mode):
     assert min(ref.kinds) > 0 and backfilled > 0
 
 
+def logged_refreshes(log, arch):
+    """Per global bank, the start of every refresh the log holds for its domain."""
+    lead = refresh_domains(arch)
+    refs = log[log[:, 3] == T.CMD_REF]
+    starts = {b: [] for b in range(len(lead))}
+    for time, c, bank, _k, _r in refs.tolist():
+        for b in np.flatnonzero(lead == int(c) * arch.dram.banks + int(bank)).tolist():
+            starts[b].append(time)
+    return {b: np.sort(v) for b, v in starts.items()}
+
+
 def check_protocol(log, arch):
-    """Every JEDEC timing rule the model claims, on a command log; returns the violations."""
+    """Every JEDEC timing rule the model claims, on a command log; returns the violations.
+    With refresh postponement the refresh windows are the logged refresh commands."""
     t = cycles(arch)
     first, period, length = refresh_windows(arch)
     d = arch.dram
+    issued = logged_refreshes(log, arch) if d.refresh_postpone and length > 0 else None
+
+    def inside(gb, x):
+        if issued is None:
+            return in_window(first[gb], period, length, x)
+        return bool(np.any((issued[gb] <= x) & (x < issued[gb] + length)))
+
+    def refreshed(gb, act, x):
+        """A refresh started after the activate at ``act``, by ``x``."""
+        if issued is None:
+            return next_start(first[gb], period, length, act) <= x
+        return bool(np.any((issued[gb] > act) & (issued[gb] <= x)))
+
     bad = []
     for c in range(d.channels):
         L = log[log[:, 1] == c]
@@ -322,14 +435,14 @@ def check_protocol(log, arch):
         # per bank: the command sequence of each bank in time order
         for bank in range(d.banks):
             gb = c * d.banks + bank
-            B = L[L[:, 2] == bank]
+            B = L[(L[:, 2] == bank) & (L[:, 3] != T.CMD_REF)]
             B = B[np.lexsort((B[:, 3] != T.CMD_PRE, B[:, 0]))]   # a precharge before an activate at one time
             row, act, pre, last_act = -1, None, -np.inf, -np.inf
             last_rd, last_wr = -np.inf, -np.inf
             for time, _c, _b, kind, r in B.tolist():
-                if in_window(first[gb], period, length, time) and kind != T.CMD_PRE:
+                if inside(gb, time) and kind != T.CMD_PRE:
                     bad.append(("command inside a refresh window", c, bank, time))
-                if row >= 0 and next_start(first[gb], period, length, act) <= time:
+                if row >= 0 and refreshed(gb, act, time):
                     row = -1                               # the refresh closed the row
                 if kind == T.CMD_ACT:
                     if row >= 0:
@@ -361,6 +474,29 @@ def check_protocol(log, arch):
     return bad
 
 
+def check_refresh_count(log, arch, until):
+    """The refresh commands of each domain up to ``until`` against the refresh interval: never
+    more than ``dram.refresh_postpone`` owed at a due time (JEDEC JESD79-4 lets a DDR4
+    controller postpone at most 8 REF commands; from memory), none issued before it is due
+    (this controller pulls none in), and one domain's refreshes never overlap."""
+    first, period, length = refresh_windows(arch)
+    limit = arch.dram.refresh_postpone
+    starts = logged_refreshes(log, arch)
+    bad = []
+    for lead in sorted(set(refresh_domains(arch).tolist())):
+        s = starts[lead]
+        due = first[lead] + period * np.arange(int((until - first[lead]) // period) + 1)
+        due = due[due <= until]
+        done_by_due = np.searchsorted(s, due + EPS)               # refreshes issued by each due time
+        if np.any(done_by_due < np.arange(1, len(due) + 1) - limit):
+            bad.append(("more refreshes owed than allowed", lead))
+        if np.any(np.searchsorted(due, s + EPS) < np.arange(1, len(s) + 1)):
+            bad.append(("a refresh before it was due", lead))
+        if np.any(np.diff(s) < length - EPS):
+            bad.append(("two refreshes of one domain overlap", lead))
+    return bad
+
+
 def hammer(arch, n=3000, seed=1, span=1 << 26):
     """Random single bursts over a small footprint, all at once: the bank and activate limits
     decide. Returns the pool and its log."""
@@ -374,6 +510,7 @@ def hammer(arch, n=3000, seed=1, span=1 << 26):
         txn.bursts = np.array([a], dtype=np.int64)
         pool.submit(txn)
     env.run()
+    pool.settle_refresh(env.now)          # with postponement: the refreshes decided by the end
     return pool, pool.command_log()
 
 
@@ -410,9 +547,10 @@ def test_the_protocol_check_catches_a_broken_schedule():
     assert any(v[0].startswith("tRRD") or v[0].startswith("tFAW") for v in check_protocol(broken, arch))
 
 
-def compare_batches():
+def compare_batches(postpone=0):
     """The architecture and read batches the compiled-against-Python check serves."""
-    arch = preset("hbm2", **{"dram.channels": 4, "dram.queue_depth": 4, "dram.t_refi_ns": 900.0})
+    arch = preset("hbm2", **{"dram.channels": 4, "dram.queue_depth": 4, "dram.t_refi_ns": 900.0,
+                             "dram.refresh_postpone": postpone})
     rng = np.random.default_rng(9)
     dec = ChannelPool(simpy.Environment(), arch).decoder
     batches = []
@@ -429,9 +567,9 @@ def compare_batches():
 STATE = ("open_row", "BF", "TL", "TK", "TG", "TN", "CF", "H", "acc", "R", "IV", "busy_cycles")
 
 
-def drive(path=None):
+def drive(path=None, postpone=0):
     """Serve the batches of :func:`compare_batches` on a fresh pool; save the state to ``path``."""
-    arch, batches = compare_batches()
+    arch, batches = compare_batches(postpone)
     pool = ChannelPool(simpy.Environment(), arch)
     pool._make_room(4096)
     out = []
@@ -453,23 +591,28 @@ def drive(path=None):
 
 
 @pytest.mark.skipif(not T.JIT, reason="numba not installed: nothing compiled to compare")
-def test_compiled_loops_equal_plain_python(tmp_path):
+@pytest.mark.parametrize("postpone", [0, 3])
+def test_compiled_loops_equal_plain_python(tmp_path, postpone):
     """Same batches, refreshes and queue waits included: the compiled loops and the same
     code run as Python (ATTNSIM_NO_JIT=1, in a child process) leave the same state, bit
-    for bit."""
+    for bit; with refresh postponement too."""
     import subprocess
     import sys
 
     out = tmp_path / "python.npz"
     root = os.path.dirname(HERE)
     env = dict(os.environ, ATTNSIM_NO_JIT="1", PYTHONPATH=root + os.pathsep + HERE)
-    subprocess.run([sys.executable, "-c", f"import test_dram_timing as m; m.drive({str(out)!r})"],
+    subprocess.run([sys.executable, "-c", f"import test_dram_timing as m; m.drive({str(out)!r}, {postpone})"],
                    check=True, env=env, cwd=root)
     want = np.load(out)
-    got = drive()
+    got = drive(postpone=postpone)
     for name in STATE + ("times",):
         assert np.array_equal(got[name], want[name]), name
-    assert got["acc"][T.A_REF_DELAY] > 0 and got["acc"][T.A_ACTS] > 0   # refresh and activates taken
+    assert got["acc"][T.A_ACTS] > 0                                       # activates taken
+    if postpone:
+        assert got["acc"][T.A_REFS] > 0                                   # refreshes decided
+    else:
+        assert got["acc"][T.A_REF_DELAY] > 0                              # refresh taken
 
 
 @pytest.mark.parametrize("name,mode", [("hbm2", "all_bank"), ("ddr4_3200", "all_bank"),
@@ -587,3 +730,63 @@ def test_profile_of_a_transaction_committed_in_parts_gives_the_same_end(data):
             assert got == pytest.approx(want, rel=1e-12, abs=1e-9), (work, got, want)
         else:
             assert got >= want - 1e-9 * max(1.0, abs(want)), (work, got, want)
+
+
+# ---------------------------------------------------------------- refresh postponement
+
+POSTPONE_CASES = [("hbm2", "open", 1, "all_bank", 2), ("ddr4_3200", "close", 1, "all_bank", 8),
+                  ("hbm3", "open", 2, "per_bank", 1), ("lpddr5x", "open", 1, "per_bank", 4),
+                  ("gddr6", "close", 2, "all_bank", 8)]
+
+
+@pytest.mark.parametrize("name,page,channels,mode,limit", POSTPONE_CASES)
+def test_postponed_refresh_placement_equals_the_brute_force_reference(name, page, channels, mode, limit):
+    """``dram.refresh_postpone``: a refresh due while a burst of its banks waits is postponed
+    (up to the limit), owed ones are issued once those banks have nothing waiting, due ones
+    on time when nothing waits. The reference keeps every refresh issued and finds row ends
+    and free activate times from all of them; burst by burst the placements agree, and the
+    stream saw refreshes postponed and caught up."""
+    arch = preset(name, **{"dram.page_policy": page, "dram.channels": channels})
+    arch = arch.with_overrides(dict(short_refresh(arch, mode), **{"dram.refresh_postpone": limit}))
+    rng = np.random.default_rng(sum(map(ord, name + page + mode)))
+    ref, ker = Reference(arch), Kernel(arch)
+    for c, b, r, w, t0 in burst_stream(arch, rng, 260, gap=40.0):
+        np.testing.assert_allclose(ker.place(c, b, r, w, t0), ref.place(c, b, r, w, t0), rtol=1e-12, atol=1e-9)
+    assert ker.pool.kinds.tolist() == ref.kinds
+    assert ker.pool.acc[T.A_REFS] == sum(len(st["issued"]) for st in ref.dom.values()) > 0
+    assert ref.postponed > 0 and ref.caught_up > 0
+
+
+@pytest.mark.parametrize("name,mode", [("hbm2", "all_bank"), ("ddr4_3200", "all_bank"), ("hbm3", "per_bank"),
+                                       ("lpddr5x", "per_bank")])
+@pytest.mark.parametrize("limit", [1, 8])
+def test_postponed_refresh_keeps_every_timing_rule(name, mode, limit):
+    """Hammering traffic with refresh postponement: every timing rule against the logged
+    refresh commands, at most ``limit`` refreshes owed at any due time and none early, and
+    refreshes were postponed (fewer issued by some due time than were due)."""
+    arch = preset(name, **{"dram.channels": 2, "fetch.request_bytes": arch_burst(name)})
+    arch = arch.with_overrides(dict(short_refresh(arch, mode), **{"dram.refresh_postpone": limit}))
+    pool, log = hammer(arch)
+    assert check_protocol(log, arch) == []
+    assert check_refresh_count(log, arch, pool.env.now) == []
+    refs = log[log[:, 3] == T.CMD_REF]
+    assert len(refs) == pool.acc[T.A_REFS] > 0
+    strict = arch.with_overrides({"dram.refresh_postpone": 0})
+    assert check_refresh_count(log, strict, pool.env.now) != []      # some were issued late
+
+
+def test_the_refresh_count_check_catches_a_broken_schedule():
+    """The count check can fail: drop refreshes until more are owed than allowed, or move one
+    before it is due."""
+    arch = preset("hbm2", **{"dram.channels": 1, "fetch.request_bytes": 64})
+    arch = arch.with_overrides(dict(short_refresh(arch, "all_bank"), **{"dram.refresh_postpone": 2}))
+    pool, log = hammer(arch, n=1500)
+    until = pool.env.now
+    assert check_refresh_count(log, arch, until) == []
+    refs = np.flatnonzero(log[:, 3] == T.CMD_REF)
+    assert len(refs) > 4
+    dropped = np.delete(log, refs[1:4], axis=0)
+    assert ("more refreshes owed than allowed", 0) in check_refresh_count(dropped, arch, until)
+    early = log.copy()
+    early[refs[0], 0] = 1.0
+    assert ("a refresh before it was due", 0) in check_refresh_count(early, arch, until)

@@ -263,6 +263,7 @@ class Timing:
         self.refi_pb = d.t_refi_pb_ns * ghz
         self.rfc_pb = d.t_rfc_pb_ns * ghz
         self.phase = d.refresh_phase
+        self.postpone = d.refresh_postpone
         # banks per channel refreshed at different times: all at once, one command per
         # bank (or bank set) in turn, or one per bank index of a group (every group at once)
         self.turns = {"all_bank": 1, "per_bank": int(round(d.t_refi_ns / d.t_refi_pb_ns)),
@@ -283,6 +284,7 @@ class Timing:
         P[T.P_CTRL] = self.ctrl
         P[T.P_REF_PERIOD] = self.refi                 # every bank is refreshed once per tREFI
         P[T.P_REF_DUR] = self.rfc if self.refresh == "all_bank" else self.rfc_pb
+        P[T.P_REF_POSTPONE] = self.postpone if P[T.P_REF_DUR] > 0 else 0
         # the longest spacing rule between two column commands, and between activates
         P[T.P_COL_REACH] = max(self.ccd_l, self.rtw, self.cwl + self.burst + self.wtr_l)
         P[T.P_ACT_REACH] = max(self.faw, self.rrd_l)
@@ -312,6 +314,18 @@ class Timing:
             first = first + self.phase * self.refi
             first[first > self.refi] -= self.refi
         return first
+
+    def refresh_domains(self, channels, banks):
+        """Global index of the first bank of each bank's refresh domain (the banks one refresh
+        command closes together), in the turns of :meth:`refresh_offsets`."""
+        local = np.arange(banks)
+        if self.refresh == "all_bank":
+            lead = np.zeros(banks, dtype=np.int64)
+        elif self.refresh == "per_bank":
+            lead = local % self.turns
+        else:
+            lead = (local // self.groups) * self.groups
+        return (np.arange(channels)[:, None] * banks + lead[None, :]).reshape(-1)
 
 
 class ChannelPool:
@@ -403,6 +417,13 @@ class ChannelPool:
         self.BF[:, B_PRE_READY] = 0.0
         self.BF[:, B_REF_OFF] = self.tm.refresh_offsets(self.n, self.banks)
         self.BF[:, T.B_ROW_END] = np.inf
+        # refresh postponement: each domain's state in its first bank's row
+        self.BF[:, T.B_DOM] = self.tm.refresh_domains(self.n, self.banks)
+        self.BF[:, T.B_R_NEXT] = self.BF[:, B_REF_OFF]
+        self.BF[:, T.B_R_OWED] = 0.0
+        self.BF[:, T.B_R_START] = -np.inf
+        self.BF[:, T.B_R_END] = -np.inf
+        self.BF[:, T.B_R_LAST] = -np.inf
         # per channel: column and activate timelines and the gaps in them a command may use
         self.TL = np.zeros((self.n, 2, 256))
         self.TK = np.zeros((self.n, 2, 256), dtype=np.int64)
@@ -487,8 +508,8 @@ class ChannelPool:
                 self.TL = _grown(self.TL, need, axis=2)
                 self.TK = _grown(self.TK, need, axis=2)
                 self.TG = _grown(self.TG, need, axis=2)
-            if self.NI[T.I_LOGGING] and self.NI[T.I_LOG] + 3 * rows > len(self.LOG):
-                self.LOG = _grown(self.LOG, self.NI[T.I_LOG] + 3 * rows, axis=0)
+            if self.NI[T.I_LOGGING] and self.NI[T.I_LOG] + 3 * rows + T.LOG_SPARE > len(self.LOG):
+                self.LOG = _grown(self.LOG, self.NI[T.I_LOG] + 3 * rows + T.LOG_SPARE, axis=0)
         self._bind()
 
     def _slot_room_rows(self, now, need):
@@ -554,6 +575,24 @@ class ChannelPool:
             out.append(iv)
         return out
 
+    def settle_refresh(self, until):
+        """With refresh postponement: the refresh decisions the controller makes up to
+        ``until`` with no more bursts coming (owed ones issued once idle, due ones on time).
+        Returns the refreshes issued so far, over all domains."""
+        limit = self.P[T.P_REF_POSTPONE]
+        if limit > 0:
+            period, dur = self.P[T.P_REF_PERIOD], self.P[T.P_REF_DUR]
+            leads = np.unique(self.BF[:, T.B_DOM].astype(np.int64))
+            if self.NI[T.I_LOGGING]:
+                need = len(leads) * (int(until / period) + int(limit) + 2)
+                if self.NI[T.I_LOG] + need > len(self.LOG):
+                    self.LOG = _grown(self.LOG, self.NI[T.I_LOG] + need, axis=0)
+                    self._bind()
+            for lead in leads.tolist():
+                T._ref_advance(self.BF, self.open_row, self.LOG, self.NI, self.acc, lead, lead // self.banks,
+                               self.banks, float(until), period, dur, limit, 0)
+        return float(self.acc[T.A_REFS])
+
     @property
     def requests(self):
         return float(self.acc[T.A_REQUESTS])
@@ -565,7 +604,9 @@ class ChannelPool:
     def command_log(self):
         """Commands issued, burst by burst: rows ``time, channel, bank, kind, row`` (kind:
         ``dram_timing.CMD_ACT``, ``CMD_PRE``, ``CMD_RD``, ``CMD_WR``; bank within the
-        channel). A row closed by a refresh has no precharge of its own. Needs
+        channel). A row closed by a refresh has no precharge of its own. With
+        ``dram.refresh_postpone`` the refreshes are logged too (``CMD_REF``, the first bank
+        of the domain it closes, row -1). Needs
         ``log_commands=True``."""
         if not self.NI[T.I_LOGGING]:
             raise ValueError("the pool was made without log_commands=True")
@@ -1141,7 +1182,11 @@ class ChannelPool:
         hits, misses, conflicts = (int(x) for x in self.kinds)
         total = hits + misses + conflicts
         period, dur = self.P[T.P_REF_PERIOD], self.P[T.P_REF_DUR]
-        if dur > 0 and total_cycles > 0:
+        if dur > 0 and total_cycles > 0 and self.P[T.P_REF_POSTPONE] > 0:
+            # the windows issued before the run's end, over the domains' time
+            domains = len(np.unique(self.BF[:, T.B_DOM]))
+            refresh_share = min(1.0, self.settle_refresh(total_cycles) * dur / (domains * total_cycles))
+        elif dur > 0 and total_cycles > 0:
             # each bank's windows inside the run, clipped to its end; the mean over banks
             first = self.BF[:, B_REF_OFF]
             k = np.maximum(np.floor(np.maximum(total_cycles - first, -1) / period) + 1, 0)

@@ -73,23 +73,28 @@ except ImportError:  # pragma: no cover
 JIT = _njit is not None and os.environ.get("ATTNSIM_NO_JIT", "") in ("", "0")
 
 HIT, MISS, CONFLICT = 0, 1, 2
-CMD_ACT, CMD_PRE, CMD_RD, CMD_WR = 0, 1, 2, 3
+CMD_ACT, CMD_PRE, CMD_RD, CMD_WR, CMD_REF = 0, 1, 2, 3, 4
 
 # indices into the timing parameter vector (see sim.engine.dram.Timing)
 (P_BURST, P_CCD_L, P_RCD, P_RP, P_RAS, P_RC, P_RTP, P_CL, P_CWL, P_WR, P_WTR_S, P_WTR_L, P_RTW,
- P_RRD_S, P_RRD_L, P_FAW, P_CTRL, P_REF_PERIOD, P_REF_DUR, P_COL_REACH, P_ACT_REACH) = range(21)
-N_PARAMS = 21
+ P_RRD_S, P_RRD_L, P_FAW, P_CTRL, P_REF_PERIOD, P_REF_DUR, P_COL_REACH, P_ACT_REACH, P_REF_POSTPONE) = range(22)
+N_PARAMS = 22
 
 # columns of the per-bank float state: last activate, last column, earliest precharge after
 # the last column, close-page precharge time, earliest activate of a closed bank, first
-# refresh start, start of the first refresh after the open row's activate
-B_ACT, B_COL, B_PRE_MIN, B_CLOSE, B_PRE_READY, B_REF_OFF, B_ROW_END = range(7)
-N_BANK = 7
+# refresh start, start of the first refresh after the open row's activate; the first bank of
+# the bank's refresh domain (the banks refreshed together), and in that bank's row (with
+# postponement only) the domain's next refresh not yet decided, refreshes owed, the last
+# refresh issued (start, end) and the end of its latest column slot
+B_ACT, B_COL, B_PRE_MIN, B_CLOSE, B_PRE_READY, B_REF_OFF, B_ROW_END, B_DOM, B_R_NEXT, B_R_OWED, B_R_START, \
+    B_R_END, B_R_LAST = range(13)
+N_BANK = 13
 
 # accumulators; A_KIND + HIT / MISS / CONFLICT count the bursts of each kind
 (A_REQUESTS, A_REF_DELAY, A_ACTS, A_FAW_ACTS, A_ACT_DELAY, A_RW, A_WR, A_READ_BURSTS,
  A_WRITE_BURSTS, A_KIND) = range(10)
-N_ACC = 13
+A_REFS = 13          # refreshes issued, with postponement (decided as bursts come)
+N_ACC = 14
 
 # the two timelines of a channel
 COL, ACT = 0, 1
@@ -104,6 +109,8 @@ F_LAST, F_LAST_WRITE, F_TAKEN, F_REL, F_RAMP_START, F_RAMP_DONE, F_RAMP_AMOUNT, 
 N_CHANNEL = 9
 # NI: share records, command-log rows, logging on
 I_RECORDS, I_LOG, I_LOGGING = range(3)
+# command-log rows kept free beyond three per burst, for the refreshes a batch issues
+LOG_SPARE = 256
 
 
 def _compile(fn):
@@ -144,6 +151,95 @@ def ref_clear(off, period, dur, x):
     if x < s + dur:
         return s + dur
     return x
+
+
+@_leaf
+def ref_clear2(off, period, dur, rs, rend, x):
+    """``x``, or the end of the refresh window it falls in: the periodic ones from ``off``
+    or the one issued at ``[rs, rend)``."""
+    while True:
+        y = rend if rs <= x < rend else x
+        y = ref_clear(off, period, dur, y)
+        if y == x:
+            return x
+        x = y
+
+
+@_leaf
+def row_end(off, period, dur, rs, a):
+    """Start of the first refresh window after an activate at ``a``: periodic from ``off``,
+    or the one issued at ``rs``."""
+    s = ref_after(off, period, dur, a)
+    if a < rs < s:
+        return rs
+    return s
+
+
+# A controller that postpones refresh (``dram.refresh_postpone`` > 0) keeps, per refresh
+# domain, the next refresh it has not decided on (due at ``off + k * period``) and the ones
+# it owes. A refresh that falls due while a burst of the domain waits is postponed, up to
+# the limit; at the limit it is issued when due. Once the domain has no burst waiting the
+# owed ones are issued back to back, and a due one on time. So a placement respects the
+# last refresh issued and the due ones from where postponing stops (``_forced_from``).
+
+@_leaf
+def _ref_issue(BF, open_row, LOG, NI, acc, lead, c, banks, start, dur, room):
+    """Issue a refresh of ``lead``'s domain at ``start``: rows opened before it close then."""
+    BF[lead, B_R_START] = start
+    BF[lead, B_R_END] = start + dur
+    acc[A_REFS] += 1.0
+    for x in range(c * banks, (c + 1) * banks):
+        if BF[x, B_DOM] == lead and open_row[x] >= 0 and BF[x, B_ACT] < start < BF[x, B_ROW_END]:
+            BF[x, B_ROW_END] = start
+    if NI[I_LOGGING] > 0 and NI[I_LOG] + room < LOG.shape[0]:
+        _log(LOG, NI, start, c, lead - c * banks, CMD_REF, -1)
+
+
+@_leaf
+def _ref_advance(BF, open_row, LOG, NI, acc, lead, c, banks, t, period, dur, limit, room):
+    """The refreshes of ``lead``'s domain decided before a burst the controller sees at
+    ``t``: owed ones issued once nothing of the domain waits, due ones issued on time when
+    nothing waits then (or at the limit), postponed otherwise."""
+    while True:
+        due = BF[lead, B_R_NEXT]
+        owed = BF[lead, B_R_OWED]
+        free = BF[lead, B_R_LAST]
+        if BF[lead, B_R_END] > free:
+            free = BF[lead, B_R_END]
+        if owed > 0.0 and free < t and free <= due:
+            _ref_issue(BF, open_row, LOG, NI, acc, lead, c, banks, free, dur, room)
+            BF[lead, B_R_OWED] = owed - 1.0
+        elif due < t:
+            start = due if due > BF[lead, B_R_END] else BF[lead, B_R_END]
+            if owed < limit and (BF[lead, B_R_LAST] > due or start >= t):
+                BF[lead, B_R_OWED] = owed + 1.0
+            else:
+                _ref_issue(BF, open_row, LOG, NI, acc, lead, c, banks, start, dur, room)
+            BF[lead, B_R_NEXT] = due + period
+        else:
+            return
+
+
+@_leaf
+def _ref_decide(BF, lead, cc, end, period, limit):
+    """A burst of ``lead``'s domain got its column at ``cc``, leaving the command slot at
+    ``end``: the refreshes falling due while it waited are postponed (those up to the limit;
+    it kept the ones after), and none starts before ``end``."""
+    due = BF[lead, B_R_NEXT]
+    owed = BF[lead, B_R_OWED]
+    while owed < limit and cc >= due:
+        owed += 1.0
+        due += period
+    BF[lead, B_R_NEXT] = due
+    BF[lead, B_R_OWED] = owed
+    if end > BF[lead, B_R_LAST]:
+        BF[lead, B_R_LAST] = end
+
+
+@_leaf
+def _forced_from(BF, lead, period, limit):
+    """Start of the refreshes of ``lead``'s domain that can no longer be postponed."""
+    return BF[lead, B_R_NEXT] + (limit - BF[lead, B_R_OWED]) * period
 
 
 # ---------------------------------------------------------------- timelines
@@ -389,15 +485,16 @@ def act_place(TL, TK, TG, TN, c, g, x, P):
 
 
 @_leaf
-def act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, P):
+def act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, rs, rend, P):
     """Earliest activate time >= ``a`` for bank group ``g`` of channel ``c`` that keeps the
-    activation limits and falls outside the bank's refresh windows. Returns ``(time, faw)``."""
-    a = ref_clear(off, period, dur, a)
+    activation limits and falls outside the bank's refresh windows (periodic from ``off``,
+    and ``[rs, rend)``). Returns ``(time, faw)``."""
+    a = ref_clear2(off, period, dur, rs, rend, a)
     faw = False
     while True:
         a2, f = act_place(TL, TK, TG, TN, c, g, a, P)
         faw = faw or f
-        a3 = ref_clear(off, period, dur, a2)
+        a3 = ref_clear2(off, period, dur, rs, rend, a2)
         if a3 == a:
             return a, faw
         a = a3
@@ -505,6 +602,7 @@ def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, grou
     faw_t = P[P_FAW]
     period = P[P_REF_PERIOD]
     dur = P[P_REF_DUR]
+    limit = P[P_REF_POSTPONE]
     after_col = P[P_CWL] + burst + P[P_WR] if w else P[P_RTP]   # earliest precharge after a column
     logging = NI[I_LOGGING] > 0
     gmask = groups - 1                          # bank groups come in powers of two
@@ -559,6 +657,17 @@ def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, grou
             r = row[k]
             g = b & gmask
             code = g * 2 + w
+            lead = 0
+            if limit > 0.0:
+                lead = int(BF[b, B_DOM])
+                _ref_advance(BF, open_row, LOG, NI, acc, lead, c, banks, t, period, dur, limit, 3 * (i1 - k))
+                off = _forced_from(BF, lead, period, limit)
+                rs = BF[lead, B_R_START]
+                rend = BF[lead, B_R_END]
+            else:
+                off = BF[b, B_REF_OFF]
+                rs = -np.inf
+                rend = -np.inf
             # a row hit placed after every column (the common case) skips the general search
             fast = False
             if open_row[b] == r and BF[b, B_CLOSE] > t and BF[b, B_ROW_END] > t:
@@ -573,7 +682,6 @@ def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, grou
                     cc = _after_all(TL, TK, c, n, cc, code, w, CF[c, F_LAST_WRITE], reach, burst, ccd_l, rtw,
                                     w2r_s, w2r_l)
                     fast = cc < BF[b, B_ROW_END]
-            off = BF[b, B_REF_OFF]
             act = BF[b, B_ACT]
             pre_ready = BF[b, B_PRE_READY]
             shut = -1.0                              # a close-page precharge to log
@@ -622,7 +730,7 @@ def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, grou
                             a0 = p + rp
                         if act + rc > a0:
                             a0 = act + rc
-                        a_lo = ref_clear(off, period, dur, a0)
+                        a_lo = ref_clear2(off, period, dur, rs, rend, a0)
                         a = a_lo
                         faw = False
                         na = TN[c, N_ACT]
@@ -642,15 +750,15 @@ def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, grou
                             if faw_t > 0.0 and na >= 4 and TL[c, ACT, na - 4] + faw_t > x:
                                 x = TL[c, ACT, na - 4] + faw_t
                                 faw = True
-                            if ref_clear(off, period, dur, x) != x:
-                                a, f = act_slot(TL, TK, TG, TN, c, g, x, off, period, dur, P)
+                            if ref_clear2(off, period, dur, rs, rend, x) != x:
+                                a, f = act_slot(TL, TK, TG, TN, c, g, x, off, period, dur, rs, rend, P)
                                 faw = faw or f
                             else:
                                 a = x
                         elif na > 0:
-                            a, faw = act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, P)
+                            a, faw = act_slot(TL, TK, TG, TN, c, g, a, off, period, dur, rs, rend, P)
                         lo = a + rcd
-                        s = ref_after(off, period, dur, a)
+                        s = row_end(off, period, dur, rs, a)
                     if BF[b, B_COL] + ccd_l > lo:    # a bank's bursts keep their order
                         lo = BF[b, B_COL] + ccd_l
                     n = TN[c, N_COL]
@@ -742,6 +850,8 @@ def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, grou
             acc[A_KIND + kind] += 1.0
             if first_cc >= 0.0:
                 acc[A_REF_DELAY] += cc - first_cc
+            if limit > 0.0:
+                _ref_decide(BF, lead, cc, cc + burst, period, limit)
             out[k] = cc
             b0 = p if kind == CONFLICT else (a if kind == MISS else cc)
             if b0 < begin:
@@ -1041,7 +1151,7 @@ def _fits(ch, CF, H, TN, R, NI, IV, TL, TK, TG, LOG, P):
     n = len(ch)
     if NI[I_RECORDS] + n > R.shape[0]:
         return False
-    if NI[I_LOGGING] > 0 and NI[I_LOG] + 3 * n > LOG.shape[0]:
+    if NI[I_LOGGING] > 0 and NI[I_LOG] + 3 * n + LOG_SPARE > LOG.shape[0]:
         return False
     i = 0
     while i < n:
@@ -1298,7 +1408,7 @@ def serve_writes(gb, row, c, t, out, groups, banks, close_page, P, open_row, BF,
     :func:`serve_addresses`); ``FS0``, ``FI0``, ``FF0`` stand in for the fetch slots, which
     writes do not take. Returns 1, or -1 without changing anything if a table is full."""
     m = len(gb)
-    if NI[I_LOGGING] > 0 and NI[I_LOG] + 3 * m > LOG.shape[0]:
+    if NI[I_LOGGING] > 0 and NI[I_LOG] + 3 * m + LOG_SPARE > LOG.shape[0]:
         return -1
     if TN[c, N_IV] + m > IV.shape[1]:
         return -1
