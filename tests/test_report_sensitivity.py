@@ -1,4 +1,5 @@
-"""Sensitivity in a report: each main resource doubled and halved, measured by simulating the change.
+"""Sensitivity in a report: each main resource doubled and halved, refresh policies switched,
+measured by simulating the change.
 
 The expected speedups are computed here by simulating the changed config
 directly with ``sim.simulate`` (not through the report's planning), so the
@@ -79,6 +80,38 @@ def test_every_resource_doubled_and_halved_or_said_why(lane_report):
     assert w > 1
     assert win["/2"]["setting"] == f"fetch.issue_window {w} -> {w // 2}"
     assert win["x2"]["setting"] == f"fetch.issue_window {w} -> {w * 2}"
+
+
+def test_refresh_policies_switched_are_the_measured_ones(lane_report):
+    """hbm2_stack refreshes all banks of a channel at once, on schedule: the report also
+    measures refresh postponed (up to 8 owed) and per-bank refresh (which HBM2 has, JEDEC
+    JESD235A; from memory), each equal to a run of that config simulated here."""
+    out, doc, tpath = lane_report
+    rows = {r["resource"]: r for r in read_csv(os.path.join(out, "data", "sensitivity.csv"))
+            if r["direction"] == "switch"}
+    assert rows["refresh postponed"]["setting"] == "dram.refresh_postpone 0 -> 8"
+    assert rows["per-bank refresh"]["setting"] == "dram.refresh all_bank -> per_bank"
+    arch = sim.load_arch("arch_configs/hbm2_stack.yaml")
+    for name, over in (("refresh postponed", {"dram.refresh_postpone": 8}),
+                       ("per-bank refresh", {"dram.refresh": "per_bank"})):
+        direct = sim.simulate(arch.with_overrides(over), tpath, keep_intervals=False).to_dict()
+        assert rows[name]["status"] == "ok" and int(rows[name]["cycles"]) == direct["cycles"]
+        assert float(rows[name]["speedup"]) == pytest.approx(doc["cycles"] / direct["cycles"], rel=1e-12)
+
+
+def test_refresh_policies_the_memory_lacks_are_not_offered():
+    """DDR4 refreshes all banks at once (JEDEC JESD79-4; from memory): mid gets no per-bank
+    variant, only postponement; with refresh off, or already postponing 8, neither."""
+    def switched(arch):
+        doc = sim.simulate(arch, "traces/demo_decode.yaml", keep_intervals=False).to_dict()
+        run = Run(doc, "x", trace_path="traces/demo_decode.yaml")
+        label_runs([run])
+        return {v.resource for v in S.plan_variants(run) if v.direction == "switch"}
+
+    mid = sim.load_arch("arch_configs/mid.yaml")
+    assert switched(mid) == {"refresh postponed"}
+    assert switched(mid.with_overrides({"dram.t_rfc_ns": 0.0})) == set()
+    assert switched(mid.with_overrides({"dram.refresh_postpone": 8})) == set()
 
 
 def test_issue_window_of_zero_opens_to_a_stated_window():

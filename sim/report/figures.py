@@ -662,14 +662,16 @@ def timeline(run, max_channels=16):
                   fig, ["lane", "t0_us", "t1_us", "state", "cause", "shown_as"], rows)
 
 
-SENS_COLORS = {"x2": "#2a9d8f", "/2": "#e76f51", "match": "#457b9d"}
-SENS_TEXT = {"x2": "doubled", "/2": "halved", "match": "lanes matched to the head width"}
+SENS_COLORS = {"x2": "#2a9d8f", "/2": "#e76f51", "match": "#457b9d", "switch": "#8d6a9f"}
+SENS_TEXT = {"x2": "doubled", "/2": "halved", "match": "lanes matched to the head width",
+             "switch": "memory policy switched"}
 MAX_SENSITIVITY_PANELS = 12
 SPEEDUP_TICKS = (0.1, 0.25, 0.5, 0.67, 0.8, 1, 1.25, 1.5, 2, 4, 10)
 
 
 def sensitivity(runs, table):
-    """Tornado chart per run: the measured speedup of each resource doubled and halved.
+    """Tornado chart per run: the measured speedup of each resource doubled and halved (and of
+    each switched policy).
 
     ``table``: ``{id(run): rows}`` from :func:`sim.report.sensitivity.measure`.
     Bars start at 1 (no change) on a log axis: right of it faster, left slower.
@@ -704,7 +706,7 @@ def sensitivity(runs, table):
                             ha="center", va="center", fontsize=6.5, color="#777")
                     continue
                 yy = y + {"x2": -0.19, "/2": 0.19}.get(direction, 0.0)
-                ax.barh(yy, s - 1.0, left=1.0, height=0.36 if direction != "match" else 0.6,
+                ax.barh(yy, s - 1.0, left=1.0, height=0.36 if direction in ("x2", "/2") else 0.6,
                         color=SENS_COLORS[direction], align="center")
                 ax.text(s * (1.03 if s >= 1 else 1 / 1.03), yy, fmt.show(s, "speedup"), va="center",
                         ha="left" if s >= 1 else "right", fontsize=7)
@@ -729,7 +731,8 @@ def sensitivity(runs, table):
     more = len([r for r in runs if table.get(id(r))]) - len(rr)
     return Figure("sensitivity", "What to change: measured sensitivity",
                   "For each run, the same trace simulated again with one resource doubled (right of 1: faster) "
-                  "or halved; the bar is the measured speedup, baseline cycles over cycles, the baseline "
+                  "or halved, or a memory-controller refresh policy switched; the bar is the measured speedup, "
+                  "baseline cycles over cycles, the baseline "
                   "rerun by the same build. n/a: the change is not a valid datapath (the data file says why)."
                   + (f" {more} more runs in the data file." if more > 0 else ""),
                   fig, ["run", "resource", "direction", "setting", "status", "cycles", "seconds", "energy_pj",

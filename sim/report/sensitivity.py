@@ -4,7 +4,10 @@ For a run of the report, the same trace is simulated again with each main
 resource doubled and halved -- multipliers, memory bandwidth, key buffer,
 value buffer, softmax lanes, top-k comparators, the fetch unit's issue
 window -- and, when its head widths leave lanes idle, with ``dot.lanes``
-matched to the head width. The speedup of each (baseline cycles / variant
+matched to the head width; and, on a banked memory that refreshes, with the
+memory controller's refresh policy switched (refresh postponed, up to 8 owed;
+per-bank instead of all-bank refresh, where the memory standard has it): refresh
+can weigh far more on a latency-bound run than its share of time. The speedup of each (baseline cycles / variant
 cycles, the baseline simulated again by the same build) and its energy ratio
 are what the table, the tornado chart and the verdict's "measured best
 change" show. Nothing here is estimated.
@@ -53,13 +56,39 @@ RESOURCES = (
 LANES = "lanes = head width"
 
 
+class Policy:
+    """A memory-controller policy switched to another setting, not scaled."""
+
+    def __init__(self, name, path, new, change, applies):
+        self.name = name
+        self.path = path
+        self.new = new
+        self.change = change          # how the change reads in a verdict
+        self.applies = applies        # dram section -> whether the switch is a change to try
+
+
+def _refreshes(dram):
+    if dram["model"] != "banked":
+        return False
+    return (dram["t_rfc_ns"] if dram["refresh"] == "all_bank" else dram["t_rfc_pb_ns"]) > 0
+
+
+POLICIES = (
+    Policy("refresh postponed", "dram.refresh_postpone", 8, "postponing refresh (up to 8 owed)",
+           lambda d: _refreshes(d) and d["refresh_postpone"] < 8),
+    Policy("per-bank refresh", "dram.refresh", "per_bank", "refreshing bank by bank instead of all at once",
+           lambda d: _refreshes(d) and d["refresh"] == "all_bank"),
+)
+
+
 class Variant:
     """One rerun of one run: ``overrides`` on its recorded config, or why it cannot be made."""
 
-    def __init__(self, run, resource, direction, path=None, old=None, new=None, error=None):
+    def __init__(self, run, resource, direction, path=None, old=None, new=None, error=None, change=None):
         self.run = run
         self.resource = resource      # a Resource name, LANES, or "baseline"
-        self.direction = direction    # "x2", "/2", "match" or "as recorded"
+        self.direction = direction    # "x2", "/2", "match", "switch" or "as recorded"
+        self._change = change         # the change in words, for a switched policy
         self.path = path
         self.old = old
         self.new = new
@@ -78,6 +107,8 @@ class Variant:
     def change(self):
         if self.direction == "match":
             return "lanes matched to the head width"
+        if self.direction == "switch":
+            return self._change
         verb = "doubling" if self.direction == "x2" else "halving"
         return f"{verb} the {self.resource}"
 
@@ -105,6 +136,16 @@ def _get(cfg, path):
     return node
 
 
+def _policy_variants(run, base):
+    """The refresh policies ``run``'s memory could switch to."""
+    from ..arch import SCHEMA
+
+    # a result written before a policy knob existed ran with its default
+    dram = {k: f.default for k, f in SCHEMA["dram"].items()} | base.get("dram", {})
+    return [Variant(run, pol.name, "switch", pol.path, dram[pol.path.rpartition(".")[2]], pol.new, change=pol.change)
+            for pol in POLICIES if pol.applies(dram)]
+
+
 def plan_variants(run):
     """The variants of ``run`` (baseline first); invalid ones carry their reason."""
     from ..arch import load_arch
@@ -129,6 +170,7 @@ def plan_variants(run):
         by_dim = run.doc["compute"]["macs_by_head_dim"]
         width = int(max(by_dim, key=by_dim.get))
         out.append(Variant(run, LANES, "match", "dot.lanes", lanes["lanes"], width))
+    out += _policy_variants(run, base)
     for v in out[1:]:
         if v.error:
             continue
@@ -141,7 +183,8 @@ def plan_variants(run):
             v.error = f"not a valid datapath: {exc.field} = {exc.value!r}: {exc.expected}"
             continue
         v.config = cfg
-    return out
+    # a policy the memory does not have is not a change to suggest
+    return [v for v in out if not (v.direction == "switch" and v.config is None)]
 
 
 def replayable(run):
