@@ -3,6 +3,7 @@
     python bench/grain_conclusions.py                       # 1,000 comparisons, 2 processes
     python bench/grain_conclusions.py --cases 200 --seed 14 --jobs 2
     python bench/grain_conclusions.py --phases          # each answer the mean over 4 refresh phases
+    python bench/grain_conclusions.py --set dram.refresh_postpone=8   # a value every case takes
 
 The grain fuzz (``bench/engine_fuzz.py --grain``) counts runs whose cycles move
 by more than 2 % between a coarse grain and 16 rows. What an architect reads
@@ -35,7 +36,7 @@ ROOT = os.path.dirname(HERE)
 sys.path[:0] = [ROOT, HERE, os.path.join(ROOT, "tests")]
 
 import sim  # noqa: E402
-from engine_fuzz import CONFIGS, FINE, draw  # noqa: E402
+from engine_fuzz import CONFIGS, FINE, _setting, draw  # noqa: E402
 from sim.errors import InputError  # noqa: E402
 from sim.trace.synth import synth_trace  # noqa: E402
 
@@ -53,6 +54,7 @@ def change(arch, seed, case):
 
 
 PHASES = (0.0,)      # refresh phases each answer is averaged over (--phases: four)
+FIXED = {}           # config values every case takes over the drawn ones (--set)
 
 
 def _cycles(arch, trace):
@@ -64,6 +66,7 @@ def compare(seed, case):
     """``(case, key, speed-up coarse, speed-up fine, grain)`` or ``(case, None, reason)``."""
     name, over, shape = draw(seed, case)
     over["engine.grain_rows"] = max(256, over["engine.grain_rows"])
+    over.update(FIXED)
     try:
         trace = synth_trace(**shape)
         a = sim.load_arch(os.path.join(CONFIGS, f"{name}.yaml")).with_overrides(over)
@@ -90,10 +93,13 @@ def main():
     ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--margin", type=float, default=0.02, help="a difference smaller than this is none")
     ap.add_argument("--phases", action="store_true", help="average each answer over four refresh phases")
+    ap.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                    help="a config value every case takes, over the drawn one (e.g. dram.refresh_postpone=8)")
     args = ap.parse_args()
+    global PHASES
     if args.phases:
-        global PHASES
         PHASES = (0.0, 0.25, 0.5, 0.75)
+    FIXED.update(_setting(s) for s in args.set)
     t0 = time.perf_counter()
     m = args.margin
     reversed_, sided, skipped, worst, done = [], [], 0, (0.0, None), 0
@@ -115,7 +121,8 @@ def main():
                 sided.append(out)
     wall = time.perf_counter() - t0
     print(f"{done} comparisons (seed {args.seed}, {skipped} refused knob values skipped) on {args.jobs} "
-          f"processes in {wall:.0f} s; margin {m:.0%}; each answer over refresh phases {PHASES}")
+          f"processes in {wall:.0f} s; margin {m:.0%}; each answer over refresh phases {PHASES}"
+          + "".join(f"; {k} = {v}" for k, v in FIXED.items()))
     print(f"  reversed (one grain says faster, the other slower): {len(reversed_)}")
     print(f"  across the margin (one grain says a difference, the other none): {len(sided)}")
     gap, out = worst
