@@ -443,7 +443,8 @@ def test_a_measured_gain_inside_the_refresh_phase_spread_is_said_to_be():
     """A latency-bound run on a short captured trace: 25 % more memory bandwidth measures a
     gain that the run's own refresh-phase spread, measured here too, is larger than. The
     verdict names the change and says the gain is inside the spread; without a measured
-    spread it names the gain alone."""
+    spread it names the gain alone. The report's sensitivity table marks that row, not the
+    one of doubled bandwidth, which measures a gain beyond the spread."""
     from sim.report.verdict import TIE, sensitivity_text
 
     trace = "traces/captured_short_moderate.npz"
@@ -459,6 +460,22 @@ def test_a_measured_gain_inside_the_refresh_phase_spread_is_said_to_be():
     assert 1 + TIE < row["speedup"] <= 1 + spread      # the premise, as measured
     assert f"inside the {spread:.0%} this run moves" in sensitivity_text([row], spread)
     assert "inside the" not in sensitivity_text([row]) and "Measured best change" in sensitivity_text([row])
+    # the report's sensitivity table marks the row the same way
+    from sim.report.build import sensitivity_rows
+    from sim.report.inputs import Run, label_runs
+
+    run = Run(faster, "t")
+    label_runs([run])
+    twice = sim.simulate(arch.with_overrides({"dram.channel_gbps": 2 * arch.dram.channel_gbps}), trace,
+                         keep_intervals=False).to_dict()
+    doubled = dict(row, speedup=base / twice["cycles"], setting="dram.channel_gbps doubled")
+    assert doubled["speedup"] > 1 + spread              # measured outside the spread
+    sens = [dict(r, status="ok", error=None) for r in (row, doubled)]
+    status = [cells[3] for cells in sensitivity_rows([(run, sens)])[1]]
+    assert status == ["ok", "ok"]
+    run.phase_spread = spread
+    status = [cells[3] for cells in sensitivity_rows([(run, sens)])[1]]
+    assert status == [f"ok, inside the {spread:.0%} refresh-phase spread", "ok"]
 
 
 def test_engine_settings_are_labelled_not_merged(tmp_path, capsys):

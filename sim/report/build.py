@@ -31,7 +31,7 @@ from .. import formats as fm  # noqa: E402
 from . import figures as F  # noqa: E402
 from .inputs import ReportError, group_key, label_runs  # noqa: E402
 from .tables import COLUMNS, display_rows, markdown_table, table_rows  # noqa: E402
-from .verdict import grouped_verdicts, short_line  # noqa: E402
+from .verdict import grouped_verdicts, inside_phase_spread, short_line  # noqa: E402
 
 MAX_FIGURE_RUNS = 24   # per-run bar charts stay readable up to about this many bars
 MAX_BANDWIDTH_RUNS = 6
@@ -222,9 +222,11 @@ def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_ru
     return manifest
 
 
-SENS_INTRO = ("Each row is one rerun of the run's trace with one resource changed; speedup = the baseline's "
-              "cycles (the recorded config simulated again by this build) / the rerun's cycles, energy = the "
-              "rerun's energy / the baseline's. Measured, not estimated.")
+SENS_INTRO = ("Each row is one rerun of the run's trace with one resource or memory policy changed; speedup = "
+              "the baseline's cycles (the recorded config simulated again by this build) / the rerun's cycles, "
+              "energy = the rerun's energy / the baseline's. Measured, not estimated. Where the run's "
+              "refresh-phase spread was measured, a speedup inside it is marked: not a difference the trace "
+              "can show.")
 
 
 def sensitivity_rows(items):
@@ -234,8 +236,11 @@ def sensitivity_rows(items):
     rows = []
     for r, sens in items:
         for row in sens:
-            rows.append([r.label, row["change"], row["setting"], row["status"] if not row["error"] else
-                         f"n/a: {row['error']}", fm.value(row["speedup"], "speedup") if row["speedup"] else "-",
+            status = row["status"] if not row["error"] else f"n/a: {row['error']}"
+            if row["speedup"] and inside_phase_spread(row["speedup"], r.phase_spread):
+                status += f", inside the {r.phase_spread:.0%} refresh-phase spread"
+            rows.append([r.label, row["change"], row["setting"], status,
+                         fm.value(row["speedup"], "speedup") if row["speedup"] else "-",
                          fm.value(row["energy_ratio"], "speedup") if row["energy_ratio"] else "-"])
     return header, rows
 

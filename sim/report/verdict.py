@@ -99,6 +99,12 @@ def roofline_text(doc):
     return f"It reaches {fm.pct(rf)} of its closed-form {bound}-bound roofline."
 
 
+def inside_phase_spread(speedup, spread):
+    """Whether a measured speed-up (or slow-down) is within ``spread``, how far the run moves
+    with where it starts in the refresh schedule (none when that is within :data:`TIE`)."""
+    return spread > TIE and 1 / (1 + spread) <= speedup <= 1 + spread
+
+
 def sensitivity_text(sens, spread=0.0):
     """The measured best change for one run, from its sensitivity rows (see :mod:`.sensitivity`);
     ``spread``: the run's refresh-phase spread, when measured (a gain inside it is said to be)."""
@@ -121,7 +127,7 @@ def sensitivity_text(sens, spread=0.0):
             f"{fm.show(best['speedup'], 'speedup')} faster")
     if best.get("energy_ratio") is not None:
         text += f" at {fm.show(best['energy_ratio'], 'speedup')} the energy"
-    if spread > TIE and best["speedup"] <= 1 + spread:
+    if inside_phase_spread(best["speedup"], spread):
         text += (f", inside the {spread:.0%} this run moves with where it starts in the refresh schedule: "
                  f"not a gain this trace can show")
     return text + "."
