@@ -1219,4 +1219,9 @@ class ChannelPool:
             "scheduler": self.arch.dram.scheduler,
             "page_policy": self.arch.dram.page_policy,
         })
+        if self.P[T.P_REF_POSTPONE] > 0 and dur > 0:
+            # refreshes still owed when the run ends: its time does not include them
+            leads = np.unique(self.BF[:, T.B_DOM].astype(np.int64))
+            out["refreshes_issued"] = int(self.settle_refresh(total_cycles))
+            out["refreshes_owed_at_end"] = int(self.BF[leads, T.B_R_OWED].sum())
         return out
