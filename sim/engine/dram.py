@@ -582,7 +582,7 @@ class ChannelPool:
         limit = self.P[T.P_REF_POSTPONE]
         if limit > 0:
             period, dur = self.P[T.P_REF_PERIOD], self.P[T.P_REF_DUR]
-            leads = np.unique(self.BF[:, T.B_DOM].astype(np.int64))
+            leads = self._refresh_leads()
             if self.NI[T.I_LOGGING]:
                 need = len(leads) * (int(until / period) + int(limit) + 2)
                 if self.NI[T.I_LOG] + need > len(self.LOG):
@@ -592,6 +592,10 @@ class ChannelPool:
                 T._ref_advance(self.BF, self.open_row, self.LOG, self.NI, self.acc, lead, lead // self.banks,
                                self.banks, float(until), period, dur, limit, 0)
         return float(self.acc[T.A_REFS])
+
+    def _refresh_leads(self):
+        """The first bank of every refresh domain (where postponement keeps its state)."""
+        return np.unique(self.BF[:, T.B_DOM].astype(np.int64))
 
     @property
     def requests(self):
@@ -1182,10 +1186,11 @@ class ChannelPool:
         hits, misses, conflicts = (int(x) for x in self.kinds)
         total = hits + misses + conflicts
         period, dur = self.P[T.P_REF_PERIOD], self.P[T.P_REF_DUR]
-        if dur > 0 and total_cycles > 0 and self.P[T.P_REF_POSTPONE] > 0:
+        postponing = dur > 0 and self.P[T.P_REF_POSTPONE] > 0
+        issued = self.settle_refresh(total_cycles) if postponing else 0.0
+        if postponing and total_cycles > 0:
             # the windows issued before the run's end, over the domains' time
-            domains = len(np.unique(self.BF[:, T.B_DOM]))
-            refresh_share = min(1.0, self.settle_refresh(total_cycles) * dur / (domains * total_cycles))
+            refresh_share = min(1.0, issued * dur / (len(self._refresh_leads()) * total_cycles))
         elif dur > 0 and total_cycles > 0:
             # each bank's windows inside the run, clipped to its end; the mean over banks
             first = self.BF[:, B_REF_OFF]
@@ -1219,9 +1224,8 @@ class ChannelPool:
             "scheduler": self.arch.dram.scheduler,
             "page_policy": self.arch.dram.page_policy,
         })
-        if self.P[T.P_REF_POSTPONE] > 0 and dur > 0:
+        if postponing:
             # refreshes still owed when the run ends: its time does not include them
-            leads = np.unique(self.BF[:, T.B_DOM].astype(np.int64))
-            out["refreshes_issued"] = int(self.settle_refresh(total_cycles))
-            out["refreshes_owed_at_end"] = int(self.BF[leads, T.B_R_OWED].sum())
+            out["refreshes_issued"] = int(issued)
+            out["refreshes_owed_at_end"] = int(self.BF[self._refresh_leads(), T.B_R_OWED].sum())
         return out

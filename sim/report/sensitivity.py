@@ -7,10 +7,10 @@ window -- and, when its head widths leave lanes idle, with ``dot.lanes``
 matched to the head width; and, on a banked memory that refreshes, with the
 memory controller's refresh policy switched (refresh postponed, up to 8 owed;
 per-bank instead of all-bank refresh, where the memory standard has it): refresh
-can weigh far more on a latency-bound run than its share of time. The speedup of each (baseline cycles / variant
-cycles, the baseline simulated again by the same build) and its energy ratio
-are what the table, the tornado chart and the verdict's "measured best
-change" show. Nothing here is estimated.
+can weigh far more on a latency-bound run than its share of time. The speedup
+of each (baseline cycles / variant cycles, the baseline simulated again by the
+same build) and its energy ratio are what the table, the tornado chart and the
+verdict's "measured best change" show. Nothing here is estimated.
 
 The reruns go through the sweep machinery: :func:`sim.sweep.worker.run_point`
 on the serial, local-pool or Dask backends of :mod:`sim.sweep.backends`, so a
