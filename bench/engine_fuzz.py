@@ -225,7 +225,7 @@ def _work(args):
     return run_case(*args)
 
 
-def _setting(text):
+def parse_setting(text):
     """``KEY=VALUE`` of ``--set``: the value read as YAML (a number, a word)."""
     key, sep, value = text.partition("=")
     if not sep or not key:
@@ -245,7 +245,7 @@ def main():
     ap.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                     help="a config value every case takes, over the drawn one (e.g. dram.refresh_postpone=8)")
     args = ap.parse_args()
-    fixed = dict(_setting(s) for s in args.set)
+    fixed = dict(parse_setting(s) for s in args.set)
     if args.replay:
         r = json.loads(args.replay)
         print(draw(r["seed"], r["case"]))

@@ -36,7 +36,7 @@ ROOT = os.path.dirname(HERE)
 sys.path[:0] = [ROOT, HERE, os.path.join(ROOT, "tests")]
 
 import sim  # noqa: E402
-from engine_fuzz import CONFIGS, FINE, _setting, draw  # noqa: E402
+from engine_fuzz import CONFIGS, FINE, parse_setting, draw  # noqa: E402
 from sim.errors import InputError  # noqa: E402
 from sim.trace.synth import synth_trace  # noqa: E402
 
@@ -99,7 +99,7 @@ def main():
     global PHASES
     if args.phases:
         PHASES = (0.0, 0.25, 0.5, 0.75)
-    FIXED.update(_setting(s) for s in args.set)
+    FIXED.update(parse_setting(s) for s in args.set)
     t0 = time.perf_counter()
     m = args.margin
     reversed_, sided, skipped, worst, done = [], [], 0, (0.0, None), 0

@@ -3,14 +3,17 @@ JEDEC timing rules, and compiled against the same code run as plain Python.
 
 * Reference: the scheduling policy the pool documents (per-bank order; each command at
   the earliest time that keeps every rule with the commands already fixed; refresh
-  windows closing rows) written again here without the pool's search shortcuts: every
-  candidate time is tried against every command fixed so far. Internal consistency of
-  our own policy, found by a second, brute-force method.
+  windows closing rows; with ``dram.refresh_postpone``, the controller's refresh decisions
+  and windows from every refresh issued) written again here without the pool's search
+  shortcuts: every candidate time is tried against every command fixed so far. Internal
+  consistency of our own policy, found by a second, brute-force method.
 * Protocol: the command log of busy random traffic checked rule by rule against the
   timing rules the JEDEC standards define for every device of the presets (JESD79-4,
   JESD235A, JESD238, JESD209-5B, JESD250 use the same rules): tRCD, tRAS, tRP, tRC, tRTP,
   tWR, tRRD_S/L, at most four activates in any tFAW window, tCCD_S/L, tWTR_S/L, tRTW, no
-  command inside a refresh window, and data bursts that never overlap on the bus.
+  command inside a refresh window, and data bursts that never overlap on the bus; with
+  postponement, the logged refreshes as the windows, never more owed than allowed (JESD79-4
+  lets a DDR4 controller postpone 8; from memory) and none before it is due.
 """
 
 import os
