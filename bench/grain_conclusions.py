@@ -36,7 +36,7 @@ ROOT = os.path.dirname(HERE)
 sys.path[:0] = [ROOT, HERE, os.path.join(ROOT, "tests")]
 
 import sim  # noqa: E402
-from engine_fuzz import CONFIGS, FINE, parse_setting, draw  # noqa: E402
+from engine_fuzz import CONFIGS, FINE, draw, parse_setting  # noqa: E402
 from sim.errors import InputError  # noqa: E402
 from sim.trace.synth import synth_trace  # noqa: E402
 
