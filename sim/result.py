@@ -310,7 +310,10 @@ def format_summary(result):
                     if dr.get("write_tail_cycles") else "")
                  + f"{fm.value(dr['achieved_gbps'], 'bandwidth')} of {show(dr['peak_gbps'], 'bandwidth')}"
                  + (f"; {show(dr['effective_key_bits'], 'bits')} per key element"
-                    if dr.get("effective_key_bits") else ""))
+                    if dr.get("effective_key_bits") else "")
+                 # a postponing controller can end the run owing refreshes its time leaves out
+                 + (f"; {dr['refreshes_owed_at_end']:,} refreshes still owed at the end"
+                    if dr.get("refreshes_owed_at_end") else ""))
     t, c = d["throughput"], d["compute"]
     lines.append(f"  compute   {show(c['macs'], 'macs')}: {show(t.get('ops_per_s'), 'ops_rate')} executed, "
                  f"{show(t.get('dense_equivalent_ops_per_s'), 'ops_rate')} dense-equivalent"

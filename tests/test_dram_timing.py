@@ -801,3 +801,19 @@ def test_the_refresh_count_check_catches_a_broken_schedule():
     early = log.copy()
     early[refs[0], 0] = 1.0
     assert ("a refresh before it was due", 0) in check_refresh_count(early, arch, until)
+
+
+def test_a_run_owing_refreshes_at_its_end_says_so():
+    """A batch-16 decode on server's 16 all-bank channels keeps its channels busy to the end:
+    postponing, it ends owing refreshes its time leaves out, and the document and the
+    terminal summary say how many; without postponement neither mentions any."""
+    from sim.result import format_summary
+
+    arch = sim.load_arch(os.path.join(CONFIGS, "server.yaml"))
+    trace = os.path.join(os.path.dirname(HERE), "traces", "decoder_batch", "b16_kv1.npz")
+    doc = sim.simulate(arch.with_overrides({"dram.refresh_postpone": 8}), trace, keep_intervals=False).to_dict()
+    owed = doc["dram"]["refreshes_owed_at_end"]
+    assert 0 < owed <= 8 * arch.dram.channels and doc["dram"]["refreshes_issued"] > 0
+    assert f"{owed:,} refreshes still owed at the end" in format_summary(doc)
+    plain = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+    assert "refreshes_owed_at_end" not in plain["dram"] and "still owed" not in format_summary(plain)
