@@ -101,7 +101,8 @@ def test_refresh_policies_switched_are_the_measured_ones(lane_report):
 
 def test_refresh_policies_the_memory_lacks_are_not_offered():
     """DDR4 refreshes all banks at once (JEDEC JESD79-4; from memory): mid gets no per-bank
-    variant, only postponement; with refresh off, or already postponing 8, neither."""
+    variant, only postponement, nor does a custom memory; with refresh off, or already
+    postponing 8, neither."""
     def switched(arch):
         doc = sim.simulate(arch, "traces/demo_decode.yaml", keep_intervals=False).to_dict()
         run = Run(doc, "x", trace_path="traces/demo_decode.yaml")
@@ -110,6 +111,9 @@ def test_refresh_policies_the_memory_lacks_are_not_offered():
 
     mid = sim.load_arch("arch_configs/mid.yaml")
     assert switched(mid) == {"refresh postponed"}
+    # a custom memory's per-bank timings would be the defaults, not its own: not offered
+    custom = sim.load_arch({"dram": {"channels": 2}, "fetch": {"request_bytes": 64}})
+    assert custom.dram.standard == "custom" and switched(custom) == {"refresh postponed"}
     assert switched(mid.with_overrides({"dram.t_rfc_ns": 0.0})) == set()
     assert switched(mid.with_overrides({"dram.refresh_postpone": 8})) == set()
 

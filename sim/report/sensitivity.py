@@ -76,8 +76,9 @@ def _refreshes(dram):
 POLICIES = (
     Policy("refresh postponed", "dram.refresh_postpone", 8, "postponing refresh (up to 8 owed)",
            lambda d: _refreshes(d) and d["refresh_postpone"] < 8),
+    # only a named standard's per-bank timings are the memory's own (a custom one would take defaults)
     Policy("per-bank refresh", "dram.refresh", "per_bank", "refreshing bank by bank instead of all at once",
-           lambda d: _refreshes(d) and d["refresh"] == "all_bank"),
+           lambda d: _refreshes(d) and d["refresh"] == "all_bank" and d["standard"] != "custom"),
 )
 
 
