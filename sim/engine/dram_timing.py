@@ -109,6 +109,8 @@ F_LAST, F_LAST_WRITE, F_TAKEN, F_REL, F_RAMP_START, F_RAMP_DONE, F_RAMP_AMOUNT, 
 N_CHANNEL = 9
 # NI: share records, command-log rows, logging on
 I_RECORDS, I_LOG, I_LOGGING = range(3)
+# a command fits where the rules leave exactly its room, whatever the last bits of the times
+TIME_EPS = 1e-9
 # command-log rows kept free beyond three per burst, for the refreshes a batch issues
 LOG_SPARE = 256
 
@@ -349,9 +351,9 @@ def _insert(TL, TK, TG, TN, c, w, x, k, width):
         i = _gap_after(G, TN[c, N_COL_GAPS + w], prev)
         if i < TN[c, N_COL_GAPS + w] and G[i, 0] == prev:
             _gap_remove(TG, TN, c, w, i)
-    if p > 0 and x - prev >= width:
+    if p > 0 and x - prev >= width - TIME_EPS:
         _gap_add(TG, TN, c, w, prev, x)
-    if p < n and nxt - x >= width:
+    if p < n and nxt - x >= width - TIME_EPS:
         _gap_add(TG, TN, c, w, x, nxt)
     return p
 
@@ -388,7 +390,7 @@ def _col_fit(T, K, n, code, x, limit, reach, P):
             need = e + col_spacing(k, code, bu, cl, rtw, ws, wl)
             if need > x:
                 x = need
-        elif x + col_spacing(code, k, bu, cl, rtw, ws, wl) > e:
+        elif x + col_spacing(code, k, bu, cl, rtw, ws, wl) > e + TIME_EPS:
             # no room before this command: go after it, then keep the rules with the ones before
             x = e + col_spacing(k, code, bu, cl, rtw, ws, wl)
             j = i - 1
@@ -813,7 +815,7 @@ def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, grou
                 # read/write direction changes between neighbours on the bus
                 pw = int(CF[c, F_DROPPED]) - 1
                 if n > 0:
-                    if cc - TL[c, COL, n - 1] >= 2.0 * burst:
+                    if cc - TL[c, COL, n - 1] >= 2.0 * burst - TIME_EPS:
                         _gap_add(TG, TN, c, COL, TL[c, COL, n - 1], cc)
                     pw = TK[c, COL, n - 1] & 1
                 if pw >= 0 and pw != w:
