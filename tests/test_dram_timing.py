@@ -364,16 +364,19 @@ def test_placement_equals_the_brute_force_reference(name, page, channels, mode):
     assert min(ref.kinds) > 0 and backfilled > 0
 
 
-def test_a_slot_exactly_one_column_wide_is_taken():
+@pytest.mark.parametrize("seed,gap,limit", [(sum(map(ord, "lpddr5xopenper_bank")) + 4, 40.0, 0),
+                                             (5000 + sum(map(ord, "lpddr5xopenper_bank")), 10.0, 4)])
+def test_a_slot_exactly_one_command_wide_is_taken(seed, gap, limit):
     """LPDDR5X's burst is 1.8751 cycles here, not a whole number: two columns 3.7501 apart
     leave room for exactly one more between them, and float rounding can make that gap a
-    hair narrower than two bursts. The reference (1e-9 tolerance) takes the slot; so must the
-    placement (before: this stream's burst 197 went 9.4 cycles later)."""
+    hair narrower than two bursts; likewise an activate exactly tRRD after one and before
+    another. The reference (1e-9 tolerance) takes the slot; so must the placement (before:
+    the first stream's burst 197 went 9.4 cycles later, the second's burst 195 7.5)."""
     arch = preset("lpddr5x", **{"dram.page_policy": "open", "dram.channels": 1})
-    arch = arch.with_overrides(short_refresh(arch, "per_bank"))
-    rng = np.random.default_rng(sum(map(ord, "lpddr5x" + "open" + "per_bank")) + 4)
+    arch = arch.with_overrides(dict(short_refresh(arch, "per_bank"), **{"dram.refresh_postpone": limit}))
+    rng = np.random.default_rng(seed)
     ref, ker = Reference(arch), Kernel(arch)
-    for c, b, r, w, t0 in burst_stream(arch, rng, 260, gap=40.0):
+    for c, b, r, w, t0 in burst_stream(arch, rng, 260, gap=gap):
         np.testing.assert_allclose(ker.place(c, b, r, w, t0), ref.place(c, b, r, w, t0), rtol=1e-12, atol=1e-9)
 
 

@@ -109,7 +109,7 @@ F_LAST, F_LAST_WRITE, F_TAKEN, F_REL, F_RAMP_START, F_RAMP_DONE, F_RAMP_AMOUNT, 
 N_CHANNEL = 9
 # NI: share records, command-log rows, logging on
 I_RECORDS, I_LOG, I_LOGGING = range(3)
-# a command fits where the rules leave exactly its room, whatever the last bits of the times
+# a command fits where the rules leave exactly its room, whatever the last bits of the float times
 TIME_EPS = 1e-9
 # command-log rows kept free beyond three per burst, for the refreshes a batch issues
 LOG_SPARE = 256
@@ -463,14 +463,15 @@ def act_place(TL, TK, TG, TN, c, g, x, P):
         q = p
         while q < n and T[q] < x + rl:
             r = rl if G[q] == g else rs
-            if T[q] < x + r:
+            if T[q] < x + r - TIME_EPS:
                 ok = False
                 break
             q += 1
         if ok and F > 0.0:
             # the windows of five activates that would hold x
-            if (p >= 3 and T[p] - T[p - 3] < F) or (p >= 2 and p + 1 < n and T[p + 1] - T[p - 2] < F) \
-                    or (p >= 1 and p + 2 < n and T[p + 2] - T[p - 1] < F):
+            f = F - TIME_EPS
+            if (p >= 3 and T[p] - T[p - 3] < f) or (p >= 2 and p + 1 < n and T[p + 1] - T[p - 2] < f) \
+                    or (p >= 1 and p + 2 < n and T[p + 2] - T[p - 1] < f):
                 ok = False
                 faw = True
                 # no activate can ever go between T[p - 1] and T[p]: forget the gap
@@ -478,7 +479,7 @@ def act_place(TL, TK, TG, TN, c, g, x, P):
                     gi = _gap_after(gaps, TN[c, N_ACT_GAPS], T[p - 1])
                     if gi < TN[c, N_ACT_GAPS] and gaps[gi, 0] == T[p - 1]:
                         _gap_remove(TG, TN, c, ACT, gi)
-            elif p + 3 < n and T[p + 3] - x < F:
+            elif p + 3 < n and T[p + 3] - x < F - TIME_EPS:
                 ok = False
                 faw = True
         if ok:
@@ -792,7 +793,7 @@ def place_bursts(gb, row, ch, pos, k0, k1, w, now, out, agg, by_request, P, grou
                 if na == 0 or a >= TL[c, ACT, na - 1]:       # appended (the common case)
                     # a gap another activate could use later: wide enough for tRRD on both sides,
                     # and not inside a full four-activate window
-                    if na > 0 and a - TL[c, ACT, na - 1] >= 2.0 * rrd_s and \
+                    if na > 0 and a - TL[c, ACT, na - 1] >= 2.0 * rrd_s - TIME_EPS and \
                             (faw_t <= 0.0 or na < 3 or a >= TL[c, ACT, na - 3] + faw_t):
                         _gap_add(TG, TN, c, ACT, TL[c, ACT, na - 1], a)
                     TL[c, ACT, na] = a
