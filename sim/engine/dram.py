@@ -1186,7 +1186,7 @@ class ChannelPool:
         hits, misses, conflicts = (int(x) for x in self.kinds)
         total = hits + misses + conflicts
         period, dur = self.P[T.P_REF_PERIOD], self.P[T.P_REF_DUR]
-        postponing = dur > 0 and self.P[T.P_REF_POSTPONE] > 0
+        postponing = self.P[T.P_REF_POSTPONE] > 0       # zero when the memory takes no refresh
         issued = self.settle_refresh(total_cycles) if postponing else 0.0
         if postponing and total_cycles > 0:
             # the windows issued before the run's end, over the domains' time

@@ -27,6 +27,7 @@ import copy
 import os
 import time
 
+from ..arch import SCHEMA
 from ..limits import lane_figures
 from .inputs import ReportError, group_key
 
@@ -68,17 +69,19 @@ class Policy:
 
 
 def _refreshes(dram):
-    if dram["model"] != "banked":
+    if dram.model != "banked":
         return False
-    return (dram["t_rfc_ns"] if dram["refresh"] == "all_bank" else dram["t_rfc_pb_ns"]) > 0
+    return (dram.t_rfc_ns if dram.refresh == "all_bank" else dram.t_rfc_pb_ns) > 0
 
 
+# the most refreshes a controller may owe (dram.refresh_postpone's largest value): the variant tried
+MOST_OWED = SCHEMA["dram"]["refresh_postpone"].maximum
 POLICIES = (
-    Policy("refresh postponed", "dram.refresh_postpone", 8, "postponing refresh (up to 8 owed)",
-           lambda d: _refreshes(d) and d["refresh_postpone"] < 8),
+    Policy("refresh postponed", "dram.refresh_postpone", MOST_OWED, f"postponing refresh (up to {MOST_OWED} owed)",
+           lambda d: _refreshes(d) and d.refresh_postpone < MOST_OWED),
     # only a named standard's per-bank timings are the memory's own (a custom one would take defaults)
     Policy("per-bank refresh", "dram.refresh", "per_bank", "refreshing bank by bank instead of all at once",
-           lambda d: _refreshes(d) and d["refresh"] == "all_bank" and d["standard"] != "custom"),
+           lambda d: _refreshes(d) and d.refresh == "all_bank" and d.standard != "custom"),
 )
 
 
@@ -139,12 +142,15 @@ def _get(cfg, path):
 
 def _policy_variants(run, base):
     """The refresh policies ``run``'s memory could switch to."""
-    from ..arch import SCHEMA
+    from ..arch import load_arch
+    from ..errors import InputError
 
-    # a result written before a policy knob existed ran with its default
-    dram = {k: f.default for k, f in SCHEMA["dram"].items()} | base.get("dram", {})
-    return [Variant(run, pol.name, "switch", pol.path, dram[pol.path.rpartition(".")[2]], pol.new, change=pol.change)
-            for pol in POLICIES if pol.applies(dram)]
+    try:   # loaded, a result written before a policy knob existed has its default
+        dram = load_arch(base, source="sensitivity").dram
+    except InputError:
+        return []    # no longer a valid datapath: the resource variants say why
+    return [Variant(run, pol.name, "switch", pol.path, getattr(dram, pol.path.rpartition(".")[2]), pol.new,
+                    change=pol.change) for pol in POLICIES if pol.applies(dram)]
 
 
 def plan_variants(run):
