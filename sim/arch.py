@@ -537,6 +537,12 @@ class Arch:
                 f"<details><summary>{len(knob_paths())} knobs</summary><table>{rows}</table></details></div>")
 
 
+def takes_refresh(dram) -> bool:
+    """Whether memory section ``dram`` refreshes at all (a banked pool with a refresh time), so
+    where a run starts in the refresh schedule (``dram.refresh_phase``) can move its answer."""
+    return dram.model == "banked" and (dram.t_rfc_ns if dram.refresh == "all_bank" else dram.t_rfc_pb_ns) > 0
+
+
 def _rebuild(resolved, source, origins):
     return Arch(resolved, source, origins)
 

@@ -9,6 +9,12 @@ paths into the result document (``cycles``, ``energy.total_pj``,
 :func:`sim.load_sweep` use these same names; :meth:`sim.result.Result.to_frame`
 returns one such row, and :func:`unit_frame` a row per unit.
 
+A sweep point run at several places in the refresh schedule (the spec's
+``refresh_phases``) carries a ``refresh_phases`` section; its row's
+``cycles``, ``seconds`` and ``energy.total_pj`` are then the means over those
+runs (what the sweep ranks by), and ``refresh_phases.runs`` and
+``refresh_phases.spread`` say how many and how far apart their cycles came.
+
 A column has a kind -- ``int``, ``float`` or ``text`` -- which fixes its type
 in the store and its dtype in a DataFrame.
 """
@@ -28,7 +34,10 @@ FIGURES = (
     ("verdict.busiest_unit", "text"),
     ("verdict.largest_stall.unit", "text"), ("verdict.largest_stall.cause", "text"),
     ("verdict.largest_stall.fraction", "float"),
+    ("refresh_phases.runs", "int"), ("refresh_phases.spread", "float"),
 )
+# column -> the ``refresh_phases`` figure it holds when a document has that section
+PHASE_MEANS = (("cycles", "mean_cycles"), ("seconds", "mean_seconds"), ("energy.total_pj", "mean_energy_pj"))
 STATES = ("busy", "starved", "blocked", "idle")
 TOP_STALLS = 2
 
@@ -73,6 +82,10 @@ def top_stalls(unit_doc, n=TOP_STALLS):
 def figure_row(doc, units=UNIT_ORDER):
     """``{column: value}`` of the figures of result document ``doc`` (None where it has none)."""
     row = {name: _at_parts(doc, parts) for name, parts in _FIGURE_PARTS}
+    phases = doc.get("refresh_phases")
+    if isinstance(phases, dict):
+        for name, key in PHASE_MEANS:
+            row[name] = phases.get(key)
     all_units = doc.get("units") or {}
     for u in units:
         ud = all_units.get(u)

@@ -64,9 +64,9 @@ def counted(monkeypatch):
     calls = []
     real = worker._simulate
 
-    def counting(config, trace):
+    def counting(config, trace, *rest):
         calls.append(config["dot"]["multipliers"])
-        return real(config, trace)
+        return real(config, trace, *rest)
 
     monkeypatch.setattr(worker, "_simulate", counting)
     return calls

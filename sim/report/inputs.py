@@ -27,7 +27,8 @@ class Run:
     file); ``intervals`` the per-unit intervals when a run was simulated with
     them at hand (the demo) or replayed for the timeline; ``phase_spread`` how far
     apart its cycles come over refresh phases, when that was measured (the demo,
-    ``attnsim report --refresh-phases``: :mod:`sim.report.phases`): latencies closer than
+    ``attnsim report --refresh-phases``: :mod:`sim.report.phases`; a sweep point run at several
+    refresh phases brings its own): latencies closer than
     that are not told apart (:mod:`sim.report.verdict`).
     """
 
@@ -39,6 +40,10 @@ class Run:
         self.intervals = intervals
         self.phase_spread = 0.0
         self.phase_range = None     # (fewest, most) cycles over refresh phases, when measured
+        ph = doc.get("refresh_phases")
+        if isinstance(ph, dict) and ph.get("cycles"):   # a sweep point run at several (its spec's refresh_phases)
+            lo, hi = min(ph["cycles"]), max(ph["cycles"])
+            self.phase_range, self.phase_spread = (lo, hi), (hi - lo) / lo if lo else 0.0
         self.config_label = doc["arch"]["name"]
         self.trace_label = doc["trace"]["name"]
 
@@ -88,6 +93,13 @@ def _check_doc(doc, source, field="<root>"):
     for name, u in doc["units"].items():
         if not isinstance(u, dict) or "busy" not in u or "stalls" not in u:
             raise ReportError(source, f"units.{name}", u, "expected busy/starved/blocked/idle fractions and stalls")
+    ph = doc.get("refresh_phases")
+    if ph is not None:
+        cyc = ph.get("cycles") if isinstance(ph, dict) else None
+        if not isinstance(cyc, list) or not cyc or not all(
+                isinstance(c, int) and not isinstance(c, bool) and c > 0 for c in cyc):
+            raise ReportError(source, "refresh_phases.cycles", cyc,
+                              "expected a list of the positive whole cycles of each refresh phase's run")
     return doc
 
 

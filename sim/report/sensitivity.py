@@ -27,7 +27,7 @@ import copy
 import os
 import time
 
-from ..arch import SCHEMA
+from ..arch import SCHEMA, takes_refresh
 from ..limits import lane_figures
 from .inputs import ReportError, group_key
 
@@ -68,20 +68,14 @@ class Policy:
         self.applies = applies        # dram section -> whether the switch is a change to try
 
 
-def _refreshes(dram):
-    if dram.model != "banked":
-        return False
-    return (dram.t_rfc_ns if dram.refresh == "all_bank" else dram.t_rfc_pb_ns) > 0
-
-
 # the most refreshes a controller may owe (dram.refresh_postpone's largest value): the variant tried
 MOST_OWED = SCHEMA["dram"]["refresh_postpone"].maximum
 POLICIES = (
     Policy("refresh postponed", "dram.refresh_postpone", MOST_OWED, f"postponing refresh (up to {MOST_OWED} owed)",
-           lambda d: _refreshes(d) and d.refresh_postpone < MOST_OWED),
+           lambda d: takes_refresh(d) and d.refresh_postpone < MOST_OWED),
     # only a named standard's per-bank timings are the memory's own (a custom one would take defaults)
     Policy("per-bank refresh", "dram.refresh", "per_bank", "refreshing bank by bank instead of all at once",
-           lambda d: _refreshes(d) and d.refresh == "all_bank" and d.standard != "custom"),
+           lambda d: takes_refresh(d) and d.refresh == "all_bank" and d.standard != "custom"),
 )
 
 

@@ -1,6 +1,7 @@
 """Objectives of a sweep (all minimized) and their screening bounds.
 
-An objective reads one number from a finished point: from its result and
+An objective reads one number from a finished point (the mean over its runs
+when the spec runs each point at several refresh phases): from its result and
 config (``measure``), or from the column of the store's table that holds the
 same number (``column``). ``energy`` and ``area`` come from the result
 document's ``energy.total_pj`` and ``area.total_mm2``; when the results carry
@@ -29,6 +30,14 @@ def _get(doc, *keys):
             return None
         doc = doc[k]
     return doc if isinstance(doc, (int, float)) and not isinstance(doc, bool) else None
+
+
+def _mean(doc, key, *path):
+    """A figure of a finished point: the mean over its refresh phases when it was run at several
+    (the ``refresh_phases`` section, see :mod:`sim.sweep.worker`), else the document's own."""
+    if isinstance(doc, dict) and isinstance(doc.get("refresh_phases"), dict):
+        return _get(doc, "refresh_phases", key)
+    return _get(doc, *path)
 
 
 def _energy_floor(cf, c):
@@ -72,10 +81,11 @@ class Objective:
 
 
 OBJECTIVES = {o.name: o for o in (
-    Objective("cycles", "simulated cycles", "cycles", lambda r, c: _get(r, "cycles"),
+    Objective("cycles", "simulated cycles", "cycles", lambda r, c: _mean(r, "mean_cycles", "cycles"),
               lambda cf, c: math.floor(cf["roofline_cycles"] * (1 - 1e-12))),
     Objective("energy", "energy of the run, pJ (result energy.total_pj)", "energy.total_pj",
-              lambda r, c: _get(r, "energy", "total_pj"), _energy_floor, fallback=("cycles",)),
+              lambda r, c: _mean(r, "mean_energy_pj", "energy", "total_pj"), _energy_floor,
+              fallback=("cycles",)),
     Objective("area", "area proxy, mm2 (result area.total_mm2)", "area.total_mm2",
               lambda r, c: _get(r, "area", "total_mm2"), _area_exact,
               fallback=("multipliers", "buffer_kib")),

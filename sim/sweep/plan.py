@@ -24,9 +24,9 @@ from .worker import build_id
 class PlannedPoint:
     """One (config, trace) pair to run."""
 
-    __slots__ = ("key", "point", "trace", "trace_path", "trace_digest", "config", "error", "order")
+    __slots__ = ("key", "point", "trace", "trace_path", "trace_digest", "config", "error", "order", "phases")
 
-    def __init__(self, key, point, trace, trace_path, trace_digest, config, error, order):
+    def __init__(self, key, point, trace, trace_path, trace_digest, config, error, order, phases=1):
         self.key = key
         self.point = point                # {dotted path: value} of the axes
         self.trace = trace                # trace name
@@ -35,6 +35,7 @@ class PlannedPoint:
         self.config = config              # resolved config dict, or None when invalid
         self.error = error                # one-line config error, or None
         self.order = order
+        self.phases = phases              # places in the refresh schedule it runs at (spec refresh_phases)
 
     def __repr__(self):
         return f"PlannedPoint({self.trace}, {self.point})"
@@ -58,9 +59,11 @@ class Plan:
         return [d for _n, _p, d in self.traces]
 
 
-def point_key(config, trace_digest, build):
-    text = json.dumps({"config": config, "trace_digest": trace_digest, "simulator": build},
-                      sort_keys=True, separators=(",", ":"))
+def point_key(config, trace_digest, build, phases=1):
+    what = {"config": config, "trace_digest": trace_digest, "simulator": build}
+    if phases > 1:   # one run only keeps the key it had before refresh phases existed
+        what["refresh_phases"] = phases
+    text = json.dumps(what, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
 
@@ -117,12 +120,12 @@ def make_plan(spec):
     for name, path, digest in traces:
         for point, overrides, config, error in grid:
             if config is not None:
-                key = point_key(config, digest, build)
+                key = point_key(config, digest, build, spec.phases)
             else:
                 key = _error_key(base, overrides, digest, build)
             if key in seen:   # two grid points resolve to one config (e.g. 32 and 32.0)
                 continue
             seen.add(key)
-            points.append(PlannedPoint(key, point, name, path, digest, config, error, order))
+            points.append(PlannedPoint(key, point, name, path, digest, config, error, order, spec.phases))
             order += 1
     return Plan(spec, points, filtered, traces, build)

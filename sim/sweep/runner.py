@@ -38,7 +38,8 @@ class Task:
     def __init__(self, point):
         self.point = point
         self.key = point.key
-        self.args = (point.config, point.trace_path, point.trace_digest)
+        self.args = (point.config, point.trace_path, point.trace_digest) + \
+            ((point.phases,) if point.phases > 1 else ())
 
 
 class SweepRun:
@@ -261,6 +262,7 @@ def summarize(plan, store, requested, counts, screened=False):
     for per in best.values():
         for b in per.values():
             b["point"] = points[b["key"]]
+    phase_notes = _phase_ranges(plan.spec.phases, store, best)
     return {
         "format": "attnsim-sweep-summary", "version": 1,
         "sweep": plan.spec.name, "simulator_version": __version__, "simulator_build": plan.build,
@@ -270,12 +272,28 @@ def summarize(plan, store, requested, counts, screened=False):
                    "finished": n_ok + errors,
                    "missing": len(plan.points) - n_ok - errors - counts.get("skipped_by_screen", 0)},
         "screened": bool(screened),
-        "notes": [],
+        "notes": phase_notes,
         "best": best,
         "pareto": {t: [k for k, _v in f] for t, f in front.items()},
         "pareto_points": {t: [{"key": k, "point": points[k], "objectives": dict(zip(used, v))} for k, v in f]
                           for t, f in front.items()},
     }
+
+
+def _phase_ranges(phases, store, best):
+    """With ``refresh_phases``: each best cycles point's fewest and most cycles over its phases
+    (``phase_range``), and the note saying what the ranked figures are."""
+    if phases <= 1:
+        return []
+    for per in best.values():
+        b = per.get("cycles")
+        rec = store.record(b["key"]) if b else None
+        ph = ((rec or {}).get("result") or {}).get("refresh_phases")
+        if ph:
+            b["phase_range"] = [min(ph["cycles"]), max(ph["cycles"])]
+    return [f"points whose memory refreshes ran at {phases} places in the refresh schedule (the windows "
+            f"moved later by 0, 1/{phases} ... {phases - 1}/{phases} of tREFI); cycles, seconds and energy "
+            "are the means over those runs"]
 
 
 def format_run(run):
@@ -302,6 +320,9 @@ def format_run(run):
         for name, b in per.items():
             lines.append(f"    best {name:<12} {_objective_text(name, b['value']):>18}   {_point(b['point'], axes)}   "
                          f"[{b['key'][:12]}]")
+            if "phase_range" in b:
+                lo, hi = b["phase_range"]
+                lines.append(f"{'':22}the mean of runs of {lo:,} to {hi:,} cycles at the refresh phases")
         pts = s["pareto_points"][trace]
         lines.append(f"    Pareto front: {len(pts)} point(s)")
         for d in pts[:20]:

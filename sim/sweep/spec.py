@@ -17,6 +17,13 @@ A spec names a base architecture, the knobs to vary and the traces to run::
     keep_if:                               # every rule must hold (see constraints.py)
       - ge: [buffers.value_kib, {mul: [buffers.key_kib, 0.5]}]
     objectives: [cycles, energy, area]
+    refresh_phases: 4                      # each point at 4 places in the refresh schedule
+
+With ``refresh_phases`` N > 1, a point whose memory refreshes runs N times,
+its refresh windows moved later by 0, 1/N, ... (N-1)/N of tREFI, and is ranked
+by the means (cycles, seconds, energy): where a run starts in the refresh
+schedule is not part of the design, and on a short trace one window more or
+less can move the answer by more than the design change does.
 
 Everything is checked here, once; errors are :class:`SweepError` lines that
 name the file, the field, the value and what was expected.
@@ -35,11 +42,12 @@ from . import constraints as cons
 from .objectives import OBJECTIVES
 
 TOP_KEYS = ("name", "description", "base", "traces", "fixed", "axes", "linked", "keep_if",
-            "objectives")
+            "objectives", "refresh_phases")
 MAX_VALUES = 10000   # per axis; a range that long is a typo, not a plan
 MAX_POINTS = 1_000_000
 MAX_TRACES = 1000
 MAX_LINKED = 100     # linked groups
+MAX_PHASES = 16      # refresh_phases: places in the refresh schedule a point is run at
 
 
 class Spec:
@@ -52,7 +60,7 @@ class Spec:
     """
 
     def __init__(self, source, name, description, base_path, base, traces, fixed, dims,
-                 rules, objectives, data):
+                 rules, objectives, data, phases=1):
         self.source = source
         self.name = name
         self.description = description
@@ -64,6 +72,7 @@ class Spec:
         self.rules = rules
         self.objectives = objectives
         self.data = data
+        self.phases = phases              # refresh_phases: runs per point, 1 = as configured only
 
     @property
     def axis_paths(self):
@@ -135,12 +144,24 @@ def validate_spec(raw, source):
         raise SweepError(source, "axes", raw.get("axes"), "empty grid: expected at least one axis or linked group")
     rules = cons.parse_rules(raw.get("keep_if", []), source, "keep_if")
     objectives = _objectives(raw.get("objectives", ["cycles"]), source)
+    phases = _phases(raw.get("refresh_phases", 1), source)
     data = {
         "name": name, "description": description, "base": base_written,
         "traces": [w for w, _p in traces], "fixed": fixed, "dims": dims_data,
         "keep_if": copy.deepcopy(raw.get("keep_if", [])), "objectives": objectives,
     }
-    return Spec(source, name, description, base_path, base, traces, fixed, dims, rules, objectives, data)
+    if phases > 1:   # a spec without it keeps the identity it had before the key existed
+        data["refresh_phases"] = phases
+    return Spec(source, name, description, base_path, base, traces, fixed, dims, rules, objectives, data,
+                phases)
+
+
+def _phases(value, source):
+    if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= MAX_PHASES:
+        raise SweepError(source, "refresh_phases", value,
+                         f"expected a whole number from 1 (as configured) to {MAX_PHASES}: the places in the "
+                         "refresh schedule each point is run at")
+    return value
 
 
 def _traces(value, source, here):

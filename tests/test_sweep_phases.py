@@ -1,0 +1,164 @@
+"""Sweep ``refresh_phases``: each point run at N places in the DRAM refresh schedule and
+ranked by the means over those runs.
+
+The expected per-phase figures are simulated here directly with ``sim.simulate`` and the
+``dram.refresh_phase`` override (not through the sweep's worker), and the figure the
+sweep must rank by is their arithmetic mean, computed here. Refresh windows at a fixed
+interval whose phase relative to the workload is arbitrary, so a design is judged by its
+expected latency over the phase: common practice, no source.
+"""
+
+import contextlib
+import io
+import json
+import os
+import statistics
+
+import pandas as pd
+import pytest
+import yaml
+
+import sim
+from sim.cli import main
+from sim.report.inputs import load_inputs
+from sim.sweep import load_spec, point_key
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+SERVER = os.path.join(ROOT, "arch_configs", "server.yaml")
+TRACE = os.path.join(ROOT, "traces", "captured_short_moderate.npz")
+PHASES = (0.0, 0.25, 0.5, 0.75)
+
+
+def _spec(tmp_path, name="spec.yaml", **over):
+    doc = {"name": "phases", "base": SERVER, "traces": [TRACE], "axes": {"dram.channels": [8, 16]},
+           "objectives": ["cycles", "energy"], "refresh_phases": 4}
+    doc.update(over)
+    doc = {k: v for k, v in doc.items() if v is not None}
+    p = tmp_path / name
+    p.write_text(yaml.safe_dump(doc, sort_keys=False))
+    return str(p)
+
+
+def _direct(overrides):
+    arch = sim.load_arch(SERVER).with_overrides(overrides)
+    return sim.simulate(arch, TRACE, keep_intervals=False).to_dict()
+
+
+@pytest.fixture(scope="module")
+def swept(tmp_path_factory):
+    """The two-point sweep run once through the command line: (folder, stdout)."""
+    tmp = tmp_path_factory.mktemp("phases")
+    out = str(tmp / "out")
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf):
+        assert main(["sweep", _spec(tmp), "--out", out, "--jobs", "1"]) == 0
+    return out, buf.getvalue()
+
+
+@pytest.fixture(scope="module")
+def direct():
+    """Each point's documents at the four phases, simulated directly."""
+    return {c: [_direct({"dram.channels": c, "dram.refresh_phase": p}) for p in PHASES] for c in (8, 16)}
+
+
+def test_the_table_ranks_by_the_means_and_the_record_keeps_each_run(swept, direct):
+    out, _ = swept
+    with sim.open_sweep(out) as s:
+        frame = s.frame(columns=["config.dram.channels", "cycles", "seconds", "energy.total_pj",
+                                 "refresh_phases.runs", "refresh_phases.spread"])
+        records = {r["point"]["dram.channels"]: r for r in s.records()}
+    rows = {int(r["config.dram.channels"]): r for _i, r in frame.iterrows()}
+    for c, docs in direct.items():
+        cyc = [d["cycles"] for d in docs]
+        assert max(cyc) > 1.02 * min(cyc)     # the premise: the phase moves this trace's answer
+        row = rows[c]
+        assert row["cycles"] == round(statistics.fmean(cyc))
+        assert row["seconds"] == pytest.approx(statistics.fmean(d["seconds"] for d in docs), rel=1e-9)
+        assert row["energy.total_pj"] == pytest.approx(statistics.fmean(d["energy"]["total_pj"] for d in docs),
+                                                       rel=1e-9)
+        assert row["refresh_phases.runs"] == 4
+        assert row["refresh_phases.spread"] == pytest.approx((max(cyc) - min(cyc)) / min(cyc), rel=1e-9)
+        doc = records[c]["result"]
+        assert doc["cycles"] == cyc[0]        # the document is the run as configured
+        assert doc["refresh_phases"]["cycles"] == cyc
+        assert doc["refresh_phases"]["offsets"] == list(PHASES)
+
+
+def test_the_summary_names_the_best_mean_and_its_range(swept, direct):
+    out, stdout = swept
+    means = {c: statistics.fmean(d["cycles"] for d in docs) for c, docs in direct.items()}
+    best_c = min(means, key=means.get)
+    summary = json.load(open(os.path.join(out, "summary.json")))
+    best = summary["best"]["captured_short_moderate"]["cycles"]
+    assert best["point"] == {"dram.channels": best_c}
+    assert best["value"] == round(means[best_c])
+    cyc = [d["cycles"] for d in direct[best_c]]
+    assert best["phase_range"] == [min(cyc), max(cyc)]
+    assert any("4 places in the refresh schedule" in n for n in summary["notes"])
+    assert f"the mean of runs of {min(cyc):,} to {max(cyc):,} cycles at the refresh phases" in stdout
+
+
+def test_a_report_of_the_sweep_holds_ties_against_the_measured_spread(swept, direct):
+    out, _ = swept
+    runs, failed = load_inputs([out])
+    assert not failed
+    for r in runs:
+        cyc = [d["cycles"] for d in direct[r.point["dram.channels"]]]
+        assert r.phase_range == (min(cyc), max(cyc))
+        assert r.phase_spread == pytest.approx((max(cyc) - min(cyc)) / min(cyc))
+
+
+def test_a_memory_that_does_not_refresh_runs_once(tmp_path, monkeypatch):
+    import sim.run
+
+    calls = []
+    real = sim.run.simulate
+
+    def counting(arch, trace, **kw):
+        calls.append(arch.dram.refresh_phase)
+        return real(arch, trace, **kw)
+
+    monkeypatch.setattr(sim.run, "simulate", counting)
+    out = str(tmp_path / "out")
+    spec = _spec(tmp_path, fixed={"dram.model": "fixed-latency"})
+    assert main(["sweep", spec, "--out", out, "--jobs", "1", "--quiet"]) == 0
+    assert len(calls) == 2                    # one run per point: no refresh, nothing to move
+    with sim.open_sweep(out) as s:
+        for r in s.records():
+            assert "refresh_phases" not in r["result"]
+        frame = s.frame(columns=["config.dram.channels", "cycles", "refresh_phases.runs"])
+    for _i, row in frame.iterrows():
+        want = _direct({"dram.channels": int(row["config.dram.channels"]), "dram.model": "fixed-latency"})
+        assert row["cycles"] == want["cycles"]
+        assert pd.isna(row["refresh_phases.runs"])
+
+
+def test_without_it_points_keep_their_keys_and_the_spec_its_identity(tmp_path):
+    config = sim.load_arch(SERVER).to_dict()
+    assert point_key(config, "d", "b") == point_key(config, "d", "b", 1) != point_key(config, "d", "b", 4)
+    one = load_spec(_spec(tmp_path, "one.yaml", refresh_phases=1))
+    none = load_spec(_spec(tmp_path, "none.yaml", refresh_phases=None))
+    four = load_spec(_spec(tmp_path, "four.yaml"))
+    assert one.data == none.data and "refresh_phases" not in none.data
+    assert four.data["refresh_phases"] == 4 and four.phases == 4 and none.phases == 1
+
+
+@pytest.mark.parametrize("bad", [0, 17, 2.5, True, "4", [4]])
+def test_a_bad_count_is_one_line_naming_it(tmp_path, capsys, bad):
+    spec = _spec(tmp_path, refresh_phases=bad)
+    code = main(["sweep", spec, "--out", str(tmp_path / "out")])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1, err
+    assert spec in err[0] and "refresh_phases" in err[0] and "expected a whole number from 1" in err[0]
+    assert repr(bad) in err[0] or str(bad) in err[0]
+
+
+def test_a_result_with_a_bad_phase_section_is_refused(tmp_path, capsys):
+    doc = _direct({})
+    doc["refresh_phases"] = {"cycles": ["many"]}
+    p = tmp_path / "bad.json"
+    p.write_text(json.dumps(doc))
+    code = main(["report", str(p), "--out", str(tmp_path / "rep"), "--sensitivity", "off", "--no-replay"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1, err
+    assert str(p) in err[0] and "refresh_phases.cycles" in err[0] and "expected a list" in err[0]
