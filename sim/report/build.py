@@ -222,7 +222,9 @@ def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_ru
     return manifest
 
 
-SENS_INTRO = ("Each row is one rerun of the run's trace with one resource or memory policy changed; speedup = "
+SENS_INTRO = ("Each row is one rerun of the run's trace with one resource or memory policy changed (or, where "
+              "the memory refreshes, refresh turned off: not a change to make, but what refresh costs the run, "
+              "a bound on any refresh policy); speedup = "
               "the baseline's cycles (the recorded config simulated again by this build) / the rerun's cycles, "
               "energy = the rerun's energy / the baseline's. Measured, not estimated. Where the run's "
               "refresh-phase spread was measured, a speedup inside it is marked: not a difference the trace "

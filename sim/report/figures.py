@@ -662,9 +662,9 @@ def timeline(run, max_channels=16):
                   fig, ["lane", "t0_us", "t1_us", "state", "cause", "shown_as"], rows)
 
 
-SENS_COLORS = {"x2": "#2a9d8f", "/2": "#e76f51", "match": "#457b9d", "switch": "#8d6a9f"}
+SENS_COLORS = {"x2": "#2a9d8f", "/2": "#e76f51", "match": "#457b9d", "switch": "#8d6a9f", "bound": "#b0b0b0"}
 SENS_TEXT = {"x2": "doubled", "/2": "halved", "match": "lanes matched to the head width",
-             "switch": "memory policy switched"}
+             "switch": "memory policy switched", "bound": "refresh off (a bound, not a change)"}
 MAX_SENSITIVITY_PANELS = 12
 SPEEDUP_TICKS = (0.1, 0.25, 0.5, 0.67, 0.8, 1, 1.25, 1.5, 2, 4, 10)
 
@@ -731,7 +731,8 @@ def sensitivity(runs, table):
     more = len([r for r in runs if table.get(id(r))]) - len(rr)
     return Figure("sensitivity", "What to change: measured sensitivity",
                   "For each run, the same trace simulated again with one resource doubled (right of 1: faster) "
-                  "or halved, or a memory-controller refresh policy switched; the bar is the measured speedup, "
+                  "or halved, or a memory-controller refresh policy switched (grey: refresh off, what "
+                  "refresh costs, which no policy can beat); the bar is the measured speedup, "
                   "baseline cycles over cycles, the baseline "
                   "rerun by the same build. n/a: the change is not a valid datapath (the data file says why)."
                   + (f" {more} more runs in the data file." if more > 0 else ""),

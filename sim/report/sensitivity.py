@@ -7,7 +7,10 @@ window -- and, when its head widths leave lanes idle, with ``dot.lanes``
 matched to the head width; and, on a banked memory that refreshes, with the
 memory controller's refresh policy switched (refresh postponed, up to 8 owed;
 per-bank instead of all-bank refresh, where the memory standard has it): refresh
-can weigh far more on a latency-bound run than its share of time. The speedup
+can weigh far more on a latency-bound run than its share of time. Such a run is
+also simulated with refresh off (direction ``bound``): not a change to make,
+but what refresh costs it, which its stall split counts as memory waits and no
+refresh policy can beat. The speedup
 of each (baseline cycles / variant cycles, the baseline simulated again by the
 same build) and its energy ratio are what the table, the tornado chart and the
 verdict's "measured best change" show. Nothing here is estimated.
@@ -79,13 +82,26 @@ POLICIES = (
 )
 
 
+REFRESH_OFF = "refresh off"
+REFRESH_OFF_CHANGE = "turning refresh off (a bound, not a change to make: what refresh costs the run)"
+
+
+def _refresh_off(run, dram):
+    """The run without refresh (the refresh time of its mode set to 0), where its memory refreshes."""
+    if not takes_refresh(dram):
+        return []
+    path = "dram.t_rfc_ns" if dram.refresh == "all_bank" else "dram.t_rfc_pb_ns"
+    return [Variant(run, REFRESH_OFF, "bound", path, getattr(dram, path.rpartition(".")[2]), 0.0,
+                    change=REFRESH_OFF_CHANGE)]
+
+
 class Variant:
     """One rerun of one run: ``overrides`` on its recorded config, or why it cannot be made."""
 
     def __init__(self, run, resource, direction, path=None, old=None, new=None, error=None, change=None):
         self.run = run
         self.resource = resource      # a Resource name, LANES, or "baseline"
-        self.direction = direction    # "x2", "/2", "match", "switch" or "as recorded"
+        self.direction = direction    # "x2", "/2", "match", "switch", "bound" or "as recorded"
         self._change = change         # the change in words, for a switched policy
         self.path = path
         self.old = old
@@ -105,7 +121,7 @@ class Variant:
     def change(self):
         if self.direction == "match":
             return "lanes matched to the head width"
-        if self.direction == "switch":
+        if self.direction in ("switch", "bound"):
             return self._change
         verb = "doubling" if self.direction == "x2" else "halving"
         return f"{verb} the {self.resource}"
@@ -135,7 +151,7 @@ def _get(cfg, path):
 
 
 def _policy_variants(run, base):
-    """The refresh policies ``run``'s memory could switch to."""
+    """The refresh policies ``run``'s memory could switch to, and refresh off (:func:`_refresh_off`)."""
     from ..arch import load_arch
     from ..errors import InputError
 
@@ -144,7 +160,7 @@ def _policy_variants(run, base):
     except InputError:
         return []    # no longer a valid datapath: the resource variants say why
     return [Variant(run, pol.name, "switch", pol.path, getattr(dram, pol.path.rpartition(".")[2]), pol.new,
-                    change=pol.change) for pol in POLICIES if pol.applies(dram)]
+                    change=pol.change) for pol in POLICIES if pol.applies(dram)] + _refresh_off(run, dram)
 
 
 def plan_variants(run):
@@ -185,7 +201,7 @@ def plan_variants(run):
             continue
         v.config = cfg
     # a policy the memory does not have is not a change to suggest
-    return [v for v in out if not (v.direction == "switch" and v.config is None)]
+    return [v for v in out if not (v.direction in ("switch", "bound") and v.config is None)]
 
 
 def replayable(run):

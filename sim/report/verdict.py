@@ -106,8 +106,29 @@ def inside_phase_spread(speedup, spread):
 
 
 def sensitivity_text(sens, spread=0.0):
-    """The measured best change for one run, from its sensitivity rows (see :mod:`.sensitivity`);
-    ``spread``: the run's refresh-phase spread, when measured (a gain inside it is said to be)."""
+    """The measured best change for one run, from its sensitivity rows (see :mod:`.sensitivity`),
+    and what refresh costs it where that was measured (:func:`refresh_cost_text`); ``spread``: the
+    run's refresh-phase spread, when measured (a gain inside it is said to be)."""
+    if not sens:
+        return ""
+    bounds = [s for s in sens if s.get("direction") == "bound"]
+    text = _best_change_text([s for s in sens if s.get("direction") != "bound"], spread)
+    cost = refresh_cost_text(bounds)
+    return f"{text} {cost}" if text and cost else text or cost
+
+
+def refresh_cost_text(bounds):
+    """What refresh costs a run: its rerun with refresh off, when that is more than :data:`TIE` faster.
+    The stall split cannot say it (a burst held by a refresh window waits as any memory access does)."""
+    off = next((s for s in bounds if s.get("speedup") is not None), None)
+    if off is None or off["speedup"] <= 1 + TIE:
+        return ""
+    return (f"Refresh costs it {fm.show(off['speedup'], 'speedup')}: with refresh off it takes "
+            f"{off['cycles']:,} cycles; the stall split counts that time as memory waits, and no refresh "
+            f"policy can gain more.")
+
+
+def _best_change_text(sens, spread):
     if not sens:
         return ""
     ok = [s for s in sens if s.get("speedup") is not None]
