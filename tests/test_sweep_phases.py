@@ -95,6 +95,7 @@ def test_the_summary_names_the_best_mean_and_its_range(swept, direct):
     cyc = [d["cycles"] for d in direct[best_c]]
     assert best["phase_range"] == [min(cyc), max(cyc)]
     assert any("4 places in the refresh schedule" in n for n in summary["notes"])
+    assert not any("refresh intervals" in n for n in summary["notes"])
     assert f"the mean of runs of {min(cyc):,} to {max(cyc):,} cycles at the refresh phases" in stdout
 
 
@@ -131,6 +132,24 @@ def test_a_memory_that_does_not_refresh_runs_once(tmp_path, monkeypatch):
         want = _direct({"dram.channels": int(row["config.dram.channels"]), "dram.model": "fixed-latency"})
         assert row["cycles"] == want["cycles"]
         assert pd.isna(row["refresh_phases.runs"])
+
+
+def test_without_it_a_short_trace_gets_a_note_saying_how_short(tmp_path, direct):
+    """The best run's cycles over tREFI (3,900 ns on server's HBM2, JESD235A; from memory) at the
+    card's 1.2 GHz clock: under one interval here."""
+    out = str(tmp_path / "out")
+    assert main(["sweep", _spec(tmp_path, refresh_phases=None), "--out", out, "--jobs", "1", "--quiet"]) == 0
+    notes = json.load(open(os.path.join(out, "summary.json")))["notes"]
+    fastest = min(docs[0]["cycles"] for docs in direct.values())
+    arch = sim.load_arch(SERVER)
+    assert (arch.dram.t_refi_ns, arch.clock_ghz) == (3900.0, 1.2)
+    want = f"trace captured_short_moderate: its fastest run lasts {fastest / (3900 * 1.2):.1f} refresh intervals"
+    assert any(n.startswith(want) and "refresh_phases: 4" in n for n in notes), notes
+    # nothing refreshes on the fixed-latency model: no note
+    out2 = str(tmp_path / "out2")
+    spec = _spec(tmp_path, "fixed.yaml", refresh_phases=None, fixed={"dram.model": "fixed-latency"})
+    assert main(["sweep", spec, "--out", out2, "--jobs", "1", "--quiet"]) == 0
+    assert not any("refresh intervals" in n for n in json.load(open(os.path.join(out2, "summary.json")))["notes"])
 
 
 def test_without_it_points_keep_their_keys_and_the_spec_its_identity(tmp_path):
