@@ -804,6 +804,9 @@ def _add_sweep(sub):
                      help="this client's private key (if not in --cluster-cert)")
     p.add_argument("--screen", action="store_true",
                    help="skip points whose closed-form lower bound is already dominated by a measured point")
+    p.add_argument("--refresh-phases", type=_int_in(1, 16), metavar="N",   # 16: sweep.spec.MAX_PHASES
+                   help="run each point whose memory refreshes at N places in the refresh schedule and rank "
+                        "by the means (the spec's refresh_phases, which this replaces; 1 to 16)")
     p.add_argument("--force", action="store_true", help="reuse a folder that holds another sweep")
     p.add_argument("--quiet", "-q", action="store_true", help="no progress line, no notices")
     p.set_defaults(handler=_cmd_sweep)
@@ -832,6 +835,8 @@ def _cmd_sweep(args):
                          "expected --cluster tls://HOST:PORT with it")
     check_sweep_folder(args.out, args.force)
     spec = load_spec(args.spec)
+    if args.refresh_phases is not None:
+        spec = spec.with_phases(args.refresh_phases)
     if spec.grid_size * len(spec.traces) > 20_000 and not args.quiet:
         print(f"attnsim: checking the configs of {spec.grid_size:,} grid points before the first run "
               f"(about {spec.grid_size * 3e-3 / 60:.0f} min)", file=sys.stderr)

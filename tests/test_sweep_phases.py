@@ -22,6 +22,7 @@ import sim
 from sim.cli import main
 from sim.report.inputs import load_inputs
 from sim.sweep import load_spec, point_key
+from sim.sweep.spec import MAX_PHASES
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 SERVER = os.path.join(ROOT, "arch_configs", "server.yaml")
@@ -150,6 +151,21 @@ def test_without_it_a_short_trace_gets_a_note_saying_how_short(tmp_path, direct)
     spec = _spec(tmp_path, "fixed.yaml", refresh_phases=None, fixed={"dram.model": "fixed-latency"})
     assert main(["sweep", spec, "--out", out2, "--jobs", "1", "--quiet"]) == 0
     assert not any("refresh intervals" in n for n in json.load(open(os.path.join(out2, "summary.json")))["notes"])
+
+
+def test_the_command_line_option_replaces_the_spec_key(tmp_path, swept, capsys):
+    out = str(tmp_path / "out")
+    spec = _spec(tmp_path, refresh_phases=None)
+    assert main(["sweep", spec, "--out", out, "--jobs", "1", "--quiet", "--refresh-phases", "4"]) == 0
+    with sim.open_sweep(out) as a, sim.open_sweep(swept[0]) as b:
+        cols = ["config.dram.channels", "cycles", "energy.total_pj", "refresh_phases.spread"]
+        fa = a.frame(columns=cols).sort_values("config.dram.channels").reset_index(drop=True)
+        fb = b.frame(columns=cols).sort_values("config.dram.channels").reset_index(drop=True)
+    assert fa.equals(fb)
+    capsys.readouterr()
+    code = main(["sweep", spec, "--out", str(tmp_path / "o2"), "--refresh-phases", str(MAX_PHASES + 1)])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "--refresh-phases" in err[0] and f"[1, {MAX_PHASES}]" in err[0], err
 
 
 def test_without_it_points_keep_their_keys_and_the_spec_its_identity(tmp_path):

@@ -88,6 +88,15 @@ class Spec:
         text = json.dumps(doc, sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(text.encode()).hexdigest()
 
+    def with_phases(self, phases):
+        """The same spec run at ``phases`` places in the refresh schedule (``--refresh-phases``)."""
+        phases = _phases(phases, "--refresh-phases")
+        data = {k: v for k, v in self.data.items() if k != "refresh_phases"}
+        if phases > 1:
+            data["refresh_phases"] = phases
+        return Spec(self.source, self.name, self.description, self.base_path, self.base, self.traces, self.fixed,
+                    self.dims, self.rules, self.objectives, data, phases)
+
     def __repr__(self):
         return f"Spec({self.name!r} from {self.source}, {self.grid_size} grid points)"
 
