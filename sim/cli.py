@@ -888,7 +888,8 @@ def _add_report(sub):
     p.add_argument("--refresh-phases", action="store_true",
                    help="simulate each trace's two fastest runs again with the run starting 0.25, 0.5 and "
                         "0.75 of a refresh interval later (dram.refresh_phase); a lead inside how far they "
-                        "move is reported as a tie")
+                        "move is reported as a tie; and measure the sensitivity of a run of 20 refresh "
+                        "intervals or fewer at those four phases, by the means")
     where = p.add_mutually_exclusive_group()
     where.add_argument("--jobs", type=_int_in(1, 1024), metavar="N",
                        help="local processes for the sensitivity reruns (default: every core)")

@@ -8,9 +8,13 @@ interval whose phase relative to the workload is arbitrary: common practice, no
 source.
 """
 
+import csv
 import json
 import os
 import re
+import statistics
+
+import pytest
 
 import sim
 from sim.cli import main
@@ -56,3 +60,51 @@ def test_without_the_option_nothing_is_rerun(tmp_path):
     out = str(tmp_path / "rep")
     assert main(["report", p, "--out", out, "--sensitivity", "off", "--no-replay"]) == 0
     assert "Refresh phase:" not in open(os.path.join(out, "report.md")).read()
+
+
+def _mean_cycles(overrides):
+    """Rounded mean of the run's cycles at the four phases, simulated directly."""
+    arch = sim.load_arch("arch_configs/server.yaml")
+    cyc = [sim.simulate(arch.with_overrides({**overrides, "dram.refresh_phase": p}), TRACE,
+                        keep_intervals=False).to_dict()["cycles"] for p in (0.0, 0.25, 0.5, 0.75)]
+    return round(statistics.fmean(cyc)), cyc
+
+
+def test_a_short_runs_changes_are_compared_by_their_means(tmp_path):
+    """server on the captured short trace lasts under one tREFI (3,900 ns; JESD235A, from
+    memory): with --refresh-phases its baseline and each change run at the four phases and
+    the speedup is the ratio of the means (arithmetic mean, computed here)."""
+    p = str(tmp_path / "server.json")
+    assert main(["run", "--arch", "arch_configs/server.yaml", "--trace", TRACE, "--json", p]) == 0
+    out = str(tmp_path / "rep")
+    assert main(["report", p, "--out", out, "--refresh-phases", "--no-replay", "--jobs", "1"]) == 0
+    base, base_cyc = _mean_cycles({})
+    assert max(base_cyc) > 1.05 * min(base_cyc)          # the premise: the phase moves this run
+    wide, _ = _mean_cycles({"dram.channel_gbps": 64.0})
+    rows = list(csv.DictReader(open(os.path.join(out, "data", "sensitivity.csv"), newline="")))
+    row = next(r for r in rows if r["setting"] == "dram.channel_gbps 32 -> 64")
+    assert int(row["cycles"]) == wide
+    assert float(row["speedup"]) == pytest.approx(base / wide, rel=1e-12)
+    md = open(os.path.join(out, "report.md")).read()
+    assert f"| dram.channel_gbps 32 -> 64 | ok, means of 4 refresh phases | {base / wide:,.2f} |" in md
+    assert f"compared by their means (the baseline's: {base:,} cycles)" in md
+    assert "(means over 4 refresh phases)." in md
+
+
+def test_only_a_run_short_for_refresh_is_repeated():
+    from sim.report import sensitivity as S
+    from sim.report.inputs import Run, label_runs
+
+    def run_of(cfg, trace, **over):
+        doc = sim.simulate(sim.load_arch(f"arch_configs/{cfg}.yaml").with_overrides(over), trace,
+                           keep_intervals=False).to_dict()
+        r = Run(doc, "x", trace_path=trace)
+        label_runs([r])
+        return r
+
+    assert S.phases_for(run_of("server", TRACE), 4) == 4
+    assert S.phases_for(run_of("server", TRACE), 1) == 1
+    # 629,000 cycles at 1.2 GHz is about 134 refresh intervals of 3,900 ns: not repeated
+    long_run = run_of("server", "traces/captured_log_moderate.npz")
+    assert long_run.doc["cycles"] / (3900 * 1.2) > 100 and S.phases_for(long_run, 4) == 1
+    assert S.phases_for(run_of("server", TRACE, **{"dram.model": "fixed-latency"}), 4) == 1

@@ -228,7 +228,8 @@ SENS_INTRO = ("Each row is one rerun of the run's trace with one resource or mem
               "the baseline's cycles (the recorded config simulated again by this build) / the rerun's cycles, "
               "energy = the rerun's energy / the baseline's. Measured, not estimated. Where the run's "
               "refresh-phase spread was measured, a speedup inside it is marked: not a difference the trace "
-              "can show.")
+              "can show; with --refresh-phases a run short for refresh (20 refresh intervals or fewer) has "
+              "its baseline and each change run at four refresh phases and compared by their means.")
 
 
 def sensitivity_rows(items):
@@ -239,7 +240,9 @@ def sensitivity_rows(items):
     for r, sens in items:
         for row in sens:
             status = row["status"] if not row["error"] else f"n/a: {row['error']}"
-            if row["speedup"] and inside_phase_spread(row["speedup"], r.phase_spread):
+            if row["speedup"] and row.get("phases", 1) > 1:
+                status += f", means of {row['phases']} refresh phases"
+            elif row["speedup"] and inside_phase_spread(row["speedup"], r.phase_spread):
                 status += f", inside the {r.phase_spread:.0%} refresh-phase spread"
             rows.append([r.label, row["change"], row["setting"], status,
                          fm.value(row["speedup"], "speedup") if row["speedup"] else "-",
@@ -447,6 +450,7 @@ def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=Tr
     Everything that can refuse (the output folder, a sensitivity request over
     its limit) is checked before any simulation starts.
     """
+    from . import phases as phases_mod
     from . import sensitivity as S
     from .inputs import load_inputs
 
@@ -454,16 +458,17 @@ def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=Tr
     runs, failed = load_inputs([p for p in paths if p not in probes])
     check_out(out_dir, force)
     label_runs(runs)   # groups (per trace) decide which runs sensitivity picks
+    # with refresh phases, a short run's changes are measured as means over the same phases
+    n_phases = len(phases_mod.PHASES) + 1 if refresh_phases else 1
     picked, sens_note = S.choose(runs, sensitivity, S.DEFAULT_LIMIT if sensitivity_limit is None
-                                 else sensitivity_limit)
+                                 else sensitivity_limit, n_phases)
     notes = [sens_note] if sens_note else []
     table = {}
     if picked:
-        table, more = S.measure(picked, jobs=jobs, cluster=cluster, workers=workers, echo=echo)
+        table, more = S.measure(picked, jobs=jobs, cluster=cluster, workers=workers, echo=echo, phases=n_phases)
         notes += more
     if refresh_phases:
-        from . import phases
-        notes += phases.measure(runs, jobs=jobs, cluster=cluster, workers=workers, echo=echo)
+        notes += phases_mod.measure(runs, jobs=jobs, cluster=cluster, workers=workers, echo=echo)
     timeline_run = None
     if timeline_path:
         timeline_run = attach_timeline(runs, timeline_path)

@@ -9,7 +9,8 @@ the same reruns as the sensitivity, :func:`sim.report.sensitivity.measure`),
 and sets each run's ``phase_range`` (its fewest and most cycles) and
 ``phase_spread``: how far apart they come. The
 verdicts then call a latency lead inside that spread a tie
-(:mod:`sim.report.verdict`). Nothing here is estimated.
+(:mod:`sim.report.verdict`). Nothing here is estimated. The same option has a short run's
+sensitivity measured at the four phases, by the means (:func:`sim.report.sensitivity.measure`).
 """
 
 import copy

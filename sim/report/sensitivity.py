@@ -13,7 +13,11 @@ but what refresh costs it, which its stall split counts as memory waits and no
 refresh policy can beat. The speedup
 of each (baseline cycles / variant cycles, the baseline simulated again by the
 same build) and its energy ratio are what the table, the tornado chart and the
-verdict's "measured best change" show. Nothing here is estimated.
+verdict's "measured best change" show. Nothing here is estimated. With the
+report's ``--refresh-phases`` (and in the demo), a run short for refresh
+(:func:`sim.arch.short_for_refresh`) has its baseline and each variant run at
+the four refresh phases, and the speedups are ratios of the means: on such a
+run one refresh window more or less can outweigh the change itself.
 
 The reruns go through the sweep machinery: :func:`sim.sweep.worker.run_point`
 on the serial, local-pool or Dask backends of :mod:`sim.sweep.backends`, so a
@@ -108,7 +112,8 @@ class Variant:
         self.new = new
         self.error = error            # a reason when the variant is not a valid datapath
         self.config = None
-        self.outcome = None           # (cycles, seconds, energy_pj) once measured
+        self.outcome = None           # (cycles, seconds, energy_pj, cycles as configured) once measured
+        self.phases = 1               # refresh phases it is run at (means over them: measure's ``phases``)
 
     @property
     def setting(self):
@@ -232,19 +237,26 @@ def select(runs, mode):
     return [r for r in runs if r in out]
 
 
-def extra_runs(runs):
-    """Simulations sensitivity would start for ``runs`` (valid variants and baselines)."""
-    return sum(sum(1 for v in plan_variants(r) if v.config is not None) for r in runs if not replayable(r))
+def extra_runs(runs, phases=1):
+    """Simulations sensitivity would start for ``runs`` (valid variants and baselines, each at
+    :func:`phases_for` refresh phases)."""
+    total = 0
+    for r in runs:
+        if not replayable(r):
+            n = phases_for(r, phases)
+            total += sum(1 if v.direction == "bound" else n for v in plan_variants(r) if v.config is not None)
+    return total
 
 
-def choose(runs, mode, limit):
-    """``(selected runs, note or None)``; refuses an explicit mode over ``limit``."""
+def choose(runs, mode, limit, phases=1):
+    """``(selected runs, note or None)``; refuses an explicit mode over ``limit`` (simulations counted
+    at ``phases`` refresh phases for a run short for refresh, see :func:`measure`)."""
     if mode not in MODES:
         raise ReportError("--sensitivity", "sensitivity", mode, "expected one of " + ", ".join(MODES))
     if limit < 0:
         raise ReportError("--sensitivity-limit", "sensitivity_limit", limit, "expected a whole number >= 0")
     picked = select(runs, mode)
-    n = extra_runs(picked)
+    n = extra_runs(picked, phases)
     if n <= limit:
         return picked, None
     ways = []
@@ -252,7 +264,7 @@ def choose(runs, mode, limit):
         if alt != mode:
             rr = select(runs, alt)
             if len(rr) < len(picked):
-                ways.append(f"--sensitivity {alt} ({len(rr)} runs, {extra_runs(rr)} extra simulations)")
+                ways.append(f"--sensitivity {alt} ({len(rr)} runs, {extra_runs(rr, phases)} extra simulations)")
     ways.append(f"--sensitivity-limit {n}")
     text = (f"sensitivity for {len(picked)} runs takes {n} extra simulations, more than the limit of {limit}; "
             f"limit it with {' or '.join(ways)}")
@@ -270,17 +282,35 @@ class _Task:
         self.key = key
         self.variant = variant
         run = variant.run
-        self.args = (variant.config, run.trace_path, run.digest)
+        self.args = (variant.config, run.trace_path, run.digest) + ((variant.phases,) if variant.phases > 1 else ())
+
+
+def phases_for(run, phases):
+    """Refresh phases ``run``'s reruns take: ``phases`` where the run is short for refresh
+    (:func:`sim.arch.short_for_refresh`: where it starts in the refresh schedule can decide a
+    comparison, and a short run costs little to repeat), else 1."""
+    if phases <= 1:
+        return 1
+    from ..arch import load_arch, short_for_refresh
+    from ..errors import InputError
+
+    try:
+        arch = load_arch(_config_of(run), source="sensitivity")
+    except InputError:
+        return 1
+    return phases if short_for_refresh(arch, run.doc["cycles"]) else 1
 
 
 def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None, plan=None,
-            what="sensitivity"):
+            what="sensitivity", phases=1):
     """Simulate every valid variant of ``runs``; return ``{id(run): [row, ...]}`` and notes.
 
     A row: ``resource, direction, change, setting, path, old, new, status,
-    cycles, seconds, energy_pj, speedup, energy_ratio, error``. ``plan``: what
+    cycles, seconds, energy_pj, speedup, energy_ratio, error, phases``. ``plan``: what
     variants a run gets (default :func:`plan_variants`; the refresh phases use
-    :func:`sim.report.phases.plan_phases`), ``what`` names them in notes.
+    :func:`sim.report.phases.plan_phases`), ``what`` names them in notes. ``phases`` > 1: the
+    baseline and variants of a run short for refresh (:func:`phases_for`) are each run at that
+    many refresh phases (:func:`sim.sweep.worker.run_point`) and compared by their means.
     """
     from ..build import build_id
     from ..sweep.backends import make_backend
@@ -293,6 +323,9 @@ def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None
             notes.append(f"No {what} for {r.label}: {why}.")
             continue
         plans[id(r)] = (plan or plan_variants)(r)
+        n = phases_for(r, phases)
+        for v in plans[id(r)]:
+            v.phases = 1 if v.direction == "bound" else n   # without refresh every phase is the same run
     todo = [v for vs in plans.values() for v in vs if v.config is not None]
     if not todo:
         return {}, notes
@@ -301,8 +334,8 @@ def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None
         backend = make_backend(jobs=jobs if jobs is not None else (1 if len(todo) < 4 else None),
                                cluster=cluster, workers=workers)
     if echo:
-        echo(f"{what}: {len(todo)} simulations for {len(plans)} run{'s' if len(plans) > 1 else ''} "
-             f"on {backend.name}")
+        echo(f"{what}: {sum(v.phases for v in todo)} simulations for {len(plans)} run"
+             f"{'s' if len(plans) > 1 else ''} on {backend.name}")
     t0 = time.perf_counter()
     mine = build_id()
     queue = list(enumerate(todo))
@@ -318,8 +351,7 @@ def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None
                 elif build != mine:
                     v.error = f"simulated by build {build}, not {mine}"
                 else:
-                    v.outcome = (payload["cycles"], payload["seconds"],
-                                 payload.get("energy", {}).get("total_pj"))
+                    v.outcome = _outcome(payload)
     finally:
         if own:
             backend.close()
@@ -332,20 +364,35 @@ def measure(runs, backend=None, jobs=None, cluster=None, workers=None, echo=None
         if base.outcome is None:
             notes.append(f"No {what} for {run.label}: its baseline rerun failed ({base.error}).")
             continue
-        if base.outcome[0] != run.doc["cycles"]:
-            notes.append(f"{what.capitalize()} of {run.label} is measured against a rerun of {base.outcome[0]:,} "
+        if base.outcome[3] != run.doc["cycles"]:
+            notes.append(f"{what.capitalize()} of {run.label} is measured against a rerun of {base.outcome[3]:,} "
                          f"cycles (the document says {run.doc['cycles']:,}: another build made it).")
+        if base.phases > 1:
+            notes.append(f"{what.capitalize()} of {run.label}: a run of {run.doc['cycles']:,} cycles is short for "
+                         f"refresh, so its rerun and each change were run at {base.phases} places in the refresh "
+                         f"schedule and are compared by their means (the baseline's: {base.outcome[0]:,} cycles).")
         out[key] = [_row(v, base) for v in vs[1:]]
     return out, notes
+
+
+def _outcome(doc):
+    """(cycles, seconds, energy_pj, cycles as configured) of a rerun: the means over its refresh
+    phases when it was run at several (its ``refresh_phases`` section), else its own."""
+    energy = doc.get("energy", {}).get("total_pj")
+    ph = doc.get("refresh_phases")
+    if ph:
+        return ph["mean_cycles"], ph["mean_seconds"], ph.get("mean_energy_pj", energy), doc["cycles"]
+    return doc["cycles"], doc["seconds"], energy, doc["cycles"]
 
 
 def _row(v, base):
     row = {"resource": v.resource, "direction": v.direction, "change": v.change, "setting": v.setting,
            "path": v.path, "old": v.old, "new": v.new, "status": "ok" if v.outcome else "not run",
            "cycles": None, "seconds": None, "energy_pj": None, "speedup": None, "energy_ratio": None,
-           "error": v.error}
+           # the comparison's refresh phases (refresh off runs once: without refresh each phase is that run)
+           "error": v.error, "phases": base.phases}
     if v.outcome:
-        cycles, seconds, energy = v.outcome
+        cycles, seconds, energy, _configured = v.outcome
         row.update(cycles=cycles, seconds=seconds, energy_pj=energy, speedup=base.outcome[0] / cycles,
                    energy_ratio=energy / base.outcome[2] if energy and base.outcome[2] else None, error=None)
     return row

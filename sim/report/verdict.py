@@ -112,7 +112,12 @@ def sensitivity_text(sens, spread=0.0):
     if not sens:
         return ""
     bounds = [s for s in sens if s.get("direction") == "bound"]
+    n = max(s.get("phases", 1) for s in sens)
+    if n > 1:   # means over the phases: the spread of one run is not their uncertainty
+        spread = 0.0
     text = _best_change_text([s for s in sens if s.get("direction") != "bound"], spread)
+    if n > 1 and text:
+        text = text[:-1] + f" (means over {n} refresh phases)."
     cost = refresh_cost_text(bounds)
     return f"{text} {cost}" if text and cost else text or cost
 

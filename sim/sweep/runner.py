@@ -280,18 +280,12 @@ def summarize(plan, store, requested, counts, screened=False):
     }
 
 
-# A ranking on runs this many refresh intervals long or fewer can turn on where the windows fell
-# (our choice: on the bundled traces a run of about one interval moved by up to 19 % over phases,
-# the synthetic decode of about 13 by at most 3.5 %).
-SHORT_RUN_INTERVALS = 20
-
-
 def _short_run_notes(phases, store, best):
-    """Without ``refresh_phases``: a note for each trace whose best run (fewest cycles) lasts at
-    most :data:`SHORT_RUN_INTERVALS` refresh intervals of its memory, saying how many."""
+    """Without ``refresh_phases``: a note for each trace whose best run (fewest cycles) is short
+    for refresh (:func:`sim.arch.short_for_refresh`), saying how many refresh intervals it lasts."""
     if phases > 1:
         return []
-    from ..arch import load_arch, takes_refresh
+    from ..arch import load_arch, refresh_intervals, short_for_refresh
 
     out = []
     for trace, per in best.items():
@@ -300,10 +294,8 @@ def _short_run_notes(phases, store, best):
         if not rec or not rec.get("config"):
             continue
         arch = load_arch(rec["config"], source="sweep point")
-        if not takes_refresh(arch.dram):
-            continue
-        intervals = b["value"] / (arch.dram.t_refi_ns * arch.clock_ghz)
-        if intervals <= SHORT_RUN_INTERVALS:
+        if short_for_refresh(arch, b["value"]):
+            intervals = refresh_intervals(arch, b["value"])
             out.append(f"trace {trace}: its fastest run lasts {intervals:.1f} refresh intervals (tREFI "
                        f"{arch.dram.t_refi_ns:g} ns); on so few, one refresh window more or less can decide a "
                        "ranking: add refresh_phases: 4 to the spec to rank by the means over where the windows "
