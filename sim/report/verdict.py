@@ -235,7 +235,7 @@ def group_summary(group):
     best, tied, ranked = _ranked(group, _seconds, tie)
     if len(tied) > 1:
         out.append(f"tied within {tie:.0%}{why} for fastest: {', '.join(r.config_label for r in tied)} "
-                   f"({fm.show(_seconds(best), 'latency')})")
+                   f"({fm.show(_seconds(best), 'latency')})" + _phase_means(tied if why else ()))
     else:
         out.append(f"fastest {best.config_label} ({fm.show(_seconds(best), 'latency')}, "
                    f"{fm.show(_seconds(ranked[1]) / _seconds(best), 'speedup')} ahead of {ranked[1].config_label})")
@@ -248,6 +248,18 @@ def group_summary(group):
                        f"{fm.show(_energy(ranked_e[1]) / _energy(low), 'speedup')} less than "
                        f"{ranked_e[1].config_label})")
     return "; ".join(out) + "."
+
+
+def _phase_means(runs):
+    """The mean cycles over the refresh phases of runs tied by their phase spread, when every one
+    was measured at the phases: what each takes on average, wherever a run starts."""
+    if not runs or any(r.phase_mean is None or not r.doc["cycles"] for r in runs):
+        return ""
+
+    def mean_s(r):   # clocks differ between configs: latency, not cycles
+        return r.phase_mean * r.doc["seconds"] / r.doc["cycles"]
+    return (", on average over the refresh phases: "
+            + ", ".join(f"{r.config_label} {fm.show(mean_s(r), 'latency')}" for r in sorted(runs, key=mean_s)))
 
 
 def grouped_verdicts(groups, sensitivity=None, front=None):
