@@ -287,6 +287,23 @@ def limit_sentence(doc):
     return text
 
 
+def _refresh_short_text(d):
+    """For a run short for refresh (:func:`sim.arch.short_for_refresh`): how many refresh
+    intervals it lasts, and that where it starts in the refresh schedule can move it."""
+    from .arch import load_arch, refresh_intervals, short_for_refresh
+    from .errors import InputError
+
+    try:
+        arch = load_arch(d["arch"]["config"], source="result document")
+    except (InputError, KeyError, TypeError):
+        return ""
+    if not short_for_refresh(arch, d["cycles"]):
+        return ""
+    return (f"the run lasts {refresh_intervals(arch, d['cycles']):.1f} refresh intervals (tREFI "
+            f"{arch.dram.t_refi_ns:,g} ns): a run this short can move with where it starts in the refresh "
+            "schedule (dram.refresh_phase); attnsim report --refresh-phases measures by how much")
+
+
 def format_summary(result):
     """A readable multi-line summary for the terminal (every number through :mod:`sim.formats`)."""
     d = result.to_dict() if isinstance(result, Result) else result
@@ -297,6 +314,9 @@ def format_summary(result):
     lines.append(f"  time      {show(d['seconds'], 'latency')} = {show(d['cycles'], 'cycles')}"
                  + (f"  ({stages})" if stages else ""))
     lines.append(f"  limit     {limit_sentence(d)}")
+    short = _refresh_short_text(d)
+    if short:
+        lines.append(f"  refresh   {short}")
     b = d["bounds"]
     lines.append(f"  roofline  closed-form bound: {b['bound']} ({show(b['compute_cycles'], 'cycles')} compute, "
                  f"{show(b['memory_cycles'], 'cycles')} memory); the run reaches "

@@ -168,6 +168,21 @@ def test_the_command_line_option_replaces_the_spec_key(tmp_path, swept, capsys):
     assert code == 2 and len(err) == 1 and "--refresh-phases" in err[0] and f"[1, {MAX_PHASES}]" in err[0], err
 
 
+def test_a_run_summary_says_how_many_refresh_intervals_a_short_run_lasts(direct):
+    """The same count for one run in the terminal summary: cycles over tREFI at the clock."""
+    from sim.result import format_summary
+
+    doc = direct[16][0]                      # server as bundled (16 channels), phase 0
+    line = next(ln for ln in format_summary(doc).splitlines() if ln.strip().startswith("refresh "))
+    assert f"the run lasts {doc['cycles'] / (3900 * 1.2):.1f} refresh intervals (tREFI 3,900 ns)" in line
+    fixed = _direct({"dram.model": "fixed-latency"})
+    assert not any(ln.strip().startswith("refresh ") for ln in format_summary(fixed).splitlines())
+    long_doc = sim.simulate(sim.load_arch(SERVER), os.path.join(ROOT, "traces", "captured_log_moderate.npz"),
+                            keep_intervals=False).to_dict()
+    assert long_doc["cycles"] > 20 * 3900 * 1.2
+    assert not any(ln.strip().startswith("refresh ") for ln in format_summary(long_doc).splitlines())
+
+
 def test_without_it_points_keep_their_keys_and_the_spec_its_identity(tmp_path):
     config = sim.load_arch(SERVER).to_dict()
     assert point_key(config, "d", "b") == point_key(config, "d", "b", 1) != point_key(config, "d", "b", 4)
