@@ -20,6 +20,7 @@ import yaml
 
 import sim
 from sim.cli import main
+from sim.formats import show
 from sim.report.inputs import load_inputs
 from sim.sweep import load_spec, point_key
 from sim.sweep.spec import MAX_PHASES
@@ -100,7 +101,7 @@ def test_the_summary_names_the_best_mean_and_its_range(swept, direct):
     assert f"the mean of runs of {min(cyc):,} to {max(cyc):,} cycles at the refresh phases" in stdout
 
 
-def test_a_report_of_the_sweep_holds_ties_against_the_measured_spread(swept, direct):
+def test_a_report_of_the_sweep_holds_ties_against_the_measured_spread(swept, direct, tmp_path):
     out, _ = swept
     runs, failed = load_inputs([out])
     assert not failed
@@ -108,6 +109,16 @@ def test_a_report_of_the_sweep_holds_ties_against_the_measured_spread(swept, dir
         cyc = [d["cycles"] for d in direct[r.point["dram.channels"]]]
         assert r.phase_range == (min(cyc), max(cyc))
         assert r.phase_spread == pytest.approx((max(cyc) - min(cyc)) / min(cyc))
+    # the report ranks the group by the means, as the sweep did, and gives them
+    rep = str(tmp_path / "rep")
+    assert main(["report", out, "--out", rep, "--sensitivity", "off", "--no-replay"]) == 0
+    md = open(os.path.join(rep, "report.md")).read()
+    docs0 = {c: d[0] for c, d in direct.items()}
+    mean_s = {c: round(statistics.fmean(d["cycles"] for d in direct[c])) * docs0[c]["seconds"] / docs0[c]["cycles"]
+              for c in direct}
+    order = sorted(mean_s, key=mean_s.get)
+    assert ("on average over the refresh phases: "
+            + ", ".join(f"server (dram.channels={c}) {show(mean_s[c], 'latency')}" for c in order)) in md
 
 
 def test_a_memory_that_does_not_refresh_runs_once(tmp_path, monkeypatch):

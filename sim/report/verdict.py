@@ -202,6 +202,19 @@ def _seconds(r):
     return r.doc["seconds"]
 
 
+def _mean_seconds(r):
+    """The run's mean latency over the refresh phases (clocks differ between configs)."""
+    return r.phase_mean * r.doc["seconds"] / r.doc["cycles"]
+
+
+def _latency_key(runs):
+    """``(key, words)``: a group whose every run was measured at the refresh phases (a sweep run
+    with ``refresh_phases``) is ranked by the means, as the sweep ranked it; else by each run."""
+    if all(r.phase_mean is not None and r.doc["cycles"] for r in runs):
+        return _mean_seconds, " on average over the refresh phases"
+    return _seconds, ""
+
+
 def _energy(r):
     return r.doc["energy"]["total_pj"]
 
@@ -213,16 +226,17 @@ def rank_text(run, peers):
         return ""
     allr = [run] + peers
     tie, why = _latency_tie(allr)
-    best, tied, ranked = _ranked(allr, _seconds, tie)
+    key, mean = _latency_key(allr)
+    best, tied, ranked = _ranked(allr, key, tie)
     if run in tied and len(tied) > 1:
         others = [r.config_label for r in tied if r is not run]
         return f"Tied within {tie:.0%}{why} for fastest with {', '.join(others)}."
     if run is best:
         second = ranked[1]
-        return (f"Fastest of the {len(allr)} configs on {run.trace_label}, "
-                f"{fm.show(_seconds(second) / _seconds(run), 'speedup')} ahead of {second.config_label}.")
+        return (f"Fastest of the {len(allr)} configs on {run.trace_label}{mean}, "
+                f"{fm.show(key(second) / key(run), 'speedup')} ahead of {second.config_label}.")
     lead = ", ".join(r.config_label for r in tied)
-    return (f"{fm.show(_seconds(run) / _seconds(best), 'speedup')} the latency of the fastest "
+    return (f"{fm.show(key(run) / key(best), 'speedup')} the latency of the fastest{mean} "
             f"({lead}).")
 
 
@@ -232,13 +246,15 @@ def group_summary(group):
         return ""
     out = []
     tie, why = _latency_tie(group)
-    best, tied, ranked = _ranked(group, _seconds, tie)
+    key, mean = _latency_key(group)
+    best, tied, ranked = _ranked(group, key, tie)
     if len(tied) > 1:
-        out.append(f"tied within {tie:.0%}{why} for fastest: {', '.join(r.config_label for r in tied)} "
-                   f"({fm.show(_seconds(best), 'latency')})" + _phase_means(tied if why else ()))
+        means = _phase_means(tied if why else ())
+        out.append(f"tied within {tie:.0%}{why} for fastest: {', '.join(r.config_label for r in tied)}"
+                   + (means or f" ({fm.show(key(best), 'latency')}{mean})"))
     else:
-        out.append(f"fastest {best.config_label} ({fm.show(_seconds(best), 'latency')}, "
-                   f"{fm.show(_seconds(ranked[1]) / _seconds(best), 'speedup')} ahead of {ranked[1].config_label})")
+        out.append(f"fastest{mean} {best.config_label} ({fm.show(key(best), 'latency')}, "
+                   f"{fm.show(key(ranked[1]) / key(best), 'speedup')} ahead of {ranked[1].config_label})")
     if all(r.doc.get("energy", {}).get("total_pj") for r in group):
         low, tied_e, ranked_e = _ranked(group, _energy)
         if len(tied_e) > 1:
@@ -256,10 +272,9 @@ def _phase_means(runs):
     if not runs or any(r.phase_mean is None or not r.doc["cycles"] for r in runs):
         return ""
 
-    def mean_s(r):   # clocks differ between configs: latency, not cycles
-        return r.phase_mean * r.doc["seconds"] / r.doc["cycles"]
     return (", on average over the refresh phases: "
-            + ", ".join(f"{r.config_label} {fm.show(mean_s(r), 'latency')}" for r in sorted(runs, key=mean_s)))
+            + ", ".join(f"{r.config_label} {fm.show(_mean_seconds(r), 'latency')}"
+                        for r in sorted(runs, key=_mean_seconds)))
 
 
 def grouped_verdicts(groups, sensitivity=None, front=None):
