@@ -135,6 +135,10 @@ def _add_run(sub):
     p.add_argument("--seed", type=_int_in(0, 2 ** 63 - 1), help="seed for data-dependent choices (engine.seed)")
     p.add_argument("--timeline", metavar="OUT", type=_PATH,
                    help="write per-unit intervals (Trace Event Format JSON; '-': standard output)")
+    p.add_argument("--refresh-phases", type=_int_in(1, 16), metavar="N",
+                   help="also run it with the refresh schedule moved later by 1/N, 2/N ... of tREFI and give "
+                        "the spread and the means (the document's refresh_phases section; a report ranks such "
+                        "runs by the means); nothing more where the memory does not refresh")
     _common(p)
     p.set_defaults(handler=_cmd_run)
 
@@ -142,6 +146,7 @@ def _add_run(sub):
 def _cmd_run(args):
     import json
 
+    from .arch import takes_refresh
     from .run import simulate
     from .outputs import OutputPlan, write_atomic
     from .result import format_summary
@@ -169,10 +174,16 @@ def _cmd_run(args):
     with _Ticker(args, "simulating", progress, lambda: transactions(arch, trace, opts.get("grain_rows"))):
         result = _located(arch, lambda: simulate(arch, trace, keep_intervals=bool(tl_out), progress=progress,
                                                  **opts))
+    doc = result.to_dict()
+    if args.refresh_phases and args.refresh_phases > 1 and takes_refresh(arch.dram):
+        from .run import refresh_phase_runs
+        with _Ticker(args, f"simulating {args.refresh_phases - 1} more refresh phases", None, None):
+            doc["refresh_phases"] = _located(arch, lambda: refresh_phase_runs(arch, trace, args.refresh_phases,
+                                                                               doc, **opts))
     summary_to = sys.stderr if json_out == "-" or tl_out == "-" else sys.stdout
-    _say(args, format_summary(result), file=summary_to)
+    _say(args, format_summary(doc), file=summary_to)
     if json_out:
-        write_atomic(json_out, lambda fh: (json.dump(result.to_dict(), fh, indent=2, sort_keys=True),
+        write_atomic(json_out, lambda fh: (json.dump(doc, fh, indent=2, sort_keys=True),
                                            fh.write("\n")), option="--json")
         if json_out != "-":
             _say(args, f"result document: {json_out}", file=summary_to)

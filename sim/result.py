@@ -288,11 +288,18 @@ def limit_sentence(doc):
 
 
 def _refresh_short_text(d):
-    """For a run short for refresh (:func:`sim.arch.short_for_refresh`): how many refresh
-    intervals it lasts, and that where it starts in the refresh schedule can move it."""
+    """A run measured at several refresh phases: its range and mean over them. Else, for a run
+    short for refresh (:func:`sim.arch.short_for_refresh`): how many refresh intervals it lasts,
+    and that where it starts in the refresh schedule can move it."""
     from .arch import load_arch, refresh_intervals, short_for_refresh
     from .errors import InputError
 
+    ph = d.get("refresh_phases")
+    if ph:   # measured at several phases (attnsim run --refresh-phases, a sweep's refresh_phases)
+        lo, hi = min(ph["cycles"]), max(ph["cycles"])
+        return (f"{lo:,} to {hi:,} cycles over {ph['runs']} places in the refresh schedule "
+                f"({fm.show(ph['spread'], 'share')} apart); mean {fm.show(ph['mean_cycles'], 'cycles')} = "
+                f"{fm.show(ph['mean_seconds'], 'latency')}")
     try:
         arch = load_arch(d["arch"]["config"], source="result document")
     except (InputError, KeyError, TypeError):

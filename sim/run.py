@@ -45,3 +45,27 @@ def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, prog
     check_run(arch, trace, engine_options.get("grain_rows"), timeline=keep_intervals)
     return build_result(run_datapath(arch, trace, keep_intervals=keep_intervals, progress=progress,
                                      **engine_options))
+
+
+def refresh_phase_runs(arch: Arch, trace: Trace, phases: int, doc: dict, **engine_options: Any) -> dict:
+    """``doc`` (the run of ``arch`` on ``trace`` as configured) again with its refresh schedule
+    moved later by 1/phases, 2/phases ... of tREFI (wrapping round): the ``refresh_phases``
+    section of a result document -- each run's cycles, seconds and energy, and their means.
+    Where a run starts in the refresh schedule is not part of the design; on a short run one
+    window more or less can move it by more than a design change does."""
+    from .result import _round
+
+    own = arch.dram.refresh_phase
+    offsets = [k / phases for k in range(phases)]
+    docs = [doc] + [simulate(arch.with_overrides({"dram.refresh_phase": (own + off) % 1.0}, "refresh phases"),
+                             trace, keep_intervals=False, **engine_options).to_dict() for off in offsets[1:]]
+    cycles = [d["cycles"] for d in docs]
+    out = {"runs": phases, "offsets": offsets, "cycles": cycles,
+           "mean_cycles": round(sum(cycles) / phases),
+           "mean_seconds": _round(sum(d["seconds"] for d in docs) / phases),
+           "spread": _round((max(cycles) - min(cycles)) / min(cycles)) if min(cycles) else 0.0}
+    energy = [e for e in ((d.get("energy") or {}).get("total_pj") for d in docs) if e is not None]
+    if len(energy) == phases:
+        out["energy_pj"] = energy
+        out["mean_energy_pj"] = _round(sum(energy) / phases)
+    return out

@@ -194,6 +194,29 @@ def test_a_run_summary_says_how_many_refresh_intervals_a_short_run_lasts(direct)
     assert not any(ln.strip().startswith("refresh ") for ln in format_summary(long_doc).splitlines())
 
 
+def test_one_run_at_the_phases_from_the_command_line(tmp_path, direct, capsys):
+    out = str(tmp_path / "run.json")
+    assert main(["run", "--arch", SERVER, "--trace", TRACE, "--refresh-phases", "4", "--json", out]) == 0
+    stdout = capsys.readouterr().out
+    doc = json.load(open(out))
+    cyc = [d["cycles"] for d in direct[16]]          # server as bundled, simulated directly
+    assert doc["cycles"] == cyc[0] and doc["refresh_phases"]["cycles"] == cyc
+    mean = round(statistics.fmean(cyc))
+    assert doc["refresh_phases"]["mean_cycles"] == mean
+    assert f"{min(cyc):,} to {max(cyc):,} cycles over 4 places in the refresh schedule" in stdout
+    runs, _failed = load_inputs([out])
+    assert runs[0].phase_mean == mean and runs[0].phase_range == (min(cyc), max(cyc))
+    # nothing refreshes on the fixed-latency model: one run, no section
+    fixed = str(tmp_path / "fixed.json")
+    assert main(["run", "--arch", SERVER, "--trace", TRACE, "--set", "dram.model=fixed-latency",
+                 "--refresh-phases", "4", "--json", fixed, "--quiet"]) == 0
+    assert "refresh_phases" not in json.load(open(fixed))
+    capsys.readouterr()
+    assert main(["run", "--arch", SERVER, "--trace", TRACE, "--refresh-phases", "0"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--refresh-phases" in err[0], err
+
+
 def test_without_it_points_keep_their_keys_and_the_spec_its_identity(tmp_path):
     config = sim.load_arch(SERVER).to_dict()
     assert point_key(config, "d", "b") == point_key(config, "d", "b", 1) != point_key(config, "d", "b", 4)

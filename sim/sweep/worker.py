@@ -91,42 +91,19 @@ def _one_thread():
 
 def _simulate(config, trace, phases=1):
     from ..arch import load_arch, takes_refresh
-    from ..run import simulate
+    from ..run import refresh_phase_runs, simulate
 
     arch = load_arch(config, source="sweep point")
     # no per-unit intervals: the document is the same without them, and a point needs only the document
     doc = simulate(arch, trace, keep_intervals=False).to_dict()
     if phases > 1 and takes_refresh(arch.dram):
-        doc["refresh_phases"] = _phase_runs(arch, trace, phases, doc)
+        doc["refresh_phases"] = refresh_phase_runs(arch, trace, phases, doc)
     return doc
-
-
-def _phase_runs(arch, trace, phases, doc):
-    """The point again with its refresh schedule moved later by 1/phases, 2/phases ... of tREFI
-    (wrapping round): each run's cycles, seconds and energy, and their means, which the sweep
-    ranks by (where a run starts in the refresh schedule is not part of the design)."""
-    from ..result import _round
-    from ..run import simulate
-
-    own = arch.dram.refresh_phase
-    offsets = [k / phases for k in range(phases)]
-    docs = [doc] + [simulate(arch.with_overrides({"dram.refresh_phase": (own + off) % 1.0}, "sweep point"),
-                             trace, keep_intervals=False).to_dict() for off in offsets[1:]]
-    cycles = [d["cycles"] for d in docs]
-    out = {"runs": phases, "offsets": offsets, "cycles": cycles,
-           "mean_cycles": round(sum(cycles) / phases),
-           "mean_seconds": _round(sum(d["seconds"] for d in docs) / phases),
-           "spread": _round((max(cycles) - min(cycles)) / min(cycles)) if min(cycles) else 0.0}
-    energy = [(d.get("energy") or {}).get("total_pj") for d in docs]
-    if None not in energy:
-        out["energy_pj"] = energy
-        out["mean_energy_pj"] = _round(sum(energy) / phases)
-    return out
 
 
 def run_point(config, trace_path, trace_digest, phases=1):
     """Simulate one point (with ``phases`` > 1, at that many places in the refresh schedule, see
-    :func:`_phase_runs`). Returns ``(status, document_or_error_line, build_id)``.
+    :func:`sim.run.refresh_phase_runs`). Returns ``(status, document_or_error_line, build_id)``.
 
     Anything the simulation raises becomes an ``error`` outcome with a one-line
     message; only the death of the process itself escapes (the backend sees it).
