@@ -53,6 +53,11 @@ def _shown(text):
     return repr(text) if len(text) <= 40 else repr(text[:37] + "...")
 
 
+def _phases_arg(text):
+    """``--refresh-phases`` of a sweep: a count (16: sweep.spec.MAX_PHASES) or ``auto``."""
+    return "auto" if text.strip() == "auto" else _int_in(1, 16)(text)
+
+
 def _int_in(low, high):
     def parse(text):
         t = text.strip()
@@ -815,9 +820,10 @@ def _add_sweep(sub):
                      help="this client's private key (if not in --cluster-cert)")
     p.add_argument("--screen", action="store_true",
                    help="skip points whose closed-form lower bound is already dominated by a measured point")
-    p.add_argument("--refresh-phases", type=_int_in(1, 16), metavar="N",   # 16: sweep.spec.MAX_PHASES
+    p.add_argument("--refresh-phases", type=_phases_arg, metavar="N|auto",
                    help="run each point whose memory refreshes at N places in the refresh schedule and rank "
-                        "by the means (the spec's refresh_phases, which this replaces; 1 to 16)")
+                        "by the means (the spec's refresh_phases, which this replaces; 1 to 16; auto: 4 for a "
+                        "point whose run lasts 20 refresh intervals or fewer, else 1)")
     p.add_argument("--force", action="store_true", help="reuse a folder that holds another sweep")
     p.add_argument("--quiet", "-q", action="store_true", help="no progress line, no notices")
     p.set_defaults(handler=_cmd_sweep)

@@ -47,6 +47,9 @@ def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, prog
                                      **engine_options))
 
 
+AUTO_PHASES = 4   # refresh phases for a run short for refresh (a sweep's refresh_phases: auto)
+
+
 def refresh_phase_runs(arch: Arch, trace: Trace, phases: int, doc: dict, **engine_options: Any) -> dict:
     """``doc`` (the run of ``arch`` on ``trace`` as configured) again with its refresh schedule
     moved later by 1/phases, 2/phases ... of tREFI (wrapping round): the ``refresh_phases``

@@ -156,7 +156,7 @@ def test_without_it_a_short_trace_gets_a_note_saying_how_short(tmp_path, direct)
     arch = sim.load_arch(SERVER)
     assert (arch.dram.t_refi_ns, arch.clock_ghz) == (3900.0, 1.2)
     want = f"trace captured_short_moderate: its fastest run lasts {fastest / (3900 * 1.2):.1f} refresh intervals"
-    assert any(n.startswith(want) and "refresh_phases: 4" in n for n in notes), notes
+    assert any(n.startswith(want) and "refresh_phases: auto" in n for n in notes), notes
     # nothing refreshes on the fixed-latency model: no note
     out2 = str(tmp_path / "out2")
     spec = _spec(tmp_path, "fixed.yaml", refresh_phases=None, fixed={"dram.model": "fixed-latency"})
@@ -217,6 +217,28 @@ def test_one_run_at_the_phases_from_the_command_line(tmp_path, direct, capsys):
     assert len(err) == 1 and "--refresh-phases" in err[0], err
 
 
+def test_auto_repeats_only_the_points_whose_run_is_short(tmp_path, direct):
+    """auto: four phases where a run lasts 20 tREFI or fewer (server's 3,900 ns at 1.2 GHz), one
+    run where it lasts more (the long captured trace: over 100 intervals)."""
+    long_trace = os.path.join(ROOT, "traces", "captured_log_moderate.npz")
+    out = str(tmp_path / "out")
+    spec = _spec(tmp_path, traces=[TRACE, long_trace], axes={"dram.channels": [16]}, refresh_phases="auto")
+    assert main(["sweep", spec, "--out", out, "--jobs", "1", "--quiet"]) == 0
+    with sim.open_sweep(out) as s:
+        recs = {r["trace"]: r["result"] for r in s.records()}
+    short, long_doc = recs["captured_short_moderate"], recs["captured_log_moderate"]
+    assert short["refresh_phases"]["cycles"] == [d["cycles"] for d in direct[16]]
+    assert long_doc["cycles"] > 100 * 3900 * 1.2 and "refresh_phases" not in long_doc
+    notes = json.load(open(os.path.join(out, "summary.json")))["notes"]
+    assert any("20 refresh intervals or fewer ran at 4 places" in n for n in notes), notes
+    config = sim.load_arch(SERVER).to_dict()
+    assert len({point_key(config, "d", "b", p) for p in (1, 4, "auto")}) == 3
+    # the command line takes it too, and nothing else that is not a count
+    assert main(["sweep", _spec(tmp_path, "one.yaml", refresh_phases=None), "--out", str(tmp_path / "o2"),
+                 "--jobs", "1", "--quiet", "--refresh-phases", "auto"]) == 0
+    assert main(["sweep", spec, "--out", str(tmp_path / "o3"), "--refresh-phases", "often"]) == 2
+
+
 def test_without_it_points_keep_their_keys_and_the_spec_its_identity(tmp_path):
     config = sim.load_arch(SERVER).to_dict()
     assert point_key(config, "d", "b") == point_key(config, "d", "b", 1) != point_key(config, "d", "b", 4)
@@ -227,7 +249,7 @@ def test_without_it_points_keep_their_keys_and_the_spec_its_identity(tmp_path):
     assert four.data["refresh_phases"] == 4 and four.phases == 4 and none.phases == 1
 
 
-@pytest.mark.parametrize("bad", [0, 17, 2.5, True, "4", [4]])
+@pytest.mark.parametrize("bad", [0, 17, 2.5, True, "4", "Auto", [4]])
 def test_a_bad_count_is_one_line_naming_it(tmp_path, capsys, bad):
     spec = _spec(tmp_path, refresh_phases=bad)
     code = main(["sweep", spec, "--out", str(tmp_path / "out")])

@@ -61,7 +61,7 @@ class Plan:
 
 def point_key(config, trace_digest, build, phases=1):
     what = {"config": config, "trace_digest": trace_digest, "simulator": build}
-    if phases > 1:   # one run only keeps the key it had before refresh phases existed
+    if phases != 1:   # one run only keeps the key it had before refresh phases existed
         what["refresh_phases"] = phases
     text = json.dumps(what, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()[:32]

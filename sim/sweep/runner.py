@@ -18,6 +18,8 @@ points are not recorded; a run without screening runs them.
 import collections
 import math
 
+from ..arch import SHORT_RUN_INTERVALS
+from ..run import AUTO_PHASES
 from ..version import __version__
 from . import objectives as obj
 from .backends import TLSFiles, make_backend
@@ -39,7 +41,7 @@ class Task:
         self.point = point
         self.key = point.key
         self.args = (point.config, point.trace_path, point.trace_digest) + \
-            ((point.phases,) if point.phases > 1 else ())
+            ((point.phases,) if point.phases != 1 else ())
 
 
 class SweepRun:
@@ -283,7 +285,7 @@ def summarize(plan, store, requested, counts, screened=False):
 def _short_run_notes(phases, store, best):
     """Without ``refresh_phases``: a note for each trace whose best run (fewest cycles) is short
     for refresh (:func:`sim.arch.short_for_refresh`), saying how many refresh intervals it lasts."""
-    if phases > 1:
+    if phases != 1:
         return []
     from ..arch import load_arch, refresh_intervals, short_for_refresh
 
@@ -298,15 +300,15 @@ def _short_run_notes(phases, store, best):
             intervals = refresh_intervals(arch, b["value"])
             out.append(f"trace {trace}: its fastest run lasts {intervals:.1f} refresh intervals (tREFI "
                        f"{arch.dram.t_refi_ns:g} ns); on so few, one refresh window more or less can decide a "
-                       "ranking: add refresh_phases: 4 to the spec to rank by the means over where the windows "
-                       "fall")
+                       "ranking: refresh_phases: auto in the spec (or --refresh-phases auto) ranks such runs by "
+                       "the means over where the windows fall")
     return out
 
 
 def _phase_ranges(phases, store, best):
     """With ``refresh_phases``: each best cycles point's fewest and most cycles over its phases
     (``phase_range``), and the note saying what the ranked figures are."""
-    if phases <= 1:
+    if phases == 1:
         return []
     for per in best.values():
         b = per.get("cycles")
@@ -314,6 +316,11 @@ def _phase_ranges(phases, store, best):
         ph = ((rec or {}).get("result") or {}).get("refresh_phases")
         if ph:
             b["phase_range"] = [min(ph["cycles"]), max(ph["cycles"])]
+    if phases == "auto":
+        return [f"points whose run lasted {SHORT_RUN_INTERVALS} refresh intervals or fewer ran at {AUTO_PHASES} "
+                f"places in the refresh schedule (the windows moved later by 0, 1/{AUTO_PHASES} ... "
+                f"{AUTO_PHASES - 1}/{AUTO_PHASES} of tREFI), and their cycles, seconds and energy are the means "
+                "over those runs; the others ran once"]
     return [f"points whose memory refreshes ran at {phases} places in the refresh schedule (the windows "
             f"moved later by 0, 1/{phases} ... {phases - 1}/{phases} of tREFI); cycles, seconds and energy "
             "are the means over those runs"]

@@ -23,7 +23,9 @@ With ``refresh_phases`` N > 1, a point whose memory refreshes runs N times,
 its refresh windows moved later by 0, 1/N, ... (N-1)/N of tREFI, and is ranked
 by the means (cycles, seconds, energy): where a run starts in the refresh
 schedule is not part of the design, and on a short trace one window more or
-less can move the answer by more than the design change does.
+less can move the answer by more than the design change does. ``auto`` does
+that at 4 phases for a point whose run proves short for refresh
+(:func:`sim.arch.short_for_refresh`) and runs the others once.
 
 Everything is checked here, once; errors are :class:`SweepError` lines that
 name the file, the field, the value and what was expected.
@@ -72,7 +74,7 @@ class Spec:
         self.rules = rules
         self.objectives = objectives
         self.data = data
-        self.phases = phases              # refresh_phases: runs per point, 1 = as configured only
+        self.phases = phases              # refresh_phases: runs per point (1: as configured only), or "auto"
 
     @property
     def axis_paths(self):
@@ -92,7 +94,7 @@ class Spec:
         """The same spec run at ``phases`` places in the refresh schedule (``--refresh-phases``)."""
         phases = _phases(phases, "--refresh-phases")
         data = {k: v for k, v in self.data.items() if k != "refresh_phases"}
-        if phases > 1:
+        if phases != 1:
             data["refresh_phases"] = phases
         return Spec(self.source, self.name, self.description, self.base_path, self.base, self.traces, self.fixed,
                     self.dims, self.rules, self.objectives, data, phases)
@@ -159,17 +161,19 @@ def validate_spec(raw, source):
         "traces": [w for w, _p in traces], "fixed": fixed, "dims": dims_data,
         "keep_if": copy.deepcopy(raw.get("keep_if", [])), "objectives": objectives,
     }
-    if phases > 1:   # a spec without it keeps the identity it had before the key existed
+    if phases != 1:   # a spec without it keeps the identity it had before the key existed
         data["refresh_phases"] = phases
     return Spec(source, name, description, base_path, base, traces, fixed, dims, rules, objectives, data,
                 phases)
 
 
 def _phases(value, source):
+    if value == "auto":
+        return value
     if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= MAX_PHASES:
         raise SweepError(source, "refresh_phases", value,
-                         f"expected a whole number from 1 (as configured) to {MAX_PHASES}: the places in the "
-                         "refresh schedule each point is run at")
+                         f"expected a whole number from 1 (as configured) to {MAX_PHASES}, or auto: the places "
+                         "in the refresh schedule each point is run at")
     return value
 
 

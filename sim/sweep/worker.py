@@ -90,12 +90,14 @@ def _one_thread():
 
 
 def _simulate(config, trace, phases=1):
-    from ..arch import load_arch, takes_refresh
-    from ..run import refresh_phase_runs, simulate
+    from ..arch import load_arch, short_for_refresh, takes_refresh
+    from ..run import AUTO_PHASES, refresh_phase_runs, simulate
 
     arch = load_arch(config, source="sweep point")
     # no per-unit intervals: the document is the same without them, and a point needs only the document
     doc = simulate(arch, trace, keep_intervals=False).to_dict()
+    if phases == "auto":     # only a run short for refresh is repeated
+        phases = AUTO_PHASES if short_for_refresh(arch, doc["cycles"]) else 1
     if phases > 1 and takes_refresh(arch.dram):
         doc["refresh_phases"] = refresh_phase_runs(arch, trace, phases, doc)
     return doc
@@ -103,7 +105,8 @@ def _simulate(config, trace, phases=1):
 
 def run_point(config, trace_path, trace_digest, phases=1):
     """Simulate one point (with ``phases`` > 1, at that many places in the refresh schedule, see
-    :func:`sim.run.refresh_phase_runs`). Returns ``(status, document_or_error_line, build_id)``.
+    :func:`sim.run.refresh_phase_runs`; ``"auto"``: at :data:`sim.run.AUTO_PHASES` when the run
+    proves short for refresh, :func:`sim.arch.short_for_refresh`). Returns ``(status, document_or_error_line, build_id)``.
 
     Anything the simulation raises becomes an ``error`` outcome with a one-line
     message; only the death of the process itself escapes (the backend sees it).
