@@ -287,7 +287,7 @@ def limit_sentence(doc):
     return text
 
 
-def _refresh_short_text(d):
+def _refresh_text(d):
     """A run measured at several refresh phases: its range and mean over them. Else, for a run
     short for refresh (:func:`sim.arch.short_for_refresh`): how many refresh intervals it lasts,
     and that where it starts in the refresh schedule can move it."""
@@ -321,9 +321,9 @@ def format_summary(result):
     lines.append(f"  time      {show(d['seconds'], 'latency')} = {show(d['cycles'], 'cycles')}"
                  + (f"  ({stages})" if stages else ""))
     lines.append(f"  limit     {limit_sentence(d)}")
-    short = _refresh_short_text(d)
-    if short:
-        lines.append(f"  refresh   {short}")
+    refresh = _refresh_text(d)
+    if refresh:
+        lines.append(f"  refresh   {refresh}")
     b = d["bounds"]
     lines.append(f"  roofline  closed-form bound: {b['bound']} ({show(b['compute_cycles'], 'cycles')} compute, "
                  f"{show(b['memory_cycles'], 'cycles')} memory); the run reaches "

@@ -104,9 +104,11 @@ def _simulate(config, trace, phases=1):
 
 
 def run_point(config, trace_path, trace_digest, phases=1):
-    """Simulate one point (with ``phases`` > 1, at that many places in the refresh schedule, see
-    :func:`sim.run.refresh_phase_runs`; ``"auto"``: at :data:`sim.run.AUTO_PHASES` when the run
-    proves short for refresh, :func:`sim.arch.short_for_refresh`). Returns ``(status, document_or_error_line, build_id)``.
+    """Simulate one point. Returns ``(status, document_or_error_line, build_id)``.
+
+    ``phases`` > 1: the point at that many places in the refresh schedule
+    (:func:`sim.run.refresh_phase_runs`); ``"auto"``: at :data:`sim.run.AUTO_PHASES` when the
+    run proves short for refresh (:func:`sim.arch.short_for_refresh`), else once.
 
     Anything the simulation raises becomes an ``error`` outcome with a one-line
     message; only the death of the process itself escapes (the backend sees it).
