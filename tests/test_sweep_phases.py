@@ -1,5 +1,8 @@
-"""Sweep ``refresh_phases``: each point run at N places in the DRAM refresh schedule and
-ranked by the means over those runs.
+"""Refresh phases as a sweep and a run take them: a sweep's ``refresh_phases`` (N, or
+``auto`` for runs short for refresh) runs each point at N places in the DRAM refresh
+schedule and ranks it by the means; ``attnsim run --refresh-phases`` does the same for one
+run; the sweep summary and the run summary say how many refresh intervals a short run
+lasts; a report of such results ranks them by the means.
 
 The expected per-phase figures are simulated here directly with ``sim.simulate`` and the
 ``dram.refresh_phase`` override (not through the sweep's worker), and the figure the
