@@ -187,7 +187,7 @@ def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=Fals
         phase_notes.extend(phases)
     # what to change, measured on the fastest datapath of each trace
     t1 = time.perf_counter()
-    table, sens_notes = S.measure(S.select(runs, SENSITIVITY), jobs=workers, phases=len(PHASES) + 1)
+    table, sens_notes = S.measure(S.select(runs, SENSITIVITY), jobs=workers, phases=P.AUTO_PHASES)
     sens_s = time.perf_counter() - t1
     timeline = next((r for r in runs if r.doc["arch"]["name"] == TIMELINE_CONFIG), runs[0])
     build_report(runs, out_dir, failed=failed, force=True, timeline_run=timeline, title=REPORT_TITLE,

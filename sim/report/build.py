@@ -459,7 +459,7 @@ def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=Tr
     check_out(out_dir, force)
     label_runs(runs)   # groups (per trace) decide which runs sensitivity picks
     # with refresh phases, a short run's changes are measured as means over the same phases
-    n_phases = len(phases_mod.PHASES) + 1 if refresh_phases else 1
+    n_phases = phases_mod.AUTO_PHASES if refresh_phases else 1
     picked, sens_note = S.choose(runs, sensitivity, S.DEFAULT_LIMIT if sensitivity_limit is None
                                  else sensitivity_limit, n_phases)
     notes = [sens_note] if sens_note else []

@@ -15,10 +15,12 @@ sensitivity measured at the four phases, by the means (:func:`sim.report.sensiti
 
 import copy
 
+from ..run import AUTO_PHASES
 from .inputs import group_key
 from .sensitivity import Variant, _config_of
 
-PHASES = (0.25, 0.5, 0.75)
+# the places after the run as recorded, in tREFI: the same four a sweep's refresh_phases: auto takes
+PHASES = tuple(k / AUTO_PHASES for k in range(1, AUTO_PHASES))
 LEADERS = 2          # runs per trace measured: the fastest and the one it is compared with
 RESOURCE = "refresh phase"
 

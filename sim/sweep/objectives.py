@@ -21,6 +21,7 @@ which is monotone, so a bound never exceeds the value the document will show.
 
 import math
 
+from ..columns import PHASE_MEANS
 from .constraints import DERIVED
 
 
@@ -32,12 +33,16 @@ def _get(doc, *keys):
     return doc if isinstance(doc, (int, float)) and not isinstance(doc, bool) else None
 
 
-def _mean(doc, key, *path):
-    """A figure of a finished point: the mean over its refresh phases when it was run at several
-    (the ``refresh_phases`` section, see :mod:`sim.sweep.worker`), else the document's own."""
+_MEANS = dict(PHASE_MEANS)
+
+
+def _mean(doc, column):
+    """Figure ``column`` of a finished point: the mean over its refresh phases when it was run at
+    several (its ``refresh_phases`` section, as the store's table holds it, :mod:`sim.columns`),
+    else the document's own."""
     if isinstance(doc, dict) and isinstance(doc.get("refresh_phases"), dict):
-        return _get(doc, "refresh_phases", key)
-    return _get(doc, *path)
+        return _get(doc, "refresh_phases", _MEANS[column])
+    return _get(doc, *column.split("."))
 
 
 def _energy_floor(cf, c):
@@ -81,10 +86,10 @@ class Objective:
 
 
 OBJECTIVES = {o.name: o for o in (
-    Objective("cycles", "simulated cycles", "cycles", lambda r, c: _mean(r, "mean_cycles", "cycles"),
+    Objective("cycles", "simulated cycles", "cycles", lambda r, c: _mean(r, "cycles"),
               lambda cf, c: math.floor(cf["roofline_cycles"] * (1 - 1e-12))),
     Objective("energy", "energy of the run, pJ (result energy.total_pj)", "energy.total_pj",
-              lambda r, c: _mean(r, "mean_energy_pj", "energy", "total_pj"), _energy_floor,
+              lambda r, c: _mean(r, "energy.total_pj"), _energy_floor,
               fallback=("cycles",)),
     Objective("area", "area proxy, mm2 (result area.total_mm2)", "area.total_mm2",
               lambda r, c: _get(r, "area", "total_mm2"), _area_exact,
