@@ -52,7 +52,7 @@ def test_report_measures_the_spread_and_ties_a_lead_inside_it(tmp_path, capsys):
         spreads.append((max(cyc) - min(cyc)) / min(cyc))
         doc = json.load(open(paths[("server", "hbm2_stack", "edge").index(cfg)]))
         # the arithmetic mean of the four runs, as latency (the two cards' clocks differ)
-        means[cfg] = round(statistics.fmean(cyc)) * doc["seconds"] / doc["cycles"]
+        means[cfg] = statistics.fmean(cyc) * doc["seconds"] / doc["cycles"]
     lead = seconds[leaders[1]] / seconds[leaders[0]] - 1
     assert lead < max(spreads)              # the premise: the lead is inside the measured spread
     assert f"tied within {max(spreads):.0%} (how far these runs move" in md

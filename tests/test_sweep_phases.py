@@ -12,6 +12,7 @@ expected latency over the phase: common practice, no source.
 """
 
 import contextlib
+import csv
 import io
 import json
 import os
@@ -116,12 +117,16 @@ def test_a_report_of_the_sweep_holds_ties_against_the_measured_spread(swept, dir
     rep = str(tmp_path / "rep")
     assert main(["report", out, "--out", rep, "--sensitivity", "off", "--no-replay"]) == 0
     md = open(os.path.join(rep, "report.md")).read()
-    docs0 = {c: d[0] for c, d in direct.items()}
-    mean_s = {c: round(statistics.fmean(d["cycles"] for d in direct[c])) * docs0[c]["seconds"] / docs0[c]["cycles"]
-              for c in direct}
+    mean_s = {c: statistics.fmean(d["seconds"] for d in docs) for c, docs in direct.items()}
     order = sorted(mean_s, key=mean_s.get)
     assert ("on average over the refresh phases: "
             + ", ".join(f"server (dram.channels={c}) {show(mean_s[c], 'latency')}" for c in order)) in md
+    # the comparison table gives the mean latency beside the run's own (exact in the CSV, in us)
+    rows = {r["config"]: r for r in csv.DictReader(open(os.path.join(rep, "comparison.csv"), newline=""))}
+    for c, docs in direct.items():
+        want = statistics.fmean(d["seconds"] for d in docs) * 1e6
+        assert float(rows[f"server (dram.channels={c})"]["latency_mean_us"]) == pytest.approx(want, rel=1e-9)
+    assert "| mean over refresh phases (us) |" in md
 
 
 def test_a_memory_that_does_not_refresh_runs_once(tmp_path, monkeypatch):
@@ -208,7 +213,8 @@ def test_one_run_at_the_phases_from_the_command_line(tmp_path, direct, capsys):
     assert doc["refresh_phases"]["mean_cycles"] == mean
     assert f"{min(cyc):,} to {max(cyc):,} cycles over 4 places in the refresh schedule" in stdout
     runs, _failed = load_inputs([out])
-    assert runs[0].phase_mean == mean and runs[0].phase_range == (min(cyc), max(cyc))
+    assert runs[0].phase_mean_s == pytest.approx(statistics.fmean(d["seconds"] for d in direct[16]), rel=1e-9)
+    assert runs[0].phase_range == (min(cyc), max(cyc))
     # nothing refreshes on the fixed-latency model: one run, no section
     fixed = str(tmp_path / "fixed.json")
     assert main(["run", "--arch", SERVER, "--trace", TRACE, "--set", "dram.model=fixed-latency",

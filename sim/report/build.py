@@ -30,7 +30,7 @@ from ..version import __version__  # noqa: E402
 from .. import formats as fm  # noqa: E402
 from . import figures as F  # noqa: E402
 from .inputs import ReportError, group_key, label_runs  # noqa: E402
-from .tables import COLUMNS, display_rows, markdown_table, table_rows  # noqa: E402
+from .tables import columns_for, display_rows, markdown_table, table_rows  # noqa: E402
 from .verdict import grouped_verdicts, inside_phase_spread, short_line  # noqa: E402
 
 MAX_FIGURE_RUNS = 24   # per-run bar charts stay readable up to about this many bars
@@ -351,7 +351,7 @@ def _html(c):
                      + "</ul></div>")
     parts.append(f"<h2>Limits of this model</h2><p class='limits'>{e(LIMITS)}</p>")
     header, rows = display_rows(c["runs"])
-    numeric = [False, False] + [col.quantity is not None for col in COLUMNS]
+    numeric = [False, False] + [col.quantity is not None for col, _v in columns_for(c["runs"])]
     parts.append("<h2>Comparison</h2><table id='comparison'><tr>" + "".join(f"<th>{e(h)}</th>" for h in header)
                  + "</tr>")
     for row in rows:

@@ -40,13 +40,13 @@ class Run:
         self.intervals = intervals
         self.phase_spread = 0.0
         self.phase_range = None     # (fewest, most) cycles over refresh phases, when measured
-        self.phase_mean = None      # and their mean
+        self.phase_mean_s = None    # and the mean latency over them, seconds
         ph = doc.get("refresh_phases")
         if isinstance(ph, dict) and ph.get("cycles"):   # a sweep point run at several (its spec's refresh_phases)
             cyc = ph["cycles"]
             lo, hi = min(cyc), max(cyc)
             self.phase_range, self.phase_spread = (lo, hi), (hi - lo) / lo if lo else 0.0
-            self.phase_mean = round(sum(cyc) / len(cyc))
+            self.phase_mean_s = ph.get("mean_seconds")
         self.config_label = doc["arch"]["name"]
         self.trace_label = doc["trace"]["name"]
 

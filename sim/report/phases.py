@@ -71,7 +71,8 @@ def measure(runs, **backend):
         cycles = [row["cycles"] for row in ok] + [round(ok[0]["cycles"] * ok[0]["speedup"])]
         lo, hi = min(cycles), max(cycles)
         r.phase_range, r.phase_spread = (lo, hi), (hi - lo) / lo
-        r.phase_mean = round(sum(cycles) / len(cycles))
+        if r.doc["cycles"]:   # a run's latency is its cycles over its clock
+            r.phase_mean_s = sum(cycles) / len(cycles) * r.doc["seconds"] / r.doc["cycles"]
         notes.append(f"Refresh phase: {r.label} takes {lo:,} to {hi:,} cycles with the run starting "
                      f"0, 0.25, 0.5 and 0.75 of tREFI later in the refresh schedule ({r.phase_spread:.1%} "
                      f"apart); a lead inside that is reported as a tie.")

@@ -8,6 +8,8 @@ What limits a run comes from :func:`sim.limits.verdict_of`, the one
 classification the verdicts and figures read too.
 """
 
+from operator import attrgetter
+
 from .. import formats as fm
 from ..limits import verdict_of
 
@@ -47,7 +49,8 @@ def static_share(doc):
 
 
 class Column:
-    """One column: CSV key, header title, value getter (document units), quantity (or None: text)."""
+    """One column: CSV key, header title, value getter of a document (document units; None for a
+    column read from the run, see :func:`columns_for`), quantity (or None: text)."""
 
     def __init__(self, key, title, get, quantity=None, doc_path=None):
         self.key = key
@@ -56,15 +59,14 @@ class Column:
         self.doc_path = doc_path
         self.header = fm.header(title, quantity) if quantity else title
 
-    def exact(self, doc):
-        """The CSV value: the document's number in the shown unit, unrounded."""
-        v = self.get(doc)
+    def exact(self, v):
+        """The CSV value of ``v`` (document units): the number in the shown unit, unrounded."""
         if v is None or self.quantity is None:
             return v
         return v * fm.QUANTITIES[self.quantity].scale
 
-    def show(self, doc):
-        v = self.get(doc)
+    def show(self, v):
+        """``v`` (document units) for reading."""
         if v is None:
             return "-"
         return fm.value(v, self.quantity) if self.quantity else str(v)
@@ -94,19 +96,35 @@ COLUMNS = [
 ]
 
 
+# after the latency, where any run of the report was measured at several refresh phases
+MEAN_LATENCY = Column("latency_mean_us", "mean over refresh phases", None, "latency")
+
+
+def columns_for(runs):
+    """``[(column, value(run))]`` of the table for ``runs``: :data:`COLUMNS`, and
+    :data:`MEAN_LATENCY` after the latency when any run has a mean over refresh phases."""
+    cols = [(c, lambda r, c=c: c.get(r.doc)) for c in COLUMNS]
+    if any(r.phase_mean_s is not None for r in runs):
+        at = next(i for i, (c, _v) in enumerate(cols) if c.key == "latency_us") + 1
+        cols.insert(at, (MEAN_LATENCY, attrgetter("phase_mean_s")))
+    return cols
+
+
 def table_rows(runs):
     """``(header, rows)`` of exact values for the CSV."""
+    cols = columns_for(runs)
     header = ["run", "config", "trace", "simulator_build", "grain_rows", "issue_window", "seed",
-              "trace_digest"] + [c.key for c in COLUMNS]
+              "trace_digest"] + [c.key for c, _v in cols]
     rows = [[r.label, r.config_label, r.trace_label, r.build, *r.engine_settings, r.digest]
-            + [c.exact(r.doc) for c in COLUMNS] for r in runs]
+            + [c.exact(v(r)) for c, v in cols] for r in runs]
     return header, rows
 
 
 def display_rows(runs):
     """``(header, rows)`` of display strings for Markdown and HTML."""
-    header = ["config", "trace"] + [c.header for c in COLUMNS]
-    rows = [[r.config_label, r.trace_label] + [c.show(r.doc) for c in COLUMNS] for r in runs]
+    cols = columns_for(runs)
+    header = ["config", "trace"] + [c.header for c, _v in cols]
+    rows = [[r.config_label, r.trace_label] + [c.show(v(r)) for c, v in cols] for r in runs]
     return header, rows
 
 

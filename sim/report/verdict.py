@@ -12,6 +12,8 @@ the DRAM refresh schedule (``Run.phase_spread``): a lead inside that spread may
 be where the refresh windows fell.
 """
 
+from operator import attrgetter
+
 from .. import formats as fm
 from ..limits import UNIT_TEXT, cause_text, verdict_of
 
@@ -202,15 +204,14 @@ def _seconds(r):
     return r.doc["seconds"]
 
 
-def _mean_seconds(r):
-    """The run's mean latency over the refresh phases (clocks differ between configs)."""
-    return r.phase_mean * r.doc["seconds"] / r.doc["cycles"]
+# the run's mean latency over the refresh phases, seconds (latency: the configs' clocks differ)
+_mean_seconds = attrgetter("phase_mean_s")
 
 
 def _latency_key(runs):
     """``(key, words)``: a group whose every run was measured at the refresh phases (a sweep run
     with ``refresh_phases``) is ranked by the means, as the sweep ranked it; else by each run."""
-    if all(r.phase_mean is not None and r.doc["cycles"] for r in runs):
+    if all(r.phase_mean_s is not None for r in runs):
         return _mean_seconds, " on average over the refresh phases"
     return _seconds, ""
 
@@ -269,7 +270,7 @@ def group_summary(group):
 def _phase_means(runs):
     """The mean cycles over the refresh phases of runs tied by their phase spread, when every one
     was measured at the phases: what each takes on average, wherever a run starts."""
-    if not runs or any(r.phase_mean is None or not r.doc["cycles"] for r in runs):
+    if not runs or any(r.phase_mean_s is None for r in runs):
         return ""
 
     return (", on average over the refresh phases: "
