@@ -136,9 +136,11 @@ def terminal_table(runs):
 
 def phase_lines(runs):
     """The refresh-phase spread of the runs that have it, a line each (read under :data:`PHASE_HEAD`)."""
+    from .formats import show
+
     done = sorted((r for r in runs if r.phase_range), key=lambda r: (r.trace_label, r.doc["seconds"]))
     return [f"{r.trace_label} on {r.config_label}: {r.phase_range[0]:,} to {r.phase_range[1]:,} cycles "
-            f"({r.phase_spread:.1%} apart)" for r in done]
+            f"({r.phase_spread:.1%} apart), mean {show(r.phase_mean_s, 'latency')}" for r in done]
 
 
 def run_demo(out_dir=None, workers=None, configs=CONFIGS, echo=print, force=False, progress=False,

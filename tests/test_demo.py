@@ -98,4 +98,8 @@ def test_refresh_phase_spread_is_the_runs_own(demo_run):
     lo, hi = int(lo.replace(",", "")), int(hi.replace(",", ""))
     assert (lo, hi) == (min(cycles), max(cycles))
     assert run.phase_spread == (hi - lo) / lo
+    # and the mean latency over the four runs (arithmetic mean of cycles over the clock)
+    from sim.formats import show
+    mean_s = sum(cycles) / len(cycles) / (arch.clock_ghz * 1e9)
+    assert PHASE_LINES[-1].endswith(f", mean {show(mean_s, 'latency')}")
     assert PHASE_LINES[-1] in open(os.path.join(out, "report.md")).read()
