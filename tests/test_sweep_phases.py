@@ -127,6 +127,10 @@ def test_a_report_of_the_sweep_holds_ties_against_the_measured_spread(swept, dir
         want = statistics.fmean(d["seconds"] for d in docs) * 1e6
         assert float(rows[f"server (dram.channels={c})"]["latency_mean_us"]) == pytest.approx(want, rel=1e-9)
     assert "| mean over refresh phases (us) |" in md
+    # and the latency figure draws the means too
+    lat = {r["value"]: float(r["latency_us"]) for r in csv.DictReader(open(os.path.join(rep, "data", "latency.csv")))}
+    for c, docs in direct.items():
+        assert lat[str(c)] == pytest.approx(statistics.fmean(d["seconds"] for d in docs) * 1e6, rel=1e-9)
 
 
 def test_a_memory_that_does_not_refresh_runs_once(tmp_path, monkeypatch):

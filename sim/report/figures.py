@@ -17,6 +17,7 @@ from matplotlib.ticker import FixedFormatter, FixedLocator, NullLocator
 from .. import formats as fmt
 from ..limits import verdict_of
 from .inputs import group_key
+from .verdict import latency_key
 
 BUSY, IDLE = "#2a9d8f", "#d9d9d9"
 CAUSE_COLORS = ["#e76f51", "#f4a261", "#e9c46a", "#8d6cab", "#457b9d", "#c05780", "#7fb069", "#b0a18f"]
@@ -315,7 +316,9 @@ def latency(runs):
     gcol = _color_map(groups, SERIES)
     gname = group_names(groups)
     rows = []
-    lat = [r.doc["seconds"] * 1e6 for r in runs]
+    key, mean = latency_key(runs)   # the means over refresh phases where every run has one
+    lat = [key(r) * 1e6 for r in runs]
+    what = "mean latency over refresh phases" if mean else "latency"
     if axes:
         n = len(axes)
         fig = _fig(5.0 * min(n, 3) + 2.6, 4.2 * math.ceil(n / 3))
@@ -327,10 +330,10 @@ def latency(runs):
                 for r in runs:
                     if group_key(r) == g and all(k in r.point for k in keys):
                         v = tuple(r.point[k] for k in keys)
-                        if v not in best or r.doc["seconds"] < best[v].doc["seconds"]:
+                        if v not in best or key(r) < key(best[v]):
                             best[v] = r
                 xv = sorted(best)
-                ys = [best[v].doc["seconds"] * 1e6 for v in xv]
+                ys = [key(best[v]) * 1e6 for v in xv]
                 if len(keys) == 1:
                     xs = [v[0] for v in xv]
                 else:
@@ -349,14 +352,14 @@ def latency(runs):
                                    ha="right", fontsize=8)
             _log_if_spread(ax, lat)
             ax.set_xlabel(name + (" (linked: they move together)" if len(keys) > 1 else ""))
-            ax.set_ylabel("latency (us)")
+            ax.set_ylabel(f"{what} (us)")
             ax.grid(alpha=0.3, which="both")
         for ax in axs[n:]:
             ax.set_visible(False)
         _legend_outside(axs[min(n, 3) - 1], fontsize=8, title="trace", title_fontsize=8)
-        caption = ("Latency of the best point at each value of a sweep axis (best over the other axes), one "
-                   "line per trace; axes a sweep moves together (linked) share one panel, labelled with both "
-                   "values.")
+        caption = (f"{what.capitalize()} of the best point at each value of a sweep axis (best over the other "
+                   "axes), one line per trace; axes a sweep moves together (linked) share one panel, labelled "
+                   "with both values.")
     else:
         configs = []
         for r in runs:
@@ -372,19 +375,19 @@ def latency(runs):
                 rr = [r for r in runs if group_key(r) == g and r.config_label == c]
                 if rr:
                     xs.append(j + (i - (len(groups) - 1) / 2) * width)
-                    ys.append(rr[0].doc["seconds"] * 1e6)
+                    ys.append(key(rr[0]) * 1e6)
                     rows.append(["config", c, gname[g], ys[-1], rr[0].label])
             ax.scatter(xs, ys, marker=MARKERS[i % len(MARKERS)], color=gcol[g], s=45, zorder=3,
                        edgecolor="black", linewidth=0.5, label=gname[g])
         ax.set_xticks(x)
         ax.set_xticklabels(configs, rotation=20, ha="right")
         log = _log_if_spread(ax, lat)
-        ax.set_ylabel("latency (us" + (", log scale)" if log else ")"))
+        ax.set_ylabel(f"{what} (us" + (", log scale)" if log else ")"))
         ax.set_xlabel("config")
         ax.grid(alpha=0.3, which="both", axis="y")
         _legend_outside(ax, fontsize=8, title="trace", title_fontsize=8)
-        caption = ("Latency of each config (no sweep axis among the inputs): one point per trace, configs are "
-                   "categories, so points are not joined.")
+        caption = (f"{what.capitalize()} of each config (no sweep axis among the inputs): one point per trace, "
+                   "configs are categories, so points are not joined.")
     return Figure("latency", "Latency across the design space", caption, fig,
                   ["axis", "value", "trace", "latency_us", "run"], rows)
 

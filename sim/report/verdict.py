@@ -208,7 +208,7 @@ def _seconds(r):
 _mean_seconds = attrgetter("phase_mean_s")
 
 
-def _latency_key(runs):
+def latency_key(runs):
     """``(key, words)``: a group whose every run was measured at the refresh phases (a sweep run
     with ``refresh_phases``) is ranked by the means, as the sweep ranked it; else by each run."""
     if all(r.phase_mean_s is not None for r in runs):
@@ -227,7 +227,7 @@ def rank_text(run, peers):
         return ""
     allr = [run] + peers
     tie, why = _latency_tie(allr)
-    key, mean = _latency_key(allr)
+    key, mean = latency_key(allr)
     best, tied, ranked = _ranked(allr, key, tie)
     if run in tied and len(tied) > 1:
         others = [r.config_label for r in tied if r is not run]
@@ -247,7 +247,7 @@ def group_summary(group):
         return ""
     out = []
     tie, why = _latency_tie(group)
-    key, mean = _latency_key(group)
+    key, mean = latency_key(group)
     best, tied, ranked = _ranked(group, key, tie)
     if len(tied) > 1:
         means = _phase_means(tied if why else ())
