@@ -21,6 +21,7 @@ from .sensitivity import Variant, _config_of
 
 # the places after the run as recorded, in tREFI: the same four a sweep's refresh_phases: auto takes
 PHASES = tuple(k / AUTO_PHASES for k in range(1, AUTO_PHASES))
+_PLACES = ", ".join(f"{p:g}" for p in (0.0,) + PHASES[:-1]) + f" and {PHASES[-1]:g}"   # "0, 0.25, 0.5 and 0.75"
 LEADERS = 2          # runs per trace measured: the fastest and the one it is compared with
 RESOURCE = "refresh phase"
 
@@ -74,6 +75,6 @@ def measure(runs, **backend):
         if r.doc["cycles"]:   # a run's latency is its cycles over its clock
             r.phase_mean_s = sum(cycles) / len(cycles) * r.doc["seconds"] / r.doc["cycles"]
         notes.append(f"Refresh phase: {r.label} takes {lo:,} to {hi:,} cycles with the run starting "
-                     f"0, 0.25, 0.5 and 0.75 of tREFI later in the refresh schedule ({r.phase_spread:.1%} "
+                     f"{_PLACES} of tREFI later in the refresh schedule ({r.phase_spread:.1%} "
                      f"apart); a lead inside that is reported as a tie.")
     return notes
