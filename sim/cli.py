@@ -144,6 +144,11 @@ def _add_run(sub):
                    help="also run it with the refresh schedule moved later by 1/N, 2/N ... of tREFI and give "
                         "the spread and the means (the document's refresh_phases section; a report ranks such "
                         "runs by the means); nothing more where the memory does not refresh")
+    p.add_argument("--sample-decode", type=_int_in(2, 4096), metavar="K",
+                   help="simulate each request's first K decode tokens and then the middle token of every K, "
+                        "each standing for its K: the summary and the document's decode_sample section give the "
+                        "whole trace's estimated cycles and the spread of two half-samples; every other figure "
+                        "is the simulated part's")
     _common(p)
     p.set_defaults(handler=_cmd_run)
 
@@ -167,6 +172,11 @@ def _cmd_run(args):
     trace = load_trace(args.trace)
     for note in key_plane_notes(arch, trace):
         _warn(args, note)
+    sample = None
+    if args.sample_decode:
+        from .trace.sample import sample_decode
+        sample = sample_decode(trace, args.sample_decode, source=args.trace, field="--sample-decode")
+        trace = sample.part
     opts = {}
     if args.grain_rows is not None:
         opts["grain_rows"] = args.grain_rows
@@ -180,6 +190,9 @@ def _cmd_run(args):
         result = _located(arch, lambda: simulate(arch, trace, keep_intervals=bool(tl_out), progress=progress,
                                                  **opts))
     doc = result.to_dict()
+    if sample is not None:
+        from .run import estimate_whole
+        doc["decode_sample"] = estimate_whole(doc, sample)
     if args.refresh_phases and args.refresh_phases > 1 and takes_refresh(arch.dram):
         from .run import refresh_phase_runs
         with _Ticker(args, f"simulating {args.refresh_phases - 1} more refresh phases", None, None):

@@ -311,6 +311,25 @@ def _refresh_text(d):
             "schedule (dram.refresh_phase); attnsim report --refresh-phases measures by how much")
 
 
+SAMPLE_NOISY = 0.01   # half-sample spread above which a sampled estimate is called too noisy to rank by
+
+
+def _sample_text(d):
+    """A run of a decode-sampled part: what it simulated and the whole trace's estimate."""
+    ds = d.get("decode_sample")
+    if not ds:
+        return ""
+    text = (f"one decode token in {ds['every']} after each request's first {ds['warmup_tokens']} "
+            f"({ds['simulated_decode_steps']:,} of {ds['decode_steps']:,} decode steps simulated): the whole "
+            f"trace estimated at {fm.show(ds['cycles'], 'cycles')} = {fm.show(ds['seconds'], 'latency')}")
+    if "half_sample_spread" in ds:
+        text += f", its two half-samples {fm.show(ds['half_sample_spread'], 'share')} either side"
+        if ds["half_sample_spread"] > SAMPLE_NOISY:
+            text += (" (the tokens' times vary too much for the sample: runs closer than that cannot be told "
+                     "apart; sample fewer tokens out or run the whole trace)")
+    return text + "; every other figure here is the simulated part's"
+
+
 def format_summary(result):
     """A readable multi-line summary for the terminal (every number through :mod:`sim.formats`)."""
     d = result.to_dict() if isinstance(result, Result) else result
@@ -320,6 +339,9 @@ def format_summary(result):
     stages = ", ".join(f"{k} {show(c, 'cycles')}" for k, c in d["per_stage_cycles"].items())
     lines.append(f"  time      {show(d['seconds'], 'latency')} = {show(d['cycles'], 'cycles')}"
                  + (f"  ({stages})" if stages else ""))
+    sample = _sample_text(d)
+    if sample:
+        lines.append(f"  sampled   {sample}")
     lines.append(f"  limit     {limit_sentence(d)}")
     refresh = _refresh_text(d)
     if refresh:

@@ -72,3 +72,34 @@ def refresh_phase_runs(arch: Arch, trace: Trace, phases: int, doc: dict, **engin
         out["energy_pj"] = energy
         out["mean_energy_pj"] = _round(sum(energy) / phases)
     return out
+
+
+def estimate_whole(doc: dict, sample: Any) -> dict:
+    """The whole trace's cycles and seconds estimated from ``doc``, the run of a sampled part
+    (``sample``: a :class:`sim.trace.sample.DecodeSample`): the ``decode_sample`` section of
+    its result document. Each step's share of the run (``per_step_cycles``, which sums to the
+    run's cycles) counts as many times as the steps it stands for. The two half-samples of
+    strata give two estimates of their own; half their distance over the estimate is the ``half_sample_spread``."""
+    from .result import _round
+
+    per_step = doc["per_step_cycles"]
+    if len(per_step) != len(sample.weights):
+        raise ValueError(f"estimate_whole: the document has {len(per_step)} steps, the sample "
+                         f"{len(sample.weights)}: expected the run of this sample's part")
+    full = sum(x for x, h in zip(per_step, sample.halves) if h < 0)
+    part = [0.0, 0.0]
+    stands = [0, 0]
+    for x, w, h in zip(per_step, sample.weights, sample.halves):
+        if h >= 0:
+            part[h] += w * x
+            stands[h] += w
+    cycles = full + part[0] + part[1]
+    per_cycle = doc["seconds"] / doc["cycles"] if doc["cycles"] else 0.0
+    out = {"every": sample.every, "warmup_tokens": sample.every, "decode_steps": sample.decode_tokens,
+           "simulated_decode_steps": sample.simulated_tokens, "simulated_cycles": doc["cycles"],
+           "cycles": round(cycles), "seconds": _round(round(cycles) * per_cycle)}
+    if stands[0] and stands[1]:
+        halves = [full + part[h] * (stands[0] + stands[1]) / stands[h] for h in (0, 1)]
+        out["half_cycles"] = [round(c) for c in halves]
+        out["half_sample_spread"] = _round(abs(halves[0] - halves[1]) / 2 / cycles) if cycles else 0.0
+    return out

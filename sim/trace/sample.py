@@ -1,0 +1,88 @@
+"""Decode-token sampling: which decode tokens a sampled run simulates, and what each stands for.
+
+A long decode repeats nearly the same work token after token (the context grows
+by one row a token), so a run can simulate some tokens and stand each one for
+its neighbours. Each request's decode tokens at each layer are taken in order:
+the first ``every`` run in full (the switch from prefill to decode leaves write
+traffic and buffer state that settle over a few tokens), the rest fall into
+strata of ``every`` consecutive tokens (the last may be shorter), and the
+middle token of each stratum is simulated and stands for all of its stratum (of
+an even stratum's two middle tokens, the lower in even strata and the upper in
+odd ones, so their offsets cancel)
+(systematic sampling with a centrally located start, exact for work that grows
+linearly along the decode; Cochran, *Sampling Techniques*, 3rd ed., 1977,
+ch. 8, from memory). Prefill steps always run. Strata alternate between two
+half-samples, so the estimate comes with the spread of two independent ones
+(interpenetrating subsamples, Mahalanobis 1946, from memory).
+
+Every request samples the same token indices at every layer, so a batch keeps
+its shape and a kept token's steps keep their own context, kept keys and cache
+writes: the part is a valid trace, checked like any other, and its header
+records the sampling (``provenance.decode_sample``). What the estimate of the
+whole is made of (:class:`DecodeSample`) goes to :func:`sim.run.estimate_whole`.
+"""
+
+from __future__ import annotations
+
+import copy
+from dataclasses import dataclass
+
+from ..errors import InputError
+from .format import Trace, validate
+
+MAX_EVERY = 4096     # tokens a sampled token may stand for
+
+
+@dataclass(frozen=True)
+class DecodeSample:
+    """A sampled part of a trace: the part, and for each of its steps (in order) how many
+    steps of the whole it stands for (``weights``: 1 for prefill and warm-up tokens) and its
+    stratum's parity (``halves``: 0 or 1 for a sampled token, -1 for a step run in full),
+    which splits the strata into two interleaved half-samples for the error estimate."""
+
+    part: Trace
+    every: int
+    weights: tuple
+    halves: tuple
+    decode_tokens: int      # decode steps of the whole trace (over requests and layers)
+    simulated_tokens: int   # those the part keeps
+
+
+def sample_decode(trace: Trace, every: int, source: str = "decode sample", field: str = "every") -> DecodeSample:
+    """The part of ``trace`` a run sampling every ``every``-th decode token simulates.
+    Raises :class:`InputError` naming ``source`` and ``field`` for a bad ``every`` or a trace
+    where it would leave out no token."""
+    if isinstance(every, bool) or not isinstance(every, int) or not 2 <= every <= MAX_EVERY:
+        raise InputError(source, field, every, f"expected a whole number from 2 to {MAX_EVERY}")
+    total = {}   # (request, layer) -> decode steps
+    for s in trace.steps:
+        if s.stage == "decode":
+            total[s.request, s.layer] = total.get((s.request, s.layer), 0) + 1
+    seen, kept, weights, halves = {}, [], [], []
+    for s in trace.steps:
+        if s.stage != "decode":
+            kept.append(s), weights.append(1), halves.append(-1)
+            continue
+        k = seen.get((s.request, s.layer), 0)
+        seen[s.request, s.layer] = k + 1
+        if k < every:                      # warm-up: in full
+            kept.append(s), weights.append(1), halves.append(-1)
+            continue
+        stratum, at = divmod(k - every, every)
+        size = min(every, total[s.request, s.layer] - every - stratum * every)
+        if at == ((size - 1) // 2 if stratum % 2 == 0 else size // 2):
+            kept.append(s), weights.append(size), halves.append(stratum % 2)
+    decode = sum(total.values())
+    simulated = sum(1 for s in kept if s.stage == "decode")
+    if simulated == decode:
+        longest = max(total.values(), default=0)
+        raise InputError(source, field, every,
+                         f"expected a trace with more than {every + 1} decode tokens a request at a layer "
+                         f"(it has at most {longest}): nothing would be left out")
+    header = copy.deepcopy(trace.header)
+    header["name"] = f"{trace.name}-sampled"[:200]
+    header.setdefault("provenance", {})["decode_sample"] = {
+        "from": trace.name, "digest": trace.digest(), "every": every, "warmup_tokens": every,
+        "decode_steps": decode, "simulated_decode_steps": simulated}
+    part = validate(Trace(header, kept, source=f"{trace.source} (decode sample)"))
+    return DecodeSample(part, every, tuple(weights), tuple(halves), decode, simulated)
