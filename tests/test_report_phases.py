@@ -116,3 +116,41 @@ def test_only_a_run_short_for_refresh_is_repeated():
     long_run = run_of("server", "traces/captured_log_moderate.npz")
     assert long_run.doc["cycles"] / (3900 * 1.2) > 100 and S.phases_for(long_run, 4) == 1
     assert S.phases_for(run_of("server", TRACE, **{"dram.model": "fixed-latency"}), 4) == 1
+
+
+DEMO = "traces/demo_decode.yaml"
+
+
+@pytest.fixture(scope="module")
+def plain_doc():
+    return sim.simulate("arch_configs/server.yaml", DEMO, keep_intervals=False).to_dict()
+
+
+@pytest.mark.parametrize("key", ["mean_seconds", "mean_cycles", "mean_energy_pj"])
+@pytest.mark.parametrize("bad", ["x", -1, 0, True, None, float("inf")])
+def test_a_bad_phase_mean_is_one_line_naming_it(plain_doc, tmp_path, capsys, key, bad):
+    """The section's means as ``sim.run.refresh_phase_runs`` writes them are positive finite
+    numbers; anything else is refused in one line naming the file, the field and the value."""
+    doc = dict(plain_doc, refresh_phases={"cycles": [plain_doc["cycles"]] * 4, "mean_cycles": plain_doc["cycles"],
+                                          "mean_seconds": plain_doc["seconds"],
+                                          "mean_energy_pj": plain_doc["energy"]["total_pj"], key: bad})
+    p = tmp_path / "bad.json"
+    p.write_text(json.dumps(doc))
+    code = main(["report", str(p), "--out", str(tmp_path / "rep"), "--sensitivity", "off", "--no-replay"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1, err
+    assert str(p) in err[0] and f"refresh_phases.{key}" in err[0] and "expected a positive finite number" in err[0]
+    assert repr(bad) in err[0] or str(bad) in err[0] or json.dumps(bad) in err[0]
+
+
+def test_good_phase_means_are_read(plain_doc, tmp_path):
+    """The counterpart: the same section with its means as written is read, means and all."""
+    from sim.report.inputs import load_result_file
+
+    doc = dict(plain_doc, refresh_phases={"cycles": [plain_doc["cycles"]] * 4, "mean_cycles": plain_doc["cycles"],
+                                          "mean_seconds": plain_doc["seconds"],
+                                          "mean_energy_pj": plain_doc["energy"]["total_pj"]})
+    p = tmp_path / "good.json"
+    p.write_text(json.dumps(doc))
+    run = load_result_file(str(p))
+    assert (run.phase_mean_s, run.phase_mean_pj) == (plain_doc["seconds"], plain_doc["energy"]["total_pj"])

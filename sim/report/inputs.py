@@ -9,6 +9,7 @@ returns the warnings to print.
 """
 
 import json
+import math
 import os
 
 from ..errors import InputError
@@ -41,12 +42,14 @@ class Run:
         self.phase_spread = 0.0
         self.phase_range = None     # (fewest, most) cycles over refresh phases, when measured
         self.phase_mean_s = None    # and the mean latency over them, seconds
+        self.phase_mean_pj = None   # and the mean energy over them, pJ
         ph = doc.get("refresh_phases")
         if isinstance(ph, dict) and ph.get("cycles"):   # a sweep point run at several (its spec's refresh_phases)
             cyc = ph["cycles"]
             lo, hi = min(cyc), max(cyc)
             self.phase_range, self.phase_spread = (lo, hi), (hi - lo) / lo if lo else 0.0
             self.phase_mean_s = ph.get("mean_seconds")
+            self.phase_mean_pj = ph.get("mean_energy_pj")
         self.config_label = doc["arch"]["name"]
         self.trace_label = doc["trace"]["name"]
 
@@ -103,6 +106,11 @@ def _check_doc(doc, source, field="<root>"):
                 isinstance(c, int) and not isinstance(c, bool) and c > 0 for c in cyc):
             raise ReportError(source, "refresh_phases.cycles", cyc,
                               "expected a list of the positive whole cycles of each refresh phase's run")
+        for key in ("mean_cycles", "mean_seconds", "mean_energy_pj"):   # what the report ranks and draws
+            v = ph.get(key)
+            if key in ph and (isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 < v < math.inf):
+                raise ReportError(source, "refresh_phases." + key, v,
+                                  "expected a positive finite number: the mean over the refresh phases' runs")
     return doc
 
 
