@@ -119,6 +119,109 @@ def test_only_a_run_short_for_refresh_is_repeated():
 
 
 DEMO = "traces/demo_decode.yaml"
+PAIR = ("server", "hbm2_stack")
+PHASES = (0.0, 0.25, 0.5, 0.75)
+
+
+def _at_phases(cfg, trace=DEMO):
+    """The run's documents at the four phases, simulated directly (not through the report)."""
+    arch = sim.load_arch(f"arch_configs/{cfg}.yaml")
+    return [sim.simulate(arch.with_overrides({"dram.refresh_phase": p}), trace, keep_intervals=False).to_dict()
+            for p in PHASES]
+
+
+def _dominated(row, rows):
+    """Pareto dominance by brute force: another run no worse on both axes and not the same point."""
+    x, y = float(row[2]), float(row[3])
+    return any(float(r[2]) <= x and float(r[3]) <= y and (float(r[2]), float(r[3])) != (x, y)
+               for r in rows if r is not row)
+
+
+def _pareto_of(paths):
+    from sim.report import figures as F
+    from sim.report.inputs import label_runs, load_inputs
+
+    runs, _failed = load_inputs(paths)
+    label_runs(runs)
+    return F.pareto(runs), F.energy_area(runs), runs
+
+
+@pytest.fixture(scope="module")
+def phase_docs(tmp_path_factory):
+    """``attnsim run --refresh-phases 4`` of each config of PAIR on the demo trace: {cfg: path}."""
+    tmp = tmp_path_factory.mktemp("pareto")
+    out = {}
+    for cfg in PAIR:
+        out[cfg] = str(tmp / f"{cfg}.json")
+        assert main(["run", "--arch", f"arch_configs/{cfg}.yaml", "--trace", DEMO, "--refresh-phases", "4",
+                     "--json", out[cfg], "--quiet"]) == 0
+    return out
+
+
+def test_the_pareto_figure_draws_the_means_over_refresh_phases(phase_docs):
+    """Each point of a trace whose runs were all measured at the four phases is the arithmetic
+    mean (common practice, no source) of the runs simulated here directly at those phases, in
+    latency and in energy; the front (brute-force dominance) is of those values."""
+    fig, split, _runs = _pareto_of(list(phase_docs.values()))
+    rows = {r[1]: r for r in fig.rows}
+    moved = 0
+    for cfg in PAIR:
+        docs = _at_phases(cfg)
+        row = rows[f"{cfg} / demo_decode"]
+        lat = statistics.fmean(d["seconds"] for d in docs) * 1e6
+        energy = statistics.fmean(d["energy"]["total_pj"] for d in docs) / 1e6
+        assert row[2] == pytest.approx(lat, rel=1e-9) and row[3] == pytest.approx(energy, rel=1e-9)
+        assert row[7:] == [True, True]
+        moved += abs(lat / (docs[0]["seconds"] * 1e6) - 1) > 0.05   # phase 0 is the run as configured
+    assert moved                           # the premise: the means are not the runs as configured
+    for row in fig.rows:
+        assert row[5] == (not _dominated(row, fig.rows))
+    ax_e = fig.fig.axes[0]
+    assert ax_e.get_xlabel() == "mean latency over refresh phases (us)"
+    assert ax_e.get_ylabel() == "mean energy per run over refresh phases (uJ)"
+    assert "mean latency and mean energy over refresh phases" in fig.caption
+    # the energy split exists for the run as configured only, and its caption says so
+    assert "of the run as configured" in split.caption
+
+
+def test_without_a_mean_energy_the_run_as_configured_is_drawn_and_said(phase_docs, tmp_path):
+    """A document whose phase section has no mean energy: latency is still the mean over the
+    phases (arithmetic mean of the direct runs; common practice, no source), energy the run's own."""
+    paths = []
+    for cfg, p in phase_docs.items():
+        doc = json.load(open(p))
+        del doc["refresh_phases"]["mean_energy_pj"]
+        paths.append(str(tmp_path / f"{cfg}.json"))
+        json.dump(doc, open(paths[-1], "w"))
+    fig, _split, _runs = _pareto_of(paths)
+    rows = {r[1]: r for r in fig.rows}
+    for cfg in PAIR:
+        docs = _at_phases(cfg)
+        row = rows[f"{cfg} / demo_decode"]
+        assert row[2] == pytest.approx(statistics.fmean(d["seconds"] for d in docs) * 1e6, rel=1e-9)
+        assert row[3] == pytest.approx(docs[0]["energy"]["total_pj"] / 1e6, rel=1e-9)
+        assert row[7:] == [True, False]
+    assert fig.fig.axes[0].get_ylabel() == "energy per run (uJ)"
+    assert "mean latency over refresh phases and its energy as configured" in fig.caption
+
+
+def test_the_reports_own_phase_reruns_give_the_pareto_means(tmp_path):
+    """``attnsim report --refresh-phases`` reruns both runs of a trace at the phases: the Pareto
+    point is the arithmetic mean (common practice, no source) of the runs simulated directly."""
+    from sim.report import figures as F
+    from sim.report import phases
+    from sim.report.inputs import Run, label_runs
+
+    runs = [Run(sim.simulate(f"arch_configs/{cfg}.yaml", DEMO, keep_intervals=False).to_dict(), "t",
+                trace_path=DEMO) for cfg in PAIR]
+    label_runs(runs)
+    phases.measure(runs, jobs=1)
+    rows = {r[1]: r for r in F.pareto(runs).rows}
+    for cfg in PAIR:
+        docs = _at_phases(cfg)
+        row = rows[f"{cfg} / demo_decode"]
+        assert row[2] == pytest.approx(statistics.fmean(d["seconds"] for d in docs) * 1e6, rel=1e-9)
+        assert row[3] == pytest.approx(statistics.fmean(d["energy"]["total_pj"] for d in docs) / 1e6, rel=1e-9)
 
 
 @pytest.fixture(scope="module")

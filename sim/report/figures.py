@@ -400,7 +400,12 @@ def pareto_front(points):
 
 
 def pareto(runs):
-    """Latency against energy and against area, per trace, with the Pareto front joined."""
+    """Latency against energy and against area, per trace, with the Pareto front joined.
+
+    A trace whose every run was measured at the refresh phases is drawn by the
+    means over them (as the verdicts rank it): latency, and energy where the
+    mean energy was measured too (else the run's as configured, said in the caption).
+    """
     fig = _fig(12, 5.0)
     ax_e, ax_a = fig.subplots(1, 2)
     groups, configs = [], []
@@ -410,14 +415,19 @@ def pareto(runs):
         if r.config_label not in configs:
             configs.append(r.config_label)
     gcol = _color_map(groups, SERIES)
+    gname = group_names(groups)
     cmark = _color_map(configs, MARKERS) if len(configs) <= len(MARKERS) else {c: "o" for c in configs}
     rows = []
+    drawn = {}   # trace name -> (latency is a mean, energy is a mean)
     for g in groups:
         rr = [r for r in runs if group_key(r) == g and "energy" in r.doc and "area" in r.doc]
         if not rr:
             continue
-        lat = [r.doc["seconds"] * 1e6 for r in rr]
-        en = [r.doc["energy"]["total_pj"] / 1e6 for r in rr]
+        key, mean = latency_key(rr)
+        emean = bool(mean) and all(r.phase_mean_pj for r in rr)
+        drawn[gname[g]] = (bool(mean), emean)
+        lat = [key(r) * 1e6 for r in rr]
+        en = [(r.phase_mean_pj if emean else r.doc["energy"]["total_pj"]) / 1e6 for r in rr]
         ar = [r.doc["area"]["total_mm2"] for r in rr]
         fe = set(pareto_front(list(zip(lat, en))))
         fa = set(pareto_front(list(zip(lat, ar))))
@@ -429,28 +439,44 @@ def pareto(runs):
                            s=60 if i in front else 35, alpha=1.0 if i in front else 0.45,
                            edgecolor="black" if i in front else "none", linewidth=0.6)
         for i, r in enumerate(rr):
-            rows.append([group_names(groups)[g], r.label, lat[i], en[i], ar[i], i in fe, i in fa])
-    for ax, yl in ((ax_e, "energy per run (uJ)"), (ax_a, "area proxy (mm^2)")):
+            rows.append([gname[g], r.label, lat[i], en[i], ar[i], i in fe, i in fa, bool(mean), emean])
+    lat_mean = [t for t, (m, _e) in drawn.items() if m]
+    en_mean = [t for t, (_m, e) in drawn.items() if e]
+
+    def label(what, unit, meaned):   # the axis says when every trace's points are means, the caption when some are
+        if meaned and len(meaned) == len(drawn):
+            return f"mean {what} over refresh phases ({unit})"
+        return f"{what} ({unit})" + ("; means for some traces, see caption" if meaned else "")
+
+    for ax, yl in ((ax_e, label("energy per run", "uJ", en_mean)), (ax_a, "area proxy (mm^2)")):
         ax.set_xscale("log")
         ax.set_yscale("log")
-        ax.set_xlabel("latency (us)")
+        ax.set_xlabel(label("latency", "us", lat_mean))
         ax.set_ylabel(yl)
         ax.grid(alpha=0.3, which="both")
     ax_e.set_title("latency vs energy", fontsize=10)
     ax_a.set_title("latency vs area proxy", fontsize=10)
-    gname = group_names(groups)
     handles = [Line2D([], [], color=gcol[g], lw=1.6, label=f"{gname[g]} (line: Pareto front)") for g in groups]
     if len(configs) <= len(MARKERS):
         handles += [Line2D([], [], ls="", marker=cmark[c], color="#888", markeredgecolor="black", label=c)
                     for c in configs]
     fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 4), fontsize=8,
                frameon=False)
-    return Figure("pareto", "Pareto fronts: latency against energy and against area",
-                  "Every run is a point (colour = trace, shape = config); per trace the line joins the "
-                  "Pareto front, the runs no other run on that trace beats on both axes (drawn solid). "
-                  "Energy and area are proxies (see the limits).",
-                  fig, ["trace", "run", "latency_us", "energy_uj", "area_mm2", "front_energy", "front_area"],
-                  rows)
+    caption = ("Every run is a point (colour = trace, shape = config); per trace the line joins the "
+               "Pareto front, the runs no other run on that trace beats on both axes (drawn solid). "
+               "Energy and area are proxies (see the limits).")
+    said = " whose every run was measured at the refresh phases, a point is the run's mean latency"
+    if en_mean:
+        caption += f" For {', '.join(en_mean)},{said} and mean energy over refresh phases."
+    own = [t for t in lat_mean if t not in en_mean]
+    if own:
+        caption += (f" For {', '.join(own)},{said} over refresh phases and its energy as configured (no mean "
+                    "energy over them was measured).")
+    if lat_mean:
+        caption += " The fronts are of the values drawn."
+    return Figure("pareto", "Pareto fronts: latency against energy and against area", caption,
+                  fig, ["trace", "run", "latency_us", "energy_uj", "area_mm2", "front_energy", "front_area",
+                        "latency_is_mean", "energy_is_mean"], rows)
 
 
 def energy_area(runs):
@@ -513,9 +539,13 @@ def energy_area(runs):
             handles.setdefault(lab, h)
     fig.legend(list(handles.values()), list(handles), loc="outside lower center", ncol=min(len(handles), 8),
                fontsize=8, frameon=False)
+    # the split by unit is recorded for the run as configured only, not for each refresh phase's run
+    phased = any(r.phase_mean_s is not None for r in rr)
     return Figure("energy_area", "Energy and area by unit",
                   "Left: each run's energy split over the units that spend it (operations, clock and "
-                  "leakage of each unit), its total at the bar's end. Right: each config's area proxy split over "
+                  "leakage of each unit), its total at the bar's end"
+                  + (", of the run as configured (not the mean over refresh phases)" if phased else "")
+                  + ". Right: each config's area proxy split over "
                   "its units, its total at the bar's end (totals span decades, so shares are drawn).",
                   fig, ["quantity", "run_or_config", "unit", "value"], rows)
 

@@ -6,8 +6,9 @@ cycles by more than a design change does, so a report asked for it
 (``attnsim report --refresh-phases``) simulates each trace's two fastest runs
 again with ``dram.refresh_phase`` moved by 0.25, 0.5 and 0.75 of tREFI (through
 the same reruns as the sensitivity, :func:`sim.report.sensitivity.measure`),
-and sets each run's ``phase_range`` (its fewest and most cycles) and
-``phase_spread``: how far apart they come. The
+and sets each run's ``phase_range`` (its fewest and most cycles),
+``phase_spread``: how far apart they come, and the means over the phases
+(``phase_mean_s``, ``phase_mean_pj``). The
 verdicts then call a latency lead inside that spread a tie
 (:mod:`sim.report.verdict`). Nothing here is estimated. The same option has a short run's
 sensitivity measured at the four phases, by the means (:func:`sim.report.sensitivity.measure`).
@@ -74,6 +75,10 @@ def measure(runs, **backend):
         r.phase_range, r.phase_spread = (lo, hi), (hi - lo) / lo
         if r.doc["cycles"]:   # a run's latency is its cycles over its clock
             r.phase_mean_s = sum(cycles) / len(cycles) * r.doc["seconds"] / r.doc["cycles"]
+        energy = [row["energy_pj"] for row in ok]   # and the baseline's from its energy ratio, as above
+        if all(energy) and ok[0]["energy_ratio"]:
+            energy.append(ok[0]["energy_pj"] / ok[0]["energy_ratio"])
+            r.phase_mean_pj = sum(energy) / len(energy)
         notes.append(f"Refresh phase: {r.label} takes {lo:,} to {hi:,} cycles with the run starting "
                      f"{_PLACES} of tREFI later in the refresh schedule ({r.phase_spread:.1%} "
                      f"apart); a lead inside that is reported as a tie.")
