@@ -208,16 +208,27 @@ def _seconds(r):
 _mean_seconds = attrgetter("phase_mean_s")
 
 
+def _by_means(runs, attr, own):
+    """``(key, words)``: the run's ``attr`` (a mean over the refresh phases) when every run has one, else ``own``."""
+    if all(getattr(r, attr) is not None for r in runs):
+        return attrgetter(attr), " on average over the refresh phases"
+    return own, ""
+
+
 def latency_key(runs):
     """``(key, words)``: a group whose every run was measured at the refresh phases (a sweep run
     with ``refresh_phases``) is ranked by the means, as the sweep ranked it; else by each run."""
-    if all(r.phase_mean_s is not None for r in runs):
-        return _mean_seconds, " on average over the refresh phases"
-    return _seconds, ""
+    return _by_means(runs, "phase_mean_s", _seconds)
 
 
-def _energy(r):
-    return r.doc["energy"]["total_pj"]
+def _energy(r):   # 0 without an energy section: a front of such runs goes by latency
+    return r.doc.get("energy", {}).get("total_pj", 0.0)
+
+
+def energy_key(runs):
+    """``(key, words)``: the energy per run as :func:`latency_key` ranks latency: by the means
+    over the refresh phases where every run of the group has one, else by each run."""
+    return _by_means(runs, "phase_mean_pj", _energy)
 
 
 def rank_text(run, peers):
@@ -257,12 +268,14 @@ def group_summary(group):
         out.append(f"fastest{mean} {best.config_label} ({fm.show(key(best), 'latency')}, "
                    f"{fm.show(key(ranked[1]) / key(best), 'speedup')} ahead of {ranked[1].config_label})")
     if all(r.doc.get("energy", {}).get("total_pj") for r in group):
-        low, tied_e, ranked_e = _ranked(group, _energy)
+        ekey, emean = energy_key(group)
+        low, tied_e, ranked_e = _ranked(group, ekey)
         if len(tied_e) > 1:
-            out.append(f"tied within {TIE:.0%} for least energy: {', '.join(r.config_label for r in tied_e)}")
+            out.append(f"tied within {TIE:.0%} for least energy{emean}: "
+                       f"{', '.join(r.config_label for r in tied_e)}")
         else:
-            out.append(f"least energy {low.config_label} ({fm.show(_energy(low), 'energy')}, "
-                       f"{fm.show(_energy(ranked_e[1]) / _energy(low), 'speedup')} less than "
+            out.append(f"least energy{emean} {low.config_label} ({fm.show(ekey(low), 'energy')}, "
+                       f"{fm.show(ekey(ranked_e[1]) / ekey(low), 'speedup')} less than "
                        f"{ranked_e[1].config_label})")
     return "; ".join(out) + "."
 
