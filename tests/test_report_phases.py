@@ -312,3 +312,36 @@ def test_least_energy_is_by_the_means_where_every_run_has_one(flipped, drop):
     words = "" if drop else " on average over the refresh phases"
     assert (f"least energy{words} {low.split(' / ')[0]} ({show(by[low][1], 'energy')}, "
             f"{show(by[other][1] / by[low][1], 'speedup')} less than {other.split(' / ')[0]})") in group_summary(runs)
+
+
+def _front_by_brute_force(by):
+    """The labels of ``by`` ({label: (seconds, pJ)}) no other label is at least as good on both."""
+    return {k for k, v in by.items()
+            if not any(w != v and w[0] <= v[0] and w[1] <= v[1] for j, w in by.items() if j != k)}
+
+
+@pytest.mark.parametrize("drop", [None, "server / demo_decode"])
+def test_the_runs_picked_for_figures_verdicts_and_sensitivity_follow_the_means(flipped, drop, monkeypatch,
+                                                                              tmp_path):
+    """With many runs the per-run figures, the full verdicts and ``--sensitivity front`` take
+    each trace's latency/energy Pareto runs, and ``--sensitivity fastest`` its fastest: by the
+    means over the refresh phases where every run has them (arithmetic mean, as the documents
+    hold it; common practice, no source), else by the runs as configured. Expected: brute-force
+    dominance and ``min`` over the documents' numbers."""
+    from sim.report import build, verdict
+    from sim.report import sensitivity as S
+
+    runs, own, mean = _flipped_runs(flipped, drop)
+    by = own if drop else mean
+    front = _front_by_brute_force(by)
+    assert len(front) == 1                  # the premise: one run beats the other on both
+    monkeypatch.setattr(build, "MAX_FIGURE_RUNS", 1)      # two runs are then "many"
+    picked, note = build.figure_runs(runs)
+    assert {r.label for r in picked} == front and note
+    monkeypatch.setattr(verdict, "FULL_VERDICTS", 1)      # and one full verdict: the front's
+    build.build_report(runs, str(tmp_path / "rep"))
+    md = open(tmp_path / "rep" / "report.md").read()
+    (other,) = set(by) - front
+    assert f"- **{front.copy().pop()}**: " in md and f"- **{other}**: " not in md and f"- {other}: " in md
+    assert {r.label for r in S.select(runs, "front")} == front
+    assert [r.label for r in S.select(runs, "fastest")] == [min(by, key=lambda k: by[k][0])]

@@ -31,7 +31,7 @@ from .. import formats as fm  # noqa: E402
 from . import figures as F  # noqa: E402
 from .inputs import ReportError, group_key, label_runs  # noqa: E402
 from .tables import columns_for, display_rows, markdown_table, table_rows  # noqa: E402
-from .verdict import grouped_verdicts, inside_phase_spread, short_line  # noqa: E402
+from .verdict import grouped_verdicts, inside_phase_spread, latency_key, short_line  # noqa: E402
 
 MAX_FIGURE_RUNS = 24   # per-run bar charts stay readable up to about this many bars
 MAX_BANDWIDTH_RUNS = 6
@@ -132,7 +132,8 @@ def _listed_file(root, rel):
 
 
 def figure_runs(runs):
-    """The runs per-run figures draw: all, or (many runs) the fronts and the best per trace."""
+    """The runs per-run figures draw: all, or (many runs) each trace's latency/energy Pareto runs,
+    fastest first (by the means over refresh phases where every run of the trace has them)."""
     if len(runs) <= MAX_FIGURE_RUNS:
         return list(runs), None
     keep = []
@@ -140,11 +141,9 @@ def figure_runs(runs):
     for r in runs:
         groups.setdefault(group_key(r), []).append(r)
     for rr in groups.values():
-        pts = [(r.doc["seconds"], r.doc.get("energy", {}).get("total_pj", 0.0)) for r in rr]
-        for i in F.pareto_front(pts):
-            if rr[i] not in keep:
-                keep.append(rr[i])
-    keep = sorted(keep, key=lambda r: r.doc["seconds"])[:MAX_FIGURE_RUNS]
+        key, _ = latency_key(rr)
+        keep += [(key(r), r) for r in F.front_runs(rr)]
+    keep = [r for _, r in sorted(keep, key=lambda kr: kr[0])][:MAX_FIGURE_RUNS]
     return keep, (f"{len(runs)} runs: the per-run figures show {len(keep)} of them (the latency/energy "
                   "Pareto points of each trace); the tables and the CSVs hold all.")
 
@@ -194,7 +193,7 @@ def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_ru
     groups = {}
     for r in runs:
         groups.setdefault(group_key(r), []).append(r)
-    verdicts = grouped_verdicts(groups, sensitivity=sensitivity, front=_front)
+    verdicts = grouped_verdicts(groups, sensitivity=sensitivity, front=F.front_runs)
     ctx = {
         "title": title or "attnsim comparison report",
         "made": datetime.datetime.now().strftime("%Y-%m-%d %H:%M"),
@@ -248,12 +247,6 @@ def sensitivity_rows(items):
                          fm.value(row["speedup"], "speedup") if row["speedup"] else "-",
                          fm.value(row["energy_ratio"], "speedup") if row["energy_ratio"] else "-"])
     return header, rows
-
-
-def _front(runs):
-    """The latency/energy Pareto points of a group (all of them when energy is missing)."""
-    pts = [(r.doc["seconds"], r.doc.get("energy", {}).get("total_pj", 0.0)) for r in runs]
-    return [runs[i] for i in F.pareto_front(pts)]
 
 
 def _run_line(r):

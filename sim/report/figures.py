@@ -17,7 +17,7 @@ from matplotlib.ticker import FixedFormatter, FixedLocator, NullLocator
 from .. import formats as fmt
 from ..limits import verdict_of
 from .inputs import group_key
-from .verdict import latency_key
+from .verdict import energy_key, latency_key
 
 BUSY, IDLE = "#2a9d8f", "#d9d9d9"
 CAUSE_COLORS = ["#e76f51", "#f4a261", "#e9c46a", "#8d6cab", "#457b9d", "#c05780", "#7fb069", "#b0a18f"]
@@ -397,6 +397,14 @@ def pareto_front(points):
     from ..sweep.pareto import front_indices
 
     return front_indices(points) if len(points) else []
+
+
+def front_runs(runs):
+    """The runs of one group on its latency/energy Pareto front, by the means over the refresh
+    phases where every run has them (:func:`latency_key`, :func:`energy_key`)."""
+    lat, _ = latency_key(runs)
+    en, _ = energy_key(runs)
+    return [runs[i] for i in pareto_front([(lat(r), en(r)) for r in runs])]
 
 
 def pareto(runs):

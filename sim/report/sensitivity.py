@@ -24,7 +24,8 @@ on the serial, local-pool or Dask backends of :mod:`sim.sweep.backends`, so a
 report's sensitivity runs wherever sweeps run, on the same plain inputs.
 
 Which runs get it (``mode``): ``all``; ``front`` (each trace's latency/energy
-Pareto runs); ``fastest`` (each trace's fastest run); ``off``; ``auto`` -- all
+Pareto runs); ``fastest`` (each trace's fastest run); both by the means over the
+refresh phases where every run of the trace has them, as the verdicts rank; ``off``; ``auto`` -- all
 runs when that takes at most ``limit`` extra simulations, none otherwise (the
 report says how many it would take). An explicit mode over the limit is
 refused with the count and the ways to cut it.
@@ -37,6 +38,7 @@ import time
 from ..arch import SCHEMA, takes_refresh
 from ..limits import lane_figures
 from .inputs import ReportError, group_key
+from .verdict import latency_key
 
 MODES = ("auto", "all", "front", "fastest", "off")
 DEFAULT_LIMIT = 240          # extra simulations a report may start without being asked for more
@@ -229,11 +231,10 @@ def select(runs, mode):
     out = []
     for rr in groups.values():
         if mode == "fastest":
-            out.append(min(rr, key=lambda r: r.doc["seconds"]))
+            out.append(min(rr, key=latency_key(rr)[0]))
         else:
-            from .figures import pareto_front
-            pts = [(r.doc["seconds"], r.doc.get("energy", {}).get("total_pj", 0.0)) for r in rr]
-            out += [rr[i] for i in pareto_front(pts)]
+            from .figures import front_runs
+            out += front_runs(rr)
     return [r for r in runs if r in out]
 
 
