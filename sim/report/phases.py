@@ -19,6 +19,7 @@ import copy
 from ..run import AUTO_PHASES
 from .inputs import group_key
 from .sensitivity import Variant, _config_of
+from .verdict import latency_key
 
 # the places after the run as recorded, in tREFI: the same four a sweep's refresh_phases: auto takes
 PHASES = tuple(k / AUTO_PHASES for k in range(1, AUTO_PHASES))
@@ -28,13 +29,16 @@ RESOURCE = "refresh phase"
 
 
 def leaders(runs, n=LEADERS):
-    """Each trace's ``n`` fastest runs (in the order of ``runs``)."""
+    """Each trace's ``n`` fastest runs (in the order of ``runs``), by :func:`latency_key`."""
     groups = {}
     for r in runs:
         groups.setdefault(group_key(r), []).append(r)
     out = set()
     for rr in groups.values():
-        out.update(id(r) for r in sorted(rr, key=lambda r: r.doc["seconds"])[:n])
+        # the runs the verdicts will compare, so ranked as they rank: by the means where a sweep
+        # gave every run of the trace them (the runs as configured may be misleadingly placed)
+        key, _ = latency_key(rr)
+        out.update(id(r) for r in sorted(rr, key=key)[:n])
     return [r for r in runs if id(r) in out]
 
 
