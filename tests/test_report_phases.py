@@ -357,3 +357,18 @@ def test_the_runs_rerun_at_the_phases_are_the_fastest_by_the_means(flipped, drop
     runs, own, mean = _flipped_runs(flipped, drop)
     by = own if drop else mean
     assert [r.label for r in phases.leaders(runs, n=1)] == [min(by, key=lambda k: by[k][0])]
+
+
+@pytest.mark.parametrize("drop", [None, "server / demo_decode"])
+def test_the_verdicts_are_in_the_order_of_the_means(flipped, drop):
+    """A group's verdicts come fastest first: by the means over the refresh phases where every
+    run has one (arithmetic mean, as the documents hold it; common practice, no source), else by
+    the runs as configured. Expected: ``sorted`` over the documents' numbers."""
+    from sim.report.inputs import group_key
+    from sim.report.verdict import grouped_verdicts
+
+    runs, own, mean = _flipped_runs(flipped, drop)
+    by = own if drop else mean
+    ((title, _summary, verdicts, rest),) = grouped_verdicts({group_key(runs[0]): runs})
+    assert [r.label for r, _v in verdicts] == sorted(by, key=lambda k: by[k][0]) and not rest
+    assert title.endswith("sorted by latency)" if drop else "sorted by latency on average over the refresh phases)")

@@ -292,7 +292,8 @@ def _phase_means(runs):
 
 
 def grouped_verdicts(groups, sensitivity=None, front=None):
-    """``[(title, summary, [(run, verdict)], [others])]`` per group, runs sorted by latency.
+    """``[(title, summary, [(run, verdict)], [others])]`` per group, runs sorted by latency (by the
+    means over the refresh phases where every run has one, :func:`latency_key`).
 
     A group of more than :data:`FULL_VERDICTS` runs gets full verdicts for the
     runs in ``front(group)`` (its Pareto points) and the fastest ones up to
@@ -301,7 +302,8 @@ def grouped_verdicts(groups, sensitivity=None, front=None):
     sensitivity = sensitivity or {}
     out = []
     for key, group in groups.items():
-        ranked = sorted(group, key=_seconds)
+        lkey, mean = latency_key(group)
+        ranked = sorted(group, key=lkey)
         if len(ranked) > FULL_VERDICTS:
             keep = list(front(ranked)) if front else []
             for r in ranked:
@@ -313,7 +315,8 @@ def grouped_verdicts(groups, sensitivity=None, front=None):
             rest = [r for r in ranked if r not in keep]
         else:
             full, rest = ranked, []
-        title = f"{ranked[0].trace_label} ({len(ranked)} run{'s' if len(ranked) > 1 else ''}, sorted by latency)"
+        title = (f"{ranked[0].trace_label} ({len(ranked)} run{'s' if len(ranked) > 1 else ''}, sorted by latency"
+                 f"{mean})")
         verdicts = [(r, write_verdict(r, group, sensitivity.get(id(r)))) for r in full]
         out.append((title, group_summary(ranked), verdicts, rest))
     return out
