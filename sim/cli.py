@@ -145,10 +145,13 @@ def _add_run(sub):
                         "the spread and the means (the document's refresh_phases section; a report ranks such "
                         "runs by the means); nothing more where the memory does not refresh")
     p.add_argument("--sample-decode", type=_int_in(2, 4096), metavar="K",
-                   help="simulate each request's first K decode tokens and then the middle token of every K, "
+                   help="simulate each request's first decode tokens (--sample-warmup) and then the middle token of every K, "
                         "each standing for its K: the summary and the document's decode_sample section give the "
                         "whole trace's estimated cycles and the spread of two half-samples; every other figure "
                         "is the simulated part's")
+    p.add_argument("--sample-warmup", type=_int_in(0, 1 << 20), metavar="N",
+                   help="with --sample-decode: decode tokens of each request run in full before sampling starts "
+                        "(default 32); longer where the prefill's cache writes take long to drain")
     _common(p)
     p.set_defaults(handler=_cmd_run)
 
@@ -173,9 +176,12 @@ def _cmd_run(args):
     for note in key_plane_notes(arch, trace):
         _warn(args, note)
     sample = None
+    if args.sample_warmup is not None and not args.sample_decode:
+        raise OptionError("--sample-warmup", "--sample-warmup", args.sample_warmup, "expected with --sample-decode K")
     if args.sample_decode:
         from .trace.sample import sample_decode
-        sample = sample_decode(trace, args.sample_decode, source=args.trace, field="--sample-decode")
+        sample = sample_decode(trace, args.sample_decode, args.sample_warmup, source=args.trace,
+                               fields=("--sample-decode", "--sample-warmup"))
         trace = sample.part
     opts = {}
     if args.grain_rows is not None:

@@ -326,7 +326,7 @@ def _sample_text(d):
         text += f", its two half-samples {fm.show(ds['half_sample_spread'], 'share')} either side"
         if ds["half_sample_spread"] > SAMPLE_NOISY:
             text += (" (the tokens' times vary too much for the sample: runs closer than that cannot be told "
-                     "apart; sample fewer tokens out or run the whole trace)")
+                     "apart; a longer --sample-warmup, a smaller K or the whole trace)")
     return text + "; every other figure here is the simulated part's"
 
 

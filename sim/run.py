@@ -95,7 +95,7 @@ def estimate_whole(doc: dict, sample: Any) -> dict:
             stands[h] += w
     cycles = full + part[0] + part[1]
     per_cycle = doc["seconds"] / doc["cycles"] if doc["cycles"] else 0.0
-    out = {"every": sample.every, "warmup_tokens": sample.every, "decode_steps": sample.decode_tokens,
+    out = {"every": sample.every, "warmup_tokens": sample.warmup, "decode_steps": sample.decode_tokens,
            "simulated_decode_steps": sample.simulated_tokens, "simulated_cycles": doc["cycles"],
            "cycles": round(cycles), "seconds": _round(round(cycles) * per_cycle)}
     if stands[0] and stands[1]:

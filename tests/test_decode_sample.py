@@ -40,12 +40,12 @@ def token_index(trace):
     return out
 
 
-def expected_tokens(n, k):
-    """First k tokens, then the middle of each stratum of k (the last may be shorter; of an
-    even one's two middles the lower in even strata, the upper in odd ones), with the
-    stratum's size: worked out by hand from the strata's bounds."""
-    kept = [(t, 1) for t in range(min(n, k))]
-    start, odd = k, False
+def expected_tokens(n, k, warmup=32):
+    """First ``warmup`` tokens, then the middle of each stratum of k (the last may be
+    shorter; of an even one's two middles the lower in even strata, the upper in odd ones), with
+    the stratum's size: worked out by hand from the strata's bounds."""
+    kept = [(t, 1) for t in range(min(n, warmup))]
+    start, odd = warmup, False
     while start < n:
         size = min(k, n - start)
         kept.append((start + (size // 2 if odd else (size - 1) // 2), size))
@@ -53,15 +53,17 @@ def expected_tokens(n, k):
     return kept
 
 
-@pytest.mark.parametrize("n,k", [(40, 8), (37, 8), (19, 6), (10, 3)])
-def test_sampled_tokens_are_the_middles_of_the_strata(n, k):
+@pytest.mark.parametrize("n,k,warmup", [(80, 8, None), (77, 8, None), (40, 8, 8), (37, 8, 8), (19, 6, 6),
+                                         (10, 3, 3), (40, 8, 20), (40, 4, 0)])
+def test_sampled_tokens_are_the_middles_of_the_strata(n, k, warmup):
     whole = decode_trace(decode=n)
-    sample = sample_decode(whole, k)
+    sample = sample_decode(whole, k, warmup)
+    warmup = 32 if warmup is None else warmup          # the documented default
     idx = token_index(whole)
     kept = [(i, s) for i, s in zip(idx, whole.steps)
-            if s.stage == "prefill" or any(i == t for t, _ in expected_tokens(n, k))]
+            if s.stage == "prefill" or any(i == t for t, _ in expected_tokens(n, k, warmup))]
     assert len(sample.part.steps) == len(kept)
-    sizes = dict(expected_tokens(n, k))
+    sizes = dict(expected_tokens(n, k, warmup))
     for (i, orig), got, w in zip(kept, sample.part.steps, sample.weights):
         assert (got.stage, got.layer, got.request, got.kv_rows, list(got.kept_k)) == \
             (orig.stage, orig.layer, orig.request, orig.kv_rows, list(orig.kept_k))
@@ -80,10 +82,10 @@ def fake_doc(per_step, seconds_per_cycle=1e-9):
 def test_estimate_is_exact_for_a_linear_decode_cost():
     n, k, a, b = 77, 8, 1000.0, 3.0          # token t costs a + b t; prefill steps cost 500
     whole = decode_trace(decode=n, layers=1)
-    sample = sample_decode(whole, k)
+    sample = sample_decode(whole, k, 8)
     idx = token_index(whole)
     kept = [i for i, s in zip(idx, whole.steps)
-            if s.stage == "prefill" or any(i == t for t, _ in expected_tokens(n, k))]
+            if s.stage == "prefill" or any(i == t for t, _ in expected_tokens(n, k, 8))]
     per_step = [500.0 if i < 0 else a + b * i for i in kept]
     est = estimate_whole(fake_doc(per_step), sample)
     prefill = sum(1 for s in whole.steps if s.stage == "prefill")
@@ -109,7 +111,7 @@ def test_sampled_estimate_is_close_to_the_whole_run(arch):
     # tokens long against the refresh interval (see test_noisy_tokens_are_flagged)
     whole = decode_trace(decode=48, batch=2, prompt=1024)
     full = sim.simulate(arch, whole, keep_intervals=False).to_dict()
-    sample = sample_decode(whole, 8)
+    sample = sample_decode(whole, 8, 8)
     est = estimate_whole(sim.simulate(arch, sample.part, keep_intervals=False).to_dict(), sample)
     assert est["simulated_decode_steps"] < est["decode_steps"] / 2
     assert abs(est["cycles"] - full["cycles"]) <= 0.01 * full["cycles"]
@@ -119,7 +121,7 @@ def test_sampled_estimate_is_close_to_the_whole_run(arch):
 def test_sampling_keeps_which_design_is_faster():
     # a decode-heavy trace on two designs the full runs tell apart by far more than the 2 % margin
     whole = decode_trace(decode=48, batch=2, prompt=1024)
-    sample = sample_decode(whole, 8)
+    sample = sample_decode(whole, 8, 8)
     mid = sim.load_arch("mid")
     designs = [mid, mid.with_overrides({"dram.channels": mid.dram.channels // 2}, "test")]
     full = [sim.simulate(a, whole, keep_intervals=False).to_dict()["cycles"] for a in designs]
@@ -139,11 +141,27 @@ def test_noisy_tokens_are_flagged(tmp_path, capsys):
     path = tmp_path / "t.npz"
     save_trace(whole, str(path))
     out = tmp_path / "r.json"
-    assert main(["run", "--arch", "server", "--trace", str(path), "--sample-decode", "8", "--json", str(out)]) == 0
+    assert main(["run", "--arch", "server", "--trace", str(path), "--sample-decode", "8", "--sample-warmup", "8",
+                 "--json", str(out)]) == 0
     ds = json.loads(out.read_text())["decode_sample"]
     assert abs(ds["cycles"] - full["cycles"]) > 0.02 * full["cycles"]     # premise: the estimate is off
     assert ds["half_sample_spread"] > 0.01
     assert "cannot be told apart" in capsys.readouterr().out
+
+
+def test_the_default_warmup_covers_the_prefill_writes_draining():
+    # with a write queue of 16 bursts the prefill's cache writes drain into the first decode tokens;
+    # a warm-up of 8 leaves that drain to sampled tokens that stand for 8 each (and the half-samples
+    # do not see it); the default warm-up runs through it
+    whole = synth_trace(prompt_tokens=1024, decode_steps=128, layers=2, heads=16, head_dim=64, seed=0)
+    arch = sim.load_arch("mid").with_overrides({"dram.write_queue": 16}, "test")
+    full = sim.simulate(arch, whole, keep_intervals=False).to_dict()["cycles"]
+    est = {}
+    for warmup in (8, None):
+        sample = sample_decode(whole, 8, warmup)
+        est[warmup] = estimate_whole(sim.simulate(arch, sample.part, keep_intervals=False).to_dict(), sample)
+    assert abs(est[8]["cycles"] / full - 1) > 0.02                   # premise: a short warm-up is off
+    assert est[None]["warmup_tokens"] == 32 and abs(est[None]["cycles"] / full - 1) <= 0.01
 
 
 def test_cli_run_sampled(tmp_path, capsys):
@@ -166,6 +184,17 @@ def test_cli_refuses_a_bad_count(tmp_path, capsys, value):
     assert main(["run", "--arch", "mid", "--trace", str(path), "--sample-decode", value]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "--sample-decode" in err[0] and "expected a whole number" in err[0]
+
+
+def test_warmup_alone_or_bad_is_refused(tmp_path, capsys):
+    path = tmp_path / "t.npz"
+    save_trace(decode_trace(decode=12), str(path))
+    for args in (["--sample-warmup", "4"], ["--sample-decode", "4", "--sample-warmup", "-1"]):
+        assert main(["run", "--arch", "mid", "--trace", str(path)] + args) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and "--sample-warmup" in err[0], err
+    with pytest.raises(InputError, match="warmup"):
+        sample_decode(decode_trace(decode=12), 4, 2.5)
 
 
 def test_a_trace_with_nothing_to_leave_out_is_refused(tmp_path, capsys):
