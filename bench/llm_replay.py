@@ -13,7 +13,7 @@ figure can be compared across machines).
     python bench/llm_replay.py --sample-decode 8
 
 With ``--sample-decode K`` each case also runs sampled (``attnsim run
---sample-decode K``: each request's first K decode tokens, then one in K) in a
+--sample-decode K``: each request's first 32 decode tokens, then one in K) in a
 process of its own, and prints that run's CPU seconds, peak RSS and
 transactions, its estimate of the whole run's cycles, the estimate's error
 against the whole run measured here, and the spread of its two half-samples.

@@ -175,6 +175,18 @@ def test_cli_run_sampled(tmp_path, capsys):
     assert ds["every"] == 8 and ds["simulated_cycles"] == doc["cycles"] and ds["cycles"] > doc["cycles"]
     assert doc["trace"]["name"].endswith("-sampled")
     assert f"the whole trace estimated at {ds['cycles']:,} cycles" in text
+    assert "on 2 layers such estimates have come up to 2.2 % off" in text     # fewer than 8 layers
+
+
+def test_no_few_layers_caution_from_eight_layers():
+    from sim.result import format_summary
+
+    whole = decode_trace(decode=40, layers=8)
+    sample = sample_decode(whole, 8)
+    doc = sim.simulate("mid", sample.part, keep_intervals=False).to_dict()
+    doc["decode_sample"] = estimate_whole(doc, sample)
+    text = format_summary(doc)
+    assert "the whole trace estimated at" in text and "such estimates have come" not in text
 
 
 @pytest.mark.parametrize("value", ["1", "0", "x", "4097"])
