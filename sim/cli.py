@@ -145,10 +145,10 @@ def _add_run(sub):
                         "the spread and the means (the document's refresh_phases section; a report ranks such "
                         "runs by the means); nothing more where the memory does not refresh")
     p.add_argument("--sample-decode", type=_int_in(2, 4096), metavar="K",
-                   help="simulate each request's first decode tokens (--sample-warmup) and then the middle token of every K, "
-                        "each standing for its K: the summary and the document's decode_sample section give the "
-                        "whole trace's estimated cycles and the spread of two half-samples; every other figure "
-                        "is the simulated part's")
+                   help="simulate each request's first decode tokens (--sample-warmup) and then the middle "
+                        "token of every K, each standing for its K: the summary and the document's decode_sample "
+                        "section give the whole trace's estimated cycles and the spread of two half-samples; "
+                        "every other figure is the simulated part's")
     p.add_argument("--sample-warmup", type=_int_in(0, 1 << 20), metavar="N",
                    help="with --sample-decode: decode tokens of each request run in full before sampling starts "
                         "(default 32); longer where the prefill's cache writes take long to drain")

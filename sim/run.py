@@ -79,7 +79,8 @@ def estimate_whole(doc: dict, sample: Any) -> dict:
     (``sample``: a :class:`sim.trace.sample.DecodeSample`): the ``decode_sample`` section of
     its result document. Each step's share of the run (``per_step_cycles``, which sums to the
     run's cycles) counts as many times as the steps it stands for. The two half-samples of
-    strata give two estimates of their own; half their distance over the estimate is the ``half_sample_spread``."""
+    strata give two estimates of their own; half their distance over the estimate is the
+    ``half_sample_spread``."""
     from .result import _round
 
     per_step = doc["per_step_cycles"]

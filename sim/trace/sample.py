@@ -2,20 +2,19 @@
 
 A long decode repeats nearly the same work token after token (the context grows
 by one row a token), so a run can simulate some tokens and stand each one for
-its neighbours. Each request's decode tokens at each layer are taken in order:
-the first ``warmup`` (by default 32, our choice) run in full, because the switch from
-prefill to decode leaves the prefill's cache writes draining and buffer state
-settling for a while, and that while is time, which a sampled part runs through
-in fewer tokens than the whole; the rest fall into
-strata of ``every`` consecutive tokens (the last may be shorter), and the
-middle token of each stratum is simulated and stands for all of its stratum (of
-an even stratum's two middle tokens, the lower in even strata and the upper in
-odd ones, so their offsets cancel)
-(systematic sampling with a centrally located start, exact for work that grows
-linearly along the decode; Cochran, *Sampling Techniques*, 3rd ed., 1977,
-ch. 8, from memory). Prefill steps always run. Strata alternate between two
-half-samples, so the estimate comes with the spread of two independent ones
-(interpenetrating subsamples, Mahalanobis 1946, from memory).
+its neighbours. Each request's decode tokens at each layer are taken in order.
+The first ``warmup`` (32 by default, our choice) run in full: the switch from
+prefill to decode leaves the prefill's cache writes draining for a while, and a
+while is time, which a sampled part runs through in fewer tokens than the
+whole. The rest fall into strata of ``every`` consecutive tokens (the last may
+be shorter), and the middle token of each stratum is simulated and stands for
+all of it (of an even stratum's two middle tokens, the lower in even strata and
+the upper in odd ones, so their offsets cancel): systematic sampling with a
+centrally located start, exact for work that grows linearly along the decode
+(Cochran, *Sampling Techniques*, 3rd ed., 1977, ch. 8, from memory). Prefill
+steps always run. Strata alternate between two half-samples, so the estimate
+comes with the spread of two independent ones (interpenetrating subsamples,
+Mahalanobis 1946, from memory).
 
 Every request samples the same token indices at every layer, so a batch keeps
 its shape and a kept token's steps keep their own context, kept keys and cache
@@ -58,9 +57,9 @@ class DecodeSample:
 def sample_decode(trace: Trace, every: int, warmup: int | None = None, source: str = "decode sample",
                   fields: tuple = ("every", "warmup")) -> DecodeSample:
     """The part of ``trace`` a run simulating one decode token in ``every`` after the first
-    ``warmup`` (None: :data:`DEFAULT_WARMUP`) of each request simulates. Raises :class:`InputError` naming
-    ``source`` and the field (``fields``: the names of ``every`` and ``warmup`` there) for a
-    bad value or a trace where it would leave out no token."""
+    ``warmup`` (None: :data:`DEFAULT_WARMUP`) of each request simulates. Raises
+    :class:`InputError` naming ``source`` and the field (``fields``: the names of ``every``
+    and ``warmup`` there) for a bad value or a trace where it would leave out no token."""
     if isinstance(every, bool) or not isinstance(every, int) or not 2 <= every <= MAX_EVERY:
         raise InputError(source, fields[0], every, f"expected a whole number from 2 to {MAX_EVERY}")
     if warmup is None:
@@ -73,18 +72,20 @@ def sample_decode(trace: Trace, every: int, warmup: int | None = None, source: s
             total[s.request, s.layer] = total.get((s.request, s.layer), 0) + 1
     seen, kept, weights, halves = {}, [], [], []
     for s in trace.steps:
-        if s.stage != "decode":
-            kept.append(s), weights.append(1), halves.append(-1)
-            continue
-        k = seen.get((s.request, s.layer), 0)
-        seen[s.request, s.layer] = k + 1
-        if k < warmup:                     # in full
-            kept.append(s), weights.append(1), halves.append(-1)
+        k = seen.get((s.request, s.layer), 0) if s.stage == "decode" else -1
+        if k >= 0:
+            seen[s.request, s.layer] = k + 1
+        if k < warmup:                     # prefill and warm-up tokens: in full
+            kept.append(s)
+            weights.append(1)
+            halves.append(-1)
             continue
         stratum, at = divmod(k - warmup, every)
         size = min(every, total[s.request, s.layer] - warmup - stratum * every)
         if at == ((size - 1) // 2 if stratum % 2 == 0 else size // 2):
-            kept.append(s), weights.append(size), halves.append(stratum % 2)
+            kept.append(s)
+            weights.append(size)
+            halves.append(stratum % 2)
     decode = sum(total.values())
     simulated = sum(1 for s in kept if s.stage == "decode")
     if simulated == decode:
