@@ -372,3 +372,18 @@ def test_the_verdicts_are_in_the_order_of_the_means(flipped, drop):
     ((title, _summary, verdicts, rest),) = grouped_verdicts({group_key(runs[0]): runs})
     assert [r.label for r, _v in verdicts] == sorted(by, key=lambda k: by[k][0]) and not rest
     assert title.endswith("sorted by latency)" if drop else "sorted by latency on average over the refresh phases)")
+
+
+def test_a_runs_short_line_gives_its_means_beside_its_own_figures(flipped):
+    """A run listed outside the full verdicts shows the means its group may be ranked by beside
+    its own latency and energy (the documents' numbers, through the report's formats)."""
+    from sim.report.verdict import short_line
+
+    runs, own, mean = _flipped_runs(flipped)
+    for r in runs:
+        line = short_line(r)
+        assert line.startswith(f"{show(own[r.label][0], 'latency')} (mean over refresh phases "
+                               f"{show(mean[r.label][0], 'latency')}), ")
+        assert line.endswith(f"{show(own[r.label][1], 'energy')} (mean {show(mean[r.label][1], 'energy')})")
+    runs, _own, _mean = _flipped_runs(flipped, drop="server / demo_decode")
+    assert "mean" not in short_line(next(r for r in runs if r.label == "server / demo_decode"))

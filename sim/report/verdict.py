@@ -323,9 +323,15 @@ def grouped_verdicts(groups, sensitivity=None, front=None):
 
 
 def short_line(run):
-    """One line for a run outside the full verdicts: latency, limit, energy."""
+    """One line for a run outside the full verdicts: latency, limit, energy (with the means over
+    the refresh phases beside them where the run has them, which its group may be ranked by)."""
     d = run.doc
-    text = f"{fm.show(d['seconds'], 'latency')}, {verdict_of(d)['label']}"
+    text = f"{fm.show(d['seconds'], 'latency')}"
+    if run.phase_mean_s is not None:
+        text += f" (mean over refresh phases {fm.show(run.phase_mean_s, 'latency')})"
+    text += f", {verdict_of(d)['label']}"
     if d.get("energy"):
         text += f", {fm.show(d['energy']['total_pj'], 'energy')}"
+        if run.phase_mean_pj is not None:
+            text += f" (mean {fm.show(run.phase_mean_pj, 'energy')})"
     return text
