@@ -355,6 +355,8 @@ class _Ticker:
         if self.timer is not None:
             self.timer.cancel()
             self.done.set()
+            # a line being made as the call ends is printed before the command goes on, not after
+            self.timer.join()
             if self.bar is not None:
                 self.bar.close()
         return False

@@ -104,3 +104,25 @@ def test_quiet_run_prints_no_progress(tmp_path, capsys, monkeypatch):
     monkeypatch.setattr(_Ticker, "FIRST_LOG", 0.0)   # would print at once but for --quiet
     assert main(["run", "--arch", MID, "--trace", str(trace), "--quiet"]) == 0
     assert "simulating" not in capsys.readouterr().err
+
+
+def test_no_progress_line_comes_after_the_command_has_ended(tmp_path, capsys, monkeypatch):
+    """A line being made as the run ends is printed before `attnsim run` returns, never later
+    into whatever comes next (seen as a stray line in the next test's output)."""
+    import sim.cli as cli
+
+    trace = tmp_path / "t.npz"
+    save_trace(synth_trace(prompt_tokens=16, decode_steps=1, layers=1, heads=2, seed=1), str(trace))
+    monkeypatch.setattr(_Ticker, "FIRST_LOG", 0.0)
+    monkeypatch.setattr(_Ticker, "LOG_EVERY", 10**6)
+
+    def slow_text(*a):
+        time.sleep(0.5)                   # the line is still being made when the run ends
+        return "simulating: slow line"
+
+    monkeypatch.setattr(cli, "progress_text", slow_text)
+    assert main(["run", "--arch", MID, "--trace", str(trace)]) == 0
+    during = capsys.readouterr().err
+    time.sleep(1.0)
+    after = capsys.readouterr().err
+    assert "slow line" not in after, (during, after)
