@@ -86,6 +86,14 @@ def _work(args):
     return compare(*args)
 
 
+def disagreement(a, b, margin):
+    """How two speed-ups of one comparison disagree: ``"reversed"`` (one says faster by more
+    than ``margin``, the other slower by more), ``"across"`` (one says a difference, the other
+    none) or None."""
+    sa, sb = (0 if abs(x - 1) <= margin else (1 if x > 1 else -1) for x in (a, b))
+    return "reversed" if sa * sb < 0 else ("across" if sa != sb else None)
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--cases", type=int, default=1000)
@@ -113,12 +121,9 @@ def main():
             gap = abs(coarse - fine) / fine
             if gap > worst[0]:
                 worst = (gap, out)
-            side_c = 0 if abs(coarse - 1) <= m else (1 if coarse > 1 else -1)
-            side_f = 0 if abs(fine - 1) <= m else (1 if fine > 1 else -1)
-            if side_c * side_f < 0:
-                reversed_.append(out)
-            elif side_c != side_f:
-                sided.append(out)
+            kind = disagreement(coarse, fine, m)
+            if kind:
+                (reversed_ if kind == "reversed" else sided).append(out)
     wall = time.perf_counter() - t0
     print(f"{done} comparisons (seed {args.seed}, {skipped} refused knob values skipped) on {args.jobs} "
           f"processes in {wall:.0f} s; margin {m:.0%}; each answer over refresh phases {PHASES}"

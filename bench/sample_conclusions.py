@@ -29,9 +29,10 @@ import time
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(HERE)
-sys.path[:0] = [ROOT]
+sys.path[:0] = [ROOT, HERE, os.path.join(ROOT, "tests")]
 
 import sim  # noqa: E402
+from grain_conclusions import disagreement  # noqa: E402  (one rule for what a disagreement is)
 from sim.errors import InputError  # noqa: E402
 from sim.run import estimate_whole  # noqa: E402
 from sim.trace.sample import sample_decode  # noqa: E402
@@ -103,12 +104,9 @@ def main():
                 worst = (gap, out)
             if err > worst_err[0]:
                 worst_err = (err, out)
-            side_w = 0 if abs(full - 1) <= m else (1 if full > 1 else -1)
-            side_s = 0 if abs(samp - 1) <= m else (1 if samp > 1 else -1)
-            if side_w * side_s < 0:
-                reversed_.append(out)
-            elif side_w != side_s:
-                sided.append(out)
+            kind = disagreement(full, samp, m)
+            if kind:
+                (reversed_ if kind == "reversed" else sided).append(out)
     wall = time.perf_counter() - t0
     print(f"{done} comparisons (seed {args.seed}, {skipped} refused knob values skipped) on {args.jobs} "
           f"processes in {wall:.0f} s; margin {m:.0%}")
