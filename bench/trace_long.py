@@ -24,6 +24,12 @@ address space is capped (``--limit-gib``, 8 by default); a case that fails
 ``--skip-budget`` calls the engine directly, without ``sim.budget``'s up-front
 estimate and refusal, to measure what the engine itself needs.
 
+``--sample-prefill K`` (with ``--engine``) runs each case sampling its long
+prefill steps' query blocks (``attnsim run --sample-prefill K``) and adds the
+estimated cycles of the whole and the two spreads the run summary flags by;
+``--case prompt8k-1L`` (a ``--slope`` point) and ``prompt32k-L0`` on ``mid`` are
+short enough to run whole as well, for the estimate's error at that size.
+
 ``--slope`` asks whether simulation time follows the trace's work: one layer of
 the 8B-class shape, causal prefill of 8k, 16k and 32k tokens (the work grows
 as the square of the prompt), each simulated on ``mid`` (or ``--arch``) in a
@@ -33,6 +39,7 @@ distance from it.
 
     python bench/trace_long.py [--repeat 3] [--case NAME]
     python bench/trace_long.py --engine [--repeat 1] [--case NAME] [--arch NAME] [--skip-build] [--skip-budget]
+                               [--sample-prefill K]
     python bench/trace_long.py --slope [--arch NAME]
 """
 
@@ -102,7 +109,7 @@ def engine_trace(name):
     return synth_trace(**(CASES.get(name) or SLOPE_CASES[name]), seed=1)
 
 
-def run_engine_case(name, arch_name, limit_gib, skip_budget=False):
+def run_engine_case(name, arch_name, limit_gib, skip_budget=False, sample=None):
     """One case simulated on one bundled config in this process; prints a JSON line.
     The address space is capped at ``limit_gib`` so a case that outgrows it fails
     (MemoryError) instead of taking the machine down."""
@@ -122,9 +129,10 @@ def run_engine_case(name, arch_name, limit_gib, skip_budget=False):
         from sim.engine.datapath import run_datapath
         from sim.result import build_result
 
-        doc = build_result(run_datapath(arch, trace, keep_intervals=False)).to_dict()
+        doc = build_result(run_datapath(arch, trace, keep_intervals=False, sample_prefill=sample)).to_dict()
     else:
-        doc = sim.simulate(arch, trace, keep_intervals=False).to_dict()
+        opts = {"sample_prefill": sample} if sample else {}
+        doc = sim.simulate(arch, trace, keep_intervals=False, **opts).to_dict()
     t2 = time.perf_counter()
     rss_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     wall = t2 - t1
@@ -133,13 +141,15 @@ def run_engine_case(name, arch_name, limit_gib, skip_budget=False):
                       "fetch_txns": doc["fetch"]["transactions"], "dram_txns": doc["dram"]["transactions"],
                       "fetch_txn_per_s": doc["fetch"]["transactions"] / wall,
                       "dram_txn_per_s": doc["dram"]["transactions"] / wall, "cycles": doc["cycles"],
-                      "dram_gib": doc["dram"]["bytes"] / 2**30, "bound": doc["bounds"]["bound"]}))
+                      "dram_gib": doc["dram"]["bytes"] / 2**30, "bound": doc["bounds"]["bound"],
+                      "prefill_sample": doc.get("prefill_sample")}))
 
 
-def engine_run(name, arch, limit_gib, skip_budget=False, width=11):
+def engine_run(name, arch, limit_gib, skip_budget=False, width=11, sample=None):
     """One case simulated on ``arch`` in a fresh process: its figures, or None (failure printed)."""
     proc = subprocess.run([sys.executable, __file__, "--one-engine", name, arch, str(limit_gib)]
-                          + (["--skip-budget"] if skip_budget else []), capture_output=True, text=True)
+                          + (["--skip-budget"] if skip_budget else [])
+                          + (["--sample-prefill", str(sample)] if sample else []), capture_output=True, text=True)
     if proc.returncode:
         last = (proc.stderr.strip().splitlines() or ["(no message)"])[-1]
         print(f"{name:<{width}} {arch:<11} failed: exit {proc.returncode}: {last}")
@@ -169,14 +179,14 @@ def slope_table(archs, limit_gib):
                   f"residuals {res}; work grows {x[-1] / x[0]:.1f}x, time {y[-1] / y[0]:.1f}x")
 
 
-def engine_table(names, archs, repeat, limit_gib, skip_budget):
+def engine_table(names, archs, repeat, limit_gib, skip_budget, sample=None):
     print(f"\n{'case':<11} {'arch':<11} {'steps':>6} {'sim s':>8} {'fetch txn/s':>12} {'DRAM txn/s':>11} "
           f"{'cycles':>15} {'DRAM GiB':>9} {'trace RSS':>10} {'peak RSS MiB':>13}   (best of {repeat}; RSS: largest)")
     for name in names:
-        for arch in archs or ENGINE_ARCHS[name]:
+        for arch in archs or ENGINE_ARCHS.get(name, ["mid"]):
             runs = []
             for _ in range(repeat):
-                run = engine_run(name, arch, limit_gib, skip_budget)
+                run = engine_run(name, arch, limit_gib, skip_budget, sample=sample)
                 if run is None:
                     break
                 runs.append(run)
@@ -187,12 +197,18 @@ def engine_table(names, archs, repeat, limit_gib, skip_budget):
                   f"{best['dram_txn_per_s']:>11,.0f} {best['cycles']:>15,} {best['dram_gib']:>9.2f} "
                   f"{max(r['trace_rss_mib'] for r in runs):>10.0f} {max(r['peak_rss_mib'] for r in runs):>13.0f}",
                   flush=True)
+            ps = best.get("prefill_sample")
+            if ps:
+                print(f"{'':<11} {'':<11} sampled 1 in {ps['every']} ({ps['sampled_steps']} steps, "
+                      f"{ps['simulated_query_blocks']:,} blocks made for {ps['query_blocks']:,}): whole estimated at "
+                      f"{ps['cycles']:,} cycles; copies {ps['copy_spread']:.2%}, half-samples "
+                      f"{ps.get('half_sample_spread', 0.0):.2%} either side", flush=True)
 
 
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeat", type=int, default=3)
-    ap.add_argument("--case", choices=sorted(CASES) + sorted(CUT_CASES), action="append")
+    ap.add_argument("--case", choices=sorted(CASES) + sorted(CUT_CASES) + sorted(SLOPE_CASES), action="append")
     ap.add_argument("--engine", action="store_true", help="also simulate each case (see above)")
     ap.add_argument("--arch", action="append", help="bundled config for --engine (repeatable)")
     ap.add_argument("--skip-build", action="store_true", help="with --engine: skip the trace-building table")
@@ -203,13 +219,15 @@ def main():
                     help="with --engine: run the engine without sim.budget's up-front refusal (the cap still holds)")
     ap.add_argument("--one-engine", nargs=3, help=argparse.SUPPRESS)
     ap.add_argument("--slope", action="store_true", help="simulation time against work (see above)")
+    ap.add_argument("--sample-prefill", type=int, metavar="K",
+                    help="with --engine: sample long prefill steps' query blocks, one in about K (see above)")
     args = ap.parse_args()
     if args.one:
         run_case(args.one)
         return
     if args.one_engine:
         name, arch, limit = args.one_engine
-        run_engine_case(name, arch, float(limit), args.skip_budget)
+        run_engine_case(name, arch, float(limit), args.skip_budget, args.sample_prefill)
         return
     if args.slope:
         slope_table(args.arch, args.limit_gib)
@@ -217,7 +235,8 @@ def main():
     if not (args.engine and args.skip_build):
         build_table([c for c in args.case or list(CASES) if c in CASES], args.repeat)
     if args.engine:
-        engine_table(args.case or list(CASES), args.arch, args.repeat, args.limit_gib, args.skip_budget)
+        engine_table(args.case or list(CASES), args.arch, args.repeat, args.limit_gib, args.skip_budget,
+                     args.sample_prefill)
 
 
 def build_table(names, repeat):

@@ -149,6 +149,11 @@ def _add_run(sub):
                         "token of every K, each standing for its K: the summary and the document's decode_sample "
                         "section give the whole trace's estimated cycles and the spread of two half-samples; "
                         "every other figure is the simulated part's")
+    p.add_argument("--sample-prefill", type=_int_in(2, 4096), metavar="K",
+                   help="make the middle query block of every K of each long prefill step (twice) and let it "
+                        "stand for its K: the summary and the document's prefill_sample section give the whole "
+                        "trace's estimated cycles and how far two pairs of part-estimates are apart; every "
+                        "other figure is the simulated part's")
     p.add_argument("--sample-warmup", type=_int_in(0, 1 << 20), metavar="N",
                    help="with --sample-decode: decode tokens of each request run in full before sampling starts "
                         "(default 32); longer where the prefill's cache writes take long to drain")
@@ -178,6 +183,9 @@ def _cmd_run(args):
     sample = None
     if args.sample_warmup is not None and not args.sample_decode:
         raise OptionError("--sample-warmup", "--sample-warmup", args.sample_warmup, "expected with --sample-decode K")
+    if args.sample_decode and args.sample_prefill:
+        raise OptionError("--sample-prefill", "--sample-prefill", args.sample_prefill,
+                          "expected without --sample-decode (one sampling at a time)")
     if args.sample_decode:
         from .trace.sample import sample_decode
         sample = sample_decode(trace, args.sample_decode, args.sample_warmup, source=args.trace,
@@ -188,11 +196,15 @@ def _cmd_run(args):
         opts["grain_rows"] = args.grain_rows
     if args.seed is not None:
         opts["seed"] = args.seed
+    if args.sample_prefill:
+        opts["sample_prefill"] = args.sample_prefill
     from .budget import transactions
     from .engine.progress import RunProgress
 
     progress = RunProgress()
-    with _Ticker(args, "simulating", progress, lambda: transactions(arch, trace, opts.get("grain_rows"))):
+    # the upper estimate is of the whole trace: none for a run that makes only part of its prefill
+    estimate = None if args.sample_prefill else (lambda: transactions(arch, trace, opts.get("grain_rows")))
+    with _Ticker(args, "simulating", progress, estimate):
         result = _located(arch, lambda: simulate(arch, trace, keep_intervals=bool(tl_out), progress=progress,
                                                  **opts))
     doc = result.to_dict()

@@ -20,6 +20,7 @@ from .build import build_id
 from .columns import UNIT_ORDER, result_frame, unit_frame
 from .costs.area import area_section
 from .costs.energy import energy_section
+from .engine.program import COPIES, MIN_STRATA
 from .engine.stats import StallSplit, busy_curve
 from .limits import classify, cause_text, verdict_of
 from .model.bounds import bounds_from_counts
@@ -195,10 +196,7 @@ def build_result(stats):
     c = prog.counts
     macs = c["macs_qk"] + c["macs_lsb"] + c["macs_pv"]
     compulsory = prog.compulsory_bytes
-    macs_pv_by_dim = {}
-    for s in trace.steps:
-        macs_pv_by_dim[s.head_dim] = macs_pv_by_dim.get(s.head_dim, 0) + s.macs()[1]
-    bounds = bounds_from_counts(arch, prog.macs_by_dim, macs_pv_by_dim, c["softmax_elements"],
+    bounds = bounds_from_counts(arch, prog.macs_by_dim, prog.macs_pv_by_dim, c["softmax_elements"],
                                 c["topk_comparisons"], fetch_stats["bytes"], compulsory)
     dram = pool.report(end)
     dram.update({
@@ -209,12 +207,17 @@ def build_result(stats):
     decode_steps = sum(1 for s in trace.steps if s.stage == "decode")
     layers = len({s.layer for s in trace.steps})
     dense = dense_macs(trace)
+    if prog.block_sample:   # the part's share of the dense work: the share of the work it made
+        whole = sum(sum(st.macs()) for st in trace.steps)
+        dense = dense * macs / whole if whole else 0
     planes = dram["bytes_by_plane"]
     p = arch.precision
     doc = {
         "simulator": {"name": "attnsim", "version": __version__, "build": build_id()},
         "arch": {"name": arch.name, "source": str(arch.source), "config": arch.to_dict()},
-        "trace": {"name": trace.name, "source": str(trace.source), "digest": trace.digest(),
+        # a run that made part of its prefill blocks is not the trace's run: named apart
+        "trace": {"name": f"{trace.name}-sampled"[:200] if prog.block_sample else trace.name,
+                  "source": str(trace.source), "digest": trace.digest(),
                   "steps": len(trace.steps), "head_dims": sorted({s.head_dim for s in trace.steps})},
         "engine": dict(engine),
         "cycles": cycles,
@@ -251,11 +254,49 @@ def build_result(stats):
     # bits fetched per key element: the MSB plane always, the LSB plane where it was refetched
     dram["effective_key_bits"] = (p.k_msb_bits * (planes["K"] + planes.get("KL", 0)) / planes["K"]
                                   if planes.get("K") else None)
+    if "sample_prefill" in engine:
+        doc["prefill_sample"] = _block_estimate(prog, step_times, end, engine["sample_prefill"], seconds / cycles
+                                                if cycles else 0.0, cycles)
     doc["verdict"] = classify(doc)
-    doc["energy"] = energy_section(arch, doc, trace)
+    doc["energy"] = energy_section(arch, doc, trace, prog.made_rows)
     doc["area"] = area_section(arch)
     intervals = IntervalLogs(states, pool) if stats.timeline else None
     return Result(_round(doc), intervals)
+
+
+def _block_estimate(prog, step_times, end, every, per_cycle, simulated):
+    """The whole trace's cycles and seconds estimated from a run that made the middle query
+    block of every ``every`` of its long prefill steps, twice (``engine.sample_prefill``):
+    the ``prefill_sample`` section. The run's time is split as ``per_step_cycles`` splits it,
+    with each made block's end (its last p.V) as a mark of its own before its step's end: a
+    block's share is what it added to the run. Each copy's share stands for its stratum
+    (their mean does, in the estimate); the rest (other steps, a step's time after its last
+    block, the write tail) counts once. The copies give an estimate each, and so do two
+    half-samples of strata; half of each pair's distance over the estimate is its spread."""
+    rest = 0.0
+    part = [[0.0, 0.0] for _ in range(COPIES)]   # [copy][half]: stratum size x share
+    stands = [0, 0]
+    prev = 0.0
+    for s, t_end in enumerate(step_times):
+        for (size, half, k), due in zip(prog.block_sample.get(s, ()), prog.block_dues.get(s, ())):
+            part[k][half] += size * max(due.at - prev, 0.0)
+            stands[half] += size if k == 0 else 0
+            prev = max(prev, due.at)
+        rest += max(t_end - prev, 0.0)
+        prev = max(prev, t_end)
+    rest += max(end - prev, 0.0)
+    by_copy = [rest + sum(p) for p in part]
+    cycles = sum(by_copy) / COPIES
+    out = {"every": every, "sampled_steps": len(prog.block_sample), "query_blocks": stands[0] + stands[1],
+           "simulated_query_blocks": sum(len(v) for v in prog.block_sample.values()),
+           "simulated_cycles": simulated, "cycles": round(cycles), "seconds": round(cycles) * per_cycle,
+           "copy_cycles": [round(c) for c in by_copy],
+           "copy_spread": (max(by_copy) - min(by_copy)) / 2 / cycles if cycles else 0.0}
+    if stands[0] and stands[1]:
+        halves = [rest + sum(p[h] for p in part) / COPIES * (stands[0] + stands[1]) / stands[h] for h in (0, 1)]
+        out["half_cycles"] = [round(c) for c in halves]
+        out["half_sample_spread"] = abs(halves[0] - halves[1]) / 2 / cycles if cycles else 0.0
+    return out
 
 
 def engine_text(doc):
@@ -264,7 +305,8 @@ def engine_text(doc):
     eng = doc.get("engine", {})
     window = doc["arch"]["config"].get("fetch", {}).get("issue_window", 0)
     return (f"attnsim {sim_.get('build') or sim_['version']}, grain {eng.get('grain_rows', '?')} rows, "
-            f"issue window {window}, seed {eng.get('seed', '?')}")
+            f"issue window {window}, seed {eng.get('seed', '?')}"
+            + (f", prefill blocks sampled about 1 in {eng['sample_prefill']}" if eng.get("sample_prefill") else ""))
 
 
 def limit_sentence(doc):
@@ -312,6 +354,12 @@ def _refresh_text(d):
 
 
 SAMPLE_NOISY = 0.01   # half-sample spread above which a sampled estimate is called too noisy to rank by
+
+
+def prefill_sample_noisy(ps):
+    """Whether a ``prefill_sample`` section's estimate is not to rank designs by: its copies'
+    or its half-samples' estimates more than :data:`SAMPLE_NOISY` either side."""
+    return max(ps.get("copy_spread", 0.0), ps.get("half_sample_spread", 0.0)) > SAMPLE_NOISY
 # layers below which a sampled estimate is not to rank by: the 1024 + 256 synthetic decode on server
 # (bench/llm_replay.py's shape) came 1.4 to 2.2 % off at 1 to 4 layers with half-samples within 0.6 %,
 # 0.6 % at 8 layers, 0.3 % at 12 and 24
@@ -339,6 +387,26 @@ def _sample_text(d):
     return text + "; every other figure here is the simulated part's"
 
 
+def _prefill_sample_text(d):
+    """A run that sampled the query blocks of long prefill steps: what it made and the whole
+    trace's estimate."""
+    ps = d.get("prefill_sample")
+    if not ps:
+        return ""
+    if not ps["sampled_steps"]:
+        return (f"no prefill step had {MIN_STRATA} strata of {ps['every']} query blocks a head group "
+                "with its K/V streamed, so nothing was left out: the run is the whole trace's")
+    text = (f"the middle query block of every {ps['every']}, twice, in {ps['sampled_steps']:,} prefill "
+            f"step{'s' if ps['sampled_steps'] > 1 else ''} ({ps['simulated_query_blocks']:,} blocks made for "
+            f"{ps['query_blocks']:,}): the whole trace estimated at {fm.show(ps['cycles'], 'cycles')} = "
+            f"{fm.show(ps['seconds'], 'latency')}, its copies {fm.show(ps['copy_spread'], 'share')} and its "
+            f"half-samples {fm.show(ps.get('half_sample_spread', 0.0), 'share')} either side")
+    if prefill_sample_noisy(ps):
+        text += (" (the blocks' times depend on their order or vary too much for the sample: runs closer "
+                 "than that cannot be told apart; a smaller K or the whole trace)")
+    return text + "; every other figure here is the simulated part's"
+
+
 def format_summary(result):
     """A readable multi-line summary for the terminal (every number through :mod:`sim.formats`)."""
     d = result.to_dict() if isinstance(result, Result) else result
@@ -348,9 +416,9 @@ def format_summary(result):
     stages = ", ".join(f"{k} {show(c, 'cycles')}" for k, c in d["per_stage_cycles"].items())
     lines.append(f"  time      {show(d['seconds'], 'latency')} = {show(d['cycles'], 'cycles')}"
                  + (f"  ({stages})" if stages else ""))
-    sample = _sample_text(d)
-    if sample:
-        lines.append(f"  sampled   {sample}")
+    for sample in (_sample_text(d), _prefill_sample_text(d)):
+        if sample:
+            lines.append(f"  sampled   {sample}")
     lines.append(f"  limit     {limit_sentence(d)}")
     refresh = _refresh_text(d)
     if refresh:

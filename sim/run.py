@@ -27,8 +27,10 @@ def simulate(arch: ArchLike, trace: TraceLike, keep_intervals: bool = True, prog
 
     ``arch`` may be an Arch, a YAML path or a mapping; ``trace`` a Trace or a
     path. ``engine_options`` override the config's ``engine`` section
-    (``grain_rows``, ``seed``). ``keep_intervals=False`` skips the per-unit
-    intervals a timeline needs (the document is the same). A run that would
+    (``grain_rows``, ``seed``); ``sample_prefill=K`` makes about one query block in
+    K of long prefill steps and adds the whole run's estimate (``prefill_sample``).
+    ``keep_intervals=False`` skips the per-unit intervals a timeline needs (the
+    document is the same). A run that would
     not fit the address map or the machine's memory is refused first
     (:mod:`sim.budget`). ``progress``: a :class:`sim.engine.progress.RunProgress`
     another thread may read while the run goes on (the CLI's progress line).

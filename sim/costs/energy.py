@@ -180,12 +180,16 @@ def operation_energy(arch_dict, counts, table):
     return ops
 
 
-def work_of(trace):
-    """Query rows (per head) and tokens the trace processes, the per-row / per-token denominators."""
-    rows = sum(s.q_rows * s.n_heads for s in trace.steps)
+def work_of(trace, made_rows=None):
+    """Query rows (per head) and tokens the trace processes, the per-row / per-token denominators.
+    ``made_rows``: step index -> the query rows a run made of it, where it made only some
+    (a run sampling prefill blocks), so the figures are the simulated part's."""
+    made_rows = made_rows or {}
+    q = [made_rows.get(i, s.q_rows) for i, s in enumerate(trace.steps)]
+    rows = sum(r * s.n_heads for r, s in zip(q, trace.steps))
     layers = sorted({s.layer for s in trace.steps})
     first = layers[0] if layers else 0
-    prefill = sum(s.q_rows for s in trace.steps if s.stage == "prefill" and s.layer == first)
+    prefill = sum(r for r, s in zip(q, trace.steps) if s.stage == "prefill" and s.layer == first)
     decode = sum(1 for s in trace.steps if s.stage == "decode" and s.layer == first)
     return {"query_rows": int(rows), "tokens": int(prefill + decode),
             "prefill_tokens": int(prefill), "decode_tokens": int(decode)}
@@ -232,11 +236,11 @@ def clock_and_leakage(arch_dict, units_mm2, busy_cycles, cycles, table):
     return ops
 
 
-def energy_section(arch, doc, trace):
+def energy_section(arch, doc, trace, made_rows=None):
     """The result document's ``energy`` section for a finished run.
 
     Reads the document's counts, ``cycles``, ``seconds`` and the units' busy
-    shares; the area proxy is computed from the config.
+    shares; the area proxy is computed from the config. ``made_rows``: see :func:`work_of`.
     """
     from .area import area_section
 
@@ -255,7 +259,7 @@ def energy_section(arch, doc, trace):
     dynamic = sum(per_kind["dynamic"].values())
     static = sum(per_kind["static"].values())
     total = sum(units.values())
-    work = work_of(trace)
+    work = work_of(trace, made_rows)
     secs = doc["seconds"]
     leak_mw = {op["unit"]: op["mw"] for op in ops.values() if op["kind"] == "static"}
     return {

@@ -28,11 +28,14 @@ from .writeback import writeback_process
 PLANE_KEYS = ("bytes_Q", "bytes_K", "bytes_KL", "bytes_V")
 
 
-def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True, progress=None):
+def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True, progress=None,
+                 sample_prefill=None):
     """Replay ``trace`` on ``arch``; return the run's :class:`~sim.engine.stats.RunStats`.
 
     :func:`sim.result.build_result` turns them into the result document.
     ``progress``: a :class:`~sim.engine.progress.RunProgress` to read while it runs.
+    ``sample_prefill``: make one query block in that many of a long prefill step (the
+    program's ``block_sample``; :mod:`sim.result` estimates the whole run from it).
     """
     # A run allocates hundreds of thousands of small objects that live until it
     # ends; the cyclic collector would walk them over and over (a third of the
@@ -40,20 +43,32 @@ def run_datapath(arch, trace, grain_rows=None, seed=None, keep_intervals=True, p
     was_enabled = gc.isenabled()
     gc.disable()
     try:
-        return _run(arch, trace, grain_rows, seed, keep_intervals, progress)
+        return _run(arch, trace, (grain_rows, seed, sample_prefill), keep_intervals, progress)
     finally:
         if was_enabled:
             gc.enable()
 
 
-def _engine_options(arch, grain_rows, seed):
+MAX_SAMPLE_EVERY = 4096   # query blocks a sampled block may stand for
+
+
+def _engine_options(arch, options):
+    """The run's engine options checked: the config's grain and seed unless overridden."""
+    grain_rows, seed, every = options
     g = arch.engine.grain_rows if grain_rows is None else grain_rows
     s = arch.engine.seed if seed is None else seed
     if isinstance(g, bool) or not isinstance(g, int) or g < 1:
         raise ConfigError("engine options", "engine.grain_rows", g, "expected a whole number >= 1")
     if isinstance(s, bool) or not isinstance(s, int) or s < 0:
         raise ConfigError("engine options", "engine.seed", s, "expected a whole number >= 0")
-    return g, s
+    if every is not None and (isinstance(every, bool) or not isinstance(every, int)
+                              or not 2 <= every <= MAX_SAMPLE_EVERY):
+        raise ConfigError("engine options", "sample_prefill", every,
+                          f"expected a whole number from 2 to {MAX_SAMPLE_EVERY}, or None")
+    engine = {"grain_rows": g, "seed": s}
+    if every is not None:
+        engine["sample_prefill"] = every
+    return engine
 
 
 def _address_maps(arch, trace):
@@ -68,15 +83,16 @@ def _address_maps(arch, trace):
     return {d: AddressMap(arch, layers, heads, max_rows, d) for d in dims}
 
 
-def _run(arch, trace, grain_rows, seed, keep_intervals, progress):
-    grain_rows, seed = _engine_options(arch, grain_rows, seed)
+def _run(arch, trace, options, keep_intervals, progress):
+    engine = _engine_options(arch, options)
     amaps = _address_maps(arch, trace)
     env = simpy.Environment()
     ahead = room_by_request(arch)
     buffers = {name: Buffer(env, name, kib * 1024, ahead) for name, kib in (
         ("query", arch.buffers.query_kib), ("key", arch.buffers.key_kib), ("value", arch.buffers.value_kib))}
     # steps are made as the units reach them (the program's feeds)
-    prog = ProgramBuilder(env, arch, trace, amaps, buffers, grain_rows, np.random.default_rng(seed)).prog
+    prog = ProgramBuilder(env, arch, trace, amaps, buffers, engine["grain_rows"],
+                          np.random.default_rng(engine["seed"]), engine.get("sample_prefill")).prog
     pool = ChannelPool(env, arch)
     # the fetch unit's intervals are always kept: the pool's stalls are read from them
     names = ("fetch", "dot", "softmax", "topk") + (() if arch.dot.arrays == "shared" else ("dot_pv",))
@@ -102,7 +118,7 @@ def _run(arch, trace, grain_rows, seed, keep_intervals, progress):
     # the run ends when the last step has ended and the last write has reached memory
     end = max(max(step_times), pool.write_end)
     return RunStats(arch, trace, prog, pool, states, buffers, fetch_stats, step_times, end,
-                    {"grain_rows": grain_rows, "seed": seed}, keep_intervals, folded)
+                    engine, keep_intervals, folded)
 
 
 def _start_units(env, arch, prog, fetch, states):

@@ -25,6 +25,10 @@ last operation that reads it; made in parts, that reader is settled once no
 block still to be made can read the transaction (a resident chunk's last
 reading block is known from the plan), so the program is the same either way.
 
+A run sampling long prefill steps (``sample_prefill``) makes only the blocks
+:func:`_sampled_blocks` picks, and keeps when each ends (``block_dues``) for
+:mod:`sim.result` to estimate the whole run from.
+
 Nothing here runs simpy processes: it only creates what they share.
 """
 
@@ -57,7 +61,13 @@ class Program:
         self.counts = {"macs_qk": 0, "macs_lsb": 0, "macs_pv": 0, "softmax_elements": 0,
                        "topk_comparisons": 0.0, "topk_selections": 0, "value_selections": 0}
         self.macs_by_dim = {}
+        self.macs_pv_by_dim = {}
         self.compulsory_bytes = 0
+        # a run sampling query blocks (sample_prefill): per sampled step, each made block's
+        # (stratum size, half-sample, copy) and the Due of its last p.V, in the order made
+        self.block_sample = {}
+        self.block_dues = {}
+        self.made_rows = {}   # per sampled step, the query rows made (each copy counted)
 
     def made(self, done):
         """A step was made (``done``: the last one): wake the units that wait for one."""
@@ -149,9 +159,9 @@ class _LazyBlocks:
     each is planned when the builder first asks for it and not kept, so a long
     step holds the plans of the blocks in flight, not all of them."""
 
-    def __init__(self, plan, totals):
+    def __init__(self, plan, totals, kept):
         self.plan, self.totals = plan, totals
-        self.where = [(gi, b) for gi, gp in enumerate(plan) for b in range(len(gp.band))]
+        self.where = [(gi, b) for gi, gp in enumerate(plan) for b in kept]
         self.next = 0
 
     def __len__(self):
@@ -185,12 +195,27 @@ class _StepShape:
     whose blocks stream more than ``SHAPE_CACHE_CHUNKS`` chunks is planned block
     by block as it is made (:class:`_LazyBlocks`) and not kept for reuse; its
     work counts are complete once its last block is made.
+
+    ``every`` (a run sampling query blocks) makes only the middle block of every ``every``
+    of each group, twice (:func:`_sampled_blocks`); ``sample`` is then each made block's
+    stratum size, half-sample and copy, and ``kept_rows`` marks the query rows of the
+    blocks sampled.
     """
 
-    def __init__(self, arch, amap, step, layer, grain_rows, q_room):
+    def __init__(self, arch, amap, step, layer, grain_rows, q_room, every=None):
         self.plan = plan = plan_step(arch, amap, step, grain_rows, layer, lazy_over=SHAPE_CACHE_CHUNKS)
         q_blocks = [gp.band.blocks if gp.band is not None else [bp.q_positions for bp in gp.blocks]
                     for gp in plan]
+        picks = _sampled_blocks(plan, step, every, len(q_blocks[0]))
+        kept = range(len(q_blocks[0])) if picks is None else [pick[0] for pick in picks]
+        self.sample = self.kept_rows = None
+        if picks is not None:
+            self.sample = [pick[1:] for _gp in plan for pick in picks]
+            starts = np.cumsum([0] + [len(q) for q in q_blocks[0]])
+            self.kept_rows = np.zeros(step.q_rows, dtype=bool)
+            for i in kept:
+                self.kept_rows[starts[i]:starts[i + 1]] = True
+            q_blocks = [[qs[i] for i in sorted(set(kept))] for qs in q_blocks]
         compulsory = 0
         for gp, qs in zip(plan, q_blocks):  # every row once: what an infinite buffer would fetch
             compulsory += gp.k_bytes + gp.v_bytes + gp.lsb_bytes + amap.burst * sum(
@@ -199,11 +224,11 @@ class _StepShape:
         self.shared_q = self._shared_query(amap, step, layer, q_room, q_blocks)
         self.totals = _Totals()
         if any(gp.band is not None for gp in plan):
-            self.blocks = _LazyBlocks(plan, self.totals)
+            self.blocks = _LazyBlocks(plan, self.totals, kept)
             reads = self.blocks.reads()
             self.chunks = None      # not counted, never cached
         else:
-            self.blocks = [_BlockShape(gi, gp, bp) for gi, gp in enumerate(plan) for bp in gp.blocks]
+            self.blocks = [_BlockShape(gi, gp, gp.blocks[i]) for gi, gp in enumerate(plan) for i in kept]
             for b in self.blocks:
                 self.totals.add(b)
             reads = ((b.gi, b.gp, b.bp.k_idx, b.bp.v_idx, bool(b.bp.lsb)) for b in self.blocks)
@@ -242,6 +267,49 @@ class _StepShape:
         return segs, _rows(segs)
 
 
+# strata of a sampled group: a multiple of four (half-samples alternate A B B A, so four make
+# them balanced along a linear trend), at least this many
+MIN_STRATA = 4
+COPIES = 2   # each sampled block is made this many times in a row (see _sampled_blocks)
+
+
+def _sampled_blocks(plan, step, every, n):
+    """The query blocks a run sampling about one in ``every`` makes of a step of ``n``
+    blocks a group, as ``(block, stratum size, half-sample, copy)``, the same in every group;
+    None to make them all. The blocks fall into ``m`` strata of consecutive blocks, ``m``
+    the multiple of four nearest ``n / every`` (at least ``MIN_STRATA``), as equal as whole
+    numbers allow; each stratum's middle block (of two middles, the lower and the upper in
+    turn over the strata of even size, so their offsets cancel) is made twice in a row and
+    stands for its stratum: systematic sampling with a centrally located start, exact for a
+    time that grows linearly along the blocks, as a causal step's do (Cochran, *Sampling
+    Techniques*, 3rd ed., 1977, ch. 8, from memory). Strata go to two half-samples in the
+    order A B B A.
+
+    Only prefill steps with at least ``MIN_STRATA`` strata of ``every`` blocks, whose groups
+    stream their K/V (nothing resident), are sampled: a resident chunk is fetched by the
+    first block that reads it, so a made block would not stand for its stratum's share of
+    those fetches.
+
+    Why twice: in a whole run each block follows one nearly like it, and the units overlap
+    neighbours' work (q.K ahead of p.V by ``dot.lookahead`` blocks); a sampled block follows
+    one a stratum smaller, and on a datapath whose units are balanced that alone moved
+    blocks' times by up to a third (two arrays on ``server``). A second copy follows its like;
+    how far the two copies' estimates are apart says how much the order mattered."""
+    if every is None or step.stage != "prefill" or n < MIN_STRATA * every:
+        return None
+    if any(gp.k_resident or gp.v_resident or gp.kl_resident for gp in plan):
+        return None
+    m = max(MIN_STRATA, 4 * round(n / every / 4))
+    out, even = [], 0
+    for k in range(m):
+        start, size = k * n // m, (k + 1) * n // m - k * n // m
+        i = start + ((size - 1) // 2 if even % 2 == 0 else size // 2)
+        even += size % 2 == 0
+        half = (k + k // 2) % 2
+        out += [(i, size, half, copy) for copy in range(COPIES)]
+    return out
+
+
 class _StepBuild:
     """What the builder keeps while it emits one step."""
 
@@ -272,10 +340,11 @@ class _StepBuild:
 class ProgramBuilder:
     """Builds the :class:`Program` of a trace on an architecture (see the module docstring)."""
 
-    def __init__(self, env, arch, trace, amaps, buffers, grain_rows, rng):
+    def __init__(self, env, arch, trace, amaps, buffers, grain_rows, rng, sample_prefill=None):
         self.env, self.arch, self.trace = env, arch, trace
         self.amaps, self.buffers = amaps, buffers
         self.grain_rows, self.rng = grain_rows, rng
+        self.sample_prefill = sample_prefill
         self.prog = Program(arch.dot.arrays == "shared", len(trace.steps), self._more, env)
         self.shapes = {}
         self.cached_chunks = 0    # chunks planned in the cached shapes
@@ -319,7 +388,12 @@ class ProgramBuilder:
         if prev_done is not None and (step.stage == "prefill" or prev_selected):
             dep_kv = [(prev_done, "topk" if prev_selected else "layer_dependency")]
         layer = step.request * self.layers + step.layer   # each request its own KV-cache region
-        return _StepBuild(s, step, layer, self._shape(step, layer), dep_q, dep_kv)
+        shape = self._shape(step, layer)
+        if shape.sample is not None:
+            self.prog.block_sample[s] = shape.sample
+            self.prog.block_dues[s] = []
+            self.prog.made_rows[s] = COPIES * int(shape.kept_rows.sum())
+        return _StepBuild(s, step, layer, shape, dep_q, dep_kv)
 
     def _end_step(self, st):
         steps, s = self.trace.steps, st.s
@@ -337,7 +411,7 @@ class ProgramBuilder:
         shape = self.shapes.get(key)
         if shape is None:
             q_room = self.buffers["query"].capacity / 2
-            shape = _StepShape(self.arch, amap, step, layer, self.grain_rows, q_room)
+            shape = _StepShape(self.arch, amap, step, layer, self.grain_rows, q_room, self.sample_prefill)
             if shape.chunks is not None and shape.chunks <= SHAPE_CACHE_CHUNKS:
                 # a long decode plans a new shape per token; oldest out first
                 while self.shapes and (len(self.shapes) >= SHAPE_CACHE
@@ -402,6 +476,7 @@ class ProgramBuilder:
         c["value_selections"] += tot.value_selections
         prog.compulsory_bytes += shape.compulsory_bytes
         prog.macs_by_dim[d] = prog.macs_by_dim.get(d, 0) + sum(tot.macs.values())
+        prog.macs_pv_by_dim[d] = prog.macs_pv_by_dim.get(d, 0) + tot.macs["pv"]
 
     # ------------------------------------------------------------- fetches
     def _fetch(self, st, kind, segments, rows, waits, head, block, skip=0):
@@ -551,6 +626,8 @@ class ProgramBuilder:
             self.prog.dot_pv.append(op)
         op.done = Due(self.env)
         st.last_pv_done = op.done
+        if st.shape.sample is not None:
+            self.prog.block_dues[st.s].append(op.done)
 
     # ---------------------------------------------------- between layers
     def _select_next(self, st, nxt):
@@ -581,13 +658,24 @@ class ProgramBuilder:
         query rows' place in the layer's region)."""
         step = st.step
         txns = []
+        # sampled: the made blocks' rows (aligned with the last rows), when the request's next
+        # step is a prefill step too, in whose sampled blocks they drain; before a decode step
+        # or at the end they are written whole, as they drain into time counted once
+        nxt = self.next_of[st.s]
+        sampled_next = nxt is not None and self.trace.steps[nxt].stage == "prefill"
+        kept = st.shape.kept_rows if sampled_next else None
         if step.new_kv_rows:
             rows = np.arange(step.kv_rows - step.new_kv_rows, step.kv_rows, dtype=np.int64)
+            if kept is not None:
+                rows = rows[kept[step.q_rows - step.new_kv_rows:]]
             kvs = np.unique(step.kv_heads).tolist()
             planes = ("K", "KL", "V") if self.arch.precision.k_lsb_bits > 0 else ("K", "V")
-            txns += [self._write(st, pl, [(g, rows) for g in kvs]) for pl in planes]
-        if step.out_rows:
-            rows = step.query_positions()[-step.out_rows:]
+            if len(rows):
+                txns += [self._write(st, pl, [(g, rows) for g in kvs]) for pl in planes]
+        rows = step.query_positions()[-step.out_rows:] if step.out_rows else ()
+        if kept is not None and len(rows):
+            rows = rows[kept[step.q_rows - step.out_rows:]]
+        if len(rows):
             txns.append(self._write(st, "Q", [(h, rows) for h in step.heads.tolist()]))
         if txns:
             self.prog.writes.append((done, txns))
