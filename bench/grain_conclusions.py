@@ -94,12 +94,19 @@ def disagreement(a, b, margin):
     return "reversed" if sa * sb < 0 else ("across" if sa != sb else None)
 
 
-def main():
-    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("--cases", type=int, default=1000)
-    ap.add_argument("--seed", type=int, default=14)
+def comparison_parser(doc, cases, seed):
+    """The options every conclusion bench takes: how many cases, the seed that draws them, the
+    processes, and the margin below which a speed-up is no difference."""
+    ap = argparse.ArgumentParser(description=doc.split("\n\n")[0])
+    ap.add_argument("--cases", type=int, default=cases)
+    ap.add_argument("--seed", type=int, default=seed)
     ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--margin", type=float, default=0.02, help="a difference smaller than this is none")
+    return ap
+
+
+def main():
+    ap = comparison_parser(__doc__, 1000, 14)
     ap.add_argument("--phases", action="store_true", help="average each answer over four refresh phases")
     ap.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                     help="a config value every case takes, over the drawn one (e.g. dram.refresh_postpone=8)")

@@ -20,7 +20,6 @@ its whole run, and how many sampled runs the half-sample spread flagged (over
 the notes, not in tests.
 """
 
-import argparse
 import multiprocessing as mp
 import os
 import random
@@ -32,7 +31,7 @@ ROOT = os.path.dirname(HERE)
 sys.path[:0] = [ROOT, HERE, os.path.join(ROOT, "tests")]
 
 import sim  # noqa: E402
-from grain_conclusions import disagreement  # noqa: E402  (one rule for what a disagreement is)
+from grain_conclusions import comparison_parser, disagreement  # noqa: E402  (one rule for what a disagreement is)
 from sim.errors import InputError  # noqa: E402
 from sim.run import estimate_whole  # noqa: E402
 from sim.trace.sample import sample_decode  # noqa: E402
@@ -82,12 +81,7 @@ def _work(args):
 
 
 def main():
-    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("--cases", type=int, default=60)
-    ap.add_argument("--seed", type=int, default=1)
-    ap.add_argument("--jobs", type=int, default=2)
-    ap.add_argument("--margin", type=float, default=0.02, help="a difference smaller than this is none")
-    args = ap.parse_args()
+    args = comparison_parser(__doc__, 60, 1).parse_args()
     t0 = time.perf_counter()
     m = args.margin
     reversed_, sided, skipped, worst, worst_err, flagged, done = [], [], 0, (0.0, None), (0.0, None), 0, 0
