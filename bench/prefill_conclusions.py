@@ -18,7 +18,7 @@ many were reversed, how many changed side of the margin and whether their runs
 were flagged, the largest estimate error against its whole run and the largest
 gap between the two speed-ups, each over all runs and over those not flagged,
 and how many sampled runs the run summary flags (the copies' or the
-half-samples' estimates more than 1 % apart). Refused knob values and cases
+half-samples' estimates more than 1 % either side, or two arrays). Refused knob values and cases
 where no step could be sampled are skipped. Figures go in the notes, not in tests.
 """
 
@@ -75,12 +75,13 @@ def compare(seed, case):
         whole, est, flagged, loose = [], [], 0, 0.0
         for arch in (a, b):
             w = sim.simulate(arch, trace, keep_intervals=False).to_dict()["cycles"]
-            ps = sim.simulate(arch, trace, keep_intervals=False, sample_prefill=k).to_dict()["prefill_sample"]
+            doc = sim.simulate(arch, trace, keep_intervals=False, sample_prefill=k).to_dict()
+            ps = doc["prefill_sample"]
             if not ps["sampled_steps"]:
                 return case, None, "no step sampled"
             whole.append(w)
             est.append(ps["cycles"])
-            noisy = prefill_sample_noisy(ps)
+            noisy = prefill_sample_noisy(doc)
             flagged += noisy
             if not noisy:
                 loose = max(loose, abs(ps["cycles"] / w - 1))

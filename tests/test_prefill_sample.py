@@ -19,7 +19,7 @@ import sim
 from sim.cli import main
 from sim.engine.program import _sampled_blocks
 from sim.errors import ConfigError
-from sim.result import format_summary
+from sim.result import format_summary, prefill_sample_noisy
 from sim.trace.files import save_trace
 from sim.trace.synth import synth_trace
 
@@ -131,13 +131,19 @@ def test_made_blocks_do_the_work_of_their_rows():
 
 def test_order_dependent_datapath_is_flagged():
     """Server (a q.K and a p.V array, balanced): a sampled block's time depends on the block
-    before it, and the copies' estimates say so (measured 3.1 % apart, 12 % off the whole run)."""
+    before it; the copies' estimates say so (measured 3.1 % either side, 12 % off the whole run)
+    and the summary says to compare such designs by whole runs."""
     trace = prompt_trace(prompt=8192, layers=1, decode=0, shape="dec-8b", seed=1)
     doc = sim.simulate("server", trace, keep_intervals=False, sample_prefill=8).to_dict()
     ps = doc["prefill_sample"]
     assert ps["sampled_steps"] == 1
     assert ps["copy_spread"] > 0.01
-    assert "cannot be told apart" in format_summary(doc)
+    assert prefill_sample_noisy(doc)
+    assert "so compare designs by whole runs" in format_summary(doc)
+    # one array: the same case is not flagged, and the summary does not say so
+    one = sim.simulate("mid", prompt_trace(prompt=2048, layers=1, decode=0), keep_intervals=False,
+                       sample_prefill=8).to_dict()
+    assert not prefill_sample_noisy(one) and "whole runs" not in format_summary(one)
 
 
 def test_engine_option_is_checked():
@@ -155,7 +161,7 @@ def test_cli_sample_prefill(tmp_path, capsys):
     assert main(["run", "--arch", "mid", "--trace", str(path), "--sample-prefill", "8", "--json", str(out)]) == 0
     text = capsys.readouterr().out
     line = next(x for x in text.splitlines() if x.strip().startswith("sampled"))
-    assert "the middle query block of every 8, twice" in line and "estimated at" in line
+    assert "the middle query block of each stratum of about 8, twice" in line and "estimated at" in line
     doc = json.loads(out.read_text())
     assert doc["prefill_sample"]["every"] == 8 and doc["prefill_sample"]["sampled_steps"] == 1
     assert f"{doc['prefill_sample']['cycles']:,} cycles" in line
