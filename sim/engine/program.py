@@ -173,8 +173,8 @@ class _LazyBlocks:
         self.next += 1
         gi, b = self.where[j]
         band = self.plan[gi].band
-        if b == 0 and gi:
-            self.plan[gi - 1].band.forget_before(float("inf"))
+        if j and self.where[j - 1][0] != gi:   # the previous group is done (its first block
+            self.plan[self.where[j - 1][0]].band.forget_before(float("inf"))   # may be unmade)
         band.forget_before(band.ranges[b][3][0])
         shape = _BlockShape(gi, self.plan[gi], band.plan(b))
         self.totals.add(shape)
