@@ -150,10 +150,10 @@ def _add_run(sub):
                         "section give the whole trace's estimated cycles and the spread of two half-samples; "
                         "every other figure is the simulated part's")
     p.add_argument("--sample-prefill", type=_int_in(2, 4096), metavar="K",
-                   help="make the middle query block of every K of each long prefill step (twice) and let it "
-                        "stand for its K: the summary and the document's prefill_sample section give the whole "
-                        "trace's estimated cycles and how far two pairs of part-estimates are apart; every "
-                        "other figure is the simulated part's")
+                   help="make only the middle query block (twice) of each stratum of about K blocks of a long "
+                        "prefill step and let it stand for its stratum: the summary and the document's "
+                        "prefill_sample section give the whole trace's estimated cycles and how far two pairs of "
+                        "part-estimates are apart; every other figure is the simulated part's")
     p.add_argument("--sample-warmup", type=_int_in(0, 1 << 20), metavar="N",
                    help="with --sample-decode: decode tokens of each request run in full before sampling starts "
                         "(default 32); longer where the prefill's cache writes take long to drain")
