@@ -662,8 +662,8 @@ class ProgramBuilder:
         # step is a prefill step too, in whose sampled blocks they drain; before a decode step
         # or at the end they are written whole, as they drain into time counted once
         nxt = self.next_of[st.s]
-        sampled_next = nxt is not None and self.trace.steps[nxt].stage == "prefill"
-        kept = st.shape.kept_rows if sampled_next else None
+        into_prefill = nxt is not None and self.trace.steps[nxt].stage == "prefill"
+        kept = st.shape.kept_rows if into_prefill else None
         if step.new_kv_rows:
             rows = np.arange(step.kv_rows - step.new_kv_rows, step.kv_rows, dtype=np.int64)
             if kept is not None:
