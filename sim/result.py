@@ -266,7 +266,8 @@ def build_result(stats):
 
 def _block_estimate(prog, step_times, end, every, per_cycle, simulated):
     """The whole trace's cycles and seconds estimated from a run that made the middle query
-    block of every ``every`` of its long prefill steps, twice (``engine.sample_prefill``):
+    block of each stratum of about ``every`` blocks of its long prefill steps, twice
+    (``engine.sample_prefill``):
     the ``prefill_sample`` section. The run's time is split as ``per_step_cycles`` splits it,
     with each made block's end (its last p.V) as a mark of its own before its step's end: a
     block's share is what it added to the run. Each copy's share stands for its stratum

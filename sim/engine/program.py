@@ -196,8 +196,8 @@ class _StepShape:
     by block as it is made (:class:`_LazyBlocks`) and not kept for reuse; its
     work counts are complete once its last block is made.
 
-    ``every`` (a run sampling query blocks) makes only the middle block of every ``every``
-    of each group, twice (:func:`_sampled_blocks`); ``sample`` is then each made block's
+    ``every`` (a run sampling query blocks) makes only the middle block of each stratum of
+    about ``every`` blocks of each group, twice (:func:`_sampled_blocks`); ``sample`` is then each made block's
     stratum size, half-sample and copy, and ``kept_rows`` marks the query rows of the
     blocks sampled.
     """
