@@ -221,6 +221,41 @@ def test_a_banded_step_planned_block_by_block_holds_a_few_blocks_and_gives_the_s
     assert lazy == whole
 
 
+@pytest.mark.parametrize("sample", [None, 4])
+def test_a_finished_step_planned_block_by_block_is_freed_while_the_run_goes_on(sample, monkeypatch):
+    """A consistency check, no outside source: the engine runs with the cyclic collector
+    off, so a step's plan must not refer to itself in a circle (a group and its block
+    planner did), or every long step's plan stays in memory until the run ends. Eight
+    layers of causal prefill planned block by block (whole, and sampled one block in
+    about 4): the group plans alive while a block is planned stay those of the steps in
+    flight, not one set per layer made so far."""
+    import gc
+
+    from sim.engine import band as band_mod
+    from sim.engine import program as program_mod
+    from sim.engine.tiling import GroupPlan
+
+    arch = sim.load_arch("arch_configs/edge.yaml")
+    trace = synth_trace(prompt_tokens=512, decode_steps=0, layers=8, heads=4, kv_heads=2, causal=True, seed=3)
+    alive = []
+    real = band_mod.BandPlanner.plan
+
+    def plan(self, b):
+        if b == 0 or len(alive) % 16 == 0:
+            alive.append(sum(1 for o in gc.get_objects() if type(o) is GroupPlan))
+        else:
+            alive.append(alive[-1])
+        return real(self, b)
+
+    monkeypatch.setattr(band_mod.BandPlanner, "plan", plan)
+    monkeypatch.setattr(program_mod, "SHAPE_CACHE_CHUNKS", 0)
+    gc.collect()
+    sim.simulate(arch, trace, keep_intervals=False, **({"sample_prefill": sample} if sample else {}))
+    groups = 2   # K/V heads a step's plan has a group for
+    assert len(alive) > 8
+    assert max(alive) <= 3 * groups < 8 * groups
+
+
 def test_the_up_front_check_lets_long_steps_through_as_their_plans_do_not_hold_re_streams(monkeypatch):
     """A causal 32k-token prefill on edge is some 26 million transactions in one step of a
     layer (arithmetic of the tiling rule: 16-row query blocks, each re-streaming the keys

@@ -15,6 +15,7 @@ the block sees; in prefill the block's visible keys are fetched and
 ``kept_v`` only bounds the products each row does.
 """
 
+import weakref
 from array import array
 
 import numpy as np
@@ -91,7 +92,10 @@ class BandPlanner:
     """
 
     def __init__(self, arch, amap, step, layer, gp, idx, keys, blocks, cuts):
-        self.arch, self.amap, self.step, self.layer, self.gp = arch, amap, step, layer, gp
+        # the group holds its planner (``gp.band``); a strong link back would make a cycle,
+        # and the engine runs with the cyclic collector off, so every long step's plan would
+        # stay in memory until the run ends
+        self.arch, self.amap, self.step, self.layer, self.gp = arch, amap, step, layer, weakref.proxy(gp)
         self.keys, self.blocks = keys, blocks
         self.kc, vc, self.klc = cuts
         self.ranges = []
@@ -221,7 +225,7 @@ class _ValuePlan:
     """The V side of a banded group: which rows each block fetches, and the p.V work."""
 
     def __init__(self, arch, amap, step, layer, gp, idx, keys, ranges, vc):
-        self.arch, self.amap, self.step, self.layer, self.gp = arch, amap, step, layer, gp
+        self.arch, self.amap, self.step, self.layer, self.gp = arch, amap, step, layer, weakref.proxy(gp)
         self.idx, self.keys, self.vc = idx, keys, vc
         self.half = _half(arch, "V")
         self.cap = chunk_cap(arch, "V")

@@ -119,7 +119,7 @@ class GroupPlan:
 
     __slots__ = ("heads", "kv", "n_kv", "v_positions", "v_work", "select", "k_resident", "v_resident",
                  "k_chunks", "v_chunks", "blocks", "k_bytes", "v_bytes", "lsb_bytes", "kl_resident",
-                 "kl_chunks", "kl_msb_chunks", "band")
+                 "kl_chunks", "kl_msb_chunks", "band", "__weakref__")
 
     def __init__(self, heads, kv):
         self.heads = heads        # query head ids
