@@ -176,6 +176,9 @@ def test_cli_run_sampled(tmp_path, capsys):
     assert doc["trace"]["name"].endswith("-sampled")
     assert f"the whole trace estimated at {ds['cycles']:,} cycles" in text
     assert "on 2 layers such estimates have come up to 2.2 % off" in text     # fewer than 8 layers
+    assert main(["report", str(out), "--out", str(tmp_path / "rep")]) == 2   # the part's figures: refused
+    err = capsys.readouterr().err.strip()
+    assert "decode_sample" in err and "expected a whole run" in err and len(err.splitlines()) == 1
 
 
 def test_no_few_layers_caution_from_eight_layers():

@@ -165,6 +165,11 @@ def test_cli_sample_prefill(tmp_path, capsys):
     doc = json.loads(out.read_text())
     assert doc["prefill_sample"]["every"] == 8 and doc["prefill_sample"]["sampled_steps"] == 1
     assert f"{doc['prefill_sample']['cycles']:,} cycles" in line
+    # a report would rank the sampled part's figures: refused, one line naming the section
+    assert main(["report", str(out), "--out", str(tmp_path / "rep")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert str(out) in err and "prefill_sample" in err and "expected a whole run" in err
+    assert f"{doc['prefill_sample']['cycles']:,} cycles" in err and len(err.splitlines()) == 1
 
 
 def test_cli_nothing_to_sample_says_so(tmp_path, capsys):

@@ -99,6 +99,9 @@ def _check_doc(doc, source, field="<root>"):
     for name, u in doc["units"].items():
         if not isinstance(u, dict) or "busy" not in u or "stalls" not in u:
             raise ReportError(source, f"units.{name}", u, "expected busy/starved/blocked/idle fractions and stalls")
+    for key in SAMPLED:
+        if doc.get(key) is not None:
+            _refuse_sampled(doc, source, key)
     ph = doc.get("refresh_phases")
     if ph is not None:
         cyc = ph.get("cycles") if isinstance(ph, dict) else None
@@ -112,6 +115,22 @@ def _check_doc(doc, source, field="<root>"):
                 raise ReportError(source, "refresh_phases." + key, v,
                                   "expected a positive finite number: the mean over the refresh phases' runs")
     return doc
+
+
+# sections of a run of a sampled part (attnsim run --sample-decode / --sample-prefill)
+SAMPLED = ("decode_sample", "prefill_sample")
+
+
+def _refuse_sampled(doc, source, key):
+    """A sampled run's figures are its part's: ranked against others they would rank the
+    parts, which differ with K and, in prefill, with each config's query block rows."""
+    sec = doc[key]
+    est = sec.get("cycles") if isinstance(sec, dict) else None
+    shown = f"whole estimated at {est:,} cycles" if isinstance(est, int) else sec
+    raise ReportError(source, key, shown,
+                      "expected a whole run: a sampled run's figures are its simulated part's, so a report "
+                      "would rank the parts; compare sampled runs by the estimates attnsim run prints, "
+                      "or run the whole trace")
 
 
 def _load_json(path):
