@@ -29,6 +29,11 @@ prefill steps' query blocks (``attnsim run --sample-prefill K``) and adds the
 estimated cycles of the whole and the two spreads the run summary flags by;
 ``--case prompt8k-1L`` (a ``--slope`` point) and ``prompt32k-L0`` on ``mid`` are
 short enough to run whole as well, for the estimate's error at that size.
+``--sample-decode K`` (with ``--engine``) simulates a decode-sampled part of each
+case (``attnsim run --sample-decode K``: each request's first 32 decode tokens,
+then one in K) and adds its estimate of the whole; with ``--sample-prefill`` too
+the part's prefill is sampled as well and the decode estimate weighs its steps'
+estimated cycles.
 
 ``--slope`` asks whether simulation time follows the trace's work: one layer of
 the 8B-class shape, causal prefill of 8k, 16k and 32k tokens (the work grows
@@ -39,7 +44,7 @@ distance from it.
 
     python bench/trace_long.py [--repeat 3] [--case NAME]
     python bench/trace_long.py --engine [--repeat 1] [--case NAME] [--arch NAME] [--skip-build] [--skip-budget]
-                               [--sample-prefill K]
+                               [--sample-prefill K] [--sample-decode K]
     python bench/trace_long.py --slope [--arch NAME]
 """
 
@@ -109,7 +114,7 @@ def engine_trace(name):
     return synth_trace(**(CASES.get(name) or SLOPE_CASES[name]), seed=1)
 
 
-def run_engine_case(name, arch_name, limit_gib, skip_budget=False, sample=None):
+def run_engine_case(name, arch_name, limit_gib, skip_budget=False, sample=None, decode=None):
     """One case simulated on one bundled config in this process; prints a JSON line.
     The address space is capped at ``limit_gib`` so a case that outgrows it fails
     (MemoryError) instead of taking the machine down."""
@@ -123,6 +128,12 @@ def run_engine_case(name, arch_name, limit_gib, skip_budget=False, sample=None):
     sim.simulate(arch, synth_trace(prompt_tokens=64, decode_steps=1, layers=1, heads=2))  # load the compiled loops
     t0 = time.perf_counter()
     trace = engine_trace(name)
+    cut = None
+    if decode:   # simulate a decode-sampled part (attnsim run --sample-decode K)
+        from sim.trace.sample import sample_decode
+
+        cut = sample_decode(trace, decode)
+        trace = cut.part
     t1 = time.perf_counter()
     trace_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     if skip_budget:  # the engine itself, without sim.budget's estimate and refusal
@@ -133,6 +144,10 @@ def run_engine_case(name, arch_name, limit_gib, skip_budget=False, sample=None):
     else:
         opts = {"sample_prefill": sample} if sample else {}
         doc = sim.simulate(arch, trace, keep_intervals=False, **opts).to_dict()
+    if cut is not None:
+        from sim.run import estimate_whole
+
+        doc["decode_sample"] = estimate_whole(doc, cut)
     t2 = time.perf_counter()
     rss_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     wall = t2 - t1
@@ -142,14 +157,20 @@ def run_engine_case(name, arch_name, limit_gib, skip_budget=False, sample=None):
                       "fetch_txn_per_s": doc["fetch"]["transactions"] / wall,
                       "dram_txn_per_s": doc["dram"]["transactions"] / wall, "cycles": doc["cycles"],
                       "dram_gib": doc["dram"]["bytes"] / 2**30, "bound": doc["bounds"]["bound"],
-                      "prefill_sample": doc.get("prefill_sample")}))
+                      "prefill_sample": _without_steps(doc.get("prefill_sample")),
+                      "decode_sample": doc.get("decode_sample")}))
 
 
-def engine_run(name, arch, limit_gib, skip_budget=False, width=11, sample=None):
+def _without_steps(section):
+    return section and {k: v for k, v in section.items() if k != "per_step_cycles"}
+
+
+def engine_run(name, arch, limit_gib, skip_budget=False, width=11, sample=None, decode=None):
     """One case simulated on ``arch`` in a fresh process: its figures, or None (failure printed)."""
     proc = subprocess.run([sys.executable, __file__, "--one-engine", name, arch, str(limit_gib)]
                           + (["--skip-budget"] if skip_budget else [])
-                          + (["--sample-prefill", str(sample)] if sample else []), capture_output=True, text=True)
+                          + (["--sample-prefill", str(sample)] if sample else [])
+                          + (["--sample-decode", str(decode)] if decode else []), capture_output=True, text=True)
     if proc.returncode:
         last = (proc.stderr.strip().splitlines() or ["(no message)"])[-1]
         print(f"{name:<{width}} {arch:<11} failed: exit {proc.returncode}: {last}")
@@ -179,14 +200,14 @@ def slope_table(archs, limit_gib):
                   f"residuals {res}; work grows {x[-1] / x[0]:.1f}x, time {y[-1] / y[0]:.1f}x")
 
 
-def engine_table(names, archs, repeat, limit_gib, skip_budget, sample=None):
+def engine_table(names, archs, repeat, limit_gib, skip_budget, sample=None, decode=None):
     print(f"\n{'case':<11} {'arch':<11} {'steps':>6} {'sim s':>8} {'fetch txn/s':>12} {'DRAM txn/s':>11} "
           f"{'cycles':>15} {'DRAM GiB':>9} {'trace RSS':>10} {'peak RSS MiB':>13}   (best of {repeat}; RSS: largest)")
     for name in names:
         for arch in archs or ENGINE_ARCHS.get(name, ["mid"]):
             runs = []
             for _ in range(repeat):
-                run = engine_run(name, arch, limit_gib, skip_budget, sample=sample)
+                run = engine_run(name, arch, limit_gib, skip_budget, sample=sample, decode=decode)
                 if run is None:
                     break
                 runs.append(run)
@@ -197,12 +218,18 @@ def engine_table(names, archs, repeat, limit_gib, skip_budget, sample=None):
                   f"{best['dram_txn_per_s']:>11,.0f} {best['cycles']:>15,} {best['dram_gib']:>9.2f} "
                   f"{max(r['trace_rss_mib'] for r in runs):>10.0f} {max(r['peak_rss_mib'] for r in runs):>13.0f}",
                   flush=True)
-            ps = best.get("prefill_sample")
+            ps, ds = best.get("prefill_sample"), best.get("decode_sample")
             if ps:
+                of = "the decode-sampled part" if ds else "whole"
                 print(f"{'':<11} {'':<11} sampled 1 in {ps['every']} ({ps['sampled_steps']} steps, "
-                      f"{ps['simulated_query_blocks']:,} blocks made for {ps['query_blocks']:,}): whole estimated at "
+                      f"{ps['simulated_query_blocks']:,} blocks made for {ps['query_blocks']:,}): {of} estimated at "
                       f"{ps['cycles']:,} cycles; copies {ps['copy_spread']:.2%}, half-samples "
                       f"{ps.get('half_sample_spread', 0.0):.2%} either side", flush=True)
+            if ds:
+                print(f"{'':<11} {'':<11} decode tokens 1 in {ds['every']} after {ds['warmup_tokens']} "
+                      f"({ds['simulated_decode_steps']:,} of {ds['decode_steps']:,} decode steps): whole estimated "
+                      f"at {ds['cycles']:,} cycles; half-samples {ds.get('half_sample_spread', 0.0):.2%} either side",
+                      flush=True)
 
 
 def main():
@@ -221,13 +248,15 @@ def main():
     ap.add_argument("--slope", action="store_true", help="simulation time against work (see above)")
     ap.add_argument("--sample-prefill", type=int, metavar="K",
                     help="with --engine: sample long prefill steps' query blocks, one in about K (see above)")
+    ap.add_argument("--sample-decode", type=int, metavar="K",
+                    help="with --engine: simulate the first 32 decode tokens and then one in K (see above)")
     args = ap.parse_args()
     if args.one:
         run_case(args.one)
         return
     if args.one_engine:
         name, arch, limit = args.one_engine
-        run_engine_case(name, arch, float(limit), args.skip_budget, args.sample_prefill)
+        run_engine_case(name, arch, float(limit), args.skip_budget, args.sample_prefill, args.sample_decode)
         return
     if args.slope:
         slope_table(args.arch, args.limit_gib)
@@ -236,7 +265,7 @@ def main():
         build_table([c for c in args.case or list(CASES) if c in CASES], args.repeat)
     if args.engine:
         engine_table(args.case or list(CASES), args.arch, args.repeat, args.limit_gib, args.skip_budget,
-                     args.sample_prefill)
+                     args.sample_prefill, args.sample_decode)
 
 
 def build_table(names, repeat):

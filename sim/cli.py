@@ -183,9 +183,6 @@ def _cmd_run(args):
     sample = None
     if args.sample_warmup is not None and not args.sample_decode:
         raise OptionError("--sample-warmup", "--sample-warmup", args.sample_warmup, "expected with --sample-decode K")
-    if args.sample_decode and args.sample_prefill:
-        raise OptionError("--sample-prefill", "--sample-prefill", args.sample_prefill,
-                          "expected without --sample-decode (one sampling at a time)")
     if args.sample_decode:
         from .trace.sample import sample_decode
         sample = sample_decode(trace, args.sample_decode, args.sample_warmup, source=args.trace,

@@ -215,8 +215,7 @@ def build_result(stats):
     doc = {
         "simulator": {"name": "attnsim", "version": __version__, "build": build_id()},
         "arch": {"name": arch.name, "source": str(arch.source), "config": arch.to_dict()},
-        # a run that made part of its prefill blocks is not the trace's run: named apart
-        "trace": {"name": f"{trace.name}-sampled"[:200] if prog.block_sample else trace.name,
+        "trace": {"name": _trace_name(trace, prog),
                   "source": str(trace.source), "digest": trace.digest(),
                   "steps": len(trace.steps), "head_dims": sorted({s.head_dim for s in trace.steps})},
         "engine": dict(engine),
@@ -264,6 +263,14 @@ def build_result(stats):
     return Result(_round(doc), intervals)
 
 
+def _trace_name(trace, prog):
+    """The trace's name, ``-sampled`` added for a run that made only part of its prefill
+    blocks (it is not the trace's run); a decode-sampled part's name has it already."""
+    if not prog.block_sample or trace.name.endswith("-sampled"):
+        return trace.name
+    return f"{trace.name}-sampled"[:200]
+
+
 def _block_estimate(prog, step_times, end, every, per_cycle, simulated):
     """The whole trace's cycles and seconds estimated from a run that made the middle query
     block of each stratum of about ``every`` blocks of its long prefill steps, twice
@@ -273,26 +280,37 @@ def _block_estimate(prog, step_times, end, every, per_cycle, simulated):
     block's share is what it added to the run. Each copy's share stands for its stratum
     (their mean does, in the estimate); the rest (other steps, a step's time after its last
     block, the write tail) counts once. The copies give an estimate each, and so do two
-    half-samples of strata; half of each pair's distance over the estimate is its spread."""
+    half-samples of strata; half of each pair's distance over the estimate is its spread.
+    ``per_step_cycles`` is the estimate split by step as the document's own list splits the
+    run (the tail with the last step), for a decode sample's estimate to weigh
+    (:func:`sim.run.estimate_whole`)."""
     rest = 0.0
     part = [[0.0, 0.0] for _ in range(COPIES)]   # [copy][half]: stratum size x share
     stands = [0, 0]
+    per_step = []
     prev = 0.0
     for s, t_end in enumerate(step_times):
+        mine = 0.0
         for (size, half, k), due in zip(prog.block_sample.get(s, ()), prog.block_dues.get(s, ())):
-            part[k][half] += size * max(due.at - prev, 0.0)
+            share = size * max(due.at - prev, 0.0)
+            part[k][half] += share
+            mine += share / COPIES
             stands[half] += size if k == 0 else 0
             prev = max(prev, due.at)
         rest += max(t_end - prev, 0.0)
+        per_step.append(mine + max(t_end - prev, 0.0))
         prev = max(prev, t_end)
     rest += max(end - prev, 0.0)
+    if per_step:
+        per_step[-1] += max(end - prev, 0.0)
     by_copy = [rest + sum(p) for p in part]
     cycles = sum(by_copy) / COPIES
     out = {"every": every, "sampled_steps": len(prog.block_sample), "query_blocks": stands[0] + stands[1],
            "simulated_query_blocks": sum(len(v) for v in prog.block_sample.values()),
            "simulated_cycles": simulated, "cycles": round(cycles), "seconds": round(cycles) * per_cycle,
            "copy_cycles": [round(c) for c in by_copy],
-           "copy_spread": (max(by_copy) - min(by_copy)) / 2 / cycles if cycles else 0.0}
+           "copy_spread": (max(by_copy) - min(by_copy)) / 2 / cycles if cycles else 0.0,
+           "per_step_cycles": per_step}
     if stands[0] and stands[1]:
         halves = [rest + sum(p[h] for p in part) / COPIES * (stands[0] + stands[1]) / stands[h] for h in (0, 1)]
         out["half_cycles"] = [round(c) for c in halves]
@@ -404,7 +422,8 @@ def _prefill_sample_text(d):
     steps = ps["sampled_steps"]
     text = (f"the middle query block of each stratum of about {ps['every']}, twice, in {steps:,} prefill "
             f"step{'s' if steps > 1 else ''} ({ps['simulated_query_blocks']:,} blocks made for "
-            f"{ps['query_blocks']:,}): the whole trace estimated at {fm.show(ps['cycles'], 'cycles')} = "
+            f"{ps['query_blocks']:,}): {'the decode-sampled part' if d.get('decode_sample') else 'the whole trace'}"
+            f" estimated at {fm.show(ps['cycles'], 'cycles')} = "
             f"{fm.show(ps['seconds'], 'latency')}, its copies {fm.show(ps['copy_spread'], 'share')} and its "
             f"half-samples {fm.show(ps.get('half_sample_spread', 0.0), 'share')} either side")
     if d["arch"]["config"]["dot"]["arrays"] == "separate":

@@ -82,10 +82,12 @@ def estimate_whole(doc: dict, sample: Any) -> dict:
     its result document. Each step's share of the run (``per_step_cycles``, which sums to the
     run's cycles) counts as many times as the steps it stands for. The two half-samples of
     strata give two estimates of their own; half their distance over the estimate is the
-    ``half_sample_spread``."""
+    ``half_sample_spread``. A part run sampling its prefill too (``sample_prefill``) brings
+    its steps' estimated cycles (``prefill_sample.per_step_cycles``): those are weighed."""
     from .result import _round
 
-    per_step = doc["per_step_cycles"]
+    ps = doc.get("prefill_sample")
+    per_step = ps["per_step_cycles"] if ps else doc["per_step_cycles"]
     if len(per_step) != len(sample.weights):
         raise ValueError(f"estimate_whole: the document has {len(per_step)} steps, the sample "
                          f"{len(sample.weights)}: expected the run of this sample's part")

@@ -115,6 +115,29 @@ def test_estimate_is_close_to_the_whole_run_on_mid():
     assert "prefill_sample" not in whole
 
 
+def test_prefill_and_decode_sampled_together_estimate_the_whole_run(tmp_path, capsys):
+    """Both samplings in one run (``--sample-prefill 8 --sample-decode 8``) on mid, a 2-layer
+    causal 2048-token prompt and 48 decode tokens: the decode estimate weighs the part's steps
+    at their prefill-estimated cycles, and comes within 0.2 % of the whole run (measured
+    +0.037 %; decode sampling alone +0.019 %). The prefill section's estimate is of the
+    decode-sampled part, and its per-step list adds up to it."""
+    trace = prompt_trace(decode=48)
+    whole = sim.simulate("mid", trace, keep_intervals=False).to_dict()
+    path, out = tmp_path / "p.npz", tmp_path / "r.json"
+    save_trace(trace, path)
+    assert main(["run", "--arch", "mid", "--trace", str(path), "--sample-prefill", "8", "--sample-decode", "8",
+                 "--json", str(out)]) == 0
+    text = capsys.readouterr().out
+    doc = json.loads(out.read_text())
+    ps, ds = doc["prefill_sample"], doc["decode_sample"]
+    assert ps["sampled_steps"] == 2 and ds["simulated_decode_steps"] < ds["decode_steps"]
+    assert ds["cycles"] == pytest.approx(whole["cycles"], rel=0.002)
+    assert sum(ps["per_step_cycles"]) == pytest.approx(ps["cycles"], abs=1)
+    assert ds["cycles"] > ps["cycles"] > doc["cycles"]      # the whole > the part's estimate > the part
+    assert doc["trace"]["name"] == whole["trace"]["name"] + "-sampled"
+    assert "the decode-sampled part estimated at" in text and "the whole trace estimated at" in text
+
+
 def test_made_blocks_do_the_work_of_their_rows():
     """The part's q.K MACs, scaled by the blocks each made block stands for, are the causal
     triangle's heads x d x N (N + 1) / 2 (strata of equal size, so the scaling is one ratio)."""
@@ -180,7 +203,6 @@ def test_cli_nothing_to_sample_says_so(tmp_path, capsys):
 
 
 @pytest.mark.parametrize("args,says", [
-    (["--sample-prefill", "8", "--sample-decode", "4"], "--sample-prefill = 8: expected without --sample-decode"),
     (["--sample-prefill", "1"], "--sample-prefill"),
     (["--sample-prefill", "4097"], "--sample-prefill"),
 ])
