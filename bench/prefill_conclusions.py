@@ -2,6 +2,7 @@
 
     python bench/prefill_conclusions.py                   # 40 comparisons, 2 processes
     python bench/prefill_conclusions.py --cases 200 --seed 5 --jobs 2
+    python bench/prefill_conclusions.py --ragged          # prompts off the round lengths
 
 ``attnsim run --sample-prefill K`` makes one query block in K of a long prefill
 step (twice) and estimates the whole run from them. What an architect reads
@@ -43,8 +44,9 @@ CONFIGS = ("mid", "mid", "server", "edge")
 KNOBS = ("dot.multipliers", "buffers.key_kib", "buffers.value_kib", "dram.channels", "softmax.lanes", "dot.arrays")
 
 
-def draw(seed, case):
-    """``(config, trace arguments, K, knob, factor)`` for one case."""
+def draw(seed, case, ragged=False):
+    """``(config, trace arguments, K, knob, factor)`` for one case; ``ragged`` moves the prompt
+    by up to 200 tokens either way (drawn after the rest, so the other draws stay the same)."""
     r = random.Random(f"prefill:{seed}:{case}")
     name = r.choice(CONFIGS)
     heads = r.choice([8, 16, 32])
@@ -53,7 +55,10 @@ def draw(seed, case):
                  kv_heads=r.choice([heads, max(1, heads // 4)]), head_dim=r.choice([64, 128]),
                  prompt_tokens=r.choice(prompts), decode_steps=r.choice([0, 4]), causal=True,
                  token_keep=r.choice([1.0, 1.0, 0.8]), seed=r.randrange(1000))
-    return name, shape, r.choice([4, 8, 16, 32]), r.choice(KNOBS), r.choice([0.5, 2])
+    out = name, shape, r.choice([4, 8, 16, 32]), r.choice(KNOBS), r.choice([0.5, 2])
+    if ragged:   # rows that are not a whole number of query blocks
+        shape["prompt_tokens"] += r.randrange(-200, 201)
+    return out
 
 
 def _other(a, key, factor):
@@ -64,10 +69,10 @@ def _other(a, key, factor):
     return a.with_overrides({key: type(old)(old * factor)}, "bench")
 
 
-def compare(seed, case):
+def compare(seed, case, ragged=False):
     """``(case, what, speed-up whole, speed-up sampled, worst error, flagged, worst unflagged
     error)`` or ``(case, None, why)``."""
-    name, shape, k, key, factor = draw(seed, case)
+    name, shape, k, key, factor = draw(seed, case, ragged)
     try:
         trace = synth_trace(**shape)
         a = sim.load_arch(name)
@@ -98,13 +103,16 @@ def _work(args):
 
 
 def main():
-    args = comparison_parser(__doc__, 40, 1).parse_args()
+    ap = comparison_parser(__doc__, 40, 1)
+    ap.add_argument("--ragged", action="store_true",
+                    help="prompts up to 200 tokens off the round lengths drawn (a short last query block)")
+    args = ap.parse_args()
     t0 = time.perf_counter()
     m = args.margin
     bad, skipped, flagged, done = [], 0, 0, 0
     worst_err, worst_loose, worst_gap, worst_clean_gap = (0.0, None), (0.0, None), (0.0, None), (0.0, None)
     with mp.get_context("fork").Pool(args.jobs, maxtasksperchild=10) as pool:
-        for out in pool.imap_unordered(_work, [(args.seed, i) for i in range(args.cases)]):
+        for out in pool.imap_unordered(_work, [(args.seed, i, args.ragged) for i in range(args.cases)]):
             if out[1] is None:
                 skipped += 1
                 continue

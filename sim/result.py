@@ -277,25 +277,28 @@ def _block_estimate(prog, step_times, end, every, per_cycle, simulated):
     (``engine.sample_prefill``):
     the ``prefill_sample`` section. The run's time is split as ``per_step_cycles`` splits it,
     with each made block's end (its last p.V) as a mark of its own before its step's end: a
-    block's share is what it added to the run. Each copy's share stands for its stratum
-    (their mean does, in the estimate); the rest (other steps, a step's time after its last
+    block's share is what it added to the run. Each copy's share stands for its stratum,
+    weighed by the stratum's query rows over its own (their mean does, in the estimate); the rest (other steps, a step's time after its last
     block, the write tail) counts once. The copies give an estimate each, and so do two
     half-samples of strata; half of each pair's distance over the estimate is its spread.
     ``per_step_cycles`` is the estimate split by step as the document's own list splits the
     run (the tail with the last step), for a decode sample's estimate to weigh
     (:func:`sim.run.estimate_whole`)."""
     rest = 0.0
-    part = [[0.0, 0.0] for _ in range(COPIES)]   # [copy][half]: stratum size x share
-    stands = [0, 0]
+    part = [[0.0, 0.0] for _ in range(COPIES)]   # [copy][half]: weight x share
+    stands = [0.0, 0.0]   # query rows stood for, in made blocks' rows
+    blocks = 0
     per_step = []
     prev = 0.0
     for s, t_end in enumerate(step_times):
         mine = 0.0
-        for (size, half, k), due in zip(prog.block_sample.get(s, ()), prog.block_dues.get(s, ())):
-            share = size * max(due.at - prev, 0.0)
+        for (weight, half, k, size), due in zip(prog.block_sample.get(s, ()), prog.block_dues.get(s, ())):
+            share = weight * max(due.at - prev, 0.0)
             part[k][half] += share
             mine += share / COPIES
-            stands[half] += size if k == 0 else 0
+            if k == 0:
+                stands[half] += weight
+                blocks += size
             prev = max(prev, due.at)
         rest += max(t_end - prev, 0.0)
         per_step.append(mine + max(t_end - prev, 0.0))
@@ -305,7 +308,7 @@ def _block_estimate(prog, step_times, end, every, per_cycle, simulated):
         per_step[-1] += max(end - prev, 0.0)
     by_copy = [rest + sum(p) for p in part]
     cycles = sum(by_copy) / COPIES
-    out = {"every": every, "sampled_steps": len(prog.block_sample), "query_blocks": stands[0] + stands[1],
+    out = {"every": every, "sampled_steps": len(prog.block_sample), "query_blocks": blocks,
            "simulated_query_blocks": sum(len(v) for v in prog.block_sample.values()),
            "simulated_cycles": simulated, "cycles": round(cycles), "seconds": round(cycles) * per_cycle,
            "copy_cycles": [round(c) for c in by_copy],

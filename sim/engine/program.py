@@ -198,8 +198,8 @@ class _StepShape:
 
     ``every`` (a run sampling query blocks) makes only the middle block of each stratum of
     about ``every`` blocks of each group, twice (:func:`_sampled_blocks`); ``sample`` is then each made block's
-    stratum size, half-sample and copy, and ``kept_rows`` marks the query rows of the
-    blocks sampled.
+    weight, half-sample, copy and stratum size (:func:`_row_weights`), and ``kept_rows`` marks
+    the query rows of the blocks sampled.
     """
 
     def __init__(self, arch, amap, step, layer, grain_rows, q_room, every=None):
@@ -210,7 +210,7 @@ class _StepShape:
         kept = range(len(q_blocks[0])) if picks is None else [pick[0] for pick in picks]
         self.sample = self.kept_rows = None
         if picks is not None:
-            self.sample = [pick[1:] for _gp in plan for pick in picks]
+            self.sample = _row_weights(picks, [len(q) for q in q_blocks[0]]) * len(plan)
             starts = np.cumsum([0] + [len(q) for q in q_blocks[0]])
             self.kept_rows = np.zeros(step.q_rows, dtype=bool)
             for i in kept:
@@ -307,6 +307,19 @@ def _sampled_blocks(plan, step, every, n):
         even += size % 2 == 0
         half = (k + k // 2) % 2
         out += [(i, size, half, copy) for copy in range(COPIES)]
+    return out
+
+
+def _row_weights(picks, rows):
+    """Per pick of :func:`_sampled_blocks`, ``(weight, half-sample, copy, stratum size)``: the
+    made block stands for its stratum's query rows, so its weight is their count over its own
+    (the stratum size where blocks are alike; a step's last block is short when its rows are
+    not a whole number of blocks, and counted as a whole one it made estimates up to 2 % high)."""
+    out, start = [], 0
+    for i, size, half, copy in picks:
+        out.append((sum(rows[start:start + size]) / rows[i], half, copy, size))
+        if copy == COPIES - 1:
+            start += size
     return out
 
 
