@@ -143,7 +143,8 @@ def _add_run(sub):
     p.add_argument("--refresh-phases", type=_int_in(1, 16), metavar="N",
                    help="also run it with the refresh schedule moved later by 1/N, 2/N ... of tREFI and give "
                         "the spread and the means (the document's refresh_phases section; a report ranks such "
-                        "runs by the means); nothing more where the memory does not refresh")
+                        "runs by the means); nothing more where the memory does not refresh; not with "
+                        "--sample-decode or --sample-prefill")
     p.add_argument("--sample-decode", type=_int_in(2, 4096), metavar="K",
                    help="simulate each request's first decode tokens (--sample-warmup) and then the middle "
                         "token of every K, each standing for its K: the summary and the document's decode_sample "
@@ -183,6 +184,10 @@ def _cmd_run(args):
     sample = None
     if args.sample_warmup is not None and not args.sample_decode:
         raise OptionError("--sample-warmup", "--sample-warmup", args.sample_warmup, "expected with --sample-decode K")
+    if args.refresh_phases and args.refresh_phases > 1 and (args.sample_decode or args.sample_prefill):
+        raise OptionError("--refresh-phases", "--refresh-phases", args.refresh_phases,
+                          "expected without --sample-decode or --sample-prefill (each phase's run would be of "
+                          "the sampled part, and its range not the whole run's)")
     if args.sample_decode:
         from .trace.sample import sample_decode
         sample = sample_decode(trace, args.sample_decode, args.sample_warmup, source=args.trace,

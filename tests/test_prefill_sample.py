@@ -230,6 +230,8 @@ def test_cli_nothing_to_sample_says_so(tmp_path, capsys):
 
 @pytest.mark.parametrize("args,says", [
     (["--sample-prefill", "1"], "--sample-prefill"),
+    (["--sample-prefill", "8", "--refresh-phases", "4"], "--refresh-phases = 4: expected without --sample-decode"),
+    (["--sample-decode", "2", "--refresh-phases", "2"], "--refresh-phases = 2: expected without --sample-decode"),
     (["--sample-prefill", "4097"], "--sample-prefill"),
 ])
 def test_cli_refusals(tmp_path, capsys, args, says):
