@@ -279,8 +279,9 @@ def _block_estimate(prog, step_times, end, every, per_cycle, simulated):
     with each made block's end (its last p.V) as a mark of its own before its step's end: a
     block's share is what it added to the run. Each copy's share stands for its stratum,
     weighed by the stratum's query rows over its own (their mean does, in the estimate); the
-    rest (other steps, a step's time after its last block, the write tail) counts once. The copies give an estimate each, and so do two
-    half-samples of strata; half of each pair's distance over the estimate is its spread.
+    rest (other steps, a step's time after its last block, the write tail) counts once. The
+    copies give an estimate each, and so do two half-samples of strata; half of each pair's
+    distance over the estimate is its spread.
     ``per_step_cycles`` is the estimate split by step as the document's own list splits the
     run (the tail with the last step), for a decode sample's estimate to weigh
     (:func:`sim.run.estimate_whole`)."""

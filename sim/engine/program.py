@@ -64,7 +64,7 @@ class Program:
         self.macs_pv_by_dim = {}
         self.compulsory_bytes = 0
         # a run sampling query blocks (sample_prefill): per sampled step, each made block's
-        # (stratum size, half-sample, copy) and the Due of its last p.V, in the order made
+        # (weight, half-sample, copy, stratum size) and the Due of its last p.V, in the order made
         self.block_sample = {}
         self.block_dues = {}
         self.made_rows = {}   # per sampled step, the query rows made (each copy counted)
@@ -210,8 +210,9 @@ class _StepShape:
         kept = range(len(q_blocks[0])) if picks is None else [pick[0] for pick in picks]
         self.sample = self.kept_rows = None
         if picks is not None:
-            self.sample = _row_weights(picks, [len(q) for q in q_blocks[0]]) * len(plan)
-            starts = np.cumsum([0] + [len(q) for q in q_blocks[0]])
+            rows = [len(q) for q in q_blocks[0]]
+            self.sample = _row_weights(picks, rows) * len(plan)
+            starts = np.cumsum([0] + rows)
             self.kept_rows = np.zeros(step.q_rows, dtype=bool)
             for i in kept:
                 self.kept_rows[starts[i]:starts[i + 1]] = True
