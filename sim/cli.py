@@ -925,7 +925,10 @@ def _add_report(sub):
         description="Compare result documents (attnsim run --json) and/or sweep folders. Writes "
                     "report.md, report.html (figures embedded, opens offline), comparison.csv, "
                     "figures/*.png and data/*.csv. The first run is simulated again from its recorded "
-                    "config and trace to draw its timeline, unless --timeline gives one.")
+                    "config and trace to draw its timeline, unless --timeline gives one. With sampled runs "
+                    "(attnsim run --sample-prefill/--sample-decode) among the inputs, it ranks each trace's "
+                    "runs by the whole trace's latency alone (a sampled run's estimate) and says which leads "
+                    "the sampling cannot tell apart.")
     p.add_argument("results", nargs="+", metavar="RESULTS", type=_PATH, help="result JSON files and/or sweep folders")
     p.add_argument("--out", required=True, metavar="DIR", type=_PATH, help="output folder, e.g. reports/NAME/")
     p.add_argument("--timeline", metavar="TL.json", type=_PATH,

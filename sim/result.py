@@ -391,6 +391,7 @@ def prefill_sample_noisy(doc):
 # (bench/llm_replay.py's shape) came 1.4 to 2.2 % off at 1 to 4 layers with half-samples within 0.6 %,
 # 0.6 % at 8 layers, 0.3 % at 12 and 24
 SAMPLE_FEW_LAYERS = 8
+SAMPLE_FEW_LAYERS_OFF = 0.022   # the largest of those errors
 
 
 def _sample_text(d):
@@ -408,7 +409,8 @@ def _sample_text(d):
                      "apart; a longer --sample-warmup, a smaller K or the whole trace)")
     layers = len(d["per_layer_cycles"])
     if layers < SAMPLE_FEW_LAYERS:
-        text += (f"; on {layers} layer{'s' if layers > 1 else ''} such estimates have come up to 2.2 % off the "
+        text += (f"; on {layers} layer{'s' if layers > 1 else ''} such estimates have come up to "
+                 f"{SAMPLE_FEW_LAYERS_OFF * 100:.1f} % off the "
                  f"whole run where half-samples agreed (measured below {SAMPLE_FEW_LAYERS} layers), so compare "
                  "close designs by whole runs")
     return text + "; every other figure here is the simulated part's"

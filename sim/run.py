@@ -83,7 +83,9 @@ def estimate_whole(doc: dict, sample: Any) -> dict:
     run's cycles) counts as many times as the steps it stands for. The two half-samples of
     strata give two estimates of their own; half their distance over the estimate is the
     ``half_sample_spread``. A part run sampling its prefill too (``sample_prefill``) brings
-    its steps' estimated cycles (``prefill_sample.per_step_cycles``): those are weighed."""
+    its steps' estimated cycles (``prefill_sample.per_step_cycles``): those are weighed. The
+    section names the whole trace (``whole_trace_name``, ``whole_trace_digest``), which a
+    report compares the estimate with."""
     from .result import _round
 
     ps = doc.get("prefill_sample")
@@ -100,7 +102,9 @@ def estimate_whole(doc: dict, sample: Any) -> dict:
             stands[h] += w
     cycles = full + part[0] + part[1]
     per_cycle = doc["seconds"] / doc["cycles"] if doc["cycles"] else 0.0
-    out = {"every": sample.every, "warmup_tokens": sample.warmup, "decode_steps": sample.decode_tokens,
+    whole = sample.part.header["provenance"]["decode_sample"]
+    out = {"whole_trace_name": whole["from"], "whole_trace_digest": whole["digest"],
+           "every": sample.every, "warmup_tokens": sample.warmup, "decode_steps": sample.decode_tokens,
            "simulated_decode_steps": sample.simulated_tokens, "simulated_cycles": doc["cycles"],
            "cycles": round(cycles), "seconds": _round(round(cycles) * per_cycle)}
     if stands[0] and stands[1]:

@@ -9,6 +9,7 @@ half-samples give two estimates of their own (interpenetrating subsamples,
 Mahalanobis 1946; from memory). That a sampled run must not change which of two
 designs is faster is the brief's rule (common practice, no source)."""
 
+import csv
 import json
 
 import pytest
@@ -17,7 +18,7 @@ import sim
 from sim.cli import main
 from sim.errors import InputError
 from sim.run import estimate_whole
-from sim.trace.files import save_trace
+from sim.trace.files import load_trace, save_trace
 from sim.trace.sample import sample_decode
 from sim.trace.synth import synth_trace
 
@@ -176,9 +177,13 @@ def test_cli_run_sampled(tmp_path, capsys):
     assert doc["trace"]["name"].endswith("-sampled")
     assert f"the whole trace estimated at {ds['cycles']:,} cycles" in text
     assert "on 2 layers such estimates have come up to 2.2 % off" in text     # fewer than 8 layers
-    assert main(["report", str(out), "--out", str(tmp_path / "rep")]) == 2   # the part's figures: refused
-    err = capsys.readouterr().err.strip()
-    assert "decode_sample" in err and "expected a whole run" in err and len(err.splitlines()) == 1
+    whole = load_trace(str(path))
+    assert (ds["whole_trace_name"], ds["whole_trace_digest"]) == (whole.name, whole.digest())
+    # a report ranks it by the whole trace's estimate, never by the part's figures
+    assert main(["report", str(out), "--out", str(tmp_path / "rep")]) == 0
+    row = next(csv.DictReader(open(tmp_path / "rep" / "comparison.csv", encoding="utf-8")))
+    assert int(row["whole_cycles"]) == ds["cycles"] and int(row["simulated_cycles"]) == doc["cycles"]
+    assert row["trace"] == whole.name and float(row["reach"]) == 0.022   # 2 layers: the few-layers reach
 
 
 def test_no_few_layers_caution_from_eight_layers():

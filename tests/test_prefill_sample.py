@@ -11,6 +11,7 @@ strata give two estimates of their own (interpenetrating subsamples, Mahalanobis
 1946; from memory). That a sampled run must not change which of two designs is
 faster, or must say it cannot tell, is the brief's rule (common practice, no source)."""
 
+import csv
 import json
 
 import pytest
@@ -214,11 +215,11 @@ def test_cli_sample_prefill(tmp_path, capsys):
     doc = json.loads(out.read_text())
     assert doc["prefill_sample"]["every"] == 8 and doc["prefill_sample"]["sampled_steps"] == 1
     assert f"{doc['prefill_sample']['cycles']:,} cycles" in line
-    # a report would rank the sampled part's figures: refused, one line naming the section
-    assert main(["report", str(out), "--out", str(tmp_path / "rep")]) == 2
-    err = capsys.readouterr().err.strip()
-    assert str(out) in err and "prefill_sample" in err and "expected a whole run" in err
-    assert f"{doc['prefill_sample']['cycles']:,} cycles" in err and len(err.splitlines()) == 1
+    # a report ranks it by the whole trace's estimate, never by the part's figures
+    assert main(["report", str(out), "--out", str(tmp_path / "rep")]) == 0
+    row = next(csv.DictReader(open(tmp_path / "rep" / "comparison.csv", encoding="utf-8")))
+    assert int(row["whole_cycles"]) == doc["prefill_sample"]["cycles"]
+    assert row["trace"] == doc["trace"]["name"].removesuffix("-sampled") and row["sampling"] == "prefill 1 in 8"
 
 
 def test_cli_nothing_to_sample_says_so(tmp_path, capsys):

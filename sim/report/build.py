@@ -28,6 +28,7 @@ matplotlib.use("Agg")  # noqa: E402  (no display; before anything touches pyplot
 
 from ..version import __version__  # noqa: E402
 from .. import formats as fm  # noqa: E402
+from . import estimates as E  # noqa: E402
 from . import figures as F  # noqa: E402
 from .inputs import ReportError, group_key, label_runs  # noqa: E402
 from .tables import columns_for, display_rows, markdown_table, table_rows  # noqa: E402
@@ -208,13 +209,19 @@ def build_report(runs, out_dir, failed=(), warnings=(), force=False, timeline_ru
         with open(os.path.join(out_dir, name), "w", encoding="utf-8") as fh:
             fh.write(text)
         files.append(name)
-    manifest = {"format": "attnsim-report", "version": 1, "simulator_version": __version__,
-                "files": files + ["manifest.json"], "figures": [f.name for f in figs],
+    return _write_manifest(out_dir, runs, files, [f.name for f in figs], warnings, ctx["notes"], failed, inputs)
+
+
+def _write_manifest(out_dir, runs, files, figures, warnings, notes, failed, inputs, run_extra=None, **extra):
+    """``manifest.json``: what the report wrote, from which runs and inputs; returns it."""
+    manifest = {"format": "attnsim-report", "version": 1, "simulator_version": __version__, **extra,
+                "files": files + ["manifest.json"], "figures": figures,
                 "runs": [{"label": r.label, "origin": r.origin, "trace_digest": r.digest,
                           "simulator_version": r.version, "simulator_build": r.build,
+                          **(run_extra(r) if run_extra else {}),
                           "engine": dict(zip(("grain_rows", "issue_window", "seed"), r.engine_settings))}
                          for r in runs],
-                "warnings": warnings, "notes": ctx["notes"], "failed": list(failed), "inputs": list(inputs)}
+                "warnings": warnings, "notes": notes, "failed": list(failed), "inputs": list(inputs)}
     with open(os.path.join(out_dir, "manifest.json"), "w", encoding="utf-8") as fh:
         json.dump(manifest, fh, indent=2)
         fh.write("\n")
@@ -386,6 +393,129 @@ def _html(c):
     return "\n".join(parts)
 
 
+ESTIMATE_INTRO = (
+    "Some runs here simulated part of their trace (attnsim run --sample-prefill or --sample-decode). Every "
+    "figure of such a run but its estimate of the whole trace is the part's, and a report ranking those would "
+    "compare the parts, which differ with the sampling and with each config's query blocks. So this report "
+    "ranks each trace's runs by the whole trace's latency alone: a whole run's own, a sampled run's estimate, "
+    "beside the estimate's reach, the lead below which it is not told apart from another run (at least "
+    f"{fm.show(E.SAMPLE_NOISY, 'share')}, what estimates whose checks agreed came within against whole runs; "
+    f"its own checks' spread where larger; {fm.show(E.SAMPLE_FEW_LAYERS_OFF, 'share')} for decode sampled on "
+    f"fewer than {E.SAMPLE_FEW_LAYERS} layers). Energy, traffic, stalls and what to change are not shown: "
+    "for those, report whole runs.")
+ESTIMATE_HEADER = ["trace", "run", "simulated", fm.header("latency", "latency"), "cycles", fm.header("reach", "share"),
+                   fm.header("vs fastest", "speedup"), "standing"]
+
+
+def _estimate_rows(groups):
+    rows = []
+    for trace, ranked in groups:
+        for i, (r, e, slower, apart) in enumerate(ranked):
+            standing = ("not ranked" if not e.ranked else "fastest" if i == 0
+                        else "told apart" if apart else "not told apart")
+            rows.append([trace, r.config_label, e.made, fm.value(e.seconds, "latency"), fm.value(e.cycles, "cycles"),
+                         fm.value(e.reach, "share"), fm.value(slower, "speedup") if slower else "-", standing])
+    return rows
+
+
+def _estimate_csv(groups):
+    header = ["trace", "run", "origin", "sampling", "simulated", "whole_cycles", "whole_seconds",
+              "simulated_cycles", "reach", "ranked", "slower_than_fastest", "told_apart", "spreads", "caveats"]
+    rows = []
+    for trace, ranked in groups:
+        for r, e, slower, apart in ranked:
+            rows.append([trace, r.config_label, r.origin, E.sampling_tag(r.doc) or "whole", e.made, e.cycles,
+                         e.seconds, r.doc["cycles"], e.reach, e.ranked, slower, apart,
+                         "; ".join(f"{k} {v!r}" for k, v in e.spreads.items()), "; ".join(e.caveats)])
+    return _csv_text(header, rows)
+
+
+def build_estimate_report(runs, out_dir, failed=(), force=False, title=None, notes=(), inputs=()):
+    """Write the report of runs among which some are sampled (:mod:`.estimates`) into ``out_dir``;
+    return the manifest. The same files as :func:`build_report`, with one figure."""
+    _prepare_out(out_dir, force)
+    warnings = label_runs(runs, trace_of=E.whole_trace, config_tag=E.sampling_tag)
+    by_trace = {}
+    for r in runs:
+        by_trace.setdefault(group_key(r), []).append(r)
+    groups = [(rr[0].trace_label, E.rank(rr)) for rr in by_trace.values()]
+    fg = F.estimated_latency(groups)
+    fg.png = _png(fg.fig)
+    files = [f"figures/{fg.name}.png", f"data/{fg.name}.csv", "comparison.csv", "report.md", "report.html"]
+    texts = [fg.png, _csv_text(fg.header, fg.rows), _estimate_csv(groups)]
+    verdicts = [(trace, E.verdict(ranked), [(r, e.caveats) for r, e, _s, _a in ranked if e.caveats])
+                for trace, ranked in groups]
+    sampled = sum(E.is_sampled(r.doc) for r in runs)
+    ctx = {"title": title or "attnsim comparison report: whole-trace estimates",
+           "meta": (f"attnsim {__version__}, written {datetime.datetime.now().strftime('%Y-%m-%d %H:%M')}. "
+                    f"{len(runs)} runs, {sampled} of them sampled"
+                    + (f", {len(failed)} failed points" if failed else "") + "."),
+           "warnings": warnings, "rows": _estimate_rows(groups), "verdicts": verdicts, "fig": fg,
+           "notes": list(notes), "runs": runs}
+    texts += [_estimate_markdown(ctx), _estimate_html(ctx)]
+    for rel, data in zip(files, texts):
+        with open(os.path.join(out_dir, rel), "wb" if isinstance(data, bytes) else "w",
+                  **({} if isinstance(data, bytes) else {"encoding": "utf-8"})) as fh:
+            fh.write(data)
+    return _write_manifest(out_dir, runs, files, [fg.name], warnings, ctx["notes"], failed, inputs,
+                           run_extra=lambda r: {"sampling": E.sampling_tag(r.doc) or "whole"},
+                           ranked_by="whole-trace estimates")
+
+
+def _estimate_markdown(c):
+    out = [f"# {c['title']}", "", c["meta"], ""]
+    if c["warnings"]:
+        out += ["## Warnings", ""] + [f"- {w}" for w in c["warnings"]] + [""]
+    out += ["## Limits of this model", "", LIMITS, "", ESTIMATE_INTRO, ""]
+    out += ["## Whole-trace latency", "", markdown_table(ESTIMATE_HEADER, c["rows"], text_columns=3), "",
+            "Exact values: `comparison.csv`.", ""]
+    out += ["## Verdicts", ""]
+    for trace, text, caveats in c["verdicts"]:
+        out += [f"### {trace}", "", text, ""] + [f"- {r.config_label}: {'; '.join(cv)}" for r, cv in caveats]
+        out += [""] if caveats else []
+    fg = c["fig"]
+    out += ["## Figure", "", f"![{fg.title}](figures/{fg.name}.png)", "", f"{fg.caption} Data: `data/{fg.name}.csv`.",
+            ""]
+    if c["notes"]:
+        out += ["## Notes", ""] + [f"- {n}" for n in c["notes"]] + [""]
+    out += ["## Runs", ""] + [f"- {_run_line(r)}" + (f"; sampled: {E.sampling_tag(r.doc)}" if E.is_sampled(r.doc)
+                                                     else "") for r in c["runs"]] + [""]
+    return "\n".join(out)
+
+
+def _estimate_html(c):
+    e = html.escape
+    fg = c["fig"]
+    b64 = base64.b64encode(fg.png).decode("ascii")
+    parts = ["<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+             f"<title>{e(c['title'])}</title><style>{CSS}</style></head>",
+             "<body data-figures-expected='1' data-figures-loaded='0'>",
+             f"<h1>{e(c['title'])}</h1>", f"<p class='meta'>{e(c['meta'])}</p>"]
+    if c["warnings"]:
+        parts.append("<div class='warn'><b>Warnings</b><ul>" + "".join(f"<li>{e(w)}</li>" for w in c["warnings"])
+                     + "</ul></div>")
+    parts.append(f"<h2>Limits of this model</h2><p class='limits'>{e(LIMITS)}</p><p>{e(ESTIMATE_INTRO)}</p>")
+    parts.append("<h2>Whole-trace latency</h2><table id='comparison'><tr>"
+                 + "".join(f"<th>{e(h)}</th>" for h in ESTIMATE_HEADER) + "</tr>")
+    for row in c["rows"]:
+        parts.append("<tr>" + "".join(f"<td{' class=num' if 3 <= i < 7 else ''}>{e(str(v))}</td>"
+                                      for i, v in enumerate(row)) + "</tr>")
+    parts.append("</table><p class='meta'>Exact values in comparison.csv.</p><h2>Verdicts</h2>")
+    for trace, text, caveats in c["verdicts"]:
+        parts.append(f"<h3>{e(trace)}</h3><p class='verdict'>{e(text)}</p>")
+        if caveats:
+            parts.append("<ul>" + "".join(f"<li>{e(r.config_label)}: {e('; '.join(cv))}</li>" for r, cv in caveats)
+                         + "</ul>")
+    parts.append(f"<h2>Figure</h2><figure id='fig-{fg.name}'><h3>{e(fg.title)}</h3>"
+                 f"<img class='fig' alt='{e(fg.title)}' src='data:image/png;base64,{b64}'>"
+                 f"<figcaption>{e(fg.caption)} Data: data/{fg.name}.csv.</figcaption></figure>")
+    if c["notes"]:
+        parts.append("<h2>Notes</h2><ul>" + "".join(f"<li>{e(n)}</li>" for n in c["notes"]) + "</ul>")
+    parts.append("<h2>Runs</h2><ul>" + "".join(f"<li>{e(_run_line(r))}</li>" for r in c["runs"]) + "</ul>")
+    parts.append(f"<script>{SCRIPT}</script></body></html>\n")
+    return "\n".join(parts)
+
+
 def replay_intervals(run):
     """Simulate ``run`` again from its recorded config and trace to get its intervals.
 
@@ -433,6 +563,20 @@ def attach_timeline(runs, path):
                       "simulator version and cycles)")
 
 
+def _estimates_only(runs, sensitivity, refresh_phases, timeline_path, probes):
+    """Refuse what a report of sampled runs does not do (they are ranked by estimates alone)."""
+    first = next(r for r in runs if E.is_sampled(r.doc))
+    why = (f"{first.origin} is a sampled run ({E.sampling_tag(first.doc)}): such a report ranks the whole "
+           "trace's estimates alone; report whole runs for")
+    for option, value, what in (("--sensitivity", sensitivity if sensitivity not in ("auto", "off") else None,
+                                 "what to change"),
+                                ("--refresh-phases", refresh_phases or None, "refresh phases"),
+                                ("--timeline", timeline_path, "a timeline"),
+                                ("RESULTS", ", ".join(map(str, probes)) or None, "memory probe curves")):
+        if value is not None:
+            raise ReportError("attnsim report", option, value, f"expected without sampled runs: {why} {what}")
+
+
 def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=True, title=None,
                       sensitivity="auto", sensitivity_limit=None, jobs=None, cluster=None, workers=None,
                       echo=None, refresh_phases=False):
@@ -450,6 +594,13 @@ def report_from_paths(paths, out_dir, force=False, timeline_path=None, replay=Tr
     probes = [p for p in paths if str(p).endswith(".csv")]
     runs, failed = load_inputs([p for p in paths if p not in probes])
     check_out(out_dir, force)
+    if any(E.is_sampled(r.doc) for r in runs):
+        _estimates_only(runs, sensitivity, refresh_phases, timeline_path, probes)
+        note = ("Sensitivity not measured: some runs are sampled, and this report ranks by whole-trace estimates "
+                "only" if sensitivity == "auto" else None)
+        manifest = build_estimate_report(runs, out_dir, failed=failed, force=force, title=title,
+                                         notes=[note] if note else [], inputs=list(paths))
+        return runs, manifest
     label_runs(runs)   # groups (per trace) decide which runs sensitivity picks
     # with refresh phases, a short run's changes are measured as means over the same phases
     n_phases = phases_mod.AUTO_PHASES if refresh_phases else 1

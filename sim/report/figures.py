@@ -842,3 +842,37 @@ def memory_probe(paths):
                   "the mean read latency against the bandwidth delivered (reads and writes); right, the most "
                   "each access pattern delivered as a share of the peak.",
                   fig, ["probe", "pattern"] + list(PROBE_COLUMNS[1:]), rows)
+
+
+def estimated_latency(groups):
+    """Each trace's runs by the whole trace's latency (a sampled run's estimate), its reach as
+    an error bar; runs not ranked drawn hatched. ``groups``: ``[(trace label, ranked)]`` from
+    :func:`sim.report.estimates.rank`."""
+    n = sum(len(rk) for _t, rk in groups)
+    fig = _fig(8.5, 0.34 * n + 0.5 * len(groups) + 1.4)
+    ax = fig.subplots()
+    rows, ticks, labels = [], [], []
+    y = 0.0
+    for g, (trace, ranked) in enumerate(groups):
+        color = SERIES[g % len(SERIES)]
+        for r, e, _slower, _apart in ranked:
+            us = e.seconds * 1e6
+            ax.barh(y, us, height=0.7, color=color if e.ranked else "white", edgecolor=color,
+                    hatch=None if e.ranked else "//", xerr=us * e.reach if e.reach else None,
+                    error_kw={"ecolor": "#333", "capsize": 3, "lw": 1})
+            ticks.append(y)
+            labels.append(f"{r.config_label} / {trace}")
+            rows.append([trace, r.config_label, e.made, us, e.reach, e.ranked])
+            y += 1.0
+        y += 0.6
+    ax.set_yticks(ticks)
+    ax.set_yticklabels(labels, fontsize=8)
+    ax.invert_yaxis()
+    ax.set_xlabel("latency of the whole trace (us; a sampled run's estimate)")
+    _log_if_spread(ax, [row[3] for row in rows], axis="x")
+    ax.grid(axis="x", alpha=0.3)
+    return Figure("estimated_latency", "Whole-trace latency, sampled runs estimated",
+                  "Each trace's runs, fastest first: a whole run's latency, a sampled run's estimate of its "
+                  "whole trace with its reach either side (the lead below which it is not told apart from "
+                  "another); hatched: not ranked.",
+                  fig, ["trace", "run", "simulated", "latency_us", "reach", "ranked"], rows)

@@ -99,9 +99,6 @@ def _check_doc(doc, source, field="<root>"):
     for name, u in doc["units"].items():
         if not isinstance(u, dict) or "busy" not in u or "stalls" not in u:
             raise ReportError(source, f"units.{name}", u, "expected busy/starved/blocked/idle fractions and stalls")
-    for key in SAMPLED:
-        if doc.get(key) is not None:
-            _refuse_sampled(doc, source, key)
     ph = doc.get("refresh_phases")
     if ph is not None:
         cyc = ph.get("cycles") if isinstance(ph, dict) else None
@@ -114,23 +111,43 @@ def _check_doc(doc, source, field="<root>"):
             if key in ph and (isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 < v < math.inf):
                 raise ReportError(source, "refresh_phases." + key, v,
                                   "expected a positive finite number: the mean over the refresh phases' runs")
+    for key, fields in SAMPLED.items():
+        if doc.get(key) is not None:
+            _check_sampled(doc[key], source, key, fields)
     return doc
 
 
-# sections of a run of a sampled part (attnsim run --sample-decode / --sample-prefill)
-SAMPLED = ("decode_sample", "prefill_sample")
+# what a report reads of the sections of a sampled run (attnsim run --sample-prefill / --sample-decode):
+# field -> (kind, what it is)
+_COUNT, _SHARE, _SECONDS = "count", "share", "seconds"
+SAMPLED = {
+    "prefill_sample": {"cycles": _COUNT, "seconds": _SECONDS, "every": _COUNT, "sampled_steps": _COUNT,
+                       "query_blocks": _COUNT, "simulated_query_blocks": _COUNT},
+    "decode_sample": {"cycles": _COUNT, "seconds": _SECONDS, "every": _COUNT, "warmup_tokens": _COUNT,
+                      "decode_steps": _COUNT, "simulated_decode_steps": _COUNT},
+}
+_SPREADS = ("copy_spread", "half_sample_spread")   # present when measured
+_WHOLE = ("whole_trace_name", "whole_trace_digest")  # decode_sample: the trace estimated (newer documents)
 
 
-def _refuse_sampled(doc, source, key):
-    """A sampled run's figures are its part's: ranked against others they would rank the
-    parts, which differ with K and, in prefill, with each config's query block rows."""
-    sec = doc[key]
-    est = sec.get("cycles") if isinstance(sec, dict) else None
-    shown = f"whole estimated at {est:,} cycles" if isinstance(est, int) else sec
-    raise ReportError(source, key, shown,
-                      "expected a whole run: a sampled run's figures are its simulated part's, so a report "
-                      "would rank the parts; compare sampled runs by the estimates attnsim run prints, "
-                      "or run the whole trace")
+def _check_sampled(sec, source, key, fields):
+    if not isinstance(sec, dict):
+        raise ReportError(source, key, sec, "expected the whole trace's estimate that attnsim run writes (an object)")
+    for name, kind in list(fields.items()) + [(s, _SHARE) for s in _SPREADS if s in sec]:
+        v = sec.get(name)
+        if isinstance(v, bool) or not isinstance(v, int if kind == _COUNT else (int, float)):
+            ok = False
+        elif kind == _COUNT:
+            ok = v >= 0
+        else:
+            ok = 0 <= v < math.inf
+        if not ok:
+            what = {_COUNT: "a whole number >= 0", _SECONDS: "seconds, a finite number >= 0",
+                    _SHARE: "a share, a finite number >= 0"}[kind]
+            raise ReportError(source, f"{key}.{name}", v, f"expected {what}")
+    for name in _WHOLE:
+        if name in sec and (not isinstance(sec[name], str) or not sec[name]):
+            raise ReportError(source, f"{key}.{name}", sec[name], "expected the whole trace's name and digest, text")
 
 
 def _load_json(path):
@@ -238,8 +255,11 @@ def engine_tag(run, which=(0, 1, 2)):
     return ", ".join(f"{ENGINE_NAMES[i]} {vals[i]}" for i in which if ENGINE_AXES[i] not in run.point)
 
 
-def label_runs(runs):
+def label_runs(runs, trace_of=None, config_tag=None):
     """Give every run distinct config and trace labels; return the warnings.
+
+    ``trace_of(doc)``: ``(name, digest)`` of the trace a run is of (default: the document's
+    trace); ``config_tag(doc)`` adds ``[tag]`` to its config label where it returns text.
 
     * a trace name seen with several digests: each digest is labelled
       ``name#<first 8 hex>`` and counts as a different trace;
@@ -253,8 +273,10 @@ def label_runs(runs):
     """
     warnings = []
     digests = {}
+    trace_of = trace_of or (lambda doc: (doc["trace"]["name"], doc["trace"]["digest"]))
     for r in runs:
-        digests.setdefault(r.doc["trace"]["name"], set()).add(r.digest)
+        name, digest = trace_of(r.doc)
+        digests.setdefault(name, set()).add(digest)
     for name, ds in sorted(digests.items()):
         if len(ds) > 1:
             warnings.append(f"trace {name!r} appears with {len(ds)} different digests "
@@ -271,11 +293,14 @@ def label_runs(runs):
             warnings.append(f"results from {len(bs)} builds of attnsim {v} ({', '.join(sorted(bs))}): "
                             "labelled [build ...] and never compared as one group")
     for r in runs:
-        name = r.doc["trace"]["name"]
-        r.trace_label = f"{name}#{r.digest[:8]}" if len(digests[name]) > 1 else name
+        name, digest = trace_of(r.doc)
+        r.trace_label = f"{name}#{digest[:8]}" if len(digests[name]) > 1 else name
         cfg = r.doc["arch"]["name"]
         if r.point:
             cfg = f"{cfg} ({_point_text(r.point)})"
+        tag = config_tag(r.doc) if config_tag else ""
+        if tag:
+            cfg = f"{cfg} [{tag}]"
         if len(versions) > 1:
             cfg = f"{cfg} [v{r.version}]"
         if len(builds[r.version]) > 1:
