@@ -15,6 +15,11 @@ A sweep point run at several places in the refresh schedule (the spec's
 runs (what the sweep ranks by), and ``refresh_phases.runs`` and
 ``refresh_phases.spread`` say how many and how far apart their cycles came.
 
+A sampled run (a ``decode_sample`` or ``prefill_sample`` section) has the
+whole trace's estimated ``cycles`` and ``seconds`` in its row, its area proxy
+(the config's alone) and no other figure: every other number of its document
+is the simulated part's.
+
 A column has a kind -- ``int``, ``float`` or ``text`` -- which fixes its type
 in the store and its dtype in a DataFrame.
 """
@@ -79,8 +84,27 @@ def top_stalls(unit_doc, n=TOP_STALLS):
     return sorted(stalls.items(), key=lambda cf: (-cf[1], cf[0]))[:n]
 
 
+def estimate_section(doc):
+    """The section of a sampled run's document holding the whole trace's estimate:
+    ``decode_sample`` (which, with both samplings, weighs the prefill's estimates), else
+    ``prefill_sample`` when the run left query blocks out; None for a run of the whole trace."""
+    ds = doc.get("decode_sample")
+    if isinstance(ds, dict):
+        return ds
+    ps = doc.get("prefill_sample")
+    return ps if isinstance(ps, dict) and ps.get("sampled_steps") else None
+
+
 def figure_row(doc, units=UNIT_ORDER):
-    """``{column: value}`` of the figures of result document ``doc`` (None where it has none)."""
+    """``{column: value}`` of the figures of result document ``doc`` (None where it has none).
+    A sampled run's row holds the whole trace's estimated cycles and seconds, the area proxy
+    (the config's alone), and no other figure: the rest of its document is the simulated part's."""
+    est = estimate_section(doc)
+    if est is not None:
+        row = {name: None for name, _kind in figure_columns(units)}
+        row["cycles"], row["seconds"] = est.get("cycles"), est.get("seconds")
+        row["area.total_mm2"] = _at(doc, "area.total_mm2")   # the config's alone
+        return row
     row = {name: _at_parts(doc, parts) for name, parts in _FIGURE_PARTS}
     phases = doc.get("refresh_phases")
     if isinstance(phases, dict):

@@ -20,6 +20,7 @@ estimates came up to 33 % off (2.3 % with both checks under 1 %).
 """
 
 from .. import formats as fm
+from ..columns import estimate_section
 from ..result import SAMPLE_FEW_LAYERS, SAMPLE_FEW_LAYERS_OFF, SAMPLE_NOISY
 from .inputs import SAMPLED
 
@@ -29,11 +30,6 @@ SUFFIX = "-sampled"
 def is_sampled(doc):
     """Whether ``doc`` is the run of part of its trace (either sampling)."""
     return any(doc.get(key) is not None for key in SAMPLED)
-
-
-def _prefill_left_out(doc):
-    ps = doc.get("prefill_sample")
-    return bool(ps and ps.get("sampled_steps"))
 
 
 def whole_trace(doc):
@@ -79,7 +75,7 @@ class Estimate:
         self.ranked = True
         self.spreads = {}
         made = []
-        if ps is not None and _prefill_left_out(d):
+        if ps is not None and ps.get("sampled_steps"):
             made.append(f"{ps['simulated_query_blocks']:,} of {ps['query_blocks']:,} query blocks")
             self.spreads["prefill copies"] = ps.get("copy_spread", 0.0)
             self.spreads["prefill half-samples"] = ps.get("half_sample_spread", 0.0)
@@ -91,7 +87,7 @@ class Estimate:
         if ds is not None:
             made.append(f"{ds['simulated_decode_steps']:,} of {ds['decode_steps']:,} decode steps")
             self.spreads["decode half-samples"] = ds.get("half_sample_spread", 0.0)
-        est = ds if ds is not None else (ps if made else None)
+        est = estimate_section(d)
         if est is None:
             self.cycles, self.seconds = d["cycles"], d["seconds"]
             self.reach = run.phase_spread

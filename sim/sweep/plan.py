@@ -24,9 +24,10 @@ from .worker import build_id
 class PlannedPoint:
     """One (config, trace) pair to run."""
 
-    __slots__ = ("key", "point", "trace", "trace_path", "trace_digest", "config", "error", "order", "phases")
+    __slots__ = ("key", "point", "trace", "trace_path", "trace_digest", "config", "error", "order", "phases",
+                 "sampling")
 
-    def __init__(self, key, point, trace, trace_path, trace_digest, config, error, order, phases=1):
+    def __init__(self, key, point, trace, trace_path, trace_digest, config, error, order, phases=1, sampling=None):
         self.key = key
         self.point = point                # {dotted path: value} of the axes
         self.trace = trace                # trace name
@@ -36,6 +37,7 @@ class PlannedPoint:
         self.error = error                # one-line config error, or None
         self.order = order
         self.phases = phases              # places in the refresh schedule it runs at (spec refresh_phases)
+        self.sampling = sampling          # the spec's sampling, or None (run whole)
 
     def __repr__(self):
         return f"PlannedPoint({self.trace}, {self.point})"
@@ -59,10 +61,12 @@ class Plan:
         return [d for _n, _p, d in self.traces]
 
 
-def point_key(config, trace_digest, build, phases=1):
+def point_key(config, trace_digest, build, phases=1, sampling=None):
     what = {"config": config, "trace_digest": trace_digest, "simulator": build}
     if phases != 1:   # one run only keeps the key it had before refresh phases existed
         what["refresh_phases"] = phases
+    if sampling:
+        what["sampling"] = sampling
     text = json.dumps(what, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
@@ -86,6 +90,11 @@ def make_plan(spec):
             raise SweepError(spec.source, f"traces[{i}]", written,
                              f"has the same trace name {tr.name!r} as {names[tr.name]}; names must differ")
         names[tr.name] = written
+        if spec.sampling and "decode" in spec.sampling:   # a trace with nothing to leave out is refused now
+            from ..trace.sample import sample_decode
+
+            sample_decode(tr, spec.sampling["decode"], spec.sampling.get("warmup"), source=spec.source,
+                          fields=("sampling.decode", "sampling.warmup"))
         traces.append((tr.name, path, tr.digest()))
     base = spec.base.to_dict()
     grid = []
@@ -120,12 +129,13 @@ def make_plan(spec):
     for name, path, digest in traces:
         for point, overrides, config, error in grid:
             if config is not None:
-                key = point_key(config, digest, build, spec.phases)
+                key = point_key(config, digest, build, spec.phases, spec.sampling)
             else:
                 key = _error_key(base, overrides, digest, build)
             if key in seen:   # two grid points resolve to one config (e.g. 32 and 32.0)
                 continue
             seen.add(key)
-            points.append(PlannedPoint(key, point, name, path, digest, config, error, order, spec.phases))
+            points.append(PlannedPoint(key, point, name, path, digest, config, error, order, spec.phases,
+                                       spec.sampling))
             order += 1
     return Plan(spec, points, filtered, traces, build)

@@ -26,7 +26,7 @@ from .backends import TLSFiles, make_backend
 from .plan import make_plan
 from .pareto import Front
 from .progress import Progress
-from .spec import Spec, load_spec
+from .spec import Spec, SweepError, load_spec
 from .store import FORMAT, VERSION, Store
 
 MAX_LOST = 3
@@ -41,7 +41,8 @@ class Task:
         self.point = point
         self.key = point.key
         self.args = (point.config, point.trace_path, point.trace_digest) + \
-            ((point.phases,) if point.phases != 1 else ())
+            ((point.phases,) if point.phases != 1 or point.sampling else ()) + \
+            ((point.sampling,) if point.sampling else ())
 
 
 class SweepRun:
@@ -141,6 +142,10 @@ def run_sweep(spec, out, jobs=None, cluster=None, workers=None, screen=False, fo
     """
     if not isinstance(spec, Spec):
         spec = load_spec(spec)
+    if screen and spec.sampling:
+        raise SweepError(spec.source, "--screen", True,
+                         "expected without the spec's sampling: a sampled point's estimate may come below its "
+                         "closed-form bound by its reach, so screening could skip a point of the front")
     if cluster is not None:   # a bad address or TLS file fails here, before anything runs
         (security or TLSFiles()).validate(cluster)
     plan = plan if plan is not None else make_plan(spec)
@@ -265,6 +270,8 @@ def summarize(plan, store, requested, counts, screened=False):
         for b in per.values():
             b["point"] = points[b["key"]]
     phase_notes = _phase_ranges(plan.spec.phases, store, best) + _short_run_notes(plan.spec.phases, store, best)
+    if plan.spec.sampling:
+        phase_notes.append(_sampling_note(plan.spec.sampling))
     return {
         "format": "attnsim-sweep-summary", "version": 1,
         "sweep": plan.spec.name, "simulator_version": __version__, "simulator_build": plan.build,
@@ -280,6 +287,19 @@ def summarize(plan, store, requested, counts, screened=False):
         "pareto_points": {t: [{"key": k, "point": points[k], "objectives": dict(zip(used, v))} for k, v in f]
                           for t, f in front.items()},
     }
+
+
+def _sampling_note(sampling):
+    """What a sampled sweep's cycles are, and where its leads are told apart."""
+    from ..trace.sample import DEFAULT_WARMUP
+
+    how = ", ".join([f"prefill 1 in {sampling['prefill']}"] * ("prefill" in sampling)
+                    + [f"decode 1 in {sampling['decode']} after {sampling.get('warmup', DEFAULT_WARMUP)}"]
+                    * ("decode" in sampling))
+    return (f"points sampled their traces ({how}): cycles and seconds are the whole traces' estimates, and the "
+            "table holds no other figure of them but the area proxy (the rest is the simulated parts'); an "
+            "estimate's reach is 1 % or more, so attnsim report on this folder ranks them and says which leads "
+            "are told apart; compare close points by whole runs")
 
 
 def _short_run_notes(phases, store, best):

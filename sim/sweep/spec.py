@@ -19,6 +19,17 @@ A spec names a base architecture, the knobs to vary and the traces to run::
     objectives: [cycles, energy, area]
     refresh_phases: 4                      # each point at 4 places in the refresh schedule
 
+A spec for long traces may sample them (``attnsim run --sample-prefill`` /
+``--sample-decode``, see :mod:`sim.trace.sample`)::
+
+    sampling: {prefill: 256, decode: 8, warmup: 32}
+
+Each point then runs the sampled part, and its row's cycles and seconds are the
+whole trace's estimates (no other figure: the rest is the part's), so only
+objectives of time or of the config alone may be asked for, a point runs at one
+place in the refresh schedule, and screening is refused (an estimate may come
+below its closed-form bound by its reach).
+
 With ``refresh_phases`` N > 1, a point whose memory refreshes runs N times,
 its refresh windows moved later by 0, 1/N, ... (N-1)/N of tREFI, and is ranked
 by the means (cycles, seconds, energy): where a run starts in the refresh
@@ -44,7 +55,10 @@ from . import constraints as cons
 from .objectives import OBJECTIVES
 
 TOP_KEYS = ("name", "description", "base", "traces", "fixed", "axes", "linked", "keep_if",
-            "objectives", "refresh_phases")
+            "objectives", "refresh_phases", "sampling")
+SAMPLING_KEYS = ("prefill", "decode", "warmup")
+# objectives a sampled point has: its estimate of time, and figures of the config alone
+SAMPLED_OBJECTIVES = ("cycles", "area", "multipliers", "buffer_kib")
 MAX_VALUES = 10000   # per axis; a range that long is a typo, not a plan
 MAX_POINTS = 1_000_000
 MAX_TRACES = 1000
@@ -62,7 +76,7 @@ class Spec:
     """
 
     def __init__(self, source, name, description, base_path, base, traces, fixed, dims,
-                 rules, objectives, data, phases=1):
+                 rules, objectives, data, phases=1, sampling=None):
         self.source = source
         self.name = name
         self.description = description
@@ -75,6 +89,7 @@ class Spec:
         self.objectives = objectives
         self.data = data
         self.phases = phases              # refresh_phases: runs per point (1: as configured only), or "auto"
+        self.sampling = sampling          # {prefill, decode, warmup} given, or None: every point whole
 
     @property
     def axis_paths(self):
@@ -93,11 +108,12 @@ class Spec:
     def with_phases(self, phases):
         """The same spec run at ``phases`` places in the refresh schedule (``--refresh-phases``)."""
         phases = _phases(phases, "--refresh-phases")
+        _no_phases_sampled(phases, self.sampling, "--refresh-phases")
         data = {k: v for k, v in self.data.items() if k != "refresh_phases"}
         if phases != 1:
             data["refresh_phases"] = phases
         return Spec(self.source, self.name, self.description, self.base_path, self.base, self.traces, self.fixed,
-                    self.dims, self.rules, self.objectives, data, phases)
+                    self.dims, self.rules, self.objectives, data, phases, self.sampling)
 
     def __repr__(self):
         return f"Spec({self.name!r} from {self.source}, {self.grid_size} grid points)"
@@ -156,6 +172,13 @@ def validate_spec(raw, source):
     rules = cons.parse_rules(raw.get("keep_if", []), source, "keep_if")
     objectives = _objectives(raw.get("objectives", ["cycles"]), source)
     phases = _phases(raw.get("refresh_phases", 1), source)
+    sampling = _sampling(raw.get("sampling"), source)
+    _no_phases_sampled(phases, sampling, source)
+    for i, objective in enumerate(objectives if sampling else ()):
+        if objective not in SAMPLED_OBJECTIVES:
+            raise SweepError(source, f"objectives[{i}]", objective,
+                             f"expected one of {', '.join(SAMPLED_OBJECTIVES)} with sampling: a sampled point's "
+                             "other figures are its simulated part's")
     data = {
         "name": name, "description": description, "base": base_written,
         "traces": [w for w, _p in traces], "fixed": fixed, "dims": dims_data,
@@ -163,8 +186,39 @@ def validate_spec(raw, source):
     }
     if phases != 1:   # a spec without it keeps the identity it had before the key existed
         data["refresh_phases"] = phases
+    if sampling:
+        data["sampling"] = dict(sampling)
     return Spec(source, name, description, base_path, base, traces, fixed, dims, rules, objectives, data,
-                phases)
+                phases, sampling)
+
+
+def _sampling(value, source):
+    """The spec's ``sampling`` mapping checked: None, or the keys given."""
+    from ..trace.sample import MAX_EVERY, MAX_WARMUP
+
+    if value is None:
+        return None
+    if not isinstance(value, dict) or not value:
+        raise SweepError(source, "sampling", value,
+                         "expected a mapping with prefill: K and/or decode: K (and warmup: N with decode)")
+    unknown = [(f"sampling.{k}", value[k], closest(k, SAMPLING_KEYS)) for k in value if k not in SAMPLING_KEYS]
+    if unknown:
+        raise unknown_keys_error(SweepError, source, unknown)
+    if "prefill" not in value and "decode" not in value:
+        raise SweepError(source, "sampling", value, "expected prefill: K and/or decode: K")
+    if "warmup" in value and "decode" not in value:
+        raise SweepError(source, "sampling.warmup", value["warmup"], "expected only with sampling.decode")
+    for key, lo, hi in (("prefill", 2, MAX_EVERY), ("decode", 2, MAX_EVERY), ("warmup", 0, MAX_WARMUP)):
+        v = value.get(key, lo)
+        if isinstance(v, bool) or not isinstance(v, int) or not lo <= v <= hi:
+            raise SweepError(source, f"sampling.{key}", v, f"expected a whole number from {lo} to {hi:,}")
+    return {k: value[k] for k in SAMPLING_KEYS if k in value}
+
+
+def _no_phases_sampled(phases, sampling, source):
+    if sampling and phases != 1:
+        raise SweepError(source, "refresh_phases", phases,
+                         "expected 1 with sampling: each phase's run would be of the sampled part")
 
 
 def _phases(value, source):

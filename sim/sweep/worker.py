@@ -89,11 +89,13 @@ def _one_thread():
     threadpool_limits(limits=1)
 
 
-def _simulate(config, trace, phases=1):
+def _simulate(config, trace, phases=1, sampling=None):
     from ..arch import load_arch, short_for_refresh, takes_refresh
     from ..run import AUTO_PHASES, refresh_phase_runs, simulate
 
     arch = load_arch(config, source="sweep point")
+    if sampling:
+        return _simulate_sampled(arch, trace, sampling)
     # no per-unit intervals: the document is the same without them, and a point needs only the document
     doc = simulate(arch, trace, keep_intervals=False).to_dict()
     if phases == "auto":     # only a run short for refresh is repeated
@@ -103,18 +105,44 @@ def _simulate(config, trace, phases=1):
     return doc
 
 
-def run_point(config, trace_path, trace_digest, phases=1):
+_parts = OrderedDict()   # (id of a cached trace, decode, warmup) -> (that trace, its decode-sampled part)
+
+
+def _simulate_sampled(arch, trace, sampling):
+    """The run of the spec's sampled part of ``trace`` (as ``attnsim run --sample-prefill K
+    --sample-decode K2 --sample-warmup N``), with the whole trace's estimate in its document."""
+    from ..run import estimate_whole, simulate
+    from ..trace.sample import sample_decode
+
+    opts = {"sample_prefill": sampling["prefill"]} if "prefill" in sampling else {}
+    if "decode" not in sampling:
+        return simulate(arch, trace, keep_intervals=False, **opts).to_dict()
+    key = (id(trace), sampling["decode"], sampling.get("warmup"))
+    held = _parts.get(key)
+    if held is None or held[0] is not trace:   # the trace is kept with it, so its id stays its own
+        held = _parts[key] = (trace, sample_decode(trace, sampling["decode"], sampling.get("warmup")))
+        while len(_parts) > TRACE_CACHE_SIZE:
+            _parts.popitem(last=False)
+    part = held[1]
+    doc = simulate(arch, part.part, keep_intervals=False, **opts).to_dict()
+    doc["decode_sample"] = estimate_whole(doc, part)
+    return doc
+
+
+def run_point(config, trace_path, trace_digest, phases=1, sampling=None):
     """Simulate one point. Returns ``(status, document_or_error_line, build_id)``.
 
     ``phases`` > 1: the point at that many places in the refresh schedule
     (:func:`sim.run.refresh_phase_runs`); ``"auto"``: at :data:`sim.run.AUTO_PHASES` when the
     run proves short for refresh (:func:`sim.arch.short_for_refresh`), else once.
+    ``sampling``: the spec's ``sampling`` (``prefill``, ``decode``, ``warmup``): the point is
+    the run of that part of the trace, with the whole trace's estimate.
 
     Anything the simulation raises becomes an ``error`` outcome with a one-line
     message; only the death of the process itself escapes (the backend sees it).
     """
     try:
-        doc = _simulate(config, _trace(trace_path, trace_digest), phases)
+        doc = _simulate(config, _trace(trace_path, trace_digest), phases, sampling)
         return "ok", doc, build_id()
     except Exception as exc:  # a failing point is recorded, the sweep goes on
         text = " ".join(str(exc).split()) or type(exc).__name__
