@@ -171,3 +171,21 @@ def test_whole_runs_alone_still_get_the_full_report(docs, tmp_path):
                  "--sensitivity", "off", "--no-replay", "--quiet"]) == 0
     assert "ranked_by" not in json.loads((rep / "manifest.json").read_text())
     assert "## Verdicts" in (rep / "report.md").read_text()
+
+
+def test_a_whole_run_at_several_refresh_phases_is_ranked_by_its_mean(docs, tmp_path):
+    base = json.loads(docs[1]["mid", "whole"].read_text())
+    c, clock = base["cycles"], base["seconds"] / base["cycles"]
+    whole = copy.deepcopy(base)
+    whole["arch"]["name"] = "phased"
+    cycles = [c, round(c * 1.06)]                       # its mean, 3 % above c, is what a full report ranks by
+    mean = round(sum(cycles) / 2)
+    whole["refresh_phases"] = {"runs": 2, "offsets": [0.0, 0.5], "cycles": cycles, "mean_cycles": mean,
+                               "mean_seconds": mean * clock, "spread": 0.06}
+    sampled = _variant(base, round(c * 1.02), name="sampled")
+    code, rep = _report(tmp_path, [whole, sampled])
+    assert code == 0
+    rows = _rows(rep)
+    assert [r["run"].split(" ")[0] for r in rows] == ["sampled", "phased"]
+    assert int(rows[1]["whole_cycles"]) == mean and float(rows[1]["reach"]) == pytest.approx(0.06, rel=1e-5)
+    assert rows[1]["told_apart"] == "False"             # a 1 % lead inside the 6 % phase spread

@@ -76,11 +76,13 @@ def test_bundled_synthetic_traces_remake_from_their_provenance(name):
     assert again.digest() == t.digest()
 
 
-def test_bundled_version_2_synthetic_trace_remakes_from_its_provenance():
-    t = load_trace(os.path.join(TRACES, "demo_gqa_batch.yaml"))
+@pytest.mark.parametrize("name", ["demo_gqa_batch.yaml", "long_prompt/dec1b_p8k_d64.npz"])
+def test_bundled_version_2_synthetic_trace_remakes_from_its_provenance(name):
+    t = load_trace(os.path.join(TRACES, name))
     prov = t.header["provenance"]
     assert prov["synth_version"] == 2
-    again = synth_trace(**{k: prov[k] for k in ARGS}, name=t.header["name"])
+    shape = {"shape": prov["shape"]} if "shape" in prov else {}   # a named model shape is recorded too
+    again = synth_trace(**{k: prov[k] for k in ARGS}, **shape, name=t.header["name"])
     assert again.digest() == t.digest()
 
 

@@ -92,8 +92,12 @@ class Estimate:
             self.cycles, self.seconds = d["cycles"], d["seconds"]
             self.reach = run.phase_spread
             self.made = "whole trace"
-            if run.phase_spread:
-                self.caveats.append(f"moves {run.phase_spread:.1%} with where it starts in the refresh schedule")
+            if run.phase_mean_s is not None:   # ranked by the means over refresh phases, as a full report does
+                ph = d["refresh_phases"]
+                self.seconds = run.phase_mean_s
+                self.cycles = ph.get("mean_cycles") or round(run.phase_mean_s * d["cycles"] / d["seconds"])
+                self.caveats.append(f"the mean of its runs at {len(ph['cycles'])} places in the refresh "
+                                    f"schedule, {run.phase_spread:.1%} apart")
             return
         self.cycles, self.seconds = est["cycles"], est["seconds"]
         self.made = ", ".join(made)
