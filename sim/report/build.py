@@ -434,7 +434,9 @@ def build_estimate_report(runs, out_dir, failed=(), force=False, title=None, not
     """Write the report of runs among which some are sampled (:mod:`.estimates`) into ``out_dir``;
     return the manifest. The same files as :func:`build_report`, with one figure."""
     _prepare_out(out_dir, force)
-    warnings = label_runs(runs, trace_of=E.whole_trace, config_tag=E.sampling_tag)
+    # the sampling goes into the labels only where the runs differ in it (the table says it anyway)
+    tagged = len({E.sampling_tag(r.doc) for r in runs}) > 1
+    warnings = label_runs(runs, trace_of=E.whole_trace, config_tag=E.sampling_tag if tagged else None)
     by_trace = {}
     for r in runs:
         by_trace.setdefault(group_key(r), []).append(r)
@@ -449,6 +451,7 @@ def build_estimate_report(runs, out_dir, failed=(), force=False, title=None, not
     ctx = {"title": title or "attnsim comparison report: whole-trace estimates",
            "meta": (f"attnsim {__version__}, written {datetime.datetime.now().strftime('%Y-%m-%d %H:%M')}. "
                     f"{len(runs)} runs, {sampled} of them sampled"
+                    + ("" if tagged else f" ({E.sampling_tag(runs[0].doc)})")
                     + (f", {len(failed)} failed points" if failed else "") + "."),
            "warnings": warnings, "rows": _estimate_rows(groups), "verdicts": verdicts, "fig": fg,
            "notes": list(notes), "runs": runs}

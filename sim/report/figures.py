@@ -849,7 +849,12 @@ def estimated_latency(groups):
     an error bar; runs not ranked drawn hatched. ``groups``: ``[(trace label, ranked)]`` from
     :func:`sim.report.estimates.rank`."""
     n = sum(len(rk) for _t, rk in groups)
-    fig = _fig(8.5, 0.34 * n + 0.5 * len(groups) + 1.4)
+
+    def name(r, trace):   # one trace: it goes in the axis title instead
+        return r.config_label if len(groups) == 1 else f"{r.config_label} / {trace}"
+
+    longest = max((len(name(r, t)) for t, rk in groups for r, *_rest in rk), default=0)
+    fig = _fig(min(6.0 + 0.065 * longest, 20.0), 0.34 * n + 0.5 * len(groups) + 1.4)
     ax = fig.subplots()
     rows, ticks, labels = [], [], []
     y = 0.0
@@ -861,7 +866,7 @@ def estimated_latency(groups):
                     hatch=None if e.ranked else "//", xerr=us * e.reach if e.reach else None,
                     error_kw={"ecolor": "#333", "capsize": 3, "lw": 1})
             ticks.append(y)
-            labels.append(f"{r.config_label} / {trace}")
+            labels.append(name(r, trace))
             rows.append([trace, r.config_label, e.made, us, e.reach, e.ranked])
             y += 1.0
         y += 0.6
@@ -869,6 +874,8 @@ def estimated_latency(groups):
     ax.set_yticklabels(labels, fontsize=8)
     ax.invert_yaxis()
     ax.set_xlabel("latency of the whole trace (us; a sampled run's estimate)")
+    if len(groups) == 1:
+        ax.set_title(f"trace {groups[0][0]}", fontsize=9)
     _log_if_spread(ax, [row[3] for row in rows], axis="x")
     ax.grid(axis="x", alpha=0.3)
     return Figure("estimated_latency", "Whole-trace latency, sampled runs estimated",
