@@ -379,14 +379,35 @@ def _refresh_text(d):
 SAMPLE_NOISY = 0.01   # half-sample spread above which a sampled estimate is called too noisy to rank by
 
 
+# the softmax unit's busy share of the run, over the busiest array's, from which it paces a
+# prefill-sampled run (see :func:`softmax_paces`)
+SOFTMAX_PACES = 0.9
+SOFTMAX_PACED_OFF = 0.049   # the largest such error measured with both checks under 1 %
+
+
+def softmax_paces(doc):
+    """Whether the softmax unit keeps up with the dot array only just, or not at all, in a run:
+    busy at least :data:`SOFTMAX_PACES` of the busiest array's share. A prefill-sampled
+    run's estimate then came high with both its checks within 1 % (one layer of 32 query
+    heads on 8 K/V heads of width 64, causal prompt, mid with the array's and the softmax's
+    work per block equal: +2.2 % at K 4 on a 2k prompt, +4.3 % at K 16 on 8k; with the
+    softmax 6 % slower than the array: +4.9 % at K 8 on 2k, copies 0.4 % apart); with the
+    softmax 6 to 10 % faster the copies came as far apart as the error."""
+    units = doc["units"]
+    array = max(units.get(u, {}).get("busy", 0.0) for u in ("dot", "dot_pv"))
+    return array > 0 and units.get("softmax", {}).get("busy", 0.0) >= SOFTMAX_PACES * array
+
+
 def prefill_sample_noisy(doc):
     """Whether a prefill-sampled run's estimate is not to rank designs by: its copies' or its
-    half-samples' estimates more than :data:`SAMPLE_NOISY` either side, or a datapath with a
+    half-samples' estimates more than :data:`SAMPLE_NOISY` either side, a datapath with a
     q.K and a p.V array of their own, where a block's time depends on the ones before it
-    (``bench/prefill_conclusions.py``: up to 33 % off, 2.3 % with both spreads under 1 %)."""
+    (``bench/prefill_conclusions.py``: up to 33 % off, 2.3 % with both spreads under 1 %),
+    or a run the softmax unit paces (:func:`softmax_paces`)."""
     ps = doc["prefill_sample"]
     separate = doc["arch"]["config"]["dot"]["arrays"] == "separate"
-    return separate or max(ps.get("copy_spread", 0.0), ps.get("half_sample_spread", 0.0)) > SAMPLE_NOISY
+    return (separate or softmax_paces(doc)
+            or max(ps.get("copy_spread", 0.0), ps.get("half_sample_spread", 0.0)) > SAMPLE_NOISY)
 # layers below which a sampled estimate is not to rank by: the 1024 + 256 synthetic decode on server
 # (bench/llm_replay.py's shape) came 1.4 to 2.2 % off at 1 to 4 layers with half-samples within 0.6 %,
 # 0.6 % at 8 layers, 0.3 % at 12 and 24
@@ -435,6 +456,11 @@ def _prefill_sample_text(d):
     if d["arch"]["config"]["dot"]["arrays"] == "separate":
         text += (" (with a q.K and a p.V array of their own a block's time depends on the blocks before it: "
                  "such estimates have come up to 33 % off, 2.3 % with both spreads under 1 %, so compare "
+                 "designs by whole runs)")
+    elif softmax_paces(d):
+        text += (f" (the softmax unit paces the array here, busy {fm.show(d['units']['softmax']['busy'], 'share')} "
+                 "of the part: then a made block's time depends on the blocks around it, and such estimates "
+                 f"have come up to {SOFTMAX_PACED_OFF * 100:.1f} % high with both spreads under 1 %, so compare "
                  "designs by whole runs)")
     elif prefill_sample_noisy(d):
         text += (" (the blocks' times depend on their order or vary too much for the sample: runs closer "

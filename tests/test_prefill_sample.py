@@ -196,6 +196,31 @@ def test_order_dependent_datapath_is_flagged():
     assert not prefill_sample_noisy(one) and "whole runs" not in format_summary(one)
 
 
+@pytest.mark.parametrize("over,every", [({"dot.multipliers": 2048}, 4), ({"dot.multipliers": 2176}, 8)])
+def test_a_run_the_softmax_paces_is_flagged(over, every):
+    """mid with the array's work per block equal to the softmax unit's (2048 multipliers,
+    head width 64), or the softmax a little slower (2176): the sampled blocks' estimate comes
+    more than 1.5 % high with the copies and the half-samples both within 1 % (measured +2.2 %
+    and +4.9 %), so the checks cannot flag it; the softmax's busy share does."""
+    from sim.result import softmax_paces
+
+    trace = synth_trace(prompt_tokens=2048, decode_steps=0, layers=1, heads=32, kv_heads=8, head_dim=64,
+                        causal=True, seed=1)
+    arch = sim.load_arch("mid").with_overrides(over, "test")
+    whole = sim.simulate(arch, trace, keep_intervals=False).to_dict()["cycles"]
+    doc = sim.simulate(arch, trace, keep_intervals=False, sample_prefill=every).to_dict()
+    ps = doc["prefill_sample"]
+    assert ps["cycles"] / whole - 1 > 0.015                                          # premise: off
+    assert ps["copy_spread"] < 0.01 and ps["half_sample_spread"] < 0.01              # premise: unseen
+    assert softmax_paces(doc) and prefill_sample_noisy(doc)
+    assert "softmax unit paces the array" in format_summary(doc)
+    # the softmax well clear of the array (1024 multipliers): not flagged, and the estimate holds
+    mid = sim.simulate("mid", trace, keep_intervals=False, sample_prefill=every).to_dict()
+    assert not softmax_paces(mid) and not prefill_sample_noisy(mid)
+    assert abs(mid["prefill_sample"]["cycles"] / sim.simulate("mid", trace, keep_intervals=False).to_dict()["cycles"]
+               - 1) < 0.001
+
+
 def test_engine_option_is_checked():
     trace = prompt_trace(prompt=256, layers=1, decode=0)
     for bad in (1, 0, 5000, 2.5, True, "8"):

@@ -189,3 +189,15 @@ def test_a_whole_run_at_several_refresh_phases_is_ranked_by_its_mean(docs, tmp_p
     assert [r["run"].split(" ")[0] for r in rows] == ["sampled", "phased"]
     assert int(rows[1]["whole_cycles"]) == mean and float(rows[1]["reach"]) == pytest.approx(0.06, rel=1e-5)
     assert rows[1]["told_apart"] == "False"             # a 1 % lead inside the 6 % phase spread
+
+
+def test_a_prefill_estimate_the_softmax_paces_is_listed_not_ranked(docs, tmp_path):
+    base = json.loads(docs[1]["mid", "whole"].read_text())
+    c = base["cycles"]
+    paced = _variant(base, round(c * 0.8), name="paced")
+    paced["units"]["softmax"]["busy"] = paced["units"]["dot"]["busy"]     # the softmax keeps pace only just
+    code, rep = _report(tmp_path, [paced, _variant(base, c, name="clear")])
+    assert code == 0
+    rows = _rows(rep)
+    assert [(r["run"].split(" ")[0], r["ranked"]) for r in rows] == [("clear", "True"), ("paced", "False")]
+    assert "softmax unit paces the array" in rows[1]["caveats"]

@@ -16,12 +16,14 @@ and :data:`sim.result.SAMPLE_FEW_LAYERS_OFF` for a decode-sampled run of fewer t
 :data:`sim.result.SAMPLE_FEW_LAYERS` layers. A lead no larger than the reach of either
 run is not told apart. A prefill-sampled run on a datapath with separate q.K and p.V
 arrays is not ranked at all: there a block's time depends on the blocks before it, and
-estimates came up to 33 % off (2.3 % with both checks under 1 %).
+estimates came up to 33 % off (2.3 % with both checks under 1 %); nor is one whose softmax
+unit paces the array (:func:`sim.result.softmax_paces`: up to 4.9 % high with both checks
+under 1 %).
 """
 
 from .. import formats as fm
 from ..columns import estimate_section
-from ..result import SAMPLE_FEW_LAYERS, SAMPLE_FEW_LAYERS_OFF, SAMPLE_NOISY
+from ..result import SAMPLE_FEW_LAYERS, SAMPLE_FEW_LAYERS_OFF, SAMPLE_NOISY, SOFTMAX_PACED_OFF, softmax_paces
 from .inputs import SAMPLED
 
 SUFFIX = "-sampled"
@@ -84,6 +86,12 @@ class Estimate:
                 self.caveats.append("prefill sampled with a q.K and a p.V array of their own, where a block's "
                                     "time depends on the blocks before it (such estimates came up to 33 % off): "
                                     "not ranked, compare by whole runs")
+            elif softmax_paces(d):
+                self.ranked = False
+                self.caveats.append(f"prefill sampled where the softmax unit paces the array, where a block's "
+                                    f"time depends on the blocks around it (such estimates came up to "
+                                    f"{SOFTMAX_PACED_OFF:.1%} high with both checks agreeing): not ranked, "
+                                    "compare by whole runs")
         if ds is not None:
             made.append(f"{ds['simulated_decode_steps']:,} of {ds['decode_steps']:,} decode steps")
             self.spreads["decode half-samples"] = ds.get("half_sample_spread", 0.0)
