@@ -120,7 +120,7 @@ def test_a_lead_inside_either_runs_reach_is_not_told_apart(docs, tmp_path, lead,
     assert rows[1]["told_apart"] == str(apart)
     assert float(rows[1]["reach"]) == max(0.01, spread)
     text = (rep / "report.md").read_text()
-    assert ("Not told apart from it by the sampling: slow" in text) is not apart
+    assert ("Not told apart from it: slow" in text) is not apart
 
 
 def test_separate_arrays_prefill_estimate_is_listed_not_ranked(docs, tmp_path):

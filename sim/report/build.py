@@ -401,8 +401,9 @@ ESTIMATE_INTRO = (
     "beside the estimate's reach, the lead below which it is not told apart from another run (at least "
     f"{fm.show(E.SAMPLE_NOISY, 'share')}, what estimates whose checks agreed came within against whole runs; "
     f"its own checks' spread where larger; {fm.show(E.SAMPLE_FEW_LAYERS_OFF, 'share')} for decode sampled on "
-    f"fewer than {E.SAMPLE_FEW_LAYERS} layers). Energy, traffic, stalls and what to change are not shown: "
-    "for those, report whole runs.")
+    f"fewer than {E.SAMPLE_FEW_LAYERS} layers). A prefill estimate made on two arrays, or where the softmax unit "
+    "paces the array, is listed but not ranked: there a made block's time depends on the blocks around it. "
+    "Energy, traffic, stalls and what to change are not shown: for those, report whole runs.")
 ESTIMATE_HEADER = ["trace", "run", "simulated", fm.header("latency", "latency"), "cycles", fm.header("reach", "share"),
                    fm.header("vs fastest", "speedup"), "standing"]
 

@@ -72,54 +72,64 @@ class Estimate:
 
     def __init__(self, run):
         d = run.doc
-        ps, ds = d.get("prefill_sample"), d.get("decode_sample")
-        self.caveats = []
-        self.ranked = True
-        self.spreads = {}
-        made = []
-        if ps is not None and ps.get("sampled_steps"):
-            made.append(f"{ps['simulated_query_blocks']:,} of {ps['query_blocks']:,} query blocks")
-            self.spreads["prefill copies"] = ps.get("copy_spread", 0.0)
-            self.spreads["prefill half-samples"] = ps.get("half_sample_spread", 0.0)
-            if d["arch"]["config"]["dot"]["arrays"] == "separate":
-                self.ranked = False
-                self.caveats.append("prefill sampled with a q.K and a p.V array of their own, where a block's "
-                                    "time depends on the blocks before it (such estimates came up to 33 % off): "
-                                    "not ranked, compare by whole runs")
-            elif softmax_paces(d):
-                self.ranked = False
-                self.caveats.append(f"prefill sampled where the softmax unit paces the array, where a block's "
-                                    f"time depends on the blocks around it (such estimates came up to "
-                                    f"{SOFTMAX_PACED_OFF:.1%} high with both checks agreeing): not ranked, "
-                                    "compare by whole runs")
-        if ds is not None:
-            made.append(f"{ds['simulated_decode_steps']:,} of {ds['decode_steps']:,} decode steps")
-            self.spreads["decode half-samples"] = ds.get("half_sample_spread", 0.0)
+        self.caveats, self.ranked, self.spreads = [], True, {}
         est = estimate_section(d)
         if est is None:
-            self.cycles, self.seconds = d["cycles"], d["seconds"]
-            self.reach = run.phase_spread
-            self.made = "whole trace"
-            if run.phase_mean_s is not None:   # ranked by the means over refresh phases, as a full report does
-                ph = d["refresh_phases"]
-                self.seconds = run.phase_mean_s
-                self.cycles = ph.get("mean_cycles") or round(run.phase_mean_s * d["cycles"] / d["seconds"])
-                self.caveats.append(f"the mean of its runs at {len(ph['cycles'])} places in the refresh "
-                                    f"schedule, {run.phase_spread:.1%} apart")
+            self._whole(run)
             return
-        self.cycles, self.seconds = est["cycles"], est["seconds"]
-        self.made = ", ".join(made)
+        self.cycles, self.seconds, self.reach = est["cycles"], est["seconds"], 0.0
+        self.made = ", ".join(filter(None, (self._prefill(d), self._decode(d))))
         worst = max(self.spreads.values(), default=0.0)
-        self.reach = max(SAMPLE_NOISY, worst)
+        self.reach = max(self.reach, SAMPLE_NOISY, worst)
         if worst > SAMPLE_NOISY:
             which = max(self.spreads, key=self.spreads.get)
             self.caveats.append(f"its {which} came {worst:.1%} either side of the estimate")
+
+    def _whole(self, run):
+        """A run of the whole trace: its own latency (the mean over refresh phases where it was
+        run at several, as a full report ranks it), their spread its reach."""
+        d = run.doc
+        self.cycles, self.seconds, self.reach, self.made = d["cycles"], d["seconds"], run.phase_spread, "whole trace"
+        if run.phase_mean_s is not None:
+            ph = d["refresh_phases"]
+            self.seconds = run.phase_mean_s
+            self.cycles = ph.get("mean_cycles") or round(run.phase_mean_s * d["cycles"] / d["seconds"])
+            self.caveats.append(f"the mean of its runs at {len(ph['cycles'])} places in the refresh "
+                                f"schedule, {run.phase_spread:.1%} apart")
+
+    def _prefill(self, d):
+        """The prefill sampling's part of the estimate: what it made, its checks, whether to rank."""
+        ps = d.get("prefill_sample")
+        if ps is None or not ps.get("sampled_steps"):
+            return ""
+        self.spreads["prefill copies"] = ps.get("copy_spread", 0.0)
+        self.spreads["prefill half-samples"] = ps.get("half_sample_spread", 0.0)
+        if d["arch"]["config"]["dot"]["arrays"] == "separate":
+            self.ranked = False
+            self.caveats.append("prefill sampled with a q.K and a p.V array of their own, where a block's "
+                                "time depends on the blocks before it (such estimates came up to 33 % off): "
+                                "not ranked, compare by whole runs")
+        elif softmax_paces(d):
+            self.ranked = False
+            self.caveats.append(f"prefill sampled where the softmax unit paces the array, where a block's time "
+                                f"depends on the blocks around it (such estimates came up to "
+                                f"{SOFTMAX_PACED_OFF:.1%} high with both checks agreeing): not ranked, "
+                                "compare by whole runs")
+        return f"{ps['simulated_query_blocks']:,} of {ps['query_blocks']:,} query blocks"
+
+    def _decode(self, d):
+        """The decode sampling's part: what it made, its check, the few-layers reach."""
+        ds = d.get("decode_sample")
+        if ds is None:
+            return ""
+        self.spreads["decode half-samples"] = ds.get("half_sample_spread", 0.0)
         layers = len(d["per_layer_cycles"])
-        if ds is not None and layers < SAMPLE_FEW_LAYERS:
+        if layers < SAMPLE_FEW_LAYERS:
             self.reach = max(self.reach, SAMPLE_FEW_LAYERS_OFF)
             self.caveats.append(f"decode sampled on {layers} layer{'s' if layers > 1 else ''}, where such "
                                 f"estimates came up to {SAMPLE_FEW_LAYERS_OFF:.1%} off with their half-samples "
                                 f"agreeing (below {SAMPLE_FEW_LAYERS} layers)")
+        return f"{ds['simulated_decode_steps']:,} of {ds['decode_steps']:,} decode steps"
 
 
 def rank(group):
@@ -150,8 +160,8 @@ def verdict(ranked):
             f"{fm.show(best.seconds, 'latency')})."]
     tied = [r.config_label for r, e, slower, apart in ranked[1:] if e.ranked and not apart]
     if tied:
-        text.append(f"Not told apart from it by the sampling: {', '.join(tied)} (leads inside the estimates' "
-                    "reach; compare these by whole runs).")
+        text.append(f"Not told apart from it: {', '.join(tied)} (each lead inside the reach of one of the two "
+                    "runs; compare these by whole runs, at several refresh phases where that is the reach).")
     ahead = [(r, slower) for r, e, slower, apart in ranked[1:] if e.ranked and apart]
     if ahead:
         text.append("Slower: " + ", ".join(f"{r.config_label} {fm.show(slower, 'speedup')}"
