@@ -17,7 +17,7 @@ and :data:`sim.result.SAMPLE_FEW_LAYERS_OFF` for a decode-sampled run of fewer t
 run is not told apart. A prefill-sampled run on a datapath with separate q.K and p.V
 arrays is not ranked at all: there a block's time depends on the blocks before it, and
 estimates came up to 33 % off (2.3 % with both checks under 1 %); nor is one whose softmax
-unit paces the array (:func:`sim.result.softmax_paces`: up to 4.9 % high with both checks
+unit paces the array (:func:`sim.result.softmax_paces`: up to 6.1 % high with both checks
 under 1 %).
 """
 
