@@ -154,3 +154,11 @@ def test_screening_and_refresh_phases_are_refused_with_sampling(tmp_path, trace_
     assert "--screen" in err and "expected without the spec's sampling" in err
     assert main(["sweep", spec, "--out", str(tmp_path / "b"), "--refresh-phases", "4", "--quiet"]) == 2
     assert "expected 1 with sampling" in capsys.readouterr().err
+
+
+def test_the_summary_says_when_the_best_points_estimate_is_flagged(swept):
+    # two layers of decode sampled: below the 8 layers from which decode estimates held within 1 %
+    out, text = swept
+    summary = json.load(open(os.path.join(out, "summary.json"), encoding="utf-8"))
+    note = next(n for n in summary["notes"] if "the best point's estimate is not one to rank by" in n)
+    assert "decode was sampled on fewer than 8 layers" in note and note in text

@@ -272,6 +272,7 @@ def summarize(plan, store, requested, counts, screened=False):
     phase_notes = _phase_ranges(plan.spec.phases, store, best) + _short_run_notes(plan.spec.phases, store, best)
     if plan.spec.sampling:
         phase_notes.append(_sampling_note(plan.spec.sampling))
+        phase_notes += _flagged_best_notes(store, best)
     return {
         "format": "attnsim-sweep-summary", "version": 1,
         "sweep": plan.spec.name, "simulator_version": __version__, "simulator_build": plan.build,
@@ -300,6 +301,29 @@ def _sampling_note(sampling):
             "table holds no other figure of them but the area proxy (the rest is the simulated parts'); an "
             "estimate's reach is 1 % or more, so attnsim report on this folder ranks them and says which leads "
             "are told apart; compare close points by whole runs")
+
+
+def _flagged_best_notes(store, best):
+    """A sampled sweep: a note for each trace whose best point by cycles has an estimate its own
+    run summary flags (not one to rank by, :mod:`sim.result`)."""
+    from ..result import SAMPLE_FEW_LAYERS, SAMPLE_NOISY, prefill_sample_noisy
+
+    out = []
+    for trace, per in best.items():
+        b = per.get("cycles")
+        doc = ((store.record(b["key"]) if b else None) or {}).get("result") or {}
+        ps, ds = doc.get("prefill_sample"), doc.get("decode_sample")
+        why = []
+        if ps and ps.get("sampled_steps") and prefill_sample_noisy(doc):
+            why.append("its prefill sample is flagged (its checks apart, two arrays, or the softmax pacing the array)")
+        if ds and ds.get("half_sample_spread", 0.0) > SAMPLE_NOISY:
+            why.append(f"its decode half-samples came {ds['half_sample_spread']:.1%} either side")
+        if ds and len(doc.get("per_layer_cycles") or ()) < SAMPLE_FEW_LAYERS:
+            why.append(f"its decode was sampled on fewer than {SAMPLE_FEW_LAYERS} layers")
+        if why:
+            out.append(f"trace {trace}: the best point's estimate is not one to rank by -- {'; '.join(why)}; "
+                       "attnsim report on this folder lists which points it cannot tell apart")
+    return out
 
 
 def _short_run_notes(phases, store, best):
