@@ -12,6 +12,7 @@ must not decide which design is faster is the brief's rule (common practice, no 
 import copy
 import csv
 import json
+import re
 
 import pytest
 
@@ -201,3 +202,20 @@ def test_a_prefill_estimate_the_softmax_paces_is_listed_not_ranked(docs, tmp_pat
     rows = _rows(rep)
     assert [(r["run"].split(" ")[0], r["ranked"]) for r in rows] == [("clear", "True"), ("paced", "False")]
     assert "softmax unit paces the array" in rows[1]["caveats"]
+
+
+def test_the_estimates_report_renders_in_headless_chromium(docs, tmp_path):
+    """Its one figure loads offline and the table is on the page (a browser's own reading)."""
+    from test_report import run_chromium
+
+    _d, files = docs
+    rep = tmp_path / "rep"
+    assert main(["report", str(files["mid", "sampled"]), str(files["edge", "whole"]), "--out", str(rep),
+                 "--quiet"]) == 0
+    page = "file://" + str(rep / "report.html")
+    dom = run_chromium("--virtual-time-budget=10000", "--dump-dom", page).stdout
+    body = re.search(r"<body[^>]*>", dom).group(0)
+    assert re.search(r'data-figures-expected="(\d+)"', body).group(1) == "1"
+    assert re.search(r'data-figures-loaded="(\d+)"', body).group(1) == "1"
+    assert 'id="comparison"' in dom and 'id="fig-estimated_latency"' in dom
+    assert "http://" not in (rep / "report.html").read_text()
