@@ -89,6 +89,7 @@ def test_points_are_the_sampled_runs_and_the_table_holds_their_estimates(swept, 
             assert row["area.total_mm2"] == pytest.approx(want["area"]["total_mm2"])
             for col in ("energy.total_pj", "dram.bytes", "units.dot.busy", "bounds.roofline_cycles"):
                 assert pd.isna(row[col]), col                                 # empty: the part's figure
+    assert text.startswith("sweep sampled: 2 points")                     # the spec's own name
     assert "points sampled their traces (prefill 1 in 4, decode 1 in 8 after 32)" in text
     assert "cycles and seconds are the whole traces' estimates" in text
 
