@@ -219,3 +219,19 @@ def test_the_estimates_report_renders_in_headless_chromium(docs, tmp_path):
     assert re.search(r'data-figures-loaded="(\d+)"', body).group(1) == "1"
     assert 'id="comparison"' in dom and 'id="fig-estimated_latency"' in dom
     assert "http://" not in (rep / "report.html").read_text()
+
+
+def test_whole_runs_closer_than_the_reports_tie_margin_are_not_told_apart(docs, tmp_path):
+    # the margin under which any report calls two latencies tied (sim.report.verdict.TIE, 1 %)
+    base = json.loads(docs[1]["mid", "whole"].read_text())
+    near = copy.deepcopy(base)
+    near["arch"]["name"] = "near"
+    near["cycles"], near["seconds"] = round(base["cycles"] * 1.005), base["seconds"] * 1.005
+    far = copy.deepcopy(base)
+    far["arch"]["name"] = "far"
+    far["cycles"], far["seconds"] = round(base["cycles"] * 1.02), base["seconds"] * 1.02
+    code, rep = _report(tmp_path, [far, near, _variant(base, base["cycles"], name="sampled")])
+    assert code == 0
+    rows = {r["run"].split(" ")[0]: r for r in _rows(rep)}
+    assert rows["near"]["told_apart"] == "False" and rows["far"]["told_apart"] == "True"
+    assert float(rows["near"]["reach"]) == 0.01

@@ -25,6 +25,7 @@ from .. import formats as fm
 from ..columns import estimate_section
 from ..result import SAMPLE_FEW_LAYERS, SAMPLE_FEW_LAYERS_OFF, SAMPLE_NOISY, SOFTMAX_PACED_OFF, softmax_paces
 from .inputs import SAMPLED
+from .verdict import TIE
 
 SUFFIX = "-sampled"
 
@@ -64,7 +65,8 @@ class Estimate:
 
     ``cycles`` and ``seconds``: the whole trace's (estimated, for a sampled run);
     ``made``: what was simulated, in words; ``reach``: the share either side within which
-    the estimate is not told apart from another (0 for a whole run); ``caveats``: why the
+    the estimate is not told apart from another (for a whole run the full report's tie margin,
+    :data:`sim.report.verdict.TIE`, or its refresh-phase spread); ``caveats``: why the
     reach is what it is, or why the run is not ranked (``ranked`` False).
     """
 
@@ -87,9 +89,11 @@ class Estimate:
 
     def _whole(self, run):
         """A run of the whole trace: its own latency (the mean over refresh phases where it was
-        run at several, as a full report ranks it), their spread its reach."""
+        run at several, as a full report ranks it); its reach the full report's tie margin, or
+        their spread where larger."""
         d = run.doc
-        self.cycles, self.seconds, self.reach, self.made = d["cycles"], d["seconds"], run.phase_spread, "whole trace"
+        self.cycles, self.seconds, self.made = d["cycles"], d["seconds"], "whole trace"
+        self.reach = max(TIE, run.phase_spread)   # the tie margin of any report
         if run.phase_mean_s is not None:
             ph = d["refresh_phases"]
             self.seconds = run.phase_mean_s
