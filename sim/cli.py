@@ -859,6 +859,14 @@ def _add_sweep(sub):
                    help="run each point whose memory refreshes at N places in the refresh schedule and rank "
                         "by the means (the spec's refresh_phases, which this replaces; 1 to 16; auto: 4 for a "
                         "point whose run lasts 20 refresh intervals or fewer, else 1)")
+    p.add_argument("--sample-prefill", type=_int_in(2, 4096), metavar="K",
+                   help="run every point as attnsim run --sample-prefill K would (the spec's sampling.prefill, "
+                        "which this and the two options below replace together): the table holds the whole "
+                        "trace's estimated cycles")
+    p.add_argument("--sample-decode", type=_int_in(2, 4096), metavar="K",
+                   help="likewise attnsim run --sample-decode K (sampling.decode)")
+    p.add_argument("--sample-warmup", type=_int_in(0, 1 << 20), metavar="N",
+                   help="with --sample-decode: decode tokens of each request run in full first (default 32)")
     p.add_argument("--force", action="store_true", help="reuse a folder that holds another sweep")
     p.add_argument("--quiet", "-q", action="store_true", help="no progress line, no notices")
     p.set_defaults(handler=_cmd_sweep)
@@ -889,6 +897,12 @@ def _cmd_sweep(args):
     spec = load_spec(args.spec)
     if args.refresh_phases is not None:
         spec = spec.with_phases(args.refresh_phases)
+    if args.sample_warmup is not None and args.sample_decode is None:
+        raise OptionError("--sample-warmup", "--sample-warmup", args.sample_warmup, "expected with --sample-decode")
+    given = {"prefill": args.sample_prefill, "decode": args.sample_decode, "warmup": args.sample_warmup}
+    if any(v is not None for v in given.values()):
+        spec = spec.with_sampling({k: v for k, v in given.items() if v is not None},
+                                  "--sample-prefill" if args.sample_prefill is not None else "--sample-decode")
     if spec.grid_size * len(spec.traces) > 20_000 and not args.quiet:
         print(f"attnsim: checking the configs of {spec.grid_size:,} grid points before the first run "
               f"(about {spec.grid_size * 3e-3 / 60:.0f} min)", file=sys.stderr)

@@ -163,3 +163,18 @@ def test_the_summary_says_when_the_best_points_estimate_is_flagged(swept):
     summary = json.load(open(os.path.join(out, "summary.json"), encoding="utf-8"))
     note = next(n for n in summary["notes"] if "the best point's estimate is not one to rank by" in n)
     assert "decode was sampled on fewer than 8 layers" in note and note in text
+
+
+def test_the_command_line_samples_a_spec_as_its_sampling_key_does(tmp_path, trace_path, capsys):
+    whole_spec = _spec(tmp_path, trace_path, name="w.yaml", sampling=None)
+    out = tmp_path / "cli"
+    assert main(["sweep", whole_spec, "--out", str(out), "--jobs", "1", "--quiet", "--sample-prefill", "4",
+                 "--sample-decode", "8"]) == 0
+    sampled = make_plan(load_spec(_spec(tmp_path, trace_path)))
+    assert set(sim.load_sweep(str(out))["key"]) == set(sampled.keys)
+    assert main(["sweep", whole_spec, "--out", str(tmp_path / "x"), "--sample-warmup", "8", "--quiet"]) == 2
+    assert "--sample-warmup" in capsys.readouterr().err
+    energy = _spec(tmp_path, trace_path, name="e.yaml", sampling=None, objectives=["cycles", "energy"])
+    assert main(["sweep", energy, "--out", str(tmp_path / "y"), "--sample-prefill", "4", "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "--sample-prefill" in err and "objectives[1]" in err

@@ -115,6 +115,17 @@ class Spec:
         return Spec(self.source, self.name, self.description, self.base_path, self.base, self.traces, self.fixed,
                     self.dims, self.rules, self.objectives, data, phases, self.sampling)
 
+    def with_sampling(self, sampling, source):
+        """The same spec with its points sampled as ``sampling`` says (``{prefill, decode,
+        warmup}``, as the spec's ``sampling``; from the command line, named ``source``)."""
+        sampling = _sampling(sampling, source)
+        _no_phases_sampled(self.phases, sampling, source)
+        _sampled_objectives(self.objectives, sampling, source)
+        data = {k: v for k, v in self.data.items() if k != "sampling"}
+        data["sampling"] = dict(sampling)
+        return Spec(self.source, self.name, self.description, self.base_path, self.base, self.traces, self.fixed,
+                    self.dims, self.rules, self.objectives, data, self.phases, sampling)
+
     def __repr__(self):
         return f"Spec({self.name!r} from {self.source}, {self.grid_size} grid points)"
 
@@ -174,11 +185,7 @@ def validate_spec(raw, source):
     phases = _phases(raw.get("refresh_phases", 1), source)
     sampling = _sampling(raw.get("sampling"), source)
     _no_phases_sampled(phases, sampling, source)
-    for i, objective in enumerate(objectives if sampling else ()):
-        if objective not in SAMPLED_OBJECTIVES:
-            raise SweepError(source, f"objectives[{i}]", objective,
-                             f"expected one of {', '.join(SAMPLED_OBJECTIVES)} with sampling: a sampled point's "
-                             "other figures are its simulated part's")
+    _sampled_objectives(objectives, sampling, source)
     data = {
         "name": name, "description": description, "base": base_written,
         "traces": [w for w, _p in traces], "fixed": fixed, "dims": dims_data,
@@ -213,6 +220,14 @@ def _sampling(value, source):
         if isinstance(v, bool) or not isinstance(v, int) or not lo <= v <= hi:
             raise SweepError(source, f"sampling.{key}", v, f"expected a whole number from {lo} to {hi:,}")
     return {k: value[k] for k in SAMPLING_KEYS if k in value}
+
+
+def _sampled_objectives(objectives, sampling, source):
+    for i, objective in enumerate(objectives if sampling else ()):
+        if objective not in SAMPLED_OBJECTIVES:
+            raise SweepError(source, f"objectives[{i}]", objective,
+                             f"expected one of {', '.join(SAMPLED_OBJECTIVES)} with sampling: a sampled point's "
+                             "other figures are its simulated part's")
 
 
 def _no_phases_sampled(phases, sampling, source):
