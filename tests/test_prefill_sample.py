@@ -250,8 +250,13 @@ def test_cli_sample_prefill(tmp_path, capsys):
 def test_cli_nothing_to_sample_says_so(tmp_path, capsys):
     path = tmp_path / "p.npz"
     save_trace(prompt_trace(prompt=256, layers=1, decode=2), path)
-    assert main(["run", "--arch", "mid", "--trace", str(path), "--sample-prefill", "64"]) == 0
+    out = tmp_path / "r.json"
+    assert main(["run", "--arch", "mid", "--trace", str(path), "--sample-prefill", "64", "--json", str(out)]) == 0
     assert "nothing was left out" in capsys.readouterr().out
+    # the run is the whole trace's: a report of it is the full one
+    assert main(["report", str(out), "--out", str(tmp_path / "rep"), "--sensitivity", "off", "--no-replay",
+                 "--quiet"]) == 0
+    assert "ranked_by" not in json.loads((tmp_path / "rep" / "manifest.json").read_text())
 
 
 @pytest.mark.parametrize("args,says", [

@@ -24,15 +24,15 @@ under 1 %).
 from .. import formats as fm
 from ..columns import estimate_section
 from ..result import SAMPLE_FEW_LAYERS, SAMPLE_FEW_LAYERS_OFF, SAMPLE_NOISY, SOFTMAX_PACED_OFF, softmax_paces
-from .inputs import SAMPLED
 from .verdict import TIE
 
 SUFFIX = "-sampled"
 
 
 def is_sampled(doc):
-    """Whether ``doc`` is the run of part of its trace (either sampling)."""
-    return any(doc.get(key) is not None for key in SAMPLED)
+    """Whether ``doc`` is the run of part of its trace (either sampling; a prefill sampling that
+    left nothing out made the whole trace)."""
+    return estimate_section(doc) is not None
 
 
 def whole_trace(doc):

@@ -118,7 +118,7 @@ def _check_doc(doc, source, field="<root>"):
 
 
 # what a report reads of the sections of a sampled run (attnsim run --sample-prefill / --sample-decode):
-# field -> (kind, what it is)
+# field -> its kind
 _COUNT, _SHARE, _SECONDS = "count", "share", "seconds"
 SAMPLED = {
     "prefill_sample": {"cycles": _COUNT, "seconds": _SECONDS, "every": _COUNT, "sampled_steps": _COUNT,
