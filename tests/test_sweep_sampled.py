@@ -178,3 +178,13 @@ def test_the_command_line_samples_a_spec_as_its_sampling_key_does(tmp_path, trac
     assert main(["sweep", energy, "--out", str(tmp_path / "y"), "--sample-prefill", "4", "--quiet"]) == 2
     err = capsys.readouterr().err
     assert "--sample-prefill" in err and "objectives[1]" in err
+
+
+def test_a_report_of_a_sampled_folder_lists_its_failed_points(tmp_path, trace_path):
+    spec = _spec(tmp_path, trace_path, axes={"dot.multipliers": [1024, 1000]})   # 1000: not a multiple of the lanes
+    out = tmp_path / "out"
+    assert main(["sweep", spec, "--out", str(out), "--jobs", "1", "--quiet"]) == 1   # a failed point
+    assert main(["report", str(out), "--out", str(tmp_path / "rep"), "--quiet"]) == 0
+    text = (tmp_path / "rep" / "report.md").read_text()
+    assert "1 runs, 1 of them sampled" in text and ", 1 failed points" in text
+    assert "## Failed points" in text and "multiple of dot.lanes" in text

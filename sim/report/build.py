@@ -302,9 +302,7 @@ def _markdown(c):
         out += ["## What to change (measured)", "", SENS_INTRO, "",
                 markdown_table(*sensitivity_rows(c["sensitivity"]), text_columns=4), "",
                 "Exact values: `data/sensitivity.csv`.", ""]
-    if c["failed"]:
-        out += ["## Failed points", ""] + [f"- {f['origin']}: {f.get('trace')} {f.get('point')}: {f.get('error')}"
-                                           for f in c["failed"]] + [""]
+    out += _failed_markdown(c["failed"])
     out += ["## Figures", ""]
     for fg in c["figs"]:
         out += [f"### {fg.title}", "", f"![{fg.title}](figures/{fg.name}.png)", "",
@@ -315,6 +313,23 @@ def _markdown(c):
     out += [f"- {sec} preset `{name}`: {src}" for sec, name, src in _provenance(c["runs"])] + [""]
     out += ["## Runs", ""] + [f"- {_run_line(r)}" for r in c["runs"]] + [""]
     return "\n".join(out)
+
+
+def _failed_markdown(failed):
+    """The "Failed points" section (none when nothing failed)."""
+    if not failed:
+        return []
+    return ["## Failed points", ""] + [f"- {f['origin']}: {f.get('trace')} {f.get('point')}: {f.get('error')}"
+                                       for f in failed] + [""]
+
+
+def _failed_html(failed):
+    e = html.escape
+    if not failed:
+        return []
+    return ["<h2>Failed points</h2><ul>" + "".join(
+        f"<li>{e(f['origin'])}: {e(str(f.get('trace')))} {e(str(f.get('point')))}: {e(str(f.get('error')))}</li>"
+        for f in failed) + "</ul>"]
 
 
 CSS = """
@@ -373,10 +388,7 @@ def _html(c):
             parts.append("<tr>" + "".join(f"<td{' class=num' if i >= 4 else ''}>{e(str(v))}</td>"
                                           for i, v in enumerate(row)) + "</tr>")
         parts.append("</table><p class='meta'>Exact values in data/sensitivity.csv.</p>")
-    if c["failed"]:
-        parts.append("<h2>Failed points</h2><ul>" + "".join(
-            f"<li>{e(f['origin'])}: {e(str(f.get('trace')))} {e(str(f.get('point')))}: {e(str(f.get('error')))}</li>"
-            for f in c["failed"]) + "</ul>")
+    parts += _failed_html(c["failed"])
     parts.append("<h2>Figures</h2>")
     for fg in c["figs"]:
         b64 = base64.b64encode(fg.png).decode("ascii")
@@ -455,7 +467,7 @@ def build_estimate_report(runs, out_dir, failed=(), force=False, title=None, not
                     + ("" if tagged else f" ({E.sampling_tag(runs[0].doc)})")
                     + (f", {len(failed)} failed points" if failed else "") + "."),
            "warnings": warnings, "rows": _estimate_rows(groups), "verdicts": verdicts, "fig": fg,
-           "notes": list(notes), "runs": runs}
+           "notes": list(notes), "runs": runs, "failed": list(failed)}
     texts += [_estimate_markdown(ctx), _estimate_html(ctx)]
     for rel, data in zip(files, texts):
         with open(os.path.join(out_dir, rel), "wb" if isinstance(data, bytes) else "w",
@@ -477,6 +489,7 @@ def _estimate_markdown(c):
     for trace, text, caveats in c["verdicts"]:
         out += [f"### {trace}", "", text, ""] + [f"- {r.config_label}: {'; '.join(cv)}" for r, cv in caveats]
         out += [""] if caveats else []
+    out += _failed_markdown(c["failed"])
     fg = c["fig"]
     out += ["## Figure", "", f"![{fg.title}](figures/{fg.name}.png)", "", f"{fg.caption} Data: `data/{fg.name}.csv`.",
             ""]
@@ -510,6 +523,7 @@ def _estimate_html(c):
         if caveats:
             parts.append("<ul>" + "".join(f"<li>{e(r.config_label)}: {e('; '.join(cv))}</li>" for r, cv in caveats)
                          + "</ul>")
+    parts += _failed_html(c["failed"])
     parts.append(f"<h2>Figure</h2><figure id='fig-{fg.name}'><h3>{e(fg.title)}</h3>"
                  f"<img class='fig' alt='{e(fg.title)}' src='data:image/png;base64,{b64}'>"
                  f"<figcaption>{e(fg.caption)} Data: data/{fg.name}.csv.</figcaption></figure>")
