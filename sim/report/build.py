@@ -413,7 +413,9 @@ ESTIMATE_INTRO = (
     "beside the estimate's reach, the lead below which it is not told apart from another run (at least "
     f"{fm.show(E.SAMPLE_NOISY, 'share')}, what estimates whose checks agreed came within against whole runs; "
     f"its own checks' spread where larger; {fm.show(E.SAMPLE_FEW_LAYERS_OFF, 'share')} for decode sampled on "
-    f"fewer than {E.SAMPLE_FEW_LAYERS} layers). A prefill estimate made on two arrays, or where the softmax unit "
+    f"fewer than {E.SAMPLE_FEW_LAYERS} layers; a whole run's is the {fm.show(E.TIE, 'share')} within which any "
+    "report ties two runs, or its spread over refresh phases). A prefill estimate made on two arrays, or where "
+    "the softmax unit "
     "paces the array, is listed but not ranked: there a made block's time depends on the blocks around it. "
     "Energy, traffic, stalls and what to change are not shown: for those, report whole runs.")
 ESTIMATE_HEADER = ["trace", "run", "simulated", fm.header("latency", "latency"), "cycles", fm.header("reach", "share"),
@@ -495,9 +497,13 @@ def _estimate_markdown(c):
             ""]
     if c["notes"]:
         out += ["## Notes", ""] + [f"- {n}" for n in c["notes"]] + [""]
-    out += ["## Runs", ""] + [f"- {_run_line(r)}" + (f"; sampled: {E.sampling_tag(r.doc)}" if E.is_sampled(r.doc)
-                                                     else "") for r in c["runs"]] + [""]
+    out += ["## Runs", ""] + [f"- {_estimate_run_line(r)}" for r in c["runs"]] + [""]
     return "\n".join(out)
+
+
+def _estimate_run_line(r):
+    """A run's provenance, and its sampling where it made part of its trace."""
+    return _run_line(r) + (f"; sampled: {E.sampling_tag(r.doc)}" if E.is_sampled(r.doc) else "")
 
 
 def _estimate_html(c):
@@ -529,7 +535,8 @@ def _estimate_html(c):
                  f"<figcaption>{e(fg.caption)} Data: data/{fg.name}.csv.</figcaption></figure>")
     if c["notes"]:
         parts.append("<h2>Notes</h2><ul>" + "".join(f"<li>{e(n)}</li>" for n in c["notes"]) + "</ul>")
-    parts.append("<h2>Runs</h2><ul>" + "".join(f"<li>{e(_run_line(r))}</li>" for r in c["runs"]) + "</ul>")
+    parts.append("<h2>Runs</h2><ul>" + "".join(f"<li>{e(_estimate_run_line(r))}</li>" for r in c["runs"])
+                 + "</ul>")
     parts.append(f"<script>{SCRIPT}</script></body></html>\n")
     return "\n".join(parts)
 
