@@ -89,13 +89,11 @@ def _one_thread():
     threadpool_limits(limits=1)
 
 
-def _simulate(config, trace, phases=1, sampling=None):
+def _simulate(config, trace, phases=1):
     from ..arch import load_arch, short_for_refresh, takes_refresh
     from ..run import AUTO_PHASES, refresh_phase_runs, simulate
 
     arch = load_arch(config, source="sweep point")
-    if sampling:
-        return _simulate_sampled(arch, trace, sampling)
     # no per-unit intervals: the document is the same without them, and a point needs only the document
     doc = simulate(arch, trace, keep_intervals=False).to_dict()
     if phases == "auto":     # only a run short for refresh is repeated
@@ -105,25 +103,27 @@ def _simulate(config, trace, phases=1, sampling=None):
     return doc
 
 
-_parts = OrderedDict()   # (id of a cached trace, decode, warmup) -> (that trace, its decode-sampled part)
+_parts = OrderedDict()   # (trace digest, decode, warmup) -> the trace's decode-sampled part
 
 
-def _simulate_sampled(arch, trace, sampling):
-    """The run of the spec's sampled part of ``trace`` (as ``attnsim run --sample-prefill K
+def _simulate_sampled(config, trace_path, trace_digest, sampling):
+    """The run of the spec's sampled part of the trace (as ``attnsim run --sample-prefill K
     --sample-decode K2 --sample-warmup N``), with the whole trace's estimate in its document."""
+    from ..arch import load_arch
     from ..run import estimate_whole, simulate
     from ..trace.sample import sample_decode
 
+    arch = load_arch(config, source="sweep point")
+    trace = _trace(trace_path, trace_digest)
     opts = {"sample_prefill": sampling["prefill"]} if "prefill" in sampling else {}
     if "decode" not in sampling:
         return simulate(arch, trace, keep_intervals=False, **opts).to_dict()
-    key = (id(trace), sampling["decode"], sampling.get("warmup"))
-    held = _parts.get(key)
-    if held is None or held[0] is not trace:   # the trace is kept with it, so its id stays its own
-        held = _parts[key] = (trace, sample_decode(trace, sampling["decode"], sampling.get("warmup")))
+    key = (trace_digest, sampling["decode"], sampling.get("warmup"))
+    part = _parts.get(key)
+    if part is None:
+        part = _parts[key] = sample_decode(trace, sampling["decode"], sampling.get("warmup"))
         while len(_parts) > TRACE_CACHE_SIZE:
             _parts.popitem(last=False)
-    part = held[1]
     doc = simulate(arch, part.part, keep_intervals=False, **opts).to_dict()
     doc["decode_sample"] = estimate_whole(doc, part)
     return doc
@@ -142,7 +142,10 @@ def run_point(config, trace_path, trace_digest, phases=1, sampling=None):
     message; only the death of the process itself escapes (the backend sees it).
     """
     try:
-        doc = _simulate(config, _trace(trace_path, trace_digest), phases, sampling)
+        if sampling:
+            doc = _simulate_sampled(config, trace_path, trace_digest, sampling)
+        else:
+            doc = _simulate(config, _trace(trace_path, trace_digest), phases)
         return "ok", doc, build_id()
     except Exception as exc:  # a failing point is recorded, the sweep goes on
         text = " ".join(str(exc).split()) or type(exc).__name__
